@@ -1,0 +1,5 @@
+"""``python -m pmap`` runs the pmap command."""
+
+from .cli import main
+
+raise SystemExit(main())

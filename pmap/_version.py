@@ -1,0 +1,8 @@
+"""Version of pmap (single source: the installed distribution metadata)."""
+
+from importlib.metadata import PackageNotFoundError, version
+
+try:
+    __version__ = version("pmap")
+except PackageNotFoundError:  # running from a source tree that is not installed
+    __version__ = "0.1.0+unknown"
