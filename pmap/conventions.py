@@ -49,6 +49,8 @@ _LENGTH_TO_UM = {"um": 1.0, "nm": 1e-3, "mm": 1e3}
 INTENSITY_UNITS = (
     "counts", "counts/s", "counts/s/W", "1", "arbitrary", "counts/eV", "counts/s/eV",
     "counts/s/W/eV", "counts/nm", "W/nm", "W/eV", "photons/s",
+    # densities per wavenumber (pmap.spectral.to_wavenumber / to_raman_shift)
+    "counts/cm-1", "counts/s/cm-1", "counts/s/W/cm-1", "W/cm-1",
 )
 _INTENSITY_ALIASES = {
     "count": "counts", "counts": "counts", "cts": "counts", "adu": "counts", "dn": "counts",
@@ -58,6 +60,8 @@ _INTENSITY_ALIASES = {
     "arbitrary": "arbitrary", "normalized": "1", "normalised": "1",
     "counts/ev": "counts/eV", "counts/s/ev": "counts/s/eV", "counts/s/w/ev": "counts/s/W/eV",
     "counts/nm": "counts/nm", "w/nm": "W/nm", "w/ev": "W/eV", "photons/s": "photons/s",
+    "counts/cm-1": "counts/cm-1", "counts/s/cm-1": "counts/s/cm-1",
+    "counts/s/w/cm-1": "counts/s/W/cm-1", "w/cm-1": "W/cm-1",
 }
 
 

@@ -11,7 +11,9 @@ __all__ = [
     "CubeValidationError",
     "FormatError",
     "InputFileError",
+    "OutputExistsError",
     "StepError",
+    "OutputExistsError",
     "PmapWarning",
     "PmapNotice",
 ]
@@ -33,8 +35,16 @@ class InputFileError(PmapError, OSError):
     """An input file is missing, unreadable or truncated."""
 
 
+class OutputExistsError(PmapError, FileExistsError):
+    """An output path exists (and overwrite was not asked for) or is the input itself."""
+
+
 class StepError(PmapError, ValueError):
     """A processing step got parameters or data it cannot work with."""
+
+
+class OutputExistsError(PmapError, FileExistsError):
+    """The output path exists and overwriting was not asked for."""
 
 
 class PmapWarning(UserWarning):

@@ -1,0 +1,249 @@
+"""The ``pmap`` command: info, convert, demo, process, steps (and view when napari is there).
+
+User errors print one line on stderr (``pmap: error: ...``) and exit with
+status 2, without a traceback; ``--debug`` shows the traceback. No subcommand
+ever modifies an input file.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import traceback
+import warnings
+from collections.abc import Callable, Sequence
+from pathlib import Path
+
+from ._version import __version__
+from .errors import PmapError, PmapNotice
+
+__all__ = ["main", "build_parser"]
+
+EXIT_USER_ERROR = 2
+EXIT_INTERRUPTED = 130
+
+
+def _parse_value(text: str):
+    """Turn a KEY=VALUE option's value into int, float, bool, list or str."""
+    low = text.lower()
+    if low in ("true", "yes"):
+        return True
+    if low in ("false", "no"):
+        return False
+    if "," in text:
+        return [_parse_value(t) for t in text.split(",")]
+    for conv in (int, float):
+        try:
+            return conv(text)
+        except ValueError:
+            pass
+    return text
+
+
+def _read_options(args: argparse.Namespace) -> dict:
+    opts: dict = {}
+    if getattr(args, "format", None):
+        opts["fmt"] = args.format
+    for item in getattr(args, "option", None) or []:
+        if "=" not in item:
+            raise PmapError(f"--option needs KEY=VALUE, got {item!r}")
+        key, value = item.split("=", 1)
+        opts[key.strip().replace("-", "_")] = _parse_value(value.strip())
+    return opts
+
+
+def _add_read_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--format", help="input format if the extension does not tell "
+                   "(zarr, netcdf, npy, tiff, text)")
+    p.add_argument("-O", "--option", action="append", metavar="KEY=VALUE",
+                   help="reader option, repeatable: e.g. wavelength_start_nm=500, "
+                   "wavelength_step_nm=0.25, pixel_size_um=0.5, x_col=X, delimiter=';'")
+
+
+# ---------------------------------------------------------------- subcommands
+def cmd_info(args: argparse.Namespace) -> int:
+    from .io import cube_info, format_cube_info
+
+    info = cube_info(args.path, compute_range=not args.no_range, **_read_options(args))
+    print(format_cube_info(info))
+    return 0
+
+
+def cmd_convert(args: argparse.Namespace) -> int:
+    from .io import convert
+
+    out = convert(args.src, args.dst, overwrite=args.overwrite, out_format=args.to,
+                  **_read_options(args))
+    print(f"wrote {out}")
+    return 0
+
+
+def _figures_dir(store: Path) -> Path:
+    return store.with_name(store.name.removesuffix(".zarr") + "_figures")
+
+
+def cmd_process(args: argparse.Namespace) -> int:
+    from .pipeline import DEFAULT_PIPELINE_TOML, load_pipeline, process
+
+    if args.print_config:
+        print(DEFAULT_PIPELINE_TOML, end="")
+        return 0
+    if not args.cube or not args.output:
+        raise PmapError("process needs CUBE and -o RESULT.zarr (or --print-config)")
+    pipe = load_pipeline(args.config)
+    regions = args.regions
+    if regions is not None and regions != "auto":
+        try:
+            regions = int(regions)
+        except ValueError:
+            raise PmapError(f"--regions takes a number or 'auto', got {regions!r}") from None
+    out = Path(args.output)
+    ds = process(args.cube, out, pipeline=pipe, peaks=args.peaks, model=args.model,
+                 regions=regions, components=args.components, overwrite=args.overwrite,
+                 progress=not args.quiet, read_options=_read_options(args))
+    print(f"result store: {out}")
+    if pipe.output.get("figures", True) and not args.no_figures:
+        from .report import write_figures
+
+        figs = write_figures(ds, _figures_dir(out))
+        print(f"figures ({len(figs)}): {_figures_dir(out)}")
+    return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from .pipeline import process
+    from .report import write_figures
+    from .synthetic import write_demo_cube
+
+    out_dir = Path(args.out)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    paths = write_demo_cube(out_dir, size=args.size, seed=args.seed, overwrite=args.overwrite)
+    cube_path = Path(paths["cube"])
+    print(f"demo cube:   {cube_path}")
+    print(f"demo truth:  {paths['truth']}")
+    result_path = out_dir / "demo_result.zarr"
+    ds = process(cube_path, result_path, overwrite=True, progress=not args.quiet,
+                 regions=args.regions, components=args.components)
+    figs = write_figures(ds, _figures_dir(result_path))
+    print(f"result:      {result_path}")
+    print(f"figures:     {_figures_dir(result_path)} ({len(figs)} PNG)")
+    try:
+        from .synthetic import compare_with_truth
+
+        print(compare_with_truth(ds, paths["truth"]))
+    except ImportError:
+        pass
+    return 0
+
+
+def cmd_steps(args: argparse.Namespace) -> int:
+    from .steps import available_steps
+
+    for name, spec in available_steps().items():
+        print(f"{name:24s} {spec.summary}")
+    return 0
+
+
+def cmd_view(args: argparse.Namespace) -> int:
+    try:
+        from .napari_plugin import view
+    except ImportError as exc:
+        raise PmapError(f"the viewer needs the 'viewer' extra (napari, Qt): {exc}") from None
+    return view(args.path)
+
+
+# ---------------------------------------------------------------- parser
+def build_parser() -> argparse.ArgumentParser:
+    """The argparse parser of the ``pmap`` command."""
+    parser = argparse.ArgumentParser(
+        prog="pmap",
+        description="Hyperspectral photoluminescence map processor: calibrated spectra, "
+        "per-pixel fits, regions, figures.",
+    )
+    parser.add_argument("--version", action="version", version=f"pmap {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("info", help="describe a cube: dims, spectral range, pixel size, chunks")
+    p.add_argument("path")
+    p.add_argument("--no-range", action="store_true",
+                   help="skip the min/max scan (instant on huge files)")
+    _add_read_options(p)
+    p.set_defaults(func=cmd_info)
+
+    p = sub.add_parser("convert", help="convert a cube between formats (Zarr, NetCDF, ...)")
+    p.add_argument("src")
+    p.add_argument("dst")
+    p.add_argument("--to", help="output format (zarr or netcdf; default from extension)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output")
+    _add_read_options(p)
+    p.set_defaults(func=cmd_convert)
+
+    p = sub.add_parser("process", help="clean, convert, fit and map a cube into a result store")
+    p.add_argument("cube", nargs="?")
+    p.add_argument("-o", "--output", help="result store to create (RESULT.zarr)")
+    p.add_argument("--config", help="pipeline TOML file (see --print-config)")
+    p.add_argument("--peaks", type=int, help="number of peaks to fit (1-4)")
+    p.add_argument("--model", help="line shape: gaussian, lorentzian, voigt, pseudo_voigt, "
+                   "asymmetric")
+    p.add_argument("--regions", help="cluster pixels into K regions, or 'auto'")
+    p.add_argument("--components", type=int, help="NMF components to extract")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing result store")
+    p.add_argument("--no-figures", action="store_true", help="do not write PNG figures")
+    p.add_argument("--print-config", action="store_true",
+                   help="print the default pipeline TOML and exit")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    _add_read_options(p)
+    p.set_defaults(func=cmd_process)
+
+    p = sub.add_parser("demo", help="generate the synthetic demo map and process it end to end")
+    p.add_argument("--out", default="pmap_demo_output", help="output folder (default %(default)s)")
+    p.add_argument("--size", default="small", help="tiny, small, medium or large")
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--regions", default="auto", help="regions to find (number or 'auto')")
+    p.add_argument("--components", type=int, default=3, help="NMF components")
+    p.add_argument("--overwrite", action="store_true", help="replace earlier demo files")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("steps", help="list the processing steps a pipeline TOML may name")
+    p.set_defaults(func=cmd_steps)
+
+    p = sub.add_parser("view", help="open a cube or result in the napari viewer")
+    p.add_argument("path", nargs="?")
+    p.set_defaults(func=cmd_view)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``pmap`` console script; returns the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return EXIT_USER_ERROR
+    func: Callable[[argparse.Namespace], int] = args.func
+    debug = args.debug or bool(os.environ.get("PMAP_DEBUG"))
+
+    def _notice(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, PmapNotice):
+            print(f"pmap: note: {message}", file=sys.stderr)
+        else:
+            print(warnings.formatwarning(message, category, filename, lineno, line),
+                  file=sys.stderr, end="")
+
+    warnings.showwarning = _notice
+    try:
+        return int(func(args) or 0)
+    except KeyboardInterrupt:
+        print("pmap: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except (PmapError, OSError, ValueError, KeyError) as exc:
+        if debug:
+            traceback.print_exc()
+        msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        if not isinstance(exc, PmapError):
+            msg = f"{type(exc).__name__}: {msg}"
+        print(f"pmap: error: {msg}", file=sys.stderr)
+        return EXIT_USER_ERROR

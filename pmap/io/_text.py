@@ -1,0 +1,551 @@
+"""Delimited text maps (.csv, .tsv, .txt): long and wide tables, streamed.
+
+Two layouts, told apart by the header line:
+
+* **long**: one row per pixel and channel, columns x, y, spectral value and
+  intensity (e.g. ``x_um,y_um,wavelength_nm,intensity``);
+* **wide**: one row per pixel, columns x, y, then one column per channel whose
+  header is the channel value (e.g. ``x,y,600.0,600.5,601.0``).
+
+Column roles are recognised from their names (x; y; wavelength, lambda, energy;
+intensity, counts, value, signal), units from a suffix (``x_um``, ``energy_ev``)
+or brackets (``x (mm)``, ``wavelength [nm]``); ``x_col=``, ``y_col=``,
+``spectral_col=``, ``value_col=`` (names or 0-based indices) override them.
+Lines starting with ``#`` before the header and elsewhere are ignored.
+
+Reading is two streaming passes with ``pandas.read_csv(chunksize=...)``: the
+first collects the distinct positions and channel values and infers the grid
+(:mod:`pmap.io._grid`); the second scatters values into Zarr chunks held in a
+bounded buffer (least recently used chunks are written out first), so memory
+stays near ``buffer_mib`` + one block of rows whatever the file size. Spectral
+values must repeat exactly (same text) for every pixel.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import os
+import re
+from collections import OrderedDict
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import dask.array as da
+import numpy as np
+import pandas as pd
+import xarray as xr
+import zarr
+
+from ..conventions import CUBE_NAME, SPECTRAL_DIMS, length_to_um_factor, normalise_length_unit
+from ..cube import DEFAULT_CHUNK_MIB, validate_cube
+from ..errors import CubeValidationError, FormatError, InputFileError
+from ..provenance import with_input
+from ._common import META_OPTIONS, check_input, check_options, metadata_attrs
+from ._grid import Grid, infer_grid
+from ._write import cube_dataset, prepare_output, write_zarr
+
+TEXT_OPTIONS = (
+    "x_col", "y_col", "spectral_col", "value_col", "columns", "delimiter", "layout",
+    "spectral_dim", "spectral_units", "xy_units", "pixel_size_um", "pixel_size_x_um",
+    "pixel_size_y_um", "grid_tolerance", "min_fill", "dtype", *META_OPTIONS,
+)
+
+_X_NAMES = {"x", "xpos", "x_pos", "x_position", "pos_x", "posx", "position_x"}
+_Y_NAMES = {"y", "ypos", "y_pos", "y_position", "pos_y", "posy", "position_y"}
+_SPEC_NAMES = {"wavelength": {"wavelength", "lambda", "wl", "wave"},
+               "energy": {"energy", "e", "photon_energy"}}
+_VALUE_NAMES = {"intensity", "counts", "count", "value", "signal", "i", "pl", "cps", "int"}
+_UNIT_SUFFIX = re.compile(r"^(.*?)[ _](um|µm|μm|nm|mm|ev|mev|pixel|px)$")
+_BRACKET_UNIT = re.compile(r"^(.*?)\s*[\(\[]\s*([^\)\]]*)\s*[\)\]]\s*$")
+_MAX_CHANNELS = 200_000
+
+
+@dataclass
+class TextSpec:
+    """How to read one text file: delimiter, header, column roles and units."""
+
+    path: Path
+    delimiter: str
+    skiprows: int
+    names: list[str]
+    layout: str
+    x: int
+    y: int
+    spectral: int | None = None
+    value: int | None = None
+    channel_cols: list[int] = field(default_factory=list)
+    channel_values: np.ndarray | None = None
+    spectral_dim: str = "wavelength"
+    spectral_units: str = "nm"
+    xy_units: str = "um"
+
+
+@dataclass
+class TextLayout:
+    """What the first pass learned: grids, channel values, row count, value range."""
+
+    y: Grid
+    x: Grid
+    spectral: np.ndarray
+    n_rows: int
+    value_min: float | None = None
+    value_max: float | None = None
+
+
+def _split_name(name: str) -> tuple[str, str | None]:
+    """Normalised base name and unit of a header field ("X (mm)" -> ("x", "mm"))."""
+    s = name.strip().strip('"').strip("'")
+    m = _BRACKET_UNIT.match(s)
+    if m:
+        return m.group(1).strip().lower().replace(" ", "_"), m.group(2).strip()
+    low = s.lower().replace(" ", "_")
+    m = _UNIT_SUFFIX.match(low)
+    if m:
+        return m.group(1), m.group(2)
+    return low, None
+
+
+def _read_header(path: Path, delimiter: str | None) -> tuple[str, int, list[str]]:
+    """Delimiter, number of lines up to and including the header, and the header fields."""
+    with open(path, encoding="utf-8", errors="replace", newline="") as fh:
+        n = 0
+        for line in fh:
+            n += 1
+            if line.strip() and not line.lstrip().startswith("#"):
+                break
+        else:
+            raise FormatError(f"{path.name}: no header line found (empty text file)")
+    line = line.rstrip("\r\n")
+    if delimiter is None:
+        ext = path.suffix.lower()
+        if ext == ".csv":
+            delimiter = ","
+        elif ext == ".tsv":
+            delimiter = "\t"
+        else:
+            delimiter = next((d for d in ("\t", ",", ";") if d in line), r"\s+")
+    elif delimiter in ("tab", "\\t"):
+        delimiter = "\t"
+    elif delimiter in ("whitespace", "space", " "):
+        delimiter = r"\s+"
+    if delimiter == r"\s+":
+        fields = line.split()
+    else:
+        fields = next(csv.reader(io.StringIO(line), delimiter=delimiter))
+    fields = [f.strip() for f in fields]
+    if len(fields) < 3:
+        raise FormatError(
+            f"{path.name}: header has {len(fields)} field(s) with delimiter {delimiter!r}; "
+            "a map table needs x, y and spectral columns"
+        )
+    return delimiter, n, fields
+
+
+def _find_col(fields: list[str], bases: list[str], given: Any, role: str, path: Path) -> int | None:
+    if given is not None:
+        if isinstance(given, int | np.integer):
+            if not 0 <= int(given) < len(fields):
+                raise FormatError(f"{path.name}: {role} column index {given} out of range")
+            return int(given)
+        if str(given) in fields:
+            return fields.index(str(given))
+        if str(given).isdigit() and int(given) < len(fields):
+            return int(given)
+        raise FormatError(f"{path.name}: no column named {given!r} for {role} (columns: {fields})")
+    return None
+
+
+def inspect_text(path: str | os.PathLike, **options: Any) -> TextSpec:
+    """Read the header of a text map and decide layout, column roles and units."""
+    p = check_input(path)
+    delimiter, skip, fields = _read_header(p, options.get("delimiter"))
+    if len(set(fields)) != len(fields):
+        dup = sorted({f for f in fields if fields.count(f) > 1})
+        raise FormatError(f"{p.name}: duplicate column name(s) {dup} in the header")
+    bases, units = zip(*(_split_name(f) for f in fields), strict=True)
+    cols = dict(options.get("columns") or {})
+    unknown = set(cols) - {"x", "y", "spectral", "value"}
+    if unknown:
+        raise FormatError(f"columns= keys must be x, y, spectral, value; got {sorted(unknown)}")
+    pick = {r: _find_col(fields, list(bases), options.get(f"{r}_col", cols.get(r)), r, p)
+            for r in ("x", "y", "spectral", "value")}
+
+    def by_name(names: set[str]) -> int | None:
+        hits = [i for i, b in enumerate(bases) if b in names]
+        return hits[0] if hits else None
+
+    ix = pick["x"] if pick["x"] is not None else by_name(_X_NAMES)
+    iy = pick["y"] if pick["y"] is not None else by_name(_Y_NAMES)
+    if ix is None or iy is None:
+        raise FormatError(
+            f"{p.name}: cannot find the x and y columns in header {fields}; "
+            "name them with x_col= and y_col="
+        )
+    isp, sdim = pick["spectral"], options.get("spectral_dim")
+    if isp is None:
+        for dim, names in _SPEC_NAMES.items():
+            hit = by_name(names)
+            if hit is not None:
+                isp, sdim = hit, sdim or dim
+                break
+    elif sdim is None:
+        sdim = "energy" if any(n in bases[isp] for n in ("energy", "ev")) else "wavelength"
+    ival = pick["value"] if pick["value"] is not None else by_name(_VALUE_NAMES)
+    rest = [i for i in range(len(fields)) if i not in (ix, iy)]
+    layout = options.get("layout")
+    if layout is None:
+        if isp is not None and ival is None and len(rest) == 2:
+            ival = next(i for i in rest if i != isp)
+        layout = "long" if isp is not None and ival is not None else "wide"
+    if layout not in ("long", "wide"):
+        raise FormatError(f"layout must be 'long' or 'wide', got {layout!r}")
+    xy_units = options.get("xy_units") or units[ix] or "um"
+    try:
+        xy_units = normalise_length_unit(xy_units)
+    except CubeValidationError as exc:
+        raise FormatError(f"{p.name}: {exc}") from exc
+    spec = TextSpec(p, delimiter, skip, fields, layout, ix, iy, xy_units=xy_units)
+    if layout == "long":
+        if isp is None or ival is None:
+            raise FormatError(
+                f"{p.name}: long table needs a spectral and an intensity column (header {fields}); "
+                "name them with spectral_col= and value_col="
+            )
+        spec.spectral, spec.value = isp, ival
+        spec.spectral_dim = sdim or "wavelength"
+        spec.spectral_units = options.get("spectral_units") or units[isp] or ""
+    else:
+        vals = []
+        for i in rest:
+            base = re.sub(r"\s*(nm|ev|mev|cm-1)$", "", fields[i].strip().lower())
+            try:
+                vals.append(float(base))
+            except ValueError:
+                raise FormatError(
+                    f"{p.name}: cannot read the table layout: column {fields[i]!r} is neither a "
+                    "spectral/intensity column (long table) nor a channel value (wide table); "
+                    "expected x,y,wavelength,intensity or x,y,<channel values...>"
+                ) from None
+        order = np.argsort(vals, kind="stable")
+        spec.channel_cols = [rest[i] for i in order]
+        spec.channel_values = np.asarray(vals)[order]
+        if np.any(np.diff(spec.channel_values) == 0):
+            raise FormatError(f"{p.name}: duplicate channel values in the header")
+        spec.spectral_dim = sdim or "wavelength"
+        spec.spectral_units = options.get("spectral_units") or ""
+    if spec.spectral_dim not in SPECTRAL_DIMS:
+        raise FormatError(f"spectral_dim must be one of {list(SPECTRAL_DIMS)}")
+    spec.spectral_units = spec.spectral_units or SPECTRAL_DIMS[spec.spectral_dim]
+    _check_tail(spec)
+    return spec
+
+
+def _check_tail(spec: TextSpec) -> None:
+    """Raise InputFileError when the last line is cut short (truncated file)."""
+    size = spec.path.stat().st_size
+    with open(spec.path, "rb") as fh:
+        fh.seek(max(0, size - 65536))
+        tail = fh.read()
+    if tail.endswith(b"\n"):
+        return
+    last = tail.rsplit(b"\n", 1)[-1].decode("utf-8", errors="replace")
+    if not last.strip() or last.lstrip().startswith("#"):
+        return
+    n = len(last.split()) if spec.delimiter == r"\s+" else len(last.split(spec.delimiter))
+    if n < len(spec.names):
+        raise InputFileError(
+            f"{spec.path.name} looks truncated: its last line has {n} of {len(spec.names)} fields"
+        )
+
+
+def _blocks(spec: TextSpec, cols: list[int], chunk_rows: int) -> Iterator[tuple[int, np.ndarray]]:
+    """Yield (first row number, float array of the chosen columns) blocks of the table."""
+    names = [f"c{i}" for i in range(len(spec.names))]
+    want = [names[i] for i in cols]
+    try:
+        reader = pd.read_csv(
+            spec.path, sep=spec.delimiter, header=None, names=names, usecols=sorted(set(want)),
+            skiprows=spec.skiprows, comment="#", dtype=np.float64, chunksize=chunk_rows,
+            engine="c", skip_blank_lines=True,
+        )
+        row = 0
+        with reader:
+            for df in reader:
+                arr = df[want].to_numpy()
+                yield row, arr
+                row += len(arr)
+    except (ValueError, pd.errors.ParserError) as exc:
+        raise FormatError(f"{spec.path.name}: cannot parse the table ({exc})") from exc
+
+
+def _bad_rows(block: np.ndarray, row0: int, spec: TextSpec, what: str) -> None:
+    bad = ~np.isfinite(block)
+    if np.any(bad):
+        r = int(np.flatnonzero(bad.any(axis=1))[0])
+        raise FormatError(
+            f"{spec.path.name}: data row {row0 + r + 1} has a missing or non-numeric {what} "
+            "(truncated or corrupt file?)"
+        )
+
+
+def _grid_step(options: Mapping[str, Any], dim: str, unit: str) -> float | None:
+    step = options.get(f"pixel_size_{dim}_um", options.get("pixel_size_um"))
+    if step is None:
+        return None
+    if unit == "pixel":
+        return float(step)
+    return float(step) / length_to_um_factor(unit)
+
+
+def scan_text(
+    spec: TextSpec, *, chunk_rows: int = 1_000_000, value_range: bool = False, **options: Any
+) -> TextLayout:
+    """First pass: distinct positions and channel values, grids, rows, value range."""
+    xs: list[np.ndarray] = []
+    ys: list[np.ndarray] = []
+    sv = np.empty(0)
+    n = 0
+    vmin, vmax = np.inf, -np.inf
+    long = spec.layout == "long"
+    cols = [spec.x, spec.y] + ([spec.spectral] if long else [])
+    if value_range:
+        cols += [spec.value] if long else spec.channel_cols
+    ux, uy = np.empty(0), np.empty(0)
+    for row0, block in _blocks(spec, cols, chunk_rows):
+        _bad_rows(block[:, : 3 if long else 2], row0, spec, "position or spectral value")
+        xs.append(np.unique(block[:, 0]))
+        ys.append(np.unique(block[:, 1]))
+        if long:
+            sv = np.union1d(sv, np.unique(block[:, 2]))
+            if sv.size > _MAX_CHANNELS:
+                raise FormatError(
+                    f"{spec.path.name}: more than {_MAX_CHANNELS} distinct spectral values; "
+                    "the spectral column must repeat the same channel values for every pixel"
+                )
+        if value_range:
+            v = block[:, 3 if long else 2:]
+            if np.isfinite(v).any():
+                vmin, vmax = min(vmin, float(np.nanmin(v))), max(vmax, float(np.nanmax(v)))
+        if len(xs) > 16:  # keep the lists short
+            ux, uy = np.unique(np.concatenate([ux, *xs])), np.unique(np.concatenate([uy, *ys]))
+            xs, ys = [], []
+        n += len(block)
+    if n == 0:
+        raise FormatError(f"{spec.path.name}: the table has a header but no data rows")
+    ux = np.unique(np.concatenate([ux, *xs]))
+    uy = np.unique(np.concatenate([uy, *ys]))
+    tol = float(options.get("grid_tolerance", 0.25))
+    fill = float(options.get("min_fill", 0.02))
+    gx = infer_grid(ux, step=_grid_step(options, "x", spec.xy_units), tolerance=tol,
+                    min_fill=fill, axis="x")
+    gy = infer_grid(uy, step=_grid_step(options, "y", spec.xy_units), tolerance=tol,
+                    min_fill=fill, axis="y")
+    spectral = sv if long else np.asarray(spec.channel_values)
+    return TextLayout(gy, gx, spectral, n, vmin if value_range and np.isfinite(vmin) else None,
+                      vmax if value_range and np.isfinite(vmax) else None)
+
+
+class _ChunkBuffer:
+    """Scatter values into a Zarr array through a bounded buffer of whole chunks.
+
+    Chunks are kept in memory until the buffer exceeds ``budget`` bytes, then the
+    least recently touched ones are written; a chunk touched again later is read
+    back and merged. A cell written twice raises FormatError (duplicate point).
+    """
+
+    def __init__(self, array: zarr.Array, budget: int, describe) -> None:
+        self.array = array
+        self.cy, self.cx, self.ns = array.chunks
+        self.ny, self.nx, _ = array.shape
+        self.nbx = -(-self.nx // self.cx)
+        self.budget = max(budget, 1)
+        self.buf: OrderedDict[int, np.ndarray] = OrderedDict()
+        self.written: set[int] = set()
+        self.describe = describe
+        self.nbytes = 0
+
+    def _slices(self, key: int) -> tuple[slice, slice]:
+        by, bx = divmod(key, self.nbx)
+        return (slice(by * self.cy, min((by + 1) * self.cy, self.ny)),
+                slice(bx * self.cx, min((bx + 1) * self.cx, self.nx)))
+
+    def put(self, iy: np.ndarray, ix: np.ndarray, ic: np.ndarray | None, vals: np.ndarray) -> None:
+        """Write values at pixel (iy, ix), channel ic (or all channels when ic is None)."""
+        keys = (iy // self.cy) * self.nbx + ix // self.cx
+        order = np.argsort(keys, kind="stable")
+        keys, iy, ix, vals = keys[order], iy[order], ix[order], vals[order]
+        if ic is not None:
+            ic = ic[order]
+        starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]])
+        ends = np.r_[starts[1:], len(keys)]
+        for s, e in zip(starts, ends):
+            key = int(keys[s])
+            chunk = self.buf.get(key)
+            if chunk is None:
+                ys, xs = self._slices(key)
+                chunk = np.full((ys.stop - ys.start, xs.stop - xs.start, self.ns), np.nan,
+                                dtype=self.array.dtype)
+                self.buf[key] = chunk
+                self.nbytes += chunk.nbytes
+            self.buf.move_to_end(key)
+            ly, lx = iy[s:e] % self.cy, ix[s:e] % self.cx
+            if ic is None:
+                taken = ~np.all(np.isnan(chunk[ly, lx, :]), axis=-1)
+            else:
+                taken = ~np.isnan(chunk[ly, lx, ic[s:e]])
+            if np.any(taken):
+                j = s + int(np.flatnonzero(taken)[0])
+                raise FormatError(self.describe(iy[j], ix[j], None if ic is None else ic[j]))
+            if ic is None:
+                chunk[ly, lx, :] = vals[s:e]
+            else:
+                chunk[ly, lx, ic[s:e]] = vals[s:e]
+        while self.nbytes > self.budget and len(self.buf) > 1:
+            self._evict(next(iter(self.buf)))
+
+    def _evict(self, key: int) -> None:
+        chunk = self.buf.pop(key)
+        self.nbytes -= chunk.nbytes
+        ys, xs = self._slices(key)
+        if key in self.written:
+            old = self.array[ys, xs, :]
+            both = ~np.isnan(old) & ~np.isnan(chunk)
+            if np.any(both):
+                ly, lx, c = (int(v[0]) for v in np.nonzero(both))
+                raise FormatError(self.describe(ys.start + ly, xs.start + lx, c))
+            chunk = np.where(np.isnan(chunk), old, chunk)
+        self.array[ys, xs, :] = chunk
+        self.written.add(key)
+
+    def flush(self) -> None:
+        while self.buf:
+            self._evict(next(iter(self.buf)))
+
+
+def _first_duplicate(flat: np.ndarray) -> int | None:
+    s = np.sort(flat, kind="stable")
+    d = np.flatnonzero(s[1:] == s[:-1])
+    return None if d.size == 0 else int(s[d[0]])
+
+
+def _skeleton(spec: TextSpec, layout: TextLayout, attrs: dict, dtype: str,
+              target_chunk_mib: float) -> xr.DataArray:
+    """Lazy all-NaN cube with the text map's coordinates, validated (µm, units...)."""
+    shape = (layout.y.n, layout.x.n, layout.spectral.size)
+    data = da.full(shape, np.nan, dtype=dtype, chunks=(-1, -1, -1))
+    sdim = spec.spectral_dim
+    coords = {
+        "y": ("y", layout.y.values, {"units": spec.xy_units}),
+        "x": ("x", layout.x.values, {"units": spec.xy_units}),
+        sdim: (sdim, layout.spectral, {"units": spec.spectral_units}),
+    }
+    arr = xr.DataArray(data, dims=("y", "x", sdim), coords=coords, name=CUBE_NAME, attrs=attrs)
+    try:
+        return validate_cube(arr, target_chunk_mib=target_chunk_mib)
+    except CubeValidationError as exc:
+        raise CubeValidationError(f"{spec.path.name}: {exc}") from exc
+
+
+def _fill(spec: TextSpec, layout: TextLayout, array: zarr.Array, *, chunk_rows: int,
+          tolerance: float, buffer_mib: float) -> None:
+    """Second pass: read the values and scatter them into the Zarr array."""
+    ns = layout.spectral.size
+
+    def describe(iy: int, ix: int, ic: int | None) -> str:
+        where = f"x={layout.x.values[ix]:g}, y={layout.y.values[iy]:g}"
+        if ic is not None and spec.layout == "long":
+            where += f", {spec.spectral_dim}={layout.spectral[ic]:g}"
+        return f"{spec.path.name}: duplicate position ({where} {spec.xy_units}): two rows give it"
+
+    buf = _ChunkBuffer(array, int(buffer_mib * 2**20), describe)
+    long = spec.layout == "long"
+    cols = [spec.x, spec.y] + ([spec.spectral, spec.value] if long else spec.channel_cols)
+    for row0, block in _blocks(spec, cols, chunk_rows):
+        _bad_rows(block[:, : 3 if long else 2], row0, spec, "position or spectral value")
+        ix = layout.x.index(block[:, 0], tolerance=tolerance, axis="x")
+        iy = layout.y.index(block[:, 1], tolerance=tolerance, axis="y")
+        if long:
+            ic = np.searchsorted(layout.spectral, block[:, 2])
+            ic = np.minimum(ic, ns - 1)
+            if not np.array_equal(layout.spectral[ic], block[:, 2]):
+                raise FormatError(f"{spec.path.name}: spectral values changed between passes")
+            flat = (iy * layout.x.n + ix) * ns + ic
+            vals = block[:, 3]
+        else:
+            ic = None
+            flat = iy * layout.x.n + ix
+            vals = block[:, 2:]
+        dup = _first_duplicate(flat)
+        if dup is not None:
+            pix, c = divmod(dup, ns) if long else (dup, None)
+            raise FormatError(describe(*divmod(pix, layout.x.n), c))
+        buf.put(iy, ix, ic, vals)
+    buf.flush()
+
+
+def text_to_zarr(
+    path: str | os.PathLike,
+    out: str | os.PathLike | zarr.abc.store.Store,
+    *,
+    chunk_rows: int = 1_000_000,
+    overwrite: bool = False,
+    zarr_format: int = 3,
+    target_chunk_mib: float = DEFAULT_CHUNK_MIB,
+    buffer_mib: float = 256.0,
+    **options: Any,
+) -> Path | zarr.abc.store.Store:
+    """Convert a text map (long or wide table) to a Zarr cube in bounded memory.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The .csv/.tsv/.txt table (any size).
+    out : str, path-like or zarr Store
+        Output Zarr store (must not exist unless ``overwrite``).
+    chunk_rows : int
+        Rows parsed per block (memory ≈ chunk_rows × columns × 8 bytes × a few).
+    overwrite : bool
+        Replace an existing output.
+    zarr_format : {2, 3}
+        Zarr format version.
+    target_chunk_mib : float
+        Size of one spatial chunk of the cube in MiB (spectral axis whole).
+    buffer_mib : float
+        Memory for chunks being filled, in MiB.
+    **options
+        Text read options: ``x_col``, ``y_col``, ``spectral_col``, ``value_col``,
+        ``columns``, ``delimiter``, ``layout`` ("long"/"wide"), ``spectral_dim``,
+        ``spectral_units``, ``xy_units``, ``pixel_size_um``, ``grid_tolerance``
+        (fraction of a step, default 0.25), ``min_fill``, ``dtype`` (default
+        float32), ``units`` and metadata such as ``excitation_wavelength_nm``.
+
+    Returns
+    -------
+    pathlib.Path or zarr Store
+        Where the cube was written. Pixels absent from the table are NaN.
+
+    Raises
+    ------
+    FormatError
+        Unreadable layout, points off a regular grid, duplicate positions.
+    InputFileError
+        Missing or truncated file.
+    """
+    check_options(options, TEXT_OPTIONS, "text")
+    spec = inspect_text(path, **options)
+    layout = scan_text(spec, chunk_rows=chunk_rows, **options)
+    attrs = with_input(metadata_attrs(options), spec.path, fmt=f"text-{spec.layout}")
+    skel = _skeleton(spec, layout, attrs, str(options.get("dtype", "float32")), target_chunk_mib)
+    if isinstance(out, str | os.PathLike):
+        target: Any = prepare_output(out, overwrite=overwrite, attrs=attrs)
+    else:
+        target = out
+    write_zarr(cube_dataset(skel), target, zarr_format=zarr_format, compute=False)
+    array = zarr.open_group(target, mode="r+")[CUBE_NAME]
+    # grids and channel values ascend, so validate_cube kept the index order
+    _fill(spec, layout, array, chunk_rows=chunk_rows,
+          tolerance=float(options.get("grid_tolerance", 0.25)), buffer_mib=buffer_mib)
+    return target

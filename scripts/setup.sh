@@ -1,0 +1,59 @@
+#!/usr/bin/env bash
+# Set up a virtual environment in .venv with pmap and all its extras.
+#   scripts/setup.sh          # pmap[all]
+#   scripts/setup.sh --test   # also the system packages the viewer tests need (Xvfb, Mesa, Qt's X libs)
+set -euo pipefail
+cd "$(dirname "$0")/.."
+
+PY=${PYTHON:-python3}
+want_test=0
+[[ "${1:-}" == "--test" ]] && want_test=1
+
+as_root() { [[ "$(id -u)" == 0 ]]; }
+
+apt_install() {
+    # Install Debian packages when running as root and apt-get exists; otherwise say what is missing.
+    if as_root && command -v apt-get >/dev/null; then
+        echo "setup: installing system packages: $*" >&2
+        export DEBIAN_FRONTEND=noninteractive
+        apt-get update -qq >/dev/null || true
+        apt-get install -y -qq --no-install-recommends "$@" >/dev/null
+    else
+        echo "setup: please install these system packages: $*" >&2
+    fi
+}
+
+if ! "$PY" -c 'import sys; sys.exit(sys.version_info < (3, 11))'; then
+    echo "setup: pmap needs Python >= 3.11 (found $("$PY" --version 2>&1))" >&2
+    exit 1
+fi
+
+if [[ ! -x .venv/bin/python ]]; then
+    if ! "$PY" -m venv .venv 2>/dev/null; then
+        rm -rf .venv
+        apt_install python3-venv
+        "$PY" -m venv .venv
+    fi
+fi
+
+stamp=.venv/.pmap-installed
+if [[ ! -f $stamp || pyproject.toml -nt $stamp ]]; then
+    .venv/bin/python -m pip install -q --upgrade pip 2>&1 | grep -v '^WARNING: Location' || true
+    .venv/bin/python -m pip install -q -e ".[all]" 2>&1 | grep -vE '^WARNING: Location|^ *$' || true
+    .venv/bin/python -c 'import pmap, xarray, dask, zarr, napari' || { echo "setup: install failed" >&2; exit 1; }
+    touch "$stamp"
+fi
+
+if (( want_test )); then
+    # Xvfb and Mesa (software OpenGL) plus the X libraries Qt 5 loads, for the viewer tests.
+    need=()
+    command -v Xvfb >/dev/null || need+=(xvfb xauth)
+    for lib in libGL.so.1 libEGL.so.1 libxkbcommon-x11.so.0 libxcb-icccm.so.4 libxcb-image.so.0 \
+               libxcb-keysyms.so.1 libxcb-randr.so.0 libxcb-render-util.so.0 libxcb-xinerama.so.0 \
+               libxcb-shape.so.0 libxcb-xfixes.so.0 libxcb-xkb.so.1 libfontconfig.so.1 libdbus-1.so.3; do
+        ldconfig -p 2>/dev/null | grep -q "$lib" || { need+=(libgl1 libgl1-mesa-dri libegl1 libxkbcommon-x11-0 \
+            libxcb-icccm4 libxcb-image0 libxcb-keysyms1 libxcb-randr0 libxcb-render-util0 libxcb-xinerama0 \
+            libxcb-shape0 libxcb-xfixes0 libxcb-xkb1 libxcb-cursor0 libfontconfig1 libdbus-1-3 libglib2.0-0); break; }
+    done
+    if (( ${#need[@]} )); then apt_install "${need[@]}"; fi
+fi
