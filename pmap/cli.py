@@ -83,6 +83,43 @@ def _figures_dir(store: Path) -> Path:
     return store.with_name(store.name.removesuffix(".zarr") + "_figures")
 
 
+_CUBE_SUFFIXES = (".zarr", ".nc", ".h5", ".hdf5", ".npy", ".tif", ".tiff", ".csv", ".tsv", ".txt")
+
+
+def _expand_inputs(items: list[str]) -> list[Path]:
+    """Input cubes from paths; a folder that is not a Zarr store means every cube inside it."""
+    out: list[Path] = []
+    for item in items:
+        p = Path(item)
+        if p.is_dir() and not (p / "zarr.json").exists() and not (p / ".zgroup").exists() \
+                and not (p / ".zarray").exists():
+            found = sorted(c for c in p.iterdir() if c.suffix.lower() in _CUBE_SUFFIXES
+                           and not c.name.endswith("_result.zarr"))
+            if not found:
+                raise PmapError(f"no cubes found in folder {p}")
+            out.extend(found)
+        else:
+            out.append(p)
+    return out
+
+
+def _make_client(args: argparse.Namespace):
+    if not (args.workers or args.scheduler):
+        return None
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError:
+        raise PmapError("--workers/--scheduler need the 'distributed' extra") from None
+    if args.scheduler:
+        return Client(args.scheduler)
+    from .pipeline import parse_memory
+
+    per_worker = parse_memory(args.memory_limit) // max(args.workers, 1)
+    cluster = LocalCluster(n_workers=args.workers, threads_per_worker=1,
+                           memory_limit=per_worker, dashboard_address=None)
+    return Client(cluster)
+
+
 def cmd_process(args: argparse.Namespace) -> int:
     from .pipeline import DEFAULT_PIPELINE_TOML, load_pipeline, process
 
@@ -98,16 +135,45 @@ def cmd_process(args: argparse.Namespace) -> int:
             regions = int(regions)
         except ValueError:
             raise PmapError(f"--regions takes a number or 'auto', got {regions!r}") from None
-    out = Path(args.output)
-    ds = process(args.cube, out, pipeline=pipe, peaks=args.peaks, model=args.model,
-                 regions=regions, components=args.components, overwrite=args.overwrite,
-                 progress=not args.quiet, read_options=_read_options(args))
-    print(f"result store: {out}")
-    if pipe.output.get("figures", True) and not args.no_figures:
-        from .report import write_figures
+    inputs = _expand_inputs(args.cube)
+    for p in inputs:
+        if not p.exists():
+            raise PmapError(f"no such file: {p}")
+    many = len(inputs) > 1 or Path(args.cube[0]).is_dir() and inputs[0] != Path(args.cube[0])
+    out_dir = Path(args.output)
+    outputs = ([out_dir / (p.name.split(".")[0] + "_result.zarr") for p in inputs] if many
+               else [out_dir])
+    client = _make_client(args)
+    summaries = []
+    try:
+        for i, (src, out) in enumerate(zip(inputs, outputs)):
+            if many:
+                print(f"[{i + 1}/{len(inputs)}] {src}", file=sys.stderr)
+            ds = process(src, out, pipeline=load_pipeline(args.config) if i else pipe,
+                         peaks=args.peaks, model=args.model, regions=regions,
+                         components=args.components, overwrite=args.overwrite,
+                         resume=args.resume, progress=not args.quiet,
+                         read_options=_read_options(args), memory_limit=args.memory_limit,
+                         client=client)
+            print(f"result store: {out}")
+            if pipe.output.get("figures", True) and not args.no_figures:
+                from .report import write_figures
 
-        figs = write_figures(ds, _figures_dir(out))
-        print(f"figures ({len(figs)}): {_figures_dir(out)}")
+                figs = write_figures(ds, _figures_dir(out))
+                print(f"figures ({len(figs)}): {_figures_dir(out)}")
+            if many:
+                from .report import summarise_result
+
+                summaries.append({"input": str(src), "result": str(out), **summarise_result(ds)})
+    finally:
+        if client is not None:
+            client.close()
+    if many:
+        import pandas as pd
+
+        table = out_dir / "summary.csv"
+        pd.DataFrame(summaries).to_csv(table, index=False)
+        print(f"summary table: {table}")
     return 0
 
 
@@ -180,9 +246,10 @@ def build_parser() -> argparse.ArgumentParser:
     _add_read_options(p)
     p.set_defaults(func=cmd_convert)
 
-    p = sub.add_parser("process", help="clean, convert, fit and map a cube into a result store")
-    p.add_argument("cube", nargs="?")
-    p.add_argument("-o", "--output", help="result store to create (RESULT.zarr)")
+    p = sub.add_parser("process", help="clean, convert, fit and map cubes into result stores")
+    p.add_argument("cube", nargs="*", help="cube(s), or a folder of cubes")
+    p.add_argument("-o", "--output", help="result store to create (RESULT.zarr); with several "
+                   "inputs or a folder, the folder for one NAME_result.zarr each + summary.csv")
     p.add_argument("--config", help="pipeline TOML file (see --print-config)")
     p.add_argument("--peaks", type=int, help="number of peaks to fit (1-4)")
     p.add_argument("--model", help="line shape: gaussian, lorentzian, voigt, pseudo_voigt, "
@@ -190,6 +257,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--regions", help="cluster pixels into K regions, or 'auto'")
     p.add_argument("--components", type=int, help="NMF components to extract")
     p.add_argument("--overwrite", action="store_true", help="replace an existing result store")
+    p.add_argument("--resume", action="store_true",
+                   help="continue an interrupted run, recomputing only unfinished blocks")
+    p.add_argument("--memory-limit", help="memory to stay under, e.g. 1GB or 512MB "
+                   "(default: half the available memory)")
+    p.add_argument("--workers", type=int, help="run on a local dask cluster of N workers")
+    p.add_argument("--scheduler", help="address of a running dask scheduler to join "
+                   "(e.g. tcp://10.0.0.5:8786)")
     p.add_argument("--no-figures", action="store_true", help="do not write PNG figures")
     p.add_argument("--print-config", action="store_true",
                    help="print the default pipeline TOML and exit")

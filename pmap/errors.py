@@ -11,7 +11,6 @@ __all__ = [
     "CubeValidationError",
     "FormatError",
     "InputFileError",
-    "OutputExistsError",
     "StepError",
     "OutputExistsError",
     "PmapWarning",
@@ -33,10 +32,6 @@ class FormatError(PmapError, ValueError):
 
 class InputFileError(PmapError, OSError):
     """An input file is missing, unreadable or truncated."""
-
-
-class OutputExistsError(PmapError, FileExistsError):
-    """An output path exists (and overwrite was not asked for) or is the input itself."""
 
 
 class StepError(PmapError, ValueError):

@@ -35,6 +35,7 @@ the result-producing stages::
 from __future__ import annotations
 
 import json
+import os
 import tomllib
 import warnings
 from dataclasses import dataclass, field
@@ -43,13 +44,28 @@ from typing import Any
 
 import xarray as xr
 
-from .cube import spectral_dim, validate_cube
+from .cube import rechunk_cube, spectral_dim, validate_cube
 from .errors import PmapNotice, StepError
 from .provenance import get_provenance
-from .results import assemble_result, open_result, prepare_output, write_result
+from .results import (
+    assemble_result,
+    is_result_store,
+    mark_complete,
+    open_result,
+    prepare_output,
+    write_result,
+)
 from .steps import get_step
 
-__all__ = ["DEFAULT_PIPELINE_TOML", "Pipeline", "load_pipeline", "process"]
+__all__ = [
+    "DEFAULT_PIPELINE_TOML",
+    "Pipeline",
+    "load_pipeline",
+    "build_result",
+    "add_regions",
+    "parse_memory",
+    "process",
+]
 
 DEFAULT_PIPELINE_TOML = """\
 # pmap default pipeline: clean, convert to photon energy, describe, fit one peak.
@@ -166,8 +182,11 @@ def _run_step(name: str, cube: xr.DataArray, params: dict) -> Any:
 
 
 def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr.DataArray]:
-    """Build the lazy result Dataset for ``cube`` (computes nothing).
+    """Build the lazy per-pixel result Dataset for ``cube`` (computes no map).
 
+    Runs the cube steps, descriptors, fit and decomposition (components are
+    fitted on a pixel sample now; abundances stay lazy). Regions, which need the
+    whole map, are made afterwards from the written store (:func:`add_regions`).
     Returns (result, processed_cube).
     """
     for name, params in pipeline.steps:
@@ -177,30 +196,14 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
         cube = out
     prov = get_provenance(cube.attrs)
     parts: list[xr.Dataset | xr.DataArray] = []
-    if pipeline.descriptors is not None:
-        ds = _run_step("spectral_descriptors", cube, dict(pipeline.descriptors))
-        parts.append(ds)
-        prov["steps"].append({"step": "spectral_descriptors", "params": pipeline.descriptors})
-    fit_ds = None
-    if pipeline.fit is not None:
-        fit_ds = _run_step("fit_peaks", cube, dict(pipeline.fit))
-        parts.append(fit_ds)
-        prov["steps"].append({"step": "fit_peaks", "params": pipeline.fit})
-    if pipeline.components is not None:
-        comp = _run_step("decompose", cube, dict(pipeline.components))
-        parts.append(comp)
-        prov["steps"].append({"step": "decompose", "params": pipeline.components})
-    if pipeline.regions is not None:
-        params = dict(pipeline.regions)
-        maps = xr.merge([p for p in parts if isinstance(p, xr.Dataset)], compat="override",
-                        combine_attrs="drop") if parts else None
-        region = _run_step("segment", cube, {**params, "maps": maps})
-        parts.append(region)
-        prov["steps"].append({"step": "segment", "params": params})
-        from .decomposition import region_statistics
-
-        if maps is not None:
-            parts.append(region_statistics(region, maps, cube=cube))
+    stages = (("descriptors", "spectral_descriptors"), ("fit", "fit_peaks"),
+              ("components", "decompose"))
+    for attr, step in stages:
+        params = getattr(pipeline, attr)
+        if params is None:
+            continue
+        parts.append(_run_step(step, cube, dict(params)))
+        prov["steps"].append({"step": step, "params": params})
     keep = pipeline.output.get("keep_cube", "auto")
     if keep == "auto":
         keep = cube.nbytes <= _KEEP_CUBE_AUTO_BYTES
@@ -213,6 +216,65 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
     return ds, cube
 
 
+def add_regions(store: str | Path, cube: xr.DataArray, params: dict, *, csv: bool = True) -> None:
+    """Segment the map into regions from a written (incomplete) store and append them.
+
+    Adds ``region`` (y, x) and the region statistics to the store, and writes the
+    statistics table as CSV beside it (``NAME_regions.csv``).
+    """
+    from .decomposition import region_statistics, segment, write_region_csv
+
+    store = Path(store)
+    maps = xr.open_zarr(str(store))
+    params = dict(params)
+    region = segment(cube, maps=maps, **params)
+    region = region.rename("region").compute()
+    stats = region_statistics(region, maps, cube=cube)
+    stats = stats.compute()
+    extra = xr.merge([region.to_dataset(), stats], compat="override", combine_attrs="drop")
+    extra = extra.drop_vars([c for c in ("y", "x") if c in extra.coords])
+    extra.to_zarr(str(store), mode="a", consolidated=False)
+    import zarr
+
+    g = zarr.open_group(str(store), mode="r+")
+    prov = get_provenance(dict(g.attrs))
+    prov["steps"].append({"step": "segment", "params": params})
+    g.attrs["pmap_provenance"] = json.dumps(prov)
+    if csv:
+        write_region_csv(stats, store.with_name(store.name.removesuffix(".zarr") + "_regions.csv"))
+
+
+def parse_memory(text: str | int | float | None) -> int:
+    """Bytes from a size such as "1GB", "512MB", "2GiB" or a number of bytes.
+
+    None gives the default: half of the memory available now.
+    """
+    if text is None:
+        import psutil
+
+        return int(psutil.virtual_memory().available * 0.5)
+    if isinstance(text, (int, float)):
+        return int(text)
+    t = str(text).strip().upper().replace(" ", "")
+    units = {"TIB": 2**40, "GIB": 2**30, "MIB": 2**20, "KIB": 2**10, "TB": 10**12, "GB": 10**9,
+             "MB": 10**6, "KB": 10**3, "T": 10**12, "G": 10**9, "M": 10**6, "K": 10**3, "B": 1}
+    for u, f in units.items():
+        if t.endswith(u):
+            try:
+                return int(float(t[: -len(u)]) * f)
+            except ValueError:
+                break
+    try:
+        return int(t)
+    except ValueError:
+        raise StepError(f"memory size {text!r} not understood (use e.g. 1GB, 512MB)") from None
+
+
+#: Peak memory of processing one chunk, as a multiple of its raw size (float64
+#: copies, energy conversion, fit work arrays); measured with scripts/bench_scale.py.
+CHUNK_MEMORY_FACTOR = 12
+
+
 def process(
     source: str | Path | xr.DataArray,
     out: str | Path,
@@ -223,8 +285,11 @@ def process(
     regions: int | str | None = None,
     components: int | None = None,
     overwrite: bool = False,
+    resume: bool = False,
     progress: bool = True,
     read_options: dict | None = None,
+    memory_limit: str | int | None = None,
+    client=None,
 ) -> xr.Dataset:
     """Run a pipeline on a cube (path or DataArray) and write a result store.
 
@@ -237,6 +302,10 @@ def process(
     pipeline : Pipeline, TOML path, or None for the default pipeline.
     peaks, model : override ``[fit] peaks`` and ``[fit] model``.
     regions, components : add ``[regions] n_regions`` / ``[components] n_components``.
+    resume : continue an interrupted run, recomputing only unfinished blocks.
+    memory_limit : bytes or a size like "1GB"; sets chunk size and blocks in flight
+        (default half the available memory).
+    client : a dask.distributed Client to run on a cluster (None: local threads).
 
     Returns
     -------
@@ -255,6 +324,14 @@ def process(
         pipe.components = {**(pipe.components or {}), "n_components": int(components)}
     if regions is not None:
         pipe.regions = {**(pipe.regions or {}), "n_regions": regions}
+    out = Path(out)
+    if resume and out.exists() and is_result_store(out):
+        done = open_result(out, require_complete=False)
+        if bool(done.attrs.get("pmap_complete")):
+            warnings.warn(f"{out} is already complete; nothing to do", PmapNotice, stacklevel=2)
+            return done
+    mem = parse_memory(memory_limit)
+    threads = (sum(client.nthreads().values()) if client is not None else (os.cpu_count() or 1))
     in_path = None
     if isinstance(source, xr.DataArray):
         cube = validate_cube(source)
@@ -263,11 +340,20 @@ def process(
 
         in_path = Path(source)
         cube = open_cube(in_path, **(read_options or {}))
-    prepare_output(out, overwrite=overwrite, input_paths=(in_path,))
+    chunk_mib = pipe.output.get("chunk_mib")
+    if chunk_mib is None:
+        chunk_mib = min(64.0, mem / (CHUNK_MEMORY_FACTOR * max(threads, 1)) / 2**20)
+    cube = rechunk_cube(cube, target_mib=max(float(chunk_mib), 0.25))
+    if not (resume and out.exists()):
+        prepare_output(out, overwrite=overwrite, input_paths=(in_path,))
     if spectral_dim(cube) == "wavelength" and not any(n == "to_energy" for n, _ in pipe.steps):
         warnings.warn("pipeline has no to_energy step: fitting on the wavelength axis",
                       PmapNotice, stacklevel=2)
     result, processed = build_result(cube, pipe)
-    path = write_result(result, out, overwrite=overwrite, progress=progress,
-                        input_paths=(in_path,))
+    path = write_result(result, out, overwrite=overwrite, resume=resume, progress=progress,
+                        input_paths=(in_path,), concurrency=threads, client=client,
+                        complete=pipe.regions is None)
+    if pipe.regions is not None:
+        add_regions(path, processed, pipe.regions)
+        mark_complete(path)
     return open_result(path)

@@ -17,12 +17,14 @@ viewer, later steps and users rely on):
 
 from __future__ import annotations
 
+import os
 import shutil
+import sys
 from pathlib import Path
 
+import numpy as np
 import xarray as xr
 
-from ._progress import TqdmProgress
 from .errors import FormatError, InputFileError, OutputExistsError
 from .provenance import PROVENANCE_ATTR
 
@@ -33,6 +35,8 @@ __all__ = [
     "open_result",
     "is_result_store",
     "prepare_output",
+    "mark_complete",
+    "progress_dir",
 ]
 
 RESULT_FORMAT_VERSION = 1
@@ -86,16 +90,44 @@ def prepare_output(path: str | Path, *, overwrite: bool, input_paths: tuple = ()
                 f"{p} exists and is not a pmap result store; refusing to delete it"
             )
         shutil.rmtree(p)
+        shutil.rmtree(progress_dir(p), ignore_errors=True)
     p.parent.mkdir(parents=True, exist_ok=True)
     return p
 
 
-def _mark_complete(path: Path) -> None:
+def mark_complete(path: str | Path) -> None:
+    """Flag a result store as complete (every block and stage written)."""
     import zarr
 
     g = zarr.open_group(str(path), mode="r+")
     g.attrs["pmap_complete"] = True
-    zarr.consolidate_metadata(str(path))
+    shutil.rmtree(progress_dir(path), ignore_errors=True)
+
+
+def progress_dir(path: str | Path) -> Path:
+    """Folder beside a result store that holds its done-block markers while it is written."""
+    p = Path(path)
+    return p.with_name(p.name + ".progress")
+
+
+def _spatial_blocks(ds: xr.Dataset) -> list[tuple[slice, slice]]:
+    """Aligned (y, x) slices of the result's spatial chunks."""
+    chunks = ds.chunksizes
+    ys = chunks.get("y", (ds.sizes["y"],))
+    xs = chunks.get("x", (ds.sizes["x"],))
+    yb = np.cumsum((0, *ys))
+    xb = np.cumsum((0, *xs))
+    return [(slice(int(yb[i]), int(yb[i + 1])), slice(int(xb[j]), int(xb[j + 1])))
+            for i in range(len(ys)) for j in range(len(xs))]
+
+
+def _block_name(ys: slice, xs: slice) -> str:
+    return f"y{ys.start}-{ys.stop}_x{xs.start}-{xs.stop}"
+
+
+def _write_block(block: xr.Dataset, path: str, ys: slice, xs: slice, marker: str) -> None:
+    block.to_zarr(path, region={"y": ys, "x": xs}, mode="r+", consolidated=False)
+    Path(marker).touch()  # only after the write completed
 
 
 def write_result(
@@ -103,25 +135,76 @@ def write_result(
     path: str | Path,
     *,
     overwrite: bool = False,
+    resume: bool = False,
     progress: bool = True,
     input_paths: tuple = (),
+    concurrency: int | None = None,
+    client=None,
+    complete: bool = True,
 ) -> Path:
-    """Write a lazy result Dataset to a Zarr store chunk by chunk, then mark it complete.
+    """Write a lazy result Dataset to Zarr block by block, resumable, then mark it complete.
 
-    The metadata are written first with ``pmap_complete = False``; the flag is
-    set only after every chunk is written, so an interrupted run never looks
-    complete. Returns the store path.
+    Metadata (and the small non-spatial variables) are written first with
+    ``pmap_complete = False``; then each aligned spatial block is computed and
+    written with ``region=``; a block is marked done (a marker file in
+    ``STORE.progress/`` beside the store) only after its write completed. ``resume=True`` on an
+    existing incomplete store recomputes only the blocks not marked done.
+    ``concurrency`` bounds how many blocks are in flight (memory); ``client``
+    is a dask.distributed Client to run the blocks on a cluster.
     """
-    p = prepare_output(path, overwrite=overwrite, input_paths=input_paths)
+    p = Path(path)
+    fresh = not (resume and p.exists())
+    if fresh:
+        p = prepare_output(p, overwrite=overwrite, input_paths=input_paths)
+    elif not is_result_store(p):
+        raise OutputExistsError(f"{p} exists and is not a pmap result store; cannot resume it")
     ds = ds.copy()
     ds.attrs["pmap_complete"] = False
     for v in ds.variables.values():
         v.encoding.pop("chunks", None)
         v.encoding.pop("preferred_chunks", None)
-    delayed = ds.to_zarr(str(p), mode="w", compute=False, consolidated=True)
-    with TqdmProgress("writing result", enabled=progress):
-        delayed.compute()
-    _mark_complete(p)
+    spatial = [k for k, v in ds.data_vars.items() if "y" in v.dims and "x" in v.dims]
+    others = [k for k in ds.data_vars if k not in spatial]
+    pdir = progress_dir(p)
+    if fresh:
+        base = ds[others] if others else xr.Dataset()
+        base.attrs = dict(ds.attrs)
+        base.to_zarr(str(p), mode="w", consolidated=False)  # small global variables, in full
+        ds[spatial].to_zarr(str(p), mode="a", compute=False, consolidated=False)
+        shutil.rmtree(pdir, ignore_errors=True)
+    pdir.mkdir(exist_ok=True)
+    done = {f.name for f in pdir.iterdir()}
+    sp = ds[spatial].reset_coords(drop=True)
+    sp = sp.drop_vars(list(sp.coords))
+    todo = [(ys, xs) for ys, xs in _spatial_blocks(ds) if _block_name(ys, xs) not in done]
+    total = len(_spatial_blocks(ds))
+    from tqdm import tqdm
+
+    bar = tqdm(total=total, initial=total - len(todo), desc="blocks", unit="block",
+               file=sys.stderr, disable=not progress, dynamic_ncols=True, mininterval=0.5)
+    import dask
+
+    def task(ys, xs):
+        return dask.delayed(_write_block)(sp.isel(y=ys, x=xs), str(p), ys, xs,
+                                          str(pdir / _block_name(ys, xs)))
+
+    try:
+        if client is not None:
+            from distributed import as_completed
+
+            futures = client.compute([task(ys, xs) for ys, xs in todo])
+            for _ in as_completed(futures):
+                bar.update(1)
+        else:
+            n = max(1, concurrency or os.cpu_count() or 1)
+            for i in range(0, len(todo), n):
+                batch = todo[i:i + n]
+                dask.compute(*[task(ys, xs) for ys, xs in batch])
+                bar.update(len(batch))
+    finally:
+        bar.close()
+    if complete:
+        mark_complete(p)
     return p
 
 

@@ -43,9 +43,23 @@ _MAGIC = (
 
 #: Axis options shared by the array readers (npy, TIFF) and their sidecars.
 AXIS_OPTIONS = (
-    "dims", "wavelength_nm", "energy_ev", "wavelength_start_nm", "wavelength_step_nm",
-    "energy_start_ev", "energy_step_ev", "spectral_dim", "spectral_start", "spectral_step",
-    "pixel_size_um", "pixel_size_x_um", "pixel_size_y_um", "x0_um", "y0_um", "units", "attrs",
+    "dims",
+    "wavelength_nm",
+    "energy_ev",
+    "wavelength_start_nm",
+    "wavelength_step_nm",
+    "energy_start_ev",
+    "energy_step_ev",
+    "spectral_dim",
+    "spectral_start",
+    "spectral_step",
+    "pixel_size_um",
+    "pixel_size_x_um",
+    "pixel_size_y_um",
+    "x0_um",
+    "y0_um",
+    "units",
+    "attrs",
     *METADATA_ATTRS,
 )
 #: Options every format accepts (they only add metadata).

@@ -52,8 +52,12 @@ class Grid:
 
 
 def infer_grid(
-    positions: np.ndarray, *, step: float | None = None, tolerance: float = 0.25,
-    min_fill: float = 0.02, axis: str = "x",
+    positions: np.ndarray,
+    *,
+    step: float | None = None,
+    tolerance: float = 0.25,
+    min_fill: float = 0.02,
+    axis: str = "x",
 ) -> Grid:
     """Infer the regular grid behind scanned positions along one axis.
 
@@ -119,6 +123,9 @@ def infer_grid(
         # refine the step by least squares through all grid lines
         step = float(np.polyfit(k, centres, 1)[0])
         origin = float(np.mean(centres - k * step))
+    # snap away float noise (1e-16 offsets) so exact grids give exact coordinates
+    step = float(f"{step:.10g}")
+    origin = round(origin / step, 6) * step
     n = int(k[-1]) + 1
     if n > 1 and np.unique(k).size / n < min_fill:
         raise FormatError(

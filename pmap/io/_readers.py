@@ -34,7 +34,9 @@ def _pick_variable(ds: xr.Dataset, options: dict[str, Any], path: Path) -> xr.Da
     name = options.get("variable")
     if name is not None:
         if name not in ds.data_vars:
-            raise FormatError(f"{path.name}: no variable {name!r} (variables: {list(ds.data_vars)})")
+            raise FormatError(
+                f"{path.name}: no variable {name!r} (variables: {list(ds.data_vars)})"
+            )
         arr = ds[name]
     elif "intensity" in ds.data_vars:
         arr = ds["intensity"]
@@ -60,10 +62,17 @@ def read_zarr(path: Path, options: dict[str, Any]) -> xr.DataArray:
             warnings.simplefilter("ignore", RuntimeWarning)
             warnings.filterwarnings("ignore", message=".*[Cc]onsolidated.*")
             ds = xr.open_zarr(path, chunks={}, consolidated=None)
-    except (FileNotFoundError, KeyError, ValueError, TypeError, OSError,
-            zarr.errors.BaseZarrError) as exc:
-        raise FormatError(f"{path.name}: not a readable Zarr store ({type(exc).__name__}: {exc})"
-                          ) from exc
+    except (
+        FileNotFoundError,
+        KeyError,
+        ValueError,
+        TypeError,
+        OSError,
+        zarr.errors.BaseZarrError,
+    ) as exc:
+        raise FormatError(
+            f"{path.name}: not a readable Zarr store ({type(exc).__name__}: {exc})"
+        ) from exc
     return _pick_variable(ds, options, path)
 
 
@@ -79,18 +88,21 @@ def read_netcdf(path: Path, options: dict[str, Any]) -> xr.DataArray:
     try:
         ds = xr.open_dataset(path, engine="h5netcdf", chunks={})
     except OSError as exc:
-        raise InputFileError(f"{path.name}: cannot read HDF5 file, truncated or corrupt ({exc})"
-                             ) from exc
+        raise InputFileError(
+            f"{path.name}: cannot read HDF5 file, truncated or corrupt ({exc})"
+        ) from exc
     except (ValueError, KeyError, TypeError) as exc:
         raise FormatError(f"{path.name}: not a readable NetCDF4 file ({exc})") from exc
     return _pick_variable(ds, options, path)
 
 
-def _array_cube(data: da.Array, path: Path, options: dict[str, Any], dims: tuple[str, ...]
-                ) -> xr.DataArray:
+def _array_cube(
+    data: da.Array, path: Path, options: dict[str, Any], dims: tuple[str, ...]
+) -> xr.DataArray:
     """Attach axes from options/sidecar to a (…, y, x, channel)-ordered dask array."""
-    sdim_pos = next((i for i, d in enumerate(dims) if d in SPECTRAL_DIMS or d == "spectral"),
-                    len(dims) - 1)
+    sdim_pos = next(
+        (i for i, d in enumerate(dims) if d in SPECTRAL_DIMS or d == "spectral"), len(dims) - 1
+    )
     sdim, svals = spectral_axis(options, data.shape[sdim_pos], source=path.name)
     dims = tuple(sdim if i == sdim_pos else d for i, d in enumerate(dims))
     ny = data.shape[dims.index("y")] if "y" in dims else 1
@@ -107,16 +119,16 @@ def _merged(path: Path, options: dict[str, Any], fmt: str) -> dict[str, Any]:
     return opts
 
 
-def _spatial_chunks(shape: tuple[int, ...], dims: tuple[str, ...], itemsize: int,
-                    target_mib: float) -> tuple[int, ...]:
-    s = next((i for i, d in enumerate(dims) if d in SPECTRAL_DIMS or d == "spectral"), -1)
+def _spatial_chunks(
+    shape: tuple[int, ...], dims: tuple[str, ...], itemsize: int, target_mib: float
+) -> tuple[int, ...]:
+    s = next(
+        (i for i, d in enumerate(dims) if d in SPECTRAL_DIMS or d == "spectral"), len(dims) - 1
+    )
     ny = shape[dims.index("y")] if "y" in dims else 1
     nx = shape[dims.index("x")] if "x" in dims else 1
     cy, cx = choose_spatial_chunks((ny, nx), shape[s], itemsize, target_mib=target_mib)
-    out = []
-    for i, d in enumerate(dims):
-        out.append({"y": cy, "x": cx}.get(d, -1 if i == s % len(dims) else 1))
-    return tuple(out)
+    return tuple({"y": cy, "x": cx}.get(d, -1 if i == s else 1) for i, d in enumerate(dims))
 
 
 def read_npy(path: Path, options: dict[str, Any], target_mib: float) -> xr.DataArray:
@@ -161,20 +173,27 @@ def _tiff_pages(path: Path) -> tuple[tuple[int, int, int], np.dtype, bool]:
             end = 0
             for page in pages:
                 if page.shape != shape2:
-                    raise FormatError(f"{path.name}: pages differ in shape ({page.shape} vs "
-                                      f"{shape2}); each page must be one channel of the map")
+                    raise FormatError(
+                        f"{path.name}: pages differ in shape ({page.shape} vs "
+                        f"{shape2}); each page must be one channel of the map"
+                    )
                 if page.dataoffsets:
-                    end = max(end, max(o + c for o, c in zip(page.dataoffsets, page.databytecounts)))
+                    end = max(
+                        end, max(o + c for o, c in zip(page.dataoffsets, page.databytecounts))
+                    )
             series = tf.series[0]
             mappable = series.dataoffset is not None and len(tf.series) == 1
             dtype = first.dtype
     except FormatError:
         raise
     except Exception as exc:  # tifffile raises several kinds on corrupt files
-        raise InputFileError(f"{path.name}: cannot read TIFF, truncated or corrupt ({exc})"
-                             ) from exc
+        raise InputFileError(
+            f"{path.name}: cannot read TIFF, truncated or corrupt ({exc})"
+        ) from exc
     if end > size:
-        raise InputFileError(f"{path.name}: truncated TIFF (data run to byte {end}, file has {size})")
+        raise InputFileError(
+            f"{path.name}: truncated TIFF (data run to byte {end}, file has {size})"
+        )
     return (n, *shape2), dtype, mappable
 
 
@@ -197,8 +216,10 @@ def read_tiff(path: Path, options: dict[str, Any], target_mib: float) -> xr.Data
         cy, cx = choose_spatial_chunks((ny, nx), n, dtype.itemsize, target_mib=target_mib)
         stack = da.from_array(mm, chunks=(-1, cy, cx), asarray=False, fancy=False)
     else:
-        pages = [da.from_delayed(dask.delayed(_read_page)(str(path), i), (ny, nx), dtype=dtype)
-                 for i in range(n)]
+        pages = [
+            da.from_delayed(dask.delayed(_read_page)(str(path), i), (ny, nx), dtype=dtype)
+            for i in range(n)
+        ]
         stack = da.stack(pages)
     data = stack.transpose(1, 2, 0)
     return _array_cube(data, path, opts, ("y", "x", "spectral"))

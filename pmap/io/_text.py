@@ -48,15 +48,31 @@ from ._grid import Grid, infer_grid
 from ._write import cube_dataset, prepare_output, write_zarr
 
 TEXT_OPTIONS = (
-    "x_col", "y_col", "spectral_col", "value_col", "columns", "delimiter", "layout",
-    "spectral_dim", "spectral_units", "xy_units", "pixel_size_um", "pixel_size_x_um",
-    "pixel_size_y_um", "grid_tolerance", "min_fill", "dtype", *META_OPTIONS,
+    "x_col",
+    "y_col",
+    "spectral_col",
+    "value_col",
+    "columns",
+    "delimiter",
+    "layout",
+    "spectral_dim",
+    "spectral_units",
+    "xy_units",
+    "pixel_size_um",
+    "pixel_size_x_um",
+    "pixel_size_y_um",
+    "grid_tolerance",
+    "min_fill",
+    "dtype",
+    *META_OPTIONS,
 )
 
 _X_NAMES = {"x", "xpos", "x_pos", "x_position", "pos_x", "posx", "position_x"}
 _Y_NAMES = {"y", "ypos", "y_pos", "y_position", "pos_y", "posy", "position_y"}
-_SPEC_NAMES = {"wavelength": {"wavelength", "lambda", "wl", "wave"},
-               "energy": {"energy", "e", "photon_energy"}}
+_SPEC_NAMES = {
+    "wavelength": {"wavelength", "lambda", "wl", "wave"},
+    "energy": {"energy", "e", "photon_energy"},
+}
 _VALUE_NAMES = {"intensity", "counts", "count", "value", "signal", "i", "pl", "cps", "int"}
 _UNIT_SUFFIX = re.compile(r"^(.*?)[ _](um|µm|μm|nm|mm|ev|mev|pixel|px)$")
 _BRACKET_UNIT = re.compile(r"^(.*?)\s*[\(\[]\s*([^\)\]]*)\s*[\)\]]\s*$")
@@ -170,8 +186,10 @@ def inspect_text(path: str | os.PathLike, **options: Any) -> TextSpec:
     unknown = set(cols) - {"x", "y", "spectral", "value"}
     if unknown:
         raise FormatError(f"columns= keys must be x, y, spectral, value; got {sorted(unknown)}")
-    pick = {r: _find_col(fields, list(bases), options.get(f"{r}_col", cols.get(r)), r, p)
-            for r in ("x", "y", "spectral", "value")}
+    pick = {
+        r: _find_col(fields, list(bases), options.get(f"{r}_col", cols.get(r)), r, p)
+        for r in ("x", "y", "spectral", "value")
+    }
 
     def by_name(names: set[str]) -> int | None:
         hits = [i for i, b in enumerate(bases) if b in names]
@@ -267,9 +285,17 @@ def _blocks(spec: TextSpec, cols: list[int], chunk_rows: int) -> Iterator[tuple[
     want = [names[i] for i in cols]
     try:
         reader = pd.read_csv(
-            spec.path, sep=spec.delimiter, header=None, names=names, usecols=sorted(set(want)),
-            skiprows=spec.skiprows, comment="#", dtype=np.float64, chunksize=chunk_rows,
-            engine="c", skip_blank_lines=True,
+            spec.path,
+            sep=spec.delimiter,
+            header=None,
+            names=names,
+            usecols=sorted(set(want)),
+            skiprows=spec.skiprows,
+            comment="#",
+            dtype=np.float64,
+            chunksize=chunk_rows,
+            engine="c",
+            skip_blank_lines=True,
         )
         row = 0
         with reader:
@@ -326,7 +352,7 @@ def scan_text(
                     "the spectral column must repeat the same channel values for every pixel"
                 )
         if value_range:
-            v = block[:, 3 if long else 2:]
+            v = block[:, 3 if long else 2 :]
             if np.isfinite(v).any():
                 vmin, vmax = min(vmin, float(np.nanmin(v))), max(vmax, float(np.nanmax(v)))
         if len(xs) > 16:  # keep the lists short
@@ -339,13 +365,21 @@ def scan_text(
     uy = np.unique(np.concatenate([uy, *ys]))
     tol = float(options.get("grid_tolerance", 0.25))
     fill = float(options.get("min_fill", 0.02))
-    gx = infer_grid(ux, step=_grid_step(options, "x", spec.xy_units), tolerance=tol,
-                    min_fill=fill, axis="x")
-    gy = infer_grid(uy, step=_grid_step(options, "y", spec.xy_units), tolerance=tol,
-                    min_fill=fill, axis="y")
+    gx = infer_grid(
+        ux, step=_grid_step(options, "x", spec.xy_units), tolerance=tol, min_fill=fill, axis="x"
+    )
+    gy = infer_grid(
+        uy, step=_grid_step(options, "y", spec.xy_units), tolerance=tol, min_fill=fill, axis="y"
+    )
     spectral = sv if long else np.asarray(spec.channel_values)
-    return TextLayout(gy, gx, spectral, n, vmin if value_range and np.isfinite(vmin) else None,
-                      vmax if value_range and np.isfinite(vmax) else None)
+    return TextLayout(
+        gy,
+        gx,
+        spectral,
+        n,
+        vmin if value_range and np.isfinite(vmin) else None,
+        vmax if value_range and np.isfinite(vmax) else None,
+    )
 
 
 class _ChunkBuffer:
@@ -369,8 +403,10 @@ class _ChunkBuffer:
 
     def _slices(self, key: int) -> tuple[slice, slice]:
         by, bx = divmod(key, self.nbx)
-        return (slice(by * self.cy, min((by + 1) * self.cy, self.ny)),
-                slice(bx * self.cx, min((bx + 1) * self.cx, self.nx)))
+        return (
+            slice(by * self.cy, min((by + 1) * self.cy, self.ny)),
+            slice(bx * self.cx, min((bx + 1) * self.cx, self.nx)),
+        )
 
     def put(self, iy: np.ndarray, ix: np.ndarray, ic: np.ndarray | None, vals: np.ndarray) -> None:
         """Write values at pixel (iy, ix), channel ic (or all channels when ic is None)."""
@@ -386,8 +422,11 @@ class _ChunkBuffer:
             chunk = self.buf.get(key)
             if chunk is None:
                 ys, xs = self._slices(key)
-                chunk = np.full((ys.stop - ys.start, xs.stop - xs.start, self.ns), np.nan,
-                                dtype=self.array.dtype)
+                chunk = np.full(
+                    (ys.stop - ys.start, xs.stop - xs.start, self.ns),
+                    np.nan,
+                    dtype=self.array.dtype,
+                )
                 self.buf[key] = chunk
                 self.nbytes += chunk.nbytes
             self.buf.move_to_end(key)
@@ -431,8 +470,9 @@ def _first_duplicate(flat: np.ndarray) -> int | None:
     return None if d.size == 0 else int(s[d[0]])
 
 
-def _skeleton(spec: TextSpec, layout: TextLayout, attrs: dict, dtype: str,
-              target_chunk_mib: float) -> xr.DataArray:
+def _skeleton(
+    spec: TextSpec, layout: TextLayout, attrs: dict, dtype: str, target_chunk_mib: float
+) -> xr.DataArray:
     """Lazy all-NaN cube with the text map's coordinates, validated (µm, units...)."""
     shape = (layout.y.n, layout.x.n, layout.spectral.size)
     data = da.full(shape, np.nan, dtype=dtype, chunks=(-1, -1, -1))
@@ -449,8 +489,15 @@ def _skeleton(spec: TextSpec, layout: TextLayout, attrs: dict, dtype: str,
         raise CubeValidationError(f"{spec.path.name}: {exc}") from exc
 
 
-def _fill(spec: TextSpec, layout: TextLayout, array: zarr.Array, *, chunk_rows: int,
-          tolerance: float, buffer_mib: float) -> None:
+def _fill(
+    spec: TextSpec,
+    layout: TextLayout,
+    array: zarr.Array,
+    *,
+    chunk_rows: int,
+    tolerance: float,
+    buffer_mib: float,
+) -> None:
     """Second pass: read the values and scatter them into the Zarr array."""
     ns = layout.spectral.size
 
@@ -536,16 +583,21 @@ def text_to_zarr(
     """
     check_options(options, TEXT_OPTIONS, "text")
     spec = inspect_text(path, **options)
-    layout = scan_text(spec, chunk_rows=chunk_rows, **options)
     attrs = with_input(metadata_attrs(options), spec.path, fmt=f"text-{spec.layout}")
-    skel = _skeleton(spec, layout, attrs, str(options.get("dtype", "float32")), target_chunk_mib)
+    target: Any = out
     if isinstance(out, str | os.PathLike):
-        target: Any = prepare_output(out, overwrite=overwrite, attrs=attrs)
-    else:
-        target = out
+        target = prepare_output(out, overwrite=overwrite, attrs=attrs)
+    layout = scan_text(spec, chunk_rows=chunk_rows, **options)
+    skel = _skeleton(spec, layout, attrs, str(options.get("dtype", "float32")), target_chunk_mib)
     write_zarr(cube_dataset(skel), target, zarr_format=zarr_format, compute=False)
     array = zarr.open_group(target, mode="r+")[CUBE_NAME]
     # grids and channel values ascend, so validate_cube kept the index order
-    _fill(spec, layout, array, chunk_rows=chunk_rows,
-          tolerance=float(options.get("grid_tolerance", 0.25)), buffer_mib=buffer_mib)
+    _fill(
+        spec,
+        layout,
+        array,
+        chunk_rows=chunk_rows,
+        tolerance=float(options.get("grid_tolerance", 0.25)),
+        buffer_mib=buffer_mib,
+    )
     return target

@@ -90,8 +90,14 @@ def write_zarr(ds: xr.Dataset, out: Path, *, zarr_format: int, compute: bool = T
         enc.setdefault(CUBE_NAME, {})["chunks"] = tuple(c[0] for c in ds[CUBE_NAME].chunks)
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*[Cc]onsolidated metadata.*")
-        return ds.to_zarr(out, mode="w-", zarr_format=zarr_format, encoding=enc,
-                          consolidated=zarr_format == 2, compute=compute)
+        return ds.to_zarr(
+            out,
+            mode="w-",
+            zarr_format=zarr_format,
+            encoding=enc,
+            consolidated=zarr_format == 2,
+            compute=compute,
+        )
 
 
 def save_cube(

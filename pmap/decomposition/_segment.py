@@ -1,0 +1,464 @@
+"""Segmentation of a map into regions by clustering per-pixel features.
+
+scikit-learn is imported inside the functions only.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Sequence
+from typing import Any
+
+import dask.array as da
+import numpy as np
+import xarray as xr
+from scipy import ndimage
+
+from ..errors import StepError
+from ..provenance import PROVENANCE_ATTR, with_step
+from ..steps import register_step
+from ._common import (
+    apply_mask,
+    centroid_of,
+    check_pixels,
+    check_spectral,
+    finite_rows,
+    gather,
+    jsonable_params,
+    map_pixels,
+    sample_positions,
+)
+
+FEATURE_SPACES = ("shape", "shape+intensity", "abundance", "parameters")
+CLUSTER_METHODS = ("kmeans", "gmm")
+#: Fit sets larger than this use MiniBatchKMeans instead of KMeans.
+MINIBATCH_ABOVE = 100_000
+#: Pixels used for each silhouette score.
+SILHOUETTE_PIXELS = 5000
+
+
+# ---------------------------------------------------------------- feature transforms
+# Each takes (n, n_core) float64 rows and returns (features (n, m), signal (n,), property (n,)).
+
+
+def _noise_of_sum(x: np.ndarray) -> np.ndarray:
+    """1-sigma noise of the channel sum, from the spread of first differences (per row)."""
+    d = np.abs(np.diff(x, axis=1))
+    sigma = 1.4826 * np.median(d, axis=1) / np.sqrt(2.0)
+    return sigma * np.sqrt(x.shape[1])
+
+
+def _cube_features(x: np.ndarray, *, axis: np.ndarray, with_intensity: bool,
+                   min_snr: float | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    ok = finite_rows(x)
+    xs = np.where(ok[:, None], x, 0.0)
+    total = xs.sum(axis=1)
+    norm = np.linalg.norm(xs, axis=1)
+    signal = ok & (norm > 0)
+    if min_snr is not None:
+        signal &= (total > 0) & (total > min_snr * _noise_of_sum(xs))
+    feats = xs / np.where(norm > 0, norm, 1.0)[:, None]
+    if with_intensity:
+        logi = np.log10(np.where(total > 0, total, 1.0))
+        feats = np.concatenate([feats, logi[:, None]], axis=1)
+    return feats, signal, centroid_of(xs, axis)
+
+
+def _map_features(x: np.ndarray, *, weights: np.ndarray | None, order_index: int,
+                  positive: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    ok = finite_rows(x)
+    xs = np.where(ok[:, None], x, 0.0)
+    signal = ok
+    if positive:
+        signal = ok & (np.clip(xs, 0.0, None).sum(axis=1) > 0)
+    if weights is not None:
+        w = np.clip(xs, 0.0, None)
+        tot = w.sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            prop = np.where(tot > 0, (w @ weights) / tot, np.nan)
+    else:
+        prop = xs[:, order_index]
+    return xs, signal, prop
+
+
+def _predict(x: np.ndarray, *, transform, tkw: dict, mu: np.ndarray, sd: np.ndarray, model,
+             relabel: np.ndarray) -> np.ndarray:
+    feats, signal, _ = transform(x, **tkw)
+    out = np.full(len(x), -1, dtype=np.int32)
+    if signal.any():
+        out[signal] = relabel[model.predict((feats[signal] - mu) / sd)]
+    return out
+
+
+# ---------------------------------------------------------------- building the feature space
+
+
+def _parameter_array(ds: xr.Dataset, variables: Sequence[str] | None) -> tuple[xr.DataArray, list]:
+    if not isinstance(ds, xr.Dataset):
+        raise StepError("feature_space='parameters' needs an xarray Dataset of maps")
+    names = list(variables) if variables else [v for v in ds.data_vars
+                                                if {"y", "x"} <= set(ds[v].dims)]
+    if not names:
+        raise StepError("no parameter maps with y and x dims to segment on")
+    parts, labels = [], []
+    for name in names:
+        if name not in ds.data_vars:
+            raise StepError(f"variable {name!r} not in the dataset (has {list(ds.data_vars)})")
+        v = ds[name]
+        if not {"y", "x"} <= set(v.dims):
+            raise StepError(f"variable {name!r} has no y and x dims (dims {list(v.dims)})")
+        v = v.transpose(..., "y", "x")
+        lead = v.dims[:-2]
+        n_lead = int(np.prod([v.sizes[d] for d in lead])) if lead else 1
+        data = v.data.reshape(n_lead, v.sizes["y"], v.sizes["x"])
+        parts.append(data.astype(np.float64))
+        if lead:
+            idx = np.indices([v.sizes[d] for d in lead]).reshape(len(lead), -1).T
+            labels += [f"{name}[{','.join(map(str, i))}]" for i in idx]
+        else:
+            labels.append(name)
+    lib = da if any(isinstance(p, da.Array) for p in parts) else np
+    data = lib.concatenate(parts, axis=0)
+    arr = xr.DataArray(data, dims=("feature", "y", "x"),
+                       coords={"feature": labels, "y": ds["y"], "x": ds["x"]})
+    return arr.transpose("y", "x", "feature"), names
+
+
+def _abundance_array(features: Any) -> tuple[xr.DataArray, np.ndarray | None, bool]:
+    spectra = None
+    method = None
+    if isinstance(features, xr.Dataset):
+        if "component_abundance" not in features:
+            raise StepError("feature_space='abundance' needs a Dataset with component_abundance "
+                            "(from pmap.decompose) or a DataArray with a component dim")
+        method = features.attrs.get("method")
+        if "component_spectrum" in features:
+            spectra = features["component_spectrum"]
+        features = features["component_abundance"]
+    if not isinstance(features, xr.DataArray) or "component" not in features.dims:
+        raise StepError("abundance features must have a 'component' dim")
+    weights = None
+    if spectra is not None and method == "nmf":
+        sdim = [d for d in spectra.dims if d != "component"][0]
+        weights = centroid_of(np.asarray(spectra.values, dtype=float),
+                              np.asarray(spectra[sdim].values, dtype=float))
+    return features, weights, method in (None, "nmf")
+
+
+def _feature_space(features, space, *, variables, min_snr, order_by):
+    """Return (array, core dim, transform, kwargs, property description)."""
+    if space in ("shape", "shape+intensity"):
+        arr, core = check_spectral(features, "features")
+        if order_by not in (None, "centroid"):
+            raise StepError(f"order_by for spectra must be 'centroid', got {order_by!r}")
+        units = arr[core].attrs.get("units", "")
+        kw = {"axis": np.asarray(arr[core].values, dtype=float),
+              "with_intensity": space == "shape+intensity", "min_snr": min_snr}
+        return arr, core, _cube_features, kw, (f"spectral centroid ({core})", units)
+    if space == "abundance":
+        arr, weights, positive = _abundance_array(features)
+        arr, core = check_pixels(arr, "component", "abundance")
+        if order_by not in (None, "centroid") or weights is None:
+            idx = 0 if order_by in (None, "centroid") else int(order_by)
+            kw = {"weights": None, "order_index": idx, "positive": positive}
+            return arr, core, _map_features, kw, (f"abundance of component {idx}", "")
+        kw = {"weights": weights, "order_index": 0, "positive": positive}
+        return arr, core, _map_features, kw, ("abundance-weighted spectral centroid", "")
+    if space == "parameters":
+        arr, names = _parameter_array(features, variables)
+        arr, core = check_pixels(arr, "feature", "parameter maps")
+        key = order_by if order_by is not None else names[0]
+        labels = list(arr["feature"].values)
+        matches = [i for i, lab in enumerate(labels) if lab == key or lab.startswith(f"{key}[")]
+        if not matches:
+            raise StepError(f"order_by {key!r} is not among the features {labels}")
+        units = features[key.split("[")[0]].attrs.get("units", "") if key in features else ""
+        kw = {"weights": None, "order_index": matches[0], "positive": False}
+        return arr, core, _map_features, kw, (f"mean {labels[matches[0]]}", units)
+    raise StepError(f"unknown feature_space {space!r}; use one of {FEATURE_SPACES}")
+
+
+def _standardise(feats: np.ndarray, space: str, intensity_weight: float):
+    """Per-feature (mean, scale): z-scores, except unit-norm spectra which stay as they are."""
+    m = feats.shape[1]
+    if space in ("shape", "shape+intensity"):
+        mu, sd = np.zeros(m), np.ones(m)
+        if space == "shape+intensity":
+            shape_var = feats[:, :-1].var(axis=0).sum()
+            s = feats[:, -1].std()
+            mu[-1] = feats[:, -1].mean()
+            sd[-1] = (s if s > 0 else 1.0) / (intensity_weight * np.sqrt(shape_var) or 1.0)
+        return mu, sd
+    sd = feats.std(axis=0)
+    return feats.mean(axis=0), np.where(sd > 0, sd, 1.0)
+
+
+# ---------------------------------------------------------------- clustering
+
+
+def _cluster_model(method: str, k: int, n: int, n_features: int, seed: int,
+                   covariance_type: str | None):
+    if method == "kmeans":
+        from sklearn.cluster import KMeans, MiniBatchKMeans
+
+        if n > MINIBATCH_ABOVE:
+            return MiniBatchKMeans(n_clusters=k, random_state=seed, batch_size=4096, n_init=3)
+        return KMeans(n_clusters=k, random_state=seed, n_init=4)
+    from sklearn.mixture import GaussianMixture
+
+    cov = covariance_type or ("full" if n_features <= 32 else "diag")
+    return GaussianMixture(n_components=k, covariance_type=cov, random_state=seed, reg_covar=1e-6)
+
+
+def _choose_k(z: np.ndarray, method: str, ks: list[int], seed: int, cov: str | None):
+    """Fit every k; return (models, scores, rule text, best k)."""
+    from sklearn.metrics import silhouette_score
+
+    models, scores = {}, []
+    for k in ks:
+        model = _cluster_model(method, k, len(z), z.shape[1], seed, cov).fit(z)
+        models[k] = model
+        if method == "kmeans":
+            lab = model.predict(z)
+            if len(np.unique(lab)) < 2:
+                scores.append(float("nan"))
+                continue
+            n = min(len(z), SILHOUETTE_PIXELS)
+            scores.append(float(silhouette_score(z, lab, sample_size=n, random_state=seed)))
+        else:
+            scores.append(float(model.bic(z)))
+    arr = np.asarray(scores)
+    if np.all(np.isnan(arr)):
+        raise StepError("no candidate number of regions could be scored")
+    if method == "kmeans":
+        best = ks[int(np.nanargmax(arr))]
+        rule = (f"largest mean silhouette (Rousseeuw, J. Comput. Appl. Math. 20, 53 (1987)) "
+                f"on up to {SILHOUETTE_PIXELS} sampled pixels")
+    else:
+        best = ks[int(np.nanargmin(arr))]
+        rule = "smallest Bayesian information criterion (Schwarz, Ann. Stat. 6, 461 (1978))"
+    return models, scores, rule, best
+
+
+# ---------------------------------------------------------------- spatial clean-up
+
+
+def relabel_islands(labels: np.ndarray, min_px: int) -> np.ndarray:
+    """Relabel 4-connected islands smaller than ``min_px`` pixels to their neighbours' majority.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (y, x)
+        Region labels; negative values (no signal) are left alone and never spread.
+    min_px : int
+        Islands with fewer pixels than this take the label most frequent along their
+        border (ties: the smaller label). Islands bordered only by no-signal pixels stay.
+
+    Returns
+    -------
+    ndarray of int, same shape. One pass: neighbours are read before any change.
+    """
+    lab = np.asarray(labels)
+    if min_px <= 1 or lab.size == 0:
+        return lab.copy()
+    ids = np.zeros(lab.shape, dtype=np.int64)
+    offset = 0
+    for r in np.unique(lab[lab >= 0]):
+        comp, n = ndimage.label(lab == r)
+        ids[comp > 0] = comp[comp > 0] + offset
+        offset += n
+    sizes = np.bincount(ids.ravel(), minlength=offset + 1)
+    small = (ids > 0) & (sizes[ids] < min_px)
+    if not small.any():
+        return lab.copy()
+    isl, nb = [], []
+    for axis in (0, 1):
+        for shift in (1, -1):
+            a = [slice(None)] * 2
+            b = [slice(None)] * 2
+            a[axis] = slice(None, -1) if shift == 1 else slice(1, None)
+            b[axis] = slice(1, None) if shift == 1 else slice(None, -1)
+            p, q = tuple(a), tuple(b)
+            sel = small[p] & (lab[q] >= 0) & (lab[q] != lab[p])
+            isl.append(ids[p][sel])
+            nb.append(lab[q][sel])
+    isl_all = np.concatenate(isl)
+    nb_all = np.concatenate(nb)
+    out = lab.copy()
+    if isl_all.size == 0:
+        return out
+    n_lab = int(lab.max()) + 1
+    pairs, counts = np.unique(isl_all * n_lab + nb_all, return_counts=True)
+    pi, pl = pairs // n_lab, pairs % n_lab
+    order = np.lexsort((pl, -counts, pi))
+    first = np.ones(len(order), dtype=bool)
+    first[1:] = pi[order][1:] != pi[order][:-1]
+    winner = np.full(offset + 1, -2, dtype=np.int64)
+    winner[pi[order][first]] = pl[order][first]
+    change = small & (winner[ids] >= 0)
+    out[change] = winner[ids][change]
+    return out
+
+
+def _clean(region: xr.DataArray, min_px: int) -> xr.DataArray:
+    if isinstance(region.data, da.Array):
+        region = region.chunk({"y": -1, "x": -1})
+    return xr.apply_ufunc(
+        lambda a: np.stack([relabel_islands(s, min_px) for s in a.reshape(-1, *a.shape[-2:])])
+        .reshape(a.shape),
+        region, input_core_dims=[["y", "x"]], output_core_dims=[["y", "x"]],
+        dask="parallelized", output_dtypes=[region.dtype],
+    ).transpose(*region.dims)
+
+
+# ---------------------------------------------------------------- public
+
+
+@register_step("segment")
+def segment(
+    features: xr.DataArray | xr.Dataset,
+    *,
+    n_regions: int | str = "auto",
+    method: str = "kmeans",
+    feature_space: str = "shape",
+    min_region_px: int = 0,
+    seed: int = 0,
+    sample_pixels: int | None = 20000,
+    k_range: Sequence[int] = range(2, 9),
+    variables: Sequence[str] | None = None,
+    min_snr: float | None = 5.0,
+    order_by: str | None = None,
+    intensity_weight: float = 1.0,
+    covariance_type: str | None = None,
+    mask: xr.DataArray | None = None,
+) -> xr.DataArray:
+    """Label every pixel with a region by clustering per-pixel features.
+
+    Parameters
+    ----------
+    features : xarray.DataArray or xarray.Dataset
+        A cube (*stack, y, x, S) for ``"shape"`` / ``"shape+intensity"``; the
+        Dataset from :func:`pmap.decompose` (or its abundance DataArray with a
+        ``component`` dim) for ``"abundance"``; a Dataset of maps (y, x) or
+        (peak, y, x) for ``"parameters"``.
+    n_regions : int or "auto"
+        Number of regions K, or "auto" to choose it from ``k_range`` (k-means:
+        largest silhouette on a sample; GMM: smallest BIC).
+    method : {"kmeans", "gmm"}
+        k-means (MiniBatchKMeans above 100 000 fitted pixels) or a Gaussian mixture.
+    feature_space : {"shape", "shape+intensity", "abundance", "parameters"}
+        Spectra divided by their Euclidean norm (shape alone); the same plus
+        log10 of the integrated intensity; NMF abundances; parameter maps.
+        Abundances and parameters are standardised (z-scores on the fitted
+        sample); the log-intensity is standardised and weighted so that its
+        variance equals ``intensity_weight``² times the summed variance of the
+        shape features.
+    min_region_px : int
+        Islands (4-connected) smaller than this take their neighbours' majority
+        label; 0 keeps the clustering as it is.
+    seed : int
+        Seed of the pixel sample and of the clustering.
+    sample_pixels : int or None
+        Pixels drawn at random (seeded) to fit the clustering; None uses every pixel.
+    k_range : sequence of int
+        Candidates for ``n_regions="auto"``.
+    variables : sequence of str, optional
+        Maps to use with ``"parameters"`` (default: every variable with y and x dims).
+    min_snr : float or None
+        Spectra (shape spaces): a pixel has signal when its integrated intensity
+        exceeds ``min_snr`` times its noise, estimated from the median absolute
+        first difference (σ = 1.4826·median|Δx|/√2, noise of the sum σ·√n_channels).
+        None: only NaN / masked pixels are "no signal".
+    order_by : str, optional
+        Property whose per-region mean sets the region numbers (ascending):
+        spectra and NMF abundances use the spectral centroid ("centroid"),
+        parameters a variable name (default: the first of ``variables``).
+    intensity_weight : float
+        Weight of the log-intensity feature in ``"shape+intensity"``.
+    covariance_type : str, optional
+        GMM covariance ("full" up to 32 features, else "diag").
+    mask : xarray.DataArray of bool, optional
+        True marks pixels to leave out.
+
+    Returns
+    -------
+    xarray.DataArray
+        ``region`` (*stack, y, x) int32: 0..K−1 ordered by ``order_by``, −1 for
+        NaN, masked and no-signal pixels; lazy when the input is dask-backed.
+        Attrs: method, k, rule, k_candidates, scores, legend (JSON), flag_values,
+        flag_meanings, feature_space, order_by, seed, n_fit_pixels.
+
+    Notes
+    -----
+    k-means: Lloyd, IEEE Trans. Inf. Theory 28, 129 (1982), k-means++ seeding
+    (Arthur & Vassilvitskii, SODA 2007). The fit uses the signal pixels among
+    ``sample_pixels`` random ones; every pixel is then assigned lazily, one task
+    per spatial chunk. The island clean-up needs each whole (y, x) label map in
+    one chunk (int32, small).
+    """
+    if method not in CLUSTER_METHODS:
+        raise StepError(f"unknown clustering method {method!r}; use one of {CLUSTER_METHODS}")
+    if n_regions != "auto" and not (isinstance(n_regions, (int, np.integer)) and n_regions >= 1):
+        raise StepError(f"n_regions must be a positive integer or 'auto', got {n_regions!r}")
+    if min_region_px < 0:
+        raise StepError(f"min_region_px must be >= 0, got {min_region_px}")
+    params = {"n_regions": n_regions, "method": method, "feature_space": feature_space,
+              "min_region_px": min_region_px, "seed": seed, "sample_pixels": sample_pixels,
+              "k_range": list(k_range), "variables": list(variables) if variables else None,
+              "min_snr": min_snr, "order_by": order_by, "intensity_weight": intensity_weight,
+              "covariance_type": covariance_type}
+    arr, core, transform, tkw, (prop_name, prop_units) = _feature_space(
+        features, feature_space, variables=variables, min_snr=min_snr, order_by=order_by)
+    arr = apply_mask(arr, mask)
+
+    raw = gather(arr, core, sample_positions(arr, core, sample_pixels, seed))
+    feats, signal, prop = transform(raw, **tkw)
+    feats, prop = feats[signal], prop[signal]
+    if n_regions == "auto":
+        ks = sorted({int(k) for k in k_range if 2 <= int(k) < len(feats)})
+    else:
+        ks = [int(n_regions)]
+    if not ks or len(feats) < max(ks):
+        raise StepError(f"only {len(feats)} sampled pixels with signal: too few to find "
+                        f"{ks[-1] if ks else 'any'} regions (raise sample_pixels or lower min_snr)")
+    mu, sd = _standardise(feats, feature_space, intensity_weight)
+    z = (feats - mu) / sd
+    if n_regions == "auto":
+        models, scores, rule, k = _choose_k(z, method, ks, seed, covariance_type)
+        model = models[k]
+    else:
+        k, scores, rule = ks[0], [], "given by the user"
+        model = _cluster_model(method, k, len(z), z.shape[1], seed, covariance_type).fit(z)
+    lab = model.predict(z)
+    counts = np.bincount(lab, minlength=k)
+    with np.errstate(invalid="ignore"):
+        means = np.array([np.nanmean(prop[lab == j]) if counts[j] else np.nan for j in range(k)])
+    order = np.argsort(np.where(np.isnan(means), np.inf, means), kind="stable")
+    relabel = np.empty(k, dtype=np.int32)
+    relabel[order] = np.arange(k, dtype=np.int32)
+
+    region = map_pixels(_predict, arr, core, out_core=None, dtype=np.int32, kwargs={
+        "transform": transform, "tkw": tkw, "mu": mu, "sd": sd, "model": model,
+        "relabel": relabel})
+    if min_region_px > 1:
+        region = _clean(region, int(min_region_px))
+    legend = {"-1": "no signal, NaN or masked"}
+    for j in range(k):
+        src = order[j]
+        legend[str(j)] = (f"mean {prop_name} {means[src]:.6g} {prop_units}".rstrip()
+                          + f"; {counts[src]} of {len(z)} fitted pixels")
+    base = {PROVENANCE_ATTR: features.attrs[PROVENANCE_ATTR]} if PROVENANCE_ATTR in features.attrs else {}
+    attrs = with_step(base, "segment", jsonable_params(params), k=k, rule=rule)
+    attrs.update({
+        "long_name": "region label", "units": "1",
+        "flag_values": list(range(-1, k)),
+        "flag_meanings": " ".join(["no_signal"] + [f"region_{j}" for j in range(k)]),
+        "method": method, "k": k, "rule": rule, "k_candidates": ks if scores else [k],
+        "scores": scores, "legend": json.dumps(legend), "feature_space": feature_space,
+        "order_by": prop_name, "seed": seed, "n_fit_pixels": len(z),
+        "min_snr": "none" if min_snr is None else float(min_snr),
+        "min_region_px": int(min_region_px),
+    })
+    region.attrs = attrs
+    region.name = "region"
+    return region

@@ -1,0 +1,133 @@
+"""open_cube and convert: the format-independent entry points."""
+
+from __future__ import annotations
+
+import os
+import warnings
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import xarray as xr
+import zarr
+
+from ..cube import DEFAULT_CHUNK_MIB
+from ..errors import FormatError
+from ._common import check_input, detect_format, finish_cube
+from ._readers import read_netcdf, read_npy, read_tiff, read_zarr
+from ._text import text_to_zarr
+from ._write import output_format, save_cube
+
+
+def _read_text(path: Path, options: dict[str, Any]) -> xr.Dataset:
+    store = zarr.storage.MemoryStore()
+    text_to_zarr(path, store, **options)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return xr.open_zarr(store, chunks={}, consolidated=False)
+
+
+def open_cube(
+    path: str | os.PathLike,
+    *,
+    fmt: str | None = None,
+    chunks: Mapping[str, int] | None = None,
+    target_chunk_mib: float = DEFAULT_CHUNK_MIB,
+    **axis_options: Any,
+) -> xr.DataArray:
+    """Open a PL map file as a canonical cube, lazily where the format allows.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Zarr store (v2/v3), NetCDF4/HDF5 file, ``.npy`` array, multi-page TIFF
+        (one page per channel) or a .csv/.tsv/.txt table (long or wide).
+    fmt : str, optional
+        Force the format (see :data:`pmap.io.SUPPORTED_FORMATS`); detected otherwise.
+    chunks : mapping, optional
+        Spatial chunk sizes ``{"y": cy, "x": cx}`` of the returned cube.
+    target_chunk_mib : float
+        Memory target of one chunk in MiB when ``chunks`` is omitted.
+    **axis_options
+        Format-specific read options as plain values, e.g. ``wavelength_nm=[...]``,
+        ``wavelength_start_nm=``/``wavelength_step_nm=``, ``energy_ev=``,
+        ``pixel_size_um=``, ``dims="y,x,wavelength"``, ``sidecar=`` (npy, TIFF);
+        ``x_col=``, ``y_col=``, ``spectral_col=``, ``value_col=``, ``delimiter=``,
+        ``grid_tolerance=`` (text); ``variable=`` (Zarr, NetCDF); and metadata
+        such as ``units=``, ``excitation_wavelength_nm=``, ``temperature_K=``.
+
+    Returns
+    -------
+    xarray.DataArray
+        Validated cube (:func:`pmap.cube.validate_cube`), dask-backed, with the
+        input file's path, format and fingerprint in its provenance attrs.
+        Text tables are parsed into memory (convert big ones with
+        :func:`text_to_zarr` first); every other format computes nothing here.
+
+    Raises
+    ------
+    InputFileError
+        Missing, unreadable or truncated file.
+    FormatError
+        Unknown format (the message lists the supported ones), bad options or
+        sidecar, points off a regular grid, duplicate points.
+    CubeValidationError
+        The content is not a valid cube.
+    """
+    p = check_input(path)
+    kind = fmt or detect_format(p)
+    if kind == "zarr":
+        raw = read_zarr(p, axis_options)
+    elif kind == "netcdf":
+        raw = read_netcdf(p, axis_options)
+    elif kind == "npy":
+        raw = read_npy(p, axis_options, target_chunk_mib)
+    elif kind == "tiff":
+        raw = read_tiff(p, axis_options, target_chunk_mib)
+    elif kind == "text":
+        raw = _read_text(p, axis_options)
+    else:
+        raise FormatError(f"unknown format {kind!r}; supported: zarr, netcdf, npy, tiff, text")
+    return finish_cube(raw, p, kind, chunks=chunks, target_chunk_mib=target_chunk_mib)
+
+
+def convert(
+    src: str | os.PathLike,
+    dst: str | os.PathLike,
+    *,
+    fmt: str | None = None,
+    overwrite: bool = False,
+    zarr_format: int = 3,
+    **read_options: Any,
+) -> Path:
+    """Convert a map file to Zarr (default) or NetCDF without loading it into memory.
+
+    Parameters
+    ----------
+    src : str or path-like
+        Input in any format :func:`open_cube` reads.
+    dst : str or path-like
+        Output path; ``.nc``/``.h5`` write NetCDF, anything else Zarr.
+    fmt : {"zarr", "netcdf"}, optional
+        Output format, if not given by the ending of ``dst``.
+    overwrite : bool
+        Replace an existing output (never the input).
+    zarr_format : {2, 3}
+        Zarr version for Zarr output.
+    **read_options
+        Read options of :func:`open_cube` (or of :func:`text_to_zarr` for text,
+        e.g. ``chunk_rows``, ``buffer_mib``).
+
+    Returns
+    -------
+    pathlib.Path
+        The written output.
+    """
+    p = check_input(src)
+    out = Path(dst).expanduser()
+    if detect_format(p) == "text" and output_format(out, fmt) == "zarr":
+        return Path(
+            text_to_zarr(p, out, overwrite=overwrite, zarr_format=zarr_format, **read_options)
+        )
+    cube = open_cube(p, **read_options)
+    return save_cube(cube, out, fmt=fmt, overwrite=overwrite, zarr_format=zarr_format)

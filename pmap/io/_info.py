@@ -1,0 +1,186 @@
+"""cube_info / format_cube_info: a summary of a map file without loading it."""
+
+from __future__ import annotations
+
+import json
+import os
+from typing import Any
+
+import dask
+import dask.array as da
+import numpy as np
+
+from ..conventions import SPECTRAL_DIMS, length_to_um_factor
+from ..cube import METADATA_ATTRS, spectral_dim
+from ..provenance import PROVENANCE_ATTR, get_provenance
+from ._api import open_cube
+from ._common import check_input, detect_format, path_size_bytes
+from ._text import TEXT_OPTIONS, inspect_text, scan_text
+
+
+def _axis_summary(vals: np.ndarray, unit: str) -> dict[str, Any]:
+    step = float(np.median(np.diff(vals))) if vals.size > 1 else None
+    return {
+        "min": float(vals[0]),
+        "max": float(vals[-1]),
+        "n": int(vals.size),
+        "step": step,
+        "units": unit,
+    }
+
+
+def _stored_chunks(cube) -> Any:
+    enc = cube.encoding
+    c = enc.get("preferred_chunks") or enc.get("chunks") or enc.get("chunksizes")
+    if isinstance(c, dict):
+        return {str(k): int(v) for k, v in c.items()}
+    if c is not None:
+        return dict(zip(cube.dims, (int(v) for v in c)))
+    return None
+
+
+def _text_info(path, fmt: str, value_range: bool, options: dict[str, Any]) -> dict[str, Any]:
+    spec = inspect_text(path, **options)
+    layout = scan_text(spec, value_range=value_range, **options)
+    fac = 1.0 if spec.xy_units == "pixel" else length_to_um_factor(spec.xy_units)
+    unit = "pixel" if spec.xy_units == "pixel" else "um"
+    shape = (layout.y.n, layout.x.n, layout.spectral.size)
+    info = {
+        "dims": ["y", "x", spec.spectral_dim],
+        "shape": list(shape),
+        "dtype": "float32",
+        "spectral_dim": spec.spectral_dim,
+        "spectral": _axis_summary(layout.spectral, spec.spectral_units),
+        "y": _axis_summary(layout.y.values * fac, unit),
+        "x": _axis_summary(layout.x.values * fac, unit),
+        "chunks": None,
+        "stored_chunks": None,
+        "layout": f"{spec.layout} table",
+        "rows": layout.n_rows,
+        "value_min": layout.value_min,
+        "value_max": layout.value_max,
+        "units": options.get("units", "counts"),
+        "metadata": {},
+        "attrs": {},
+    }
+    return info
+
+
+def cube_info(
+    path: str | os.PathLike, *, value_range: bool = True, **read_options: Any
+) -> dict[str, Any]:
+    """Summary of a map file: dims, shape, axes, pixel size, chunks, value range, metadata.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Any file :func:`pmap.io.open_cube` reads.
+    value_range : bool
+        Compute the minimum and maximum intensity (chunk by chunk, bounded
+        memory; one full read of the data). False skips it for huge files.
+    **read_options
+        Read options of :func:`pmap.io.open_cube`.
+
+    Returns
+    -------
+    dict
+        Keys: ``path``, ``format``, ``file_size_bytes``, ``dims``, ``shape``,
+        ``dtype``, ``spectral_dim``, ``spectral`` / ``y`` / ``x`` (min, max, n,
+        step, units; positions in µm), ``pixel_size_um``, ``extent_um``
+        (y, x), ``chunks``, ``stored_chunks``, ``value_min``, ``value_max``,
+        ``units``, ``metadata`` (known acquisition attrs), ``attrs`` (the rest),
+        ``provenance`` (decoded record).
+    """
+    p = check_input(path)
+    fmt = detect_format(p)
+    if fmt == "text":
+        opts = {k: v for k, v in read_options.items() if k in (*TEXT_OPTIONS, "chunk_rows")}
+        info = _text_info(p, fmt, value_range, opts)
+    else:
+        cube = open_cube(p, fmt=fmt, **read_options)
+        sdim = spectral_dim(cube)
+        info = {
+            "dims": list(cube.dims),
+            "shape": list(cube.shape),
+            "dtype": str(cube.dtype),
+            "spectral_dim": sdim,
+            "spectral": _axis_summary(cube[sdim].values, SPECTRAL_DIMS[sdim]),
+            "y": _axis_summary(cube["y"].values, cube["y"].attrs.get("units", "pixel")),
+            "x": _axis_summary(cube["x"].values, cube["x"].attrs.get("units", "pixel")),
+            "chunks": {d: int(c[0]) for d, c in zip(cube.dims, cube.chunks)},
+            "stored_chunks": _stored_chunks(cube),
+            "value_min": None,
+            "value_max": None,
+            "units": cube.attrs.get("units"),
+        }
+        if value_range:
+            lo, hi = dask.compute(da.nanmin(cube.data), da.nanmax(cube.data))
+            info["value_min"], info["value_max"] = float(lo), float(hi)
+        attrs = {
+            k: v for k, v in cube.attrs.items() if k not in (PROVENANCE_ATTR, "units", "long_name")
+        }
+        info["metadata"] = {k: attrs.pop(k) for k in list(attrs) if k in METADATA_ATTRS}
+        info["attrs"] = attrs
+        info["provenance"] = get_provenance(cube.attrs)
+    for dim in ("y", "x"):
+        ax = info[dim]
+        ax["extent"] = (ax["max"] - ax["min"]) + (ax["step"] or 0.0)
+    um = info["x"]["units"] == "um" and info["y"]["units"] == "um"
+    info["pixel_size_um"] = {"y": info["y"]["step"], "x": info["x"]["step"]} if um else None
+    info["extent_um"] = {"y": info["y"]["extent"], "x": info["x"]["extent"]} if um else None
+    info.update(path=str(p), format=fmt, file_size_bytes=path_size_bytes(p))
+    return info
+
+
+def _human_bytes(n: float) -> str:
+    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
+        if n < 1024 or unit == "TiB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1024
+    return f"{n} B"
+
+
+def format_cube_info(info: dict[str, Any]) -> str:
+    """Human-readable text of a :func:`cube_info` dict (for ``pmap info``)."""
+    lines = [
+        f"{info['path']}",
+        f"  format        {info['format']}"
+        + (f" ({info['layout']})" if info.get("layout") else ""),
+        f"  file size     {_human_bytes(info['file_size_bytes'])}",
+    ]
+    shape = " x ".join(f"{d}={n}" for d, n in zip(info["dims"], info["shape"]))
+    lines.append(f"  shape         {shape}  ({info['dtype']}, {info.get('units')})")
+    s = info["spectral"]
+    step = f", step {s['step']:.6g}" if s["step"] else ""
+    lines.append(
+        f"  {info['spectral_dim']:<13} {s['min']:.6g} .. {s['max']:.6g} {s['units']}"
+        f" ({s['n']} channels{step})"
+    )
+    for dim in ("y", "x"):
+        a = info[dim]
+        st = f", step {a['step']:.6g}" if a["step"] else ""
+        lines.append(
+            f"  {dim:<13} {a['min']:.6g} .. {a['max']:.6g} {a['units']} ({a['n']} pixels{st})"
+        )
+    if info.get("pixel_size_um"):
+        ps, ex = info["pixel_size_um"], info["extent_um"]
+        fmt_ps = "/".join(f"{v:.4g}" if v else "-" for v in (ps["y"], ps["x"]))
+        lines.append(f"  pixel size    {fmt_ps} um (y/x); extent {ex['y']:.4g} x {ex['x']:.4g} um")
+    if info.get("chunks"):
+        lines.append("  chunks        " + ", ".join(f"{k}={v}" for k, v in info["chunks"].items()))
+    if info.get("stored_chunks"):
+        lines.append(
+            "  stored chunks " + ", ".join(f"{k}={v}" for k, v in info["stored_chunks"].items())
+        )
+    if info.get("rows") is not None:
+        lines.append(f"  rows          {info['rows']}")
+    if info.get("value_min") is not None:
+        lines.append(f"  values        {info['value_min']:.6g} .. {info['value_max']:.6g}")
+    for k, v in {**info.get("metadata", {}), **info.get("attrs", {})}.items():
+        lines.append(f"  {k:<13} {v}")
+    prov = info.get("provenance") or {}
+    if prov.get("steps"):
+        lines.append("  steps         " + ", ".join(s.get("step", "?") for s in prov["steps"]))
+    if prov.get("input"):
+        lines.append(f"  read from     {json.dumps(prov['input'].get('path'))}")
+    return "\n".join(lines)
