@@ -231,7 +231,7 @@ def add_regions(store: str | Path, cube: xr.DataArray, params: dict, *, csv: boo
     region = region.rename("region").compute()
     stats = region_statistics(region, maps, cube=cube)
     stats = stats.compute()
-    extra = xr.merge([region.to_dataset(), stats], compat="override", combine_attrs="drop")
+    extra = xr.merge([region.to_dataset(), stats], compat="override", combine_attrs="override")
     extra = extra.drop_vars([c for c in ("y", "x") if c in extra.coords])
     extra.to_zarr(str(store), mode="a", consolidated=False)
     import zarr

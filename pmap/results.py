@@ -20,6 +20,7 @@ from __future__ import annotations
 import os
 import shutil
 import sys
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -49,7 +50,7 @@ def assemble_result(parts: list[xr.Dataset | xr.DataArray], *, provenance_json: 
     provenance record (``provenance_json``) and the result-format markers.
     """
     dsets = [p.to_dataset() if isinstance(p, xr.DataArray) else p for p in parts]
-    ds = xr.merge(dsets, compat="override", join="exact", combine_attrs="drop")
+    ds = xr.merge(dsets, compat="override", join="exact", combine_attrs="override")
     ds.attrs = {
         "pmap_result": RESULT_FORMAT_VERSION,
         "pmap_complete": False,
@@ -101,6 +102,10 @@ def mark_complete(path: str | Path) -> None:
 
     g = zarr.open_group(str(path), mode="r+")
     g.attrs["pmap_complete"] = True
+    with warnings.catch_warnings():
+        # consolidated metadata is not (yet) in the Zarr v3 spec; xarray and zarr-python read it
+        warnings.simplefilter("ignore")
+        zarr.consolidate_metadata(str(path))
     shutil.rmtree(progress_dir(path), ignore_errors=True)
 
 
@@ -219,7 +224,9 @@ def open_result(path: str | Path, *, require_complete: bool = True) -> xr.Datase
         raise InputFileError(f"no such result store: {p}")
     if not is_result_store(p):
         raise FormatError(f"{p} is not a pmap result store")
-    ds = xr.open_zarr(str(p))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # incomplete stores are not consolidated
+        ds = xr.open_zarr(str(p))
     if require_complete and not bool(ds.attrs.get("pmap_complete", False)):
         raise FormatError(f"{p} is incomplete (the run that wrote it did not finish); "
                           "rerun with --resume or --overwrite")

@@ -52,7 +52,7 @@ Instrument
   ``truth.spike_mask``.
 * One *dead* spatial pixel (zero response: offset and read noise only) and one
   *saturated* spatial pixel (a hot spot 300 × brighter than its neighbours,
-  clipped at 65 535 counts), both in the matrix.
+  clipped at 65 535 counts), both in the matrix when the map has matrix pixels.
 
 Truth (:class:`xarray.Dataset`)
 -------------------------------
@@ -263,7 +263,7 @@ def _scenario_maps(shape: tuple[int, int], scen: DemoScenario, seed: int) -> dic
     gb_profile = np.exp(-((gb_dist / half_w) ** 2) * math.log(2))  # 1 on the boundary, ½ at edge
 
     # Segregated domains: discs around random centres (nearest centre decides).
-    n_dom = max(3, round(height * width * scen.segregated_density_per_um2))
+    n_dom = max(1, round(height * width * scen.segregated_density_per_um2))
     centres = rng.uniform([0, 0], [height, width], size=(n_dom, 2))
     radii = rng.uniform(*scen.segregated_radius_um, size=n_dom)
     dom_e = scen.segregated_energy_ev + scen.segregated_energy_spread_ev * rng.standard_normal(n_dom)
@@ -307,14 +307,16 @@ def _scenario_maps(shape: tuple[int, int], scen: DemoScenario, seed: int) -> dic
     bg_amp = np.where(on, scen.background_counts_per_channel
                       * np.clip(1 + scen.background_variation * f_bg, 0.0, None), 0.0)
 
-    # One dead and one saturated (hot-spot) pixel, both in the matrix, away from the edges.
+    # One dead and one saturated (hot-spot) pixel, in the matrix, away from the edges.
     inner = np.zeros(shape, dtype=bool)
     inner[1:-1, 1:-1] = True
     cand = np.flatnonzero(((region == 0) & inner).ravel())
+    if cand.size < 2:  # tiny maps: any on-sample pixel will do
+        cand = np.flatnonzero(((region >= 0) & inner).ravel())
     if cand.size < 2:
         raise StepError(
-            f"map shape {shape} is too small for the demo scenario (needs matrix pixels "
-            "for the dead and saturated pixels); use at least 8 × 8 pixels"
+            f"map shape {shape} has too few on-sample pixels for the dead and saturated "
+            "pixels of the demo scenario; use a larger shape"
         )
     dead_flat, sat_flat = rng.choice(cand, size=2, replace=False)
     dead_yx = tuple(int(v) for v in np.unravel_index(dead_flat, shape))

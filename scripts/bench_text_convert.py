@@ -65,7 +65,7 @@ def write_long_table(path: str | os.PathLike, size_bytes: float, *, n_channels: 
     nl = np.full((1, 1), ord("\n"), dtype=np.uint8)
     with open(path, "wb") as fh:
         fh.write(b"x_um,y_um,wavelength_nm,intensity\n")
-        block = max(1, 2_000_000 // ns)
+        block = max(1, 500_000 // ns)
         for start in range(0, ny * nx, block):
             pix = np.arange(start, min(start + block, ny * nx))
             iy, ix = np.divmod(pix, nx)
@@ -84,13 +84,25 @@ def write_long_table(path: str | os.PathLike, size_bytes: float, *, n_channels: 
 
 
 def _rss_mib() -> float:
-    # ru_maxrss is in KiB on Linux
+    """Peak resident memory of this process in MiB (VmHWM; ru_maxrss elsewhere)."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    # ru_maxrss (KiB on Linux) can carry the parent's peak across fork/exec
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def _child_convert(src: str, out: str, chunk_rows: int, buffer_mib: float, chunk_mib: float) -> None:
     import pmap.io
 
+    # warm up on a tiny table so that lazily imported modules do not count as growth
+    with tempfile.TemporaryDirectory() as tmp:
+        write_long_table(Path(tmp) / "w.csv", 50_000, n_channels=50)
+        pmap.io.text_to_zarr(Path(tmp) / "w.csv", Path(tmp) / "w.zarr", chunk_rows=chunk_rows)
     before = _rss_mib()
     t0 = time.perf_counter()
     pmap.io.text_to_zarr(src, out, chunk_rows=chunk_rows, buffer_mib=buffer_mib,

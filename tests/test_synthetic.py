@@ -107,7 +107,7 @@ def test_jacobian_shifts_maximum_in_wavelength(medium):
     3316 (2013)); d/dE[g(E) E²] = 0 gives E* = (E0 + sqrt(E0² + 8σ²))/2.
     """
     scen = DemoScenario(band_edge_fwhm_ev=0.30, band_edge_fwhm_variation_ev=0.0)
-    cube, truth = make_demo_cube(shape=(8, 8), n_channels=4096, seed=1, expected=True,
+    cube, truth = make_demo_cube(shape=(16, 16), n_channels=4096, seed=1, expected=True,
                                  wavelength_medium=medium, scenario=scen)
     iy, ix = np.argwhere(truth["region"].values == 0)[-1]
     line = (truth["expected"].values[iy, ix]
@@ -240,7 +240,7 @@ def test_written_expected_cube(tmp_path):
 
 
 def test_bad_arguments():
-    with pytest.raises(StepError, match="too small|at least 8"):
+    with pytest.raises(StepError, match="at least 8"):
         make_demo_cube(shape=(4, 4))
     with pytest.raises(StepError, match="write_demo_cube"):
         make_demo_cube(shape=(4096, 4096))

@@ -52,18 +52,24 @@ def _valid_sample(arr: xr.DataArray, sdim: str, sample_pixels: int | None, seed:
     return x[finite_rows(x)]
 
 
-def _catch_convergence(fit, *args):
+def _catch_convergence(fit, *args, warn: bool = True) -> bool:
+    """Call ``fit(*args)``; turn scikit-learn's ConvergenceWarning into a PmapWarning
+    (or, with ``warn=False``, keep quiet); return whether it converged."""
     from sklearn.exceptions import ConvergenceWarning
 
+    converged = True
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", ConvergenceWarning)
-        out = fit(*args)
+        fit(*args)
     for w in caught:
         if issubclass(w.category, ConvergenceWarning):
-            warnings.warn(f"decomposition did not converge: {w.message}", PmapWarning, stacklevel=3)
+            converged = False
+            if warn:
+                warnings.warn(f"decomposition did not converge: {w.message}", PmapWarning,
+                              stacklevel=3)
         else:
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
-    return out
+    return converged
 
 
 def _nmf_model(n_components: int, *, seed: int, init: str | None, solver: str | None,
@@ -352,14 +358,17 @@ def component_count_curve(
     else:
         xc = np.clip(x, 0.0, None)
         norm = max(float(np.linalg.norm(xc)), 1e-300)
-        err = []
+        err, not_converged = [], []
         for k in ks:
             model = _nmf_model(k, seed=seed, init=init, solver=solver, max_iter=max_iter)
-            _catch_convergence(model.fit, xc)
+            if not _catch_convergence(model.fit, xc, warn=False):
+                not_converged.append(k)
             err.append(model.reconstruction_err_ / norm)
         err = np.asarray(err)
         definition = "||X - WH||_F / ||X||_F of the sample (X clipped at 0)"
     data["reconstruction_error"] = (("n_components",), np.asarray(err, dtype=float),
                                     {"units": "1", "long_name": definition})
     attrs = {"method": method, "n_fit_pixels": len(x), "seed": seed}
+    if method == "nmf":
+        attrs["not_converged"] = not_converged  # counts that hit max_iter (recorded, not warned)
     return xr.Dataset(data, coords={"n_components": ("n_components", ks)}, attrs=attrs)

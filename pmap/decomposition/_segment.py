@@ -42,26 +42,69 @@ SILHOUETTE_PIXELS = 5000
 
 
 def _noise_of_sum(x: np.ndarray) -> np.ndarray:
-    """1-sigma noise of the channel sum, from the spread of first differences (per row)."""
+    """1-sigma noise of the channel sum of each row, from its mean absolute first difference.
+
+    For white noise of s.d. σ, E|x[i+1] − x[i]| = 2σ/√π, so σ = (√π/2)·mean|Δx|
+    (common practice); the sum of n channels then has noise σ·√n. Steep spectral
+    structure inflates the estimate (conservative). Unlike a median, it is not 0 for
+    sparse integer counts.
+    """
     d = np.abs(np.diff(x, axis=1))
-    sigma = 1.4826 * np.median(d, axis=1) / np.sqrt(2.0)
+    sigma = 0.5 * np.sqrt(np.pi) * d.mean(axis=1)
     return sigma * np.sqrt(x.shape[1])
+
+
+def _signal_rows(x: np.ndarray, min_snr: float | None) -> tuple[np.ndarray, np.ndarray]:
+    """(rows with finite, non-zero spectra whose sum exceeds min_snr × its noise, NaN-free rows)."""
+    ok = finite_rows(x)
+    xs = np.where(ok[:, None], x, 0.0)
+    signal = ok & np.any(xs != 0, axis=1)
+    if min_snr is not None:
+        total = xs.sum(axis=1)
+        signal &= (total > 0) & (total > min_snr * _noise_of_sum(xs))
+    return signal, xs
 
 
 def _cube_features(x: np.ndarray, *, axis: np.ndarray, with_intensity: bool,
                    min_snr: float | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    ok = finite_rows(x)
-    xs = np.where(ok[:, None], x, 0.0)
+    signal, xs = _signal_rows(x, min_snr)
     total = xs.sum(axis=1)
     norm = np.linalg.norm(xs, axis=1)
-    signal = ok & (norm > 0)
-    if min_snr is not None:
-        signal &= (total > 0) & (total > min_snr * _noise_of_sum(xs))
     feats = xs / np.where(norm > 0, norm, 1.0)[:, None]
     if with_intensity:
         logi = np.log10(np.where(total > 0, total, 1.0))
         feats = np.concatenate([feats, logi[:, None]], axis=1)
     return feats, signal, centroid_of(xs, axis)
+
+
+def _signal_core(x: np.ndarray, *, min_snr: float | None) -> np.ndarray:
+    return _signal_rows(x, min_snr)[0]
+
+
+def signal_mask(cube: xr.DataArray, *, min_snr: float | None = 5.0) -> xr.DataArray:
+    """Boolean map (*stack, y, x), True where a pixel has signal (lazy for dask cubes).
+
+    Parameters
+    ----------
+    cube : xarray.DataArray
+        Cube (*stack, y, x, S), ideally dark- or baseline-subtracted: a constant
+        offset counts as signal.
+    min_snr : float or None
+        A pixel has signal when its spectrum is finite, not all zero and (unless
+        None) its channel sum exceeds ``min_snr`` times the noise of that sum,
+        σ·√n_channels with σ = (√π/2)·mean|Δx| from the first differences.
+
+    Returns
+    -------
+    xarray.DataArray of bool. Pass ``mask=~signal_mask(cube)`` to
+    :func:`segment` to apply the same rule to abundance or parameter features.
+    """
+    arr, core = check_spectral(cube)
+    out = map_pixels(_signal_core, arr, core, out_core=None, dtype=bool,
+                     kwargs={"min_snr": min_snr})
+    out.attrs = {"long_name": "pixel has signal", "units": "1",
+                 "rule": f"channel sum > {min_snr} x noise of the sum" if min_snr else "finite, not 0"}
+    return out.rename("signal")
 
 
 def _map_features(x: np.ndarray, *, weights: np.ndarray | None, order_index: int,
@@ -366,9 +409,10 @@ def segment(
         Maps to use with ``"parameters"`` (default: every variable with y and x dims).
     min_snr : float or None
         Spectra (shape spaces): a pixel has signal when its integrated intensity
-        exceeds ``min_snr`` times its noise, estimated from the median absolute
-        first difference (σ = 1.4826·median|Δx|/√2, noise of the sum σ·√n_channels).
-        None: only NaN / masked pixels are "no signal".
+        exceeds ``min_snr`` times its noise (see :func:`signal_mask`); None: only
+        NaN, all-zero and masked pixels are "no signal". Other feature spaces:
+        NaN and masked pixels (and all-zero NMF abundances); pass
+        ``mask=~signal_mask(cube)`` for the same rule.
     order_by : str, optional
         Property whose per-region mean sets the region numbers (ascending):
         spectra and NMF abundances use the spectral centroid ("centroid"),

@@ -81,7 +81,8 @@ def fwhm_at_half(x: np.ndarray, Y: np.ndarray, imax: np.ndarray, half: np.ndarra
         xl = x[lj] + (half - ya) * (x[lj + 1] - x[lj]) / (yb - ya)
         ya, yb = Y[rows, rj - 1], Y[rows, rj]
         xr_ = x[rj - 1] + (half - ya) * (x[rj] - x[rj - 1]) / (yb - ya)
-    return np.where(ok, xr_ - xl, np.nan)
+        width = xr_ - xl
+    return np.where(ok, width, np.nan)
 
 
 def smooth3(Y: np.ndarray) -> np.ndarray:

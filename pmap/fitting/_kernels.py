@@ -32,7 +32,8 @@ N_PEAK_PARAMS = {GAUSSIAN: 3, LORENTZIAN: 3, VOIGT: 4, PSEUDO_VOIGT: 4, SPLIT_GA
 
 # Weideman (1994) rational approximation, N = 16: |w − w_exact| < 2e-7·|w(0)| on the
 # upper half plane region used here (checked against scipy.special.wofz in the tests).
-_W_A, _W_L = weideman_coefficients(16)
+_W_A_ARR, _W_L = weideman_coefficients(16)
+_W_A = tuple(float(v) for v in _W_A_ARR)  # a tuple is a compile-time constant (cacheable)
 _SQRT_PI = math.sqrt(math.pi)
 _F2S = 1.0 / (2.0 * math.sqrt(2.0 * math.log(2.0)))
 _KG = math.sqrt(math.pi / (4.0 * math.log(2.0)))  # area = height·fwhm·_KG (Gaussian)
@@ -48,7 +49,7 @@ def _faddeeva(zr, zi, a, L):
     den = L - iz
     Z = (L + iz) / den
     p = a[0] + 0j
-    for j in range(1, a.size):
+    for j in range(1, len(a)):
         p = p * Z + a[j]
     return 2.0 * p / (den * den) + (1.0 / _SQRT_PI) / den
 
@@ -337,11 +338,11 @@ def _fit_one(y, x, xref, p, lo, hi, free_idx, nfree, model, K, nbg, var_mode, ga
 
 @nb.njit(cache=True, parallel=True)
 def lm_batch(Y, x, xref, P0, active, lo, hi, free_idx, nfree, model, K, nbg, var_mode, gain, rn2,
-             n_pass, max_iter, ftol, xtol):
+             n_pass, max_iter, ftol, xtol, nblk):
     """Batched Levenberg–Marquardt over the rows of Y (n_pix, n_ch).
 
     Returns (P (n_pix, n_full), COV (n_pix, nfree, nfree), chi2_red, status, n_iter).
-    Rows with ``active`` False are skipped (their outputs NaN, status −1).
+    ``nblk``: number of work blocks (a few per thread). Rows with ``active`` False are skipped (their outputs NaN, status −1).
     ``lo``/``hi``: (n_pix, n_full) bounds; fixed parameters take their value from P0.
     """
     npix, n = Y.shape
@@ -351,8 +352,7 @@ def lm_batch(Y, x, xref, P0, active, lo, hi, free_idx, nfree, model, K, nbg, var
     chi2 = np.full(npix, np.nan)
     status = np.full(npix, -1, dtype=np.int64)
     niter = np.zeros(npix, dtype=np.int64)
-    nthreads = nb.get_num_threads()
-    nblk = min(npix, 4 * nthreads) if npix > 0 else 0
+    nblk = min(npix, nblk)
     for b in nb.prange(nblk):
         start = (b * npix) // nblk
         stop = ((b + 1) * npix) // nblk

@@ -75,10 +75,10 @@ def subtract_dark(cube: xr.DataArray, *, dark: Any = None,
             dsd = next((s for s in d.dims if s not in ("y", "x")), None)
             if dsd is None or d.sizes[dsd] != cube.sizes[sdim]:
                 raise StepError("dark cube must have the same number of channels as the cube")
-            dv = d.data.astype(dt) if hasattr(d.data, "dask") else np.asarray(d.values, dt)
-            dd = xr.DataArray(dv, dims=("y", "x", sdim)).transpose(
-                *[dim for dim in cube.dims if dim in ("y", "x", sdim)])
-            out = x - dd.chunk({sdim: -1}) if hasattr(dv, "dask") else x - dd
+            if d.ndim != 3:
+                raise StepError(f"dark cube must have dims (y, x, channels), got {d.dims}")
+            dd = xr.DataArray(d.transpose("y", "x", dsd).data, dims=("y", "x", sdim))
+            out = x - dd.astype(dt)
         else:
             vals = spectrum_on_axis(d, cube, sdim, what="dark spectrum", interpolate=False)
             out = x - xr.DataArray(vals.astype(dt), dims=(sdim,))

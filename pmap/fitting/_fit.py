@@ -1,0 +1,739 @@
+"""Per-pixel peak fitting of whole cubes: :func:`fit_peaks`, :func:`evaluate_fit`."""
+
+from __future__ import annotations
+
+import json
+import warnings
+from dataclasses import dataclass
+
+import dask.array as da
+import numba
+import numpy as np
+import xarray as xr
+
+from ..conventions import HC_EV_NM
+from ..cube import spectral_dim, validate_cube
+from ..errors import PmapNotice, StepError
+from ..provenance import with_step
+from ..steps import register_step
+from . import _kernels as K
+from ._common import apply_per_spectrum, fwhm_at_half, parabolic_vertex, robust_noise, smooth3
+from ._lineshapes import (
+    FWHM_TO_SIGMA,
+    _voigt0,
+    gaussian,
+    lorentzian,
+    pseudo_voigt,
+    split_gaussian,
+    voigt,
+    voigt_widths,
+)
+
+__all__ = ["fit_peaks", "evaluate_fit", "model_spectrum", "FIT_STATUS_LEGEND"]
+
+FIT_STATUS_LEGEND = (
+    "0=converged;1=iteration limit reached (values kept);"
+    "2=a parameter at a user-set bound (values kept);3=too little signal (NaN);"
+    "4=masked or NaN input (NaN);5=solver failure, non-finite or singular (NaN);"
+    "6=implausible: centre, width or area at its physical limit (edge of the energy axis, "
+    "width at the channel spacing or the axis span, area <= 0) (NaN)"
+)
+SHAPE_NAMES = {
+    "voigt": ("lorentz_fraction", "Lorentzian FWHM / total FWHM (Olivero-Longbothum split)"),
+    "pseudo_voigt": ("eta", "Lorentzian fraction of the pseudo-Voigt mixture"),
+    "split_gaussian": ("asymmetry", "(HWHM_high - HWHM_low) / FWHM"),
+}
+_SHAPE_BOUNDS = {"voigt": (0.0, 0.99), "pseudo_voigt": (0.0, 1.0), "split_gaussian": (-0.9, 0.9)}
+_SHAPE_START = {"voigt": 0.3, "pseudo_voigt": 0.5, "split_gaussian": 0.0}
+_ALIASES = {
+    "center": "center", "centre": "center", "energy": "center", "center_ev": "center",
+    "fwhm": "fwhm", "width": "fwhm", "fwhm_ev": "fwhm", "area": "area", "shape": "shape",
+    "offset": "offset", "background": "offset", "slope": "slope",
+    "lorentz_fraction": "shape", "eta": "shape", "asymmetry": "shape",
+}
+_BACKGROUNDS = {"none": 0, "constant": 1, "linear": 2}
+_PEAK_FIELDS = 10  # energy, err, fwhm, err, area, err, height, err, shape, err
+_N_TAIL = 7  # offset, err, slope, err, status, chi2_red, n_iter
+
+
+@dataclass
+class _Spec:
+    model: str
+    code: int
+    K: int
+    nbg: int
+    npp: int
+    kind: list
+    peak: list
+    free_idx: np.ndarray
+    nfree: int
+    lo: np.ndarray
+    hi: np.ndarray
+    bound_flag: np.ndarray  # 0 none, 2 user bound, 6 physical (default) bound
+    fixed: np.ndarray  # NaN = free
+    start: np.ndarray  # NaN = estimate
+    x: np.ndarray
+    xref: float
+    init: str
+
+    @property
+    def nfull(self) -> int:
+        return len(self.kind)
+
+
+def _canon(key: str) -> str:
+    k = _ALIASES.get(str(key).lower())
+    if k is None:
+        raise StepError(
+            f"unknown fit parameter {key!r}; use center, fwhm, area, shape (or the model's shape "
+            "name), offset, slope"
+        )
+    return k
+
+
+def _per_peak(value, K: int, what: str) -> list:
+    if isinstance(value, (list, tuple)) and len(value) == K and not (
+        what == "bounds" and K == 2 and all(np.isscalar(v) for v in value)
+    ):
+        return list(value)
+    return [value] * K
+
+
+def _build_spec(x, *, model, peaks, background, bounds, fixed, shared, init) -> _Spec:
+    if model not in K.MODEL_CODES:
+        raise StepError(f"unknown model {model!r}; choose one of {', '.join(K.MODEL_CODES)}")
+    if not isinstance(peaks, (int, np.integer)) or not 1 <= peaks <= 4:
+        raise StepError(f"peaks must be an integer from 1 to 4, got {peaks!r}")
+    if background not in _BACKGROUNDS:
+        raise StepError(f"background must be one of {list(_BACKGROUNDS)}, got {background!r}")
+    code = K.MODEL_CODES[model]
+    npp = K.N_PEAK_PARAMS[code]
+    nbg = _BACKGROUNDS[background]
+    span = float(x[-1] - x[0])
+    step = float(np.min(np.diff(x))) if x.size > 1 else span
+    kind, peak = [], []
+    for k in range(peaks):
+        kind += ["center", "fwhm", "area", "shape"][:npp]
+        peak += [k] * npp
+    kind += ["offset", "slope"][:nbg]
+    peak += [-1] * nbg
+    n = len(kind)
+    lo, hi = np.full(n, -np.inf), np.full(n, np.inf)
+    flag = np.zeros(n, dtype=int)
+    for j, kd in enumerate(kind):
+        if kd == "center":
+            lo[j], hi[j], flag[j] = x[0], x[-1], 6
+        elif kd == "fwhm":
+            lo[j], hi[j], flag[j] = 0.5 * step, 2.0 * span, 6
+        elif kd == "area":
+            lo[j], flag[j] = 0.0, 6
+        elif kd == "shape":
+            lo[j], hi[j] = _SHAPE_BOUNDS[model]
+    fixed_v = np.full(n, np.nan)
+    start = np.full(n, np.nan)
+
+    def slots(key):
+        c = _canon(key)
+        if c == "shape" and npp == 3:
+            raise StepError(f"model {model!r} has no shape parameter")
+        idx = [j for j, kd in enumerate(kind) if kd == c]
+        if not idx:
+            raise StepError(f"parameter {key!r} does not exist with background={background!r}")
+        return c, idx
+
+    for key, val in (bounds or {}).items():
+        c, idx = slots(key)
+        vals = _per_peak(val, len(idx), "bounds") if c not in ("offset", "slope") else [val]
+        for j, b in zip(idx, vals):
+            if b is None:
+                continue
+            b_lo, b_hi = (float(v) if v is not None else np.nan for v in b)
+            if not np.isnan(b_lo):
+                lo[j] = b_lo
+            if not np.isnan(b_hi):
+                hi[j] = b_hi
+            if not lo[j] < hi[j]:
+                raise StepError(f"bounds for {key!r} must be (low, high) with low < high, got {b}")
+            flag[j] = 2
+    for key, val in (fixed or {}).items():
+        c, idx = slots(key)
+        vals = _per_peak(val, len(idx), "fixed") if c not in ("offset", "slope") else [val]
+        for j, v in zip(idx, vals):
+            if v is not None:
+                fixed_v[j] = float(v)
+    if isinstance(init, dict):
+        for key, val in init.items():
+            c, idx = slots(key)
+            vals = _per_peak(val, len(idx), "init") if c not in ("offset", "slope") else [val]
+            for j, v in zip(idx, vals):
+                if v is not None:
+                    start[j] = float(v)
+        init_mode = "given"
+    elif init in ("auto", "mean"):
+        init_mode = init
+    else:
+        raise StepError(f"init must be 'auto', 'mean' or a dict of starting values, got {init!r}")
+    free_idx = np.full(n, -1, dtype=np.int64)
+    nfree = 0
+    shared_kinds = {_canon(s) for s in (shared or [])}
+    for s in shared_kinds:
+        if s not in ("center", "fwhm", "area", "shape") or (s == "shape" and npp == 3):
+            raise StepError(f"only peak parameters can be shared across peaks, got {s!r}")
+    group: dict[str, int] = {}
+    for j, kd in enumerate(kind):
+        if np.isfinite(fixed_v[j]):
+            continue
+        if kd in shared_kinds:
+            if kd not in group:
+                group[kd] = nfree
+                nfree += 1
+            free_idx[j] = group[kd]
+        else:
+            free_idx[j] = nfree
+            nfree += 1
+    for s in shared_kinds:  # a shared parameter fixed in one peak is fixed in all
+        idx = [j for j, kd in enumerate(kind) if kd == s]
+        vals = fixed_v[idx]
+        if np.any(np.isfinite(vals)) and not np.all(np.isfinite(vals)):
+            raise StepError(f"shared parameter {s!r} is fixed in some peaks only")
+    if nfree == 0:
+        raise StepError("every parameter is fixed: nothing to fit")
+    return _Spec(model, code, peaks, nbg, npp, kind, peak, free_idx, nfree, lo, hi, flag,
+                 fixed_v, start, x, float(0.5 * (x[0] + x[-1])), init_mode)
+
+
+def _quick_desc(Y, x):
+    """Background (5th percentile), maximum energy, height above it, FWHM, for starting values."""
+    Ys = smooth3(Y)
+    b = np.percentile(Y, 5, axis=1)
+    imax = np.argmax(Ys, axis=1)
+    rows = np.arange(Y.shape[0])
+    height = Ys[rows, imax] - b
+    e_max = parabolic_vertex(x, Ys, imax)
+    fw = fwhm_at_half(x, Ys, imax, b + 0.5 * height)
+    fw = np.where(np.isfinite(fw) & (fw > 0), fw, 0.25 * (x[-1] - x[0]))
+    return b, e_max, height, fw
+
+
+def _area_from(height, fwhm):
+    return np.maximum(height, 0.0) * fwhm * 1.0645  # Gaussian: area = height·FWHM·√(π/4ln2)
+
+
+def _finish_start(P0, spec):
+    """Apply fixed values, equalise shared groups, clip to bounds."""
+    fixed = np.isfinite(spec.fixed)
+    P0[:, fixed] = spec.fixed[fixed]
+    for f in range(spec.nfree):
+        cols = np.flatnonzero(spec.free_idx == f)
+        if cols.size > 1:
+            P0[:, cols] = P0[:, cols].mean(axis=1, keepdims=True)
+    return np.clip(P0, spec.lo, spec.hi)
+
+
+def _run(Y, spec, P0, var_mode, gain, rn2, max_iter, n_pass=None):
+    m = Y.shape[0]
+    active = np.ones(m, dtype=bool)
+    lo = np.ascontiguousarray(np.broadcast_to(spec.lo, (m, spec.nfull)))
+    hi = np.ascontiguousarray(np.broadcast_to(spec.hi, (m, spec.nfull)))
+    npass = n_pass if n_pass is not None else (2 if var_mode == 1 else 1)
+    return K.lm_batch(Y, spec.x, spec.xref, np.ascontiguousarray(P0), active, lo, hi,
+                      spec.free_idx, spec.nfree, spec.code, spec.K, spec.nbg, var_mode,
+                      gain, rn2, npass, max_iter, 1e-10, 1e-9,
+                      4 * numba.get_num_threads())
+
+
+def _template(mean, spec, var_mode, gain, rn2):
+    """Fit the mean spectrum with K peaks (greedy: add each peak at the largest residual)."""
+    x = spec.x
+    Y = mean[None, :]
+    b, e_max, height, fw = _quick_desc(Y, x)
+    # unconstrained single-peak spec, then grow
+    p = []
+    sub = None
+    for k in range(1, spec.K + 1):
+        sub = _build_spec(x, model=spec.model, peaks=k, background=list(_BACKGROUNDS)[spec.nbg],
+                          bounds=None, fixed=None, shared=None, init="auto")
+        if k == 1:
+            p = [e_max[0], fw[0], _area_from(height, fw)[0]]
+            if spec.npp == 4:
+                p.append(_SHAPE_START[spec.model])
+        else:
+            f = np.empty(x.size)
+            K.eval_model(spec.code, x, spec.xref, np.asarray(prev), k - 1, spec.nbg, f,
+                         np.zeros((x.size, len(prev))), False)
+            resid = smooth3((mean - f)[None, :])[0]
+            i = int(np.argmax(resid))
+            w = max(fw[0] / 2.0, 3 * float(np.min(np.diff(x))))
+            newp = [x[i], w, max(resid[i], 1e-12) * w * 1.0645]
+            if spec.npp == 4:
+                newp.append(_SHAPE_START[spec.model])
+            p = list(prev[: (k - 1) * spec.npp]) + newp
+        p = p[: k * spec.npp] + ([b[0], 0.0][: spec.nbg])
+        given = spec.start[: k * spec.npp] if spec.init == "given" else None
+        if given is not None and np.all(np.isfinite(given)):
+            p[: k * spec.npp] = list(given)
+        P0 = np.clip(np.asarray(p, dtype=float)[None, :], sub.lo, sub.hi)
+        res = _run(Y, sub, P0, var_mode, gain, rn2, 200)
+        prev = res[0][0]
+        if not np.all(np.isfinite(prev)):
+            prev = P0[0]
+    return np.asarray(prev, dtype=float), float(height[0])
+
+
+def _starts(Y, spec, template, var_mode, gain, rn2):
+    m = Y.shape[0]
+    b, e_max, height, fw = _quick_desc(Y, spec.x)
+    P0 = np.zeros((m, spec.nfull))
+    npp = spec.npp
+    if template is not None:
+        tp, t_height = template
+        scale = np.where(t_height > 0, np.maximum(height, 0.0) / t_height, 1.0)
+        P0[:] = tp
+        for k in range(spec.K):
+            P0[:, k * npp + 2] = tp[k * npp + 2] * scale
+    else:
+        P0[:, 0], P0[:, 1], P0[:, 2] = e_max, fw, _area_from(height, fw)
+        if npp == 4:
+            P0[:, 3] = _SHAPE_START[spec.model]
+    ob = spec.K * npp
+    if spec.nbg >= 1:
+        P0[:, ob] = b
+    if spec.nbg == 2:
+        P0[:, ob + 1] = 0.0
+    given = np.isfinite(spec.start)
+    if np.any(given):
+        P0[:, given] = spec.start[given]
+        for k in range(spec.K):  # given centre/width without area: area from local height
+            j = k * npp
+            if given[j] and not given[j + 2]:
+                i = np.clip(np.searchsorted(spec.x, spec.start[j]), 0, spec.x.size - 1)
+                P0[:, j + 2] = _area_from(Y[:, i] - b, P0[:, j + 1])
+    return _finish_start(P0, spec), b, height
+
+
+def _height(model, fw, area, shape):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if model in ("gaussian", "split_gaussian"):
+            return area / (fw * np.sqrt(np.pi / (4.0 * np.log(2.0))))
+        if model == "lorentzian":
+            return 2.0 * area / (np.pi * fw)
+        if model == "pseudo_voigt":
+            return area * (shape * 2.0 / (np.pi * fw) + (1.0 - shape) / (fw * 1.0644670194312262))
+        fg, fl = voigt_widths(fw, shape)
+        return area * _voigt0(fg * FWHM_TO_SIGMA, 0.5 * fl)
+
+
+def _fit_rows(Y, mean, spec, var_mode, gain, rn2, max_iter, min_snr):
+    m = Y.shape[0]
+    out = np.full((m, _PEAK_FIELDS * spec.K + _N_TAIL), np.nan)
+    status = np.full(m, 4, dtype=np.int64)
+    finite = np.all(np.isfinite(Y), axis=1)
+    if np.any(finite):
+        Yf = Y[finite]
+        med = np.median(Yf, axis=1)
+        peak = smooth3(Yf).max(axis=1) - med
+        noise = robust_noise(Yf)
+        if var_mode == 1:
+            noise = np.maximum(noise, np.sqrt(np.maximum(med, 0.0) / gain + rn2))
+        weak = ~(peak > 0) | (peak < min_snr * noise)
+        st_f = np.where(weak, 3, -1)
+        status[finite] = st_f
+    fit_rows = np.flatnonzero(status == -1)
+    if fit_rows.size:
+        template = None
+        if spec.K > 1 or spec.init == "mean":
+            template = _template(mean, spec, var_mode, gain, rn2)
+        Yfit = np.ascontiguousarray(Y[fit_rows])
+        P0, _, _ = _starts(Yfit, spec, template, var_mode, gain, rn2)
+        P, COV, chi2, st, niter = _run(Yfit, spec, P0, var_mode, gain, rn2, max_iter)
+        out[fit_rows] = _postprocess(P, COV, chi2, st, niter, spec)
+        status[fit_rows] = out[fit_rows, -3].astype(np.int64)
+    out[:, -3] = status
+    return out
+
+
+def _postprocess(P, COV, chi2, st, niter, spec):
+    m, K_, npp = P.shape[0], spec.K, spec.npp
+    M = np.zeros((spec.nfull, spec.nfree))
+    for j, f in enumerate(spec.free_idx):
+        if f >= 0:
+            M[j, f] = 1.0
+    C = np.einsum("jf,mfg,kg->mjk", M, COV, M)
+    err = np.sqrt(np.maximum(np.einsum("mjj->mj", C), 0.0))
+    err[~np.isfinite(np.einsum("mjj->mj", C))] = np.nan
+    status = st.copy()
+    x0, x1 = spec.x[0], spec.x[-1]
+    tol = 1e-9 * np.maximum(1.0, np.abs(P))
+    at_lo = np.abs(P - spec.lo) <= tol
+    at_hi = np.abs(P - spec.hi) <= tol
+    free = spec.free_idx >= 0
+    hit = (at_lo | at_hi) & free
+    phys = np.any(hit & (spec.bound_flag == 6), axis=1)
+    user = np.any(hit & (spec.bound_flag == 2), axis=1)
+    cen = P[:, [j for j, kd in enumerate(spec.kind) if kd == "center"]]
+    area = P[:, [j for j, kd in enumerate(spec.kind) if kd == "area"]]
+    bad = phys | np.any((cen < x0) | (cen > x1), axis=1) | np.any(~(area > 0), axis=1)
+    ok = status >= 0
+    status = np.where(ok & (status != 5) & bad, 6, status)
+    status = np.where(ok & (status <= 1) & user, 2, status)
+    status = np.where(~np.all(np.isfinite(P), axis=1), 5, status)
+    out = np.full((m, _PEAK_FIELDS * K_ + _N_TAIL), np.nan)
+    # derived: height and its uncertainty by finite differences in (fwhm, area, shape)
+    for k in range(K_):
+        o = k * npp
+        shape = P[:, o + 3] if npp == 4 else np.zeros(m)
+        h = _height(spec.model, P[:, o + 1], P[:, o + 2], shape)
+        grads = []
+        for d in range(1, npp):
+            q = [P[:, o + 1].copy(), P[:, o + 2].copy(), shape.copy()]
+            step = 1e-6 * np.maximum(np.abs(q[d - 1]), 1e-6)
+            q[d - 1] = q[d - 1] + step
+            grads.append((_height(spec.model, *q) - h) / step)
+        G = np.stack(grads, axis=1)
+        sub = C[:, o + 1 : o + npp, o + 1 : o + npp]
+        h_err = np.sqrt(np.maximum(np.einsum("mi,mij,mj->m", G, sub, G), 0.0))
+        base = k * _PEAK_FIELDS
+        out[:, base + 0], out[:, base + 1] = P[:, o], err[:, o]
+        out[:, base + 2], out[:, base + 3] = P[:, o + 1], err[:, o + 1]
+        out[:, base + 4], out[:, base + 5] = P[:, o + 2], err[:, o + 2]
+        out[:, base + 6], out[:, base + 7] = h, h_err
+        if npp == 4:
+            out[:, base + 8], out[:, base + 9] = P[:, o + 3], err[:, o + 3]
+    # sort peaks by ascending energy in every pixel
+    if K_ > 1:
+        blocks = out[:, : K_ * _PEAK_FIELDS].reshape(m, K_, _PEAK_FIELDS)
+        order = np.argsort(np.where(np.isfinite(blocks[:, :, 0]), blocks[:, :, 0], np.inf), axis=1)
+        blocks = np.take_along_axis(blocks, order[:, :, None], axis=1)
+        out[:, : K_ * _PEAK_FIELDS] = blocks.reshape(m, -1)
+    ob = K_ * npp
+    t = K_ * _PEAK_FIELDS
+    if spec.nbg >= 1:
+        out[:, t], out[:, t + 1] = P[:, ob], err[:, ob]
+    if spec.nbg == 2:
+        out[:, t + 2], out[:, t + 3] = P[:, ob + 1], err[:, ob + 1]
+    out[:, -3] = status
+    out[:, -2] = chi2
+    out[:, -1] = niter
+    nan_rows = np.isin(status, (3, 4, 5, 6)) | (status < 0)
+    out[nan_rows, :-3] = np.nan
+    out[nan_rows, -2] = np.nan
+    return out
+
+
+def _noise_model(cube, noise, read_noise_counts, gain_e_per_count):
+    unit = cube.attrs.get("units", "1")
+    if noise == "auto":
+        noise = "poisson" if unit == "counts" else "residual"
+    if noise not in ("poisson", "residual"):
+        raise StepError(f"noise must be 'auto', 'poisson' or 'residual', got {noise!r}")
+    if noise == "residual":
+        return 0, 1.0, 0.0, (
+            "unit weights; 1-sigma errors from the covariance scaled by chi2_red "
+            "(noise estimated from the residual); chi2_red is the residual variance "
+            f"in ({unit})^2"
+        )
+    if unit != "counts":
+        raise StepError(f"noise='poisson' needs a cube in counts, this one is in {unit!r}")
+    gain = gain_e_per_count if gain_e_per_count is not None else cube.attrs.get("gain_e_per_count")
+    if gain is None:
+        warnings.warn("no detector gain given: assuming 1 electron per count for the Poisson "
+                      "weights", PmapNotice, stacklevel=3)
+        gain = 1.0
+    rn = read_noise_counts if read_noise_counts is not None else cube.attrs.get(
+        "read_noise_counts", 0.0)
+    gain, rn = float(gain), float(rn)
+    if not gain > 0 or not rn >= 0:
+        raise StepError(f"gain must be > 0 and read noise >= 0, got {gain}, {rn}")
+    return 1, gain, rn * rn, (
+        f"weighted least squares, variance = max(model, 0)/gain + read_noise^2 "
+        f"(gain {gain:g} e/count, read noise {rn:g} counts); absolute 1-sigma errors "
+        "from the unscaled covariance; weights from the fitted model (two passes)"
+    )
+
+
+@register_step("fit_peaks")
+def fit_peaks(
+    cube,
+    *,
+    model: str = "gaussian",
+    peaks: int = 1,
+    background: str = "constant",
+    bounds: dict | None = None,
+    fixed: dict | None = None,
+    shared: list | None = None,
+    init="auto",
+    max_iter: int = 100,
+    read_noise_counts: float | None = None,
+    gain_e_per_count: float | None = None,
+    noise: str = "auto",
+    energy_range_ev=None,
+    min_snr: float = 5.0,
+) -> xr.Dataset:
+    """Fit a sum of peaks plus background to every spectrum of an energy cube (lazy).
+
+    Parameters
+    ----------
+    cube : xarray.DataArray
+        Cube with an ``energy`` axis (eV, ascending); use ``pmap.to_energy`` first.
+    model : {"gaussian", "lorentzian", "voigt", "pseudo_voigt", "split_gaussian"}
+        Line shape. Each peak has centre (eV), FWHM (eV), area (intensity·eV) and,
+        for the last three, a shape parameter: ``lorentz_fraction`` (Voigt, f_L/f_V,
+        0–0.99), ``eta`` (pseudo-Voigt Lorentzian fraction, 0–1), ``asymmetry``
+        (split Gaussian, −0.9–0.9; see :func:`split_gaussian`).
+    peaks : int
+        Number of peaks, 1–4. In the result they are sorted by energy in every pixel.
+    background : {"none", "constant", "linear"}
+        Background: offset (intensity), plus slope (intensity/eV) about the axis centre.
+    bounds : dict, optional
+        ``{"center": (lo, hi)}`` for every peak or a list of per-peak (lo, hi);
+        keys center, fwhm, area, shape, offset, slope. Defaults: centre within the
+        axis, FWHM from half a channel to twice the span, area ≥ 0.
+    fixed : dict, optional
+        Values fixed across the map, e.g. ``{"center": [1.42, None]}`` (a known
+        defect band at 1.42 eV as the first peak) or ``{"fwhm": 0.03}``.
+    shared : list of str, optional
+        Peak parameters shared by all peaks of a pixel, e.g. ``["fwhm"]``.
+    init : "auto", "mean" or dict
+        Starting values: "auto" uses per-pixel descriptors for one peak and a
+        fit of the map's mean spectrum for several; "mean" always the mean
+        spectrum; a dict gives values (same keys as ``fixed``).
+    max_iter : int
+        Levenberg–Marquardt iterations per spectrum.
+    read_noise_counts, gain_e_per_count : float, optional
+        Detector read noise (counts) and gain (e⁻/count) for Poisson weights;
+        default from the cube attrs, else 0 and 1.
+    noise : {"auto", "poisson", "residual"}
+        "auto": Poisson + read noise weights for cubes in counts, else unit
+        weights with errors scaled by χ²_red.
+    energy_range_ev : (float, float), optional
+        Fit only this energy window (eV).
+    min_snr : float
+        Spectra whose maximum above the median is below ``min_snr`` × noise are
+        not fitted (status 3, NaN).
+
+    Returns
+    -------
+    xarray.Dataset
+        Lazy; ``peak_energy``, ``peak_energy_err``, ``peak_fwhm``, ``peak_fwhm_err``
+        (eV), ``peak_area``, ``peak_area_err``, ``peak_height``, ``peak_height_err``,
+        ``peak_wavelength`` (nm, vacuum), ``peak_shape`` (+ err) with dims
+        (peak, …, y, x); ``background_offset`` (+ ``background_slope``), ``fit_status``
+        (legend in attrs), ``chi2_red``, ``n_iter`` with dims (…, y, x).
+
+    Notes
+    -----
+    Batched Levenberg–Marquardt (numba, analytic Jacobians, parallel over pixels),
+    float64 inside. Errors are 1σ from the covariance (see attr ``uncertainty_method``).
+    Cost per spectrum ~ iterations × channels × peaks.
+    """
+    cube = validate_cube(cube)
+    if spectral_dim(cube) != "energy":
+        raise StepError(
+            f"fit_peaks needs an energy axis (eV), got {spectral_dim(cube)!r}; convert first "
+            "with pmap.to_energy"
+        )
+    if energy_range_ev is not None:
+        lo_e, hi_e = (float(v) for v in energy_range_ev)
+        cube = cube.sel(energy=slice(lo_e, hi_e))
+    x = np.asarray(cube["energy"].values, dtype=float)
+    if x.size < 5:
+        raise StepError(f"only {x.size} channels to fit (need at least 5)")
+    spec = _build_spec(x, model=model, peaks=peaks, background=background, bounds=bounds,
+                       fixed=fixed, shared=shared, init=init)
+    n_par = spec.nfree
+    if x.size <= n_par:
+        raise StepError(f"{x.size} channels cannot fit {n_par} free parameters")
+    var_mode, gain, rn2, unc = _noise_model(cube, noise, read_noise_counts, gain_e_per_count)
+    sdim = "energy"
+    spatial = [d for d in cube.dims if d != sdim]
+    mean = cube.mean(dim=spatial, skipna=True)
+    mean = mean.chunk({sdim: -1}) if isinstance(mean.data, da.Array) else mean
+    n_out = _PEAK_FIELDS * spec.K + _N_TAIL
+
+    def rows(Y, mean_vec):
+        return _fit_rows(Y, mean_vec, spec, var_mode, gain, rn2, int(max_iter), float(min_snr))
+
+    arr = apply_per_spectrum(cube, rows, n_out, mean)
+    return _assemble(arr, cube, spec, unc, dict(
+        model=model, peaks=int(peaks), background=background, bounds=bounds, fixed=fixed,
+        shared=shared, init=init, max_iter=int(max_iter), read_noise_counts=read_noise_counts,
+        gain_e_per_count=gain_e_per_count, noise=noise, energy_range_ev=energy_range_ev,
+        min_snr=min_snr))
+
+
+def _assemble(arr, cube, spec, unc, params):
+    unit = cube.attrs.get("units", "1")
+    area_unit = f"{unit} eV" if unit not in ("1", "arbitrary") else unit
+    fields = [
+        ("peak_energy", "eV", "peak centre energy"),
+        ("peak_energy_err", "eV", "1-sigma uncertainty of the peak centre energy"),
+        ("peak_fwhm", "eV", "peak full width at half maximum"),
+        ("peak_fwhm_err", "eV", "1-sigma uncertainty of the peak FWHM"),
+        ("peak_area", area_unit, "integrated peak intensity"),
+        ("peak_area_err", area_unit, "1-sigma uncertainty of the peak area"),
+        ("peak_height", unit, "peak height above background"),
+        ("peak_height_err", unit, "1-sigma uncertainty of the peak height"),
+        ("peak_shape", "1", ""),
+        ("peak_shape_err", "1", ""),
+    ]
+    peak_coord = {"peak": ("peak", np.arange(spec.K), {"long_name": "peak index, by energy"})}
+    dv = {}
+    for i, (name, u, long) in enumerate(fields):
+        if name.startswith("peak_shape") and spec.npp == 3:
+            continue
+        v = arr.isel(fit_output=[k * _PEAK_FIELDS + i for k in range(spec.K)])
+        v = v.rename(fit_output="peak").assign_coords(peak_coord)
+        v = v.transpose("peak", ...)
+        if name.startswith("peak_shape"):
+            sname, sdesc = SHAPE_NAMES[spec.model]
+            long = f"peak {sname}: {sdesc}" + (" (1-sigma uncertainty)" if "err" in name else "")
+        v.attrs = {"units": u, "long_name": long}
+        dv[name] = v
+    wl = HC_EV_NM / dv["peak_energy"]
+    wl.attrs = {"units": "nm", "long_name": "peak wavelength (vacuum, hc/E)"}
+    dv["peak_wavelength"] = wl
+    t = spec.K * _PEAK_FIELDS
+    if spec.nbg >= 1:
+        for off, name, u, long in ((0, "background_offset", unit, "background offset"),
+                                   (1, "background_offset_err", unit, "1-sigma uncertainty")):
+            dv[name] = arr.isel(fit_output=t + off, drop=True)
+            dv[name].attrs = {"units": u, "long_name": long}
+    if spec.nbg == 2:
+        su = f"{unit}/eV"
+        for off, name, long in ((2, "background_slope", "background slope"),
+                                (3, "background_slope_err", "1-sigma uncertainty")):
+            dv[name] = arr.isel(fit_output=t + off, drop=True)
+            dv[name].attrs = {"units": su, "long_name": long,
+                              "reference_energy_ev": spec.xref}
+    st = arr.isel(fit_output=-3, drop=True).astype(np.int8)
+    st.attrs = {"units": "1", "long_name": "fit status", "legend": FIT_STATUS_LEGEND,
+                "flag_values": list(range(7)), "flag_meanings": FIT_STATUS_LEGEND}
+    dv["fit_status"] = st
+    c2 = arr.isel(fit_output=-2, drop=True)
+    c2.attrs = {"units": "1" if "weighted" in unc else f"({unit})^2",
+                "long_name": "reduced chi-square"}
+    dv["chi2_red"] = c2
+    it = arr.isel(fit_output=-1, drop=True)
+    it.attrs = {"units": "1", "long_name": "Levenberg-Marquardt iterations"}
+    dv["n_iter"] = it
+    keep = {k: v for k, v in cube.attrs.items() if k not in ("units", "long_name")}
+    attrs = with_step(keep, "fit_peaks", params)
+    attrs.update({
+        "fit_model": spec.model,
+        "fit_n_peaks": spec.K,
+        "fit_background": list(_BACKGROUNDS)[spec.nbg],
+        "fit_background_reference_energy_ev": spec.xref,
+        "fit_parameters": json.dumps({
+            "names": [f"{kd}[{p}]" if p >= 0 else kd for kd, p in zip(spec.kind, spec.peak)],
+            "lower": [None if not np.isfinite(v) else float(v) for v in spec.lo],
+            "upper": [None if not np.isfinite(v) else float(v) for v in spec.hi],
+            "fixed": [None if not np.isfinite(v) else float(v) for v in spec.fixed],
+            "free_index": [int(v) for v in spec.free_idx],
+        }),
+        "fit_status_legend": FIT_STATUS_LEGEND,
+        "uncertainty_method": unc,
+        "fit_energy_range_ev": [float(spec.x[0]), float(spec.x[-1])],
+        "fit_intensity_units": unit,
+    })
+    if spec.npp == 4:
+        attrs["fit_shape_parameter"] = SHAPE_NAMES[spec.model][0]
+    return xr.Dataset(dv, attrs=attrs)
+
+
+def model_spectrum(params, energy_ev, *, model=None, background=None, reference_energy_ev=None):
+    """Model spectrum and its components at given energies.
+
+    Parameters
+    ----------
+    params : xarray.Dataset or dict
+        A :func:`fit_peaks` result reduced to one pixel (``result.isel(y=0, x=0)``),
+        or a dict with ``center``, ``fwhm``, ``area`` (lists, eV / intensity·eV),
+        optional ``shape``, ``offset``, ``slope``, and ``model``.
+    energy_ev : array_like
+        Energies (eV) to evaluate at.
+    model, background, reference_energy_ev : optional
+        Override the model name, background kind and slope reference energy
+        (taken from the result attrs by default).
+
+    Returns
+    -------
+    xarray.Dataset
+        ``total`` (energy), ``peak`` components (peak, energy), ``background`` (energy).
+    """
+    e = np.asarray(energy_ev, dtype=float)
+    if isinstance(params, xr.Dataset):
+        extra = [d for d in params["peak_energy"].dims if d != "peak"]
+        if extra:
+            raise StepError(f"select one pixel first (dims left: {extra})")
+        model = model or params.attrs.get("fit_model", "gaussian")
+        ref = reference_energy_ev if reference_energy_ev is not None else params.attrs.get(
+            "fit_background_reference_energy_ev", 0.0)
+        d = {
+            "center": params["peak_energy"].values, "fwhm": params["peak_fwhm"].values,
+            "area": params["peak_area"].values,
+            "shape": params["peak_shape"].values if "peak_shape" in params else None,
+            "offset": float(params["background_offset"]) if "background_offset" in params else 0.0,
+            "slope": float(params["background_slope"]) if "background_slope" in params else 0.0,
+        }
+        unit = params.attrs.get("fit_intensity_units", "1")
+    else:
+        d = dict(params)
+        model = model or d.get("model", "gaussian")
+        ref = reference_energy_ev if reference_energy_ev is not None else d.get(
+            "reference_energy_ev", 0.0)
+        unit = d.get("units", "1")
+    if model not in K.MODEL_CODES:
+        raise StepError(f"unknown model {model!r}")
+    c = np.atleast_1d(np.asarray(d["center"], dtype=float))
+    fw = np.atleast_1d(np.asarray(d["fwhm"], dtype=float))
+    ar = np.atleast_1d(np.asarray(d["area"], dtype=float))
+    sh = d.get("shape")
+    sh = np.full(c.size, _SHAPE_START.get(model, 0.0)) if sh is None else np.atleast_1d(sh)
+    comps = []
+    for k in range(c.size):
+        if model == "gaussian":
+            comps.append(gaussian(e, c[k], fw[k], ar[k]))
+        elif model == "lorentzian":
+            comps.append(lorentzian(e, c[k], fw[k], ar[k]))
+        elif model == "pseudo_voigt":
+            comps.append(pseudo_voigt(e, c[k], fw[k], sh[k], ar[k]))
+        elif model == "split_gaussian":
+            comps.append(split_gaussian(e, c[k], fw[k], sh[k], ar[k]))
+        else:
+            fg, fl = voigt_widths(fw[k], sh[k])
+            comps.append(voigt(e, c[k], fg, fl, ar[k]))
+    comps = np.array(comps).reshape(c.size, e.size)
+    bg = np.full(e.size, float(d.get("offset", 0.0) or 0.0))
+    bg = bg + float(d.get("slope", 0.0) or 0.0) * (e - float(ref))
+    total = np.nansum(comps, axis=0) + bg
+    coords = {"energy": ("energy", e, {"units": "eV", "long_name": "photon energy"})}
+    return xr.Dataset(
+        {
+            "total": ("energy", total, {"units": unit, "long_name": f"fitted {model} model"}),
+            "peak_component": (("peak", "energy"), comps, {"units": unit,
+                                                         "long_name": "peak components"}),
+            "background": ("energy", bg, {"units": unit, "long_name": "fitted background"}),
+        },
+        coords=coords,
+        attrs={"model": model},
+    )
+
+
+def evaluate_fit(result: xr.Dataset, energy_ev=None, **pixel) -> xr.Dataset:
+    """Fitted model and components at one pixel of a :func:`fit_peaks` result.
+
+    Parameters
+    ----------
+    result : xarray.Dataset
+        Output of :func:`fit_peaks`.
+    energy_ev : array_like, optional
+        Energies (eV); default 512 points over the fitted energy range.
+    **pixel
+        Coordinates of the pixel, e.g. ``y=3.0, x=5.0`` (µm, nearest pixel), and
+        any stack dims.
+    """
+    if energy_ev is None:
+        lo, hi = result.attrs.get("fit_energy_range_ev", (0.5, 4.0))
+        energy_ev = np.linspace(lo, hi, 512)
+    sel = result.sel(pixel, method="nearest") if pixel else result
+    return model_spectrum(sel.compute(), energy_ev)

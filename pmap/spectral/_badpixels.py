@@ -1,0 +1,138 @@
+"""Masking of dead, saturated and hot detector values (set to NaN)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import dask.array as da
+import numpy as np
+import xarray as xr
+from scipy import ndimage
+
+from ..errors import StepError
+from ..steps import register_step
+from ._common import check_cube, finish, float_dtype, robust_sigma_of_diff
+
+__all__ = ["mask_bad_pixels", "hot_channels"]
+
+
+def hot_channels(mean_spectrum: Any, *, threshold: float = 10.0, half_window: int = 3
+                 ) -> np.ndarray:
+    """Channels standing out of the map's mean spectrum like a one-channel spike (bool (n,)).
+
+    A detector hot pixel adds signal to one channel of every spectrum; in the mean
+    spectrum it rises above the median of ±``half_window`` channels by more than
+    ``threshold`` noise s.d. (from the MAD of the first difference of the mean spectrum).
+    """
+    s = np.asarray(mean_spectrum, dtype=float)
+    flags = np.zeros(s.shape, dtype=bool)
+    good = np.isfinite(s)
+    if good.sum() < 2 * half_window + 2:
+        return flags
+    filled = np.where(good, s, np.nanmedian(s))
+    ref = ndimage.median_filter(filled, size=2 * half_window + 1, mode="nearest")
+    sigma = float(robust_sigma_of_diff(filled - ref))
+    if sigma <= 0:
+        sigma = 1e-12 * max(float(np.max(np.abs(filled))), 1.0)
+    flags = good & (filled - ref > threshold * sigma)
+    return flags
+
+
+def _mask_core(x: np.ndarray, gmax: np.ndarray, hot: np.ndarray, sat_level: float | None,
+               auto_sat: bool, dead: bool) -> np.ndarray:
+    """Codes (…, n) uint8: 1 dead, 2 saturated, 4 bad channel; 0 good."""
+    code = np.zeros(x.shape, dtype=np.uint8)
+    if dead:
+        with np.errstate(invalid="ignore"):
+            flat = np.nanmax(x, axis=-1, keepdims=True) == np.nanmin(x, axis=-1, keepdims=True)
+        code |= np.where(flat | np.all(np.isnan(x), axis=-1, keepdims=True), 1, 0).astype(
+            np.uint8)
+    if sat_level is not None:
+        code |= np.where(x >= sat_level, 2, 0).astype(np.uint8)
+    elif auto_sat:
+        top = x >= np.asarray(gmax).reshape(())
+        run = np.zeros_like(top)
+        run[..., 1:] |= top[..., 1:] & top[..., :-1]
+        run[..., :-1] |= top[..., :-1] & top[..., 1:]
+        code |= np.where(run, 2, 0).astype(np.uint8)
+    code |= np.where(hot, 4, 0).astype(np.uint8)
+    return code
+
+
+@register_step("mask_bad_pixels")
+def mask_bad_pixels(cube: xr.DataArray, *, dead: bool = True, saturated: bool = True,
+                    saturation_counts: float | None = None, hot: bool = True,
+                    hot_threshold: float = 10.0, bad_channels: Any = None,
+                    return_mask: bool = False) -> xr.DataArray | tuple[xr.DataArray,
+                                                                        xr.DataArray]:
+    """Set dead spectra, saturated values, hot and bad channels to NaN.
+
+    Parameters
+    ----------
+    cube : xarray.DataArray
+        Cube (*stack, y, x, S), raw counts preferably.
+    dead : bool
+        Mask spectra without signal: constant over all channels (e.g. all zero) or all NaN.
+    saturated : bool
+        Mask values at or above the saturation level.
+    saturation_counts : float, optional
+        Saturation level in the cube's units; default the attr ``saturation_counts``; if
+        neither, the level is estimated as the cube's maximum, and only values on a plateau
+        (two or more adjacent channels at that maximum) are masked.
+    hot : bool
+        Mask hot detector channels found in the map's mean spectrum
+        (:func:`hot_channels`, ``hot_threshold`` noise s.d.).
+    bad_channels : list of int, optional
+        Channel indices (0-based, ascending axis) to mask in every spectrum.
+    return_mask : bool
+        Also return a uint8 DataArray ``bad_pixel_code`` (1 dead, 2 saturated,
+        4 hot or bad channel; codes add up).
+
+    Returns
+    -------
+    xarray.DataArray or (xarray.DataArray, xarray.DataArray)
+        Lazy cube with masked values NaN (floating dtype), and the codes.
+
+    Notes
+    -----
+    The hot-channel test and the estimated saturation level need a reduction over the
+    whole cube (mean spectrum, maximum) before the masking pass: computing the result
+    reads the cube twice.
+    """
+    cube, sdim = check_cube(cube)
+    n = cube.sizes[sdim]
+    dt = float_dtype(cube.dtype)
+    data = cube.data.astype(dt)
+    bad = np.zeros(n, dtype=bool)
+    if bad_channels is not None:
+        ch = np.atleast_1d(np.asarray(bad_channels))
+        if ch.dtype.kind not in "iu" or np.any((ch < 0) | (ch >= n)):
+            raise StepError(f"bad_channels must be channel indices 0…{n - 1}, got {bad_channels!r}")
+        bad[ch] = True
+    lead = tuple(range(data.ndim - 1))
+    if hot:
+        mean_spec = da.nanmean(data, axis=lead)
+        hot_mask = da.map_blocks(hot_channels, mean_spec, dtype=bool,
+                                 threshold=float(hot_threshold)) | bad
+    else:
+        hot_mask = da.from_array(bad, chunks=-1)
+    level = saturation_counts if saturation_counts is not None else cube.attrs.get(
+        "saturation_counts")
+    level = float(level) if (saturated and level is not None) else None
+    auto = saturated and level is None
+    gmax = da.nanmax(data) if auto else da.zeros((), dtype=dt)
+    code = da.map_blocks(_mask_core, data, gmax, hot_mask, dtype=np.uint8,
+                         sat_level=level, auto_sat=auto, dead=dead)
+    cleaned = da.where(code > 0, np.nan, data).astype(dt)
+    out = finish(cube.copy(data=cleaned), cube, "mask_bad_pixels",
+                 {"dead": dead, "saturated": saturated, "saturation_counts": level,
+                  "hot": hot, "hot_threshold": hot_threshold,
+                  "bad_channels": None if bad_channels is None else np.atleast_1d(
+                      bad_channels).tolist()})
+    if not return_mask:
+        return out
+    codes = cube.copy(data=code)
+    codes.attrs = {"long_name": "bad-value code (1 dead, 2 saturated, 4 hot/bad channel)",
+                   "units": "1"}
+    codes.name = "bad_pixel_code"
+    return out, codes
