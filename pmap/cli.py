@@ -65,7 +65,7 @@ def _add_read_options(p: argparse.ArgumentParser) -> None:
 def cmd_info(args: argparse.Namespace) -> int:
     from .io import cube_info, format_cube_info
 
-    info = cube_info(args.path, compute_range=not args.no_range, **_read_options(args))
+    info = cube_info(args.path, value_range=not args.no_range, **_read_options(args))
     print(format_cube_info(info))
     return 0
 
@@ -73,8 +73,9 @@ def cmd_info(args: argparse.Namespace) -> int:
 def cmd_convert(args: argparse.Namespace) -> int:
     from .io import convert
 
-    out = convert(args.src, args.dst, overwrite=args.overwrite, out_format=args.to,
-                  **_read_options(args))
+    opts = _read_options(args)
+    out = convert(args.src, args.dst, overwrite=args.overwrite, fmt=args.to,
+                  src_fmt=opts.pop("fmt", None), **opts)
     print(f"wrote {out}")
     return 0
 
@@ -178,7 +179,7 @@ def cmd_process(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from .pipeline import process
+    from .pipeline import load_pipeline, process
     from .report import write_figures
     from .synthetic import write_demo_cube
 
@@ -189,8 +190,15 @@ def cmd_demo(args: argparse.Namespace) -> int:
     print(f"demo cube:   {cube_path}")
     print(f"demo truth:  {paths['truth']}")
     result_path = out_dir / "demo_result.zarr"
-    ds = process(cube_path, result_path, overwrite=True, progress=not args.quiet,
-                 regions=args.regions, components=args.components)
+    pipe = load_pipeline(None)
+    regions = args.regions if args.regions == "auto" else int(args.regions)
+    # The demo's regions differ in spectral shape *and* intensity (grain boundaries are
+    # darker), so cluster on shape + log-intensity with a Gaussian mixture.
+    pipe.regions = {"n_regions": regions, "method": "gmm", "feature_space": "shape+intensity"}
+    if args.components:
+        pipe.components = {"method": "nmf", "n_components": args.components}
+    ds = process(cube_path, result_path, pipeline=pipe, overwrite=True,
+                 progress=not args.quiet)
     figs = write_figures(ds, _figures_dir(result_path))
     print(f"result:      {result_path}")
     print(f"figures:     {_figures_dir(result_path)} ({len(figs)} PNG)")
@@ -275,7 +283,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="pmap_demo_output", help="output folder (default %(default)s)")
     p.add_argument("--size", default="small", help="tiny, small, medium or large")
     p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--regions", default="auto", help="regions to find (number or 'auto')")
+    p.add_argument("--regions", default="3", help="regions to find (number or 'auto'; "
+                   "default %(default)s)")
     p.add_argument("--components", type=int, default=3, help="NMF components")
     p.add_argument("--overwrite", action="store_true", help="replace earlier demo files")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
@@ -313,6 +322,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("pmap: interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
+    except BrokenPipeError:  # output piped into `head` and closed early
+        sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silence the flush at exit
+        return 0
     except (PmapError, OSError, ValueError, KeyError) as exc:
         if debug:
             traceback.print_exc()

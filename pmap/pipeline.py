@@ -79,7 +79,7 @@ threshold = 6.0
 [[steps]]
 step = "remove_baseline"
 method = "constant"
-quantile = 0.05
+window = "edges"
 
 [[steps]]
 step = "to_energy"
@@ -212,7 +212,7 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
     if not parts:
         raise StepError("the pipeline produces nothing: add [descriptors], [fit] or more")
     prov["pipeline"] = pipeline.as_dict()
-    ds = assemble_result(parts, provenance_json=json.dumps(prov))
+    ds = assemble_result(parts, provenance_json=json.dumps(prov), coords_from=cube)
     return ds, cube
 
 
@@ -225,21 +225,35 @@ def add_regions(store: str | Path, cube: xr.DataArray, params: dict, *, csv: boo
     from .decomposition import region_statistics, segment, write_region_csv
 
     store = Path(store)
-    maps = xr.open_zarr(str(store))
+    maps = xr.open_zarr(str(store), consolidated=False)
     params = dict(params)
-    region = segment(cube, maps=maps, **params)
+    space = params.get("feature_space", "shape")
+    if space == "parameters":
+        features = maps
+    elif space == "abundance":
+        if "component_abundance" not in maps:
+            raise StepError("regions from 'abundance' need a [components] table (NMF) too")
+        features = maps["component_abundance"]
+    else:
+        features = cube
+    region = segment(features, **params)
     region = region.rename("region").compute()
-    stats = region_statistics(region, maps, cube=cube)
-    stats = stats.compute()
-    extra = xr.merge([region.to_dataset(), stats], compat="override", combine_attrs="override")
-    extra = extra.drop_vars([c for c in ("y", "x") if c in extra.coords])
-    extra.to_zarr(str(store), mode="a", consolidated=False)
+    stats = region_statistics(region, maps, cube=cube).compute()
+    # The map is the variable "region" (y, x); the statistics live on dim "region_id".
+    stats_store = stats.rename({"region": "region_id"})
     import zarr
 
+    g = zarr.open_group(str(store), mode="r")
+    attrs = dict(g.attrs)
+    region.drop_vars([c for c in region.coords if c not in ("y", "x")]).to_dataset()\
+        .drop_vars(["y", "x"]).to_zarr(str(store), mode="a", consolidated=False)
+    stats_store.to_zarr(str(store), mode="a", consolidated=False)
+    prov = get_provenance(attrs)
+    prov["steps"].append({"step": "segment", "params": params,
+                          "results": {"k": region.attrs.get("k")}})
+    attrs["pmap_provenance"] = json.dumps(prov)
     g = zarr.open_group(str(store), mode="r+")
-    prov = get_provenance(dict(g.attrs))
-    prov["steps"].append({"step": "segment", "params": params})
-    g.attrs["pmap_provenance"] = json.dumps(prov)
+    g.attrs.update(attrs)
     if csv:
         write_region_csv(stats, store.with_name(store.name.removesuffix(".zarr") + "_regions.csv"))
 

@@ -26,6 +26,7 @@ import numpy as np
 import xarray as xr
 
 from ._version import __version__
+from .conventions import SPECTRAL_DIMS
 from .errors import StepError
 
 __all__ = [
@@ -34,11 +35,14 @@ __all__ = [
     "plot_spectra",
     "plot_labels",
     "write_figures",
+    "summarise_result",
     "nice_scale_length",
 ]
 
 DPI = 120
 NAN_COLOUR = "0.62"
+#: write_figures draws one map per slice of a 3-D variable only up to this many slices.
+MAX_SLICES = 32
 _UNIT_TEXT = {"um": "µm", "1": "", "": "", "pixel": "pixel", "counts": "counts"}
 
 
@@ -108,7 +112,7 @@ def _robust_limits(values: np.ndarray, robust: bool) -> tuple[float, float] | No
     finite = values[np.isfinite(values)]
     if finite.size == 0:
         return None
-    lo, hi = (np.percentile(finite, [2, 98]) if robust else (finite.min(), finite.max()))
+    lo, hi = np.percentile(finite, [2, 98]) if robust else (finite.min(), finite.max())
     lo, hi = float(lo), float(hi)
     if hi <= lo:
         pad = abs(lo) * 1e-3 or 1.0
@@ -152,16 +156,35 @@ def _draw_scale_bar(ax, x_ext, y_ext) -> float:
     bar_h = max(0.015 * height, 0.004 * width)
     x1 = x_ext[1] - margin
     y0 = y_ext[0] + 0.04 * height
-    ax.add_patch(Rectangle((x1 - length, y0), length, bar_h, facecolor="white",
-                           edgecolor="black", linewidth=0.8, zorder=5, gid="scale_bar"))
-    ax.text(x1 - length / 2, y0 + bar_h * 1.6, f"{length:g} µm", ha="center", va="bottom",
-            color="white", fontsize=9, zorder=6,
-            path_effects=[patheffects.withStroke(linewidth=2, foreground="black")])
+    ax.add_patch(
+        Rectangle(
+            (x1 - length, y0),
+            length,
+            bar_h,
+            facecolor="white",
+            edgecolor="black",
+            linewidth=0.8,
+            zorder=5,
+            gid="scale_bar",
+        )
+    )
+    ax.text(
+        x1 - length / 2,
+        y0 + bar_h * 1.6,
+        f"{length:g} µm",
+        ha="center",
+        va="bottom",
+        color="white",
+        fontsize=9,
+        zorder=6,
+        path_effects=[patheffects.withStroke(linewidth=2, foreground="black")],
+    )
     return length
 
 
-def _draw_map(ax, da: xr.DataArray, *, cmap=None, robust=True, scale_bar=True, norm=None,
-              vlim=None) -> _MapArtists:
+def _draw_map(
+    ax, da: xr.DataArray, *, cmap=None, robust=True, scale_bar=True, norm=None, vlim=None
+) -> _MapArtists:
     """Draw a (y, x) map on ``ax``: image, colour bar, scale bar. Returns the artists."""
     import matplotlib as mpl
 
@@ -184,8 +207,15 @@ def _draw_map(ax, da: xr.DataArray, *, cmap=None, robust=True, scale_bar=True, n
         lim = vlim if vlim is not None else _robust_limits(values, robust)
         if lim is not None:
             kw.update(vmin=lim[0], vmax=lim[1])
-    im = ax.imshow(np.ma.masked_invalid(values), origin="lower", cmap=cm, aspect="equal",
-                   extent=(*x_ext, *y_ext), interpolation="nearest", **kw)
+    im = ax.imshow(
+        np.ma.masked_invalid(values),
+        origin="lower",
+        cmap=cm,
+        aspect="equal",
+        extent=(*x_ext, *y_ext),
+        interpolation="nearest",
+        **kw,
+    )
     ax.set_facecolor(NAN_COLOUR)
     ax.set_xlabel(f"x ({_unit_text(xunit)})")
     ax.set_ylabel(f"y ({_unit_text(yunit)})")
@@ -240,9 +270,17 @@ def plot_map(
     ax = fig.add_subplot()
     art = _draw_map(ax, da, cmap=cmap, robust=robust, scale_bar=scale_bar)
     ax.set_title(title if title is not None else str(da.name or ""))
-    return _save(fig, path, {"variable": str(da.name), "units": da.attrs.get("units"),
-                             "clim": list(art.image.get_clim()),
-                             "scale_bar_um": art.scale_bar_um})
+    return _save(
+        fig,
+        path,
+        {
+            "variable": str(da.name),
+            "units": da.attrs.get("units"),
+            "clim": [float(v) for v in art.image.get_clim()],
+            "colorbar_label": art.colorbar.ax.get_ylabel(),
+            "scale_bar_um": art.scale_bar_um,
+        },
+    )
 
 
 def plot_histogram(
@@ -283,8 +321,11 @@ def plot_histogram(
     fig = _new_figure(0.6)
     ax = fig.add_subplot()
     unit = _unit_text(da.attrs.get("units"))
-    info: dict[str, Any] = {"variable": str(da.name), "units": da.attrs.get("units"),
-                            "n": int(finite.size)}
+    info: dict[str, Any] = {
+        "variable": str(da.name),
+        "units": da.attrs.get("units"),
+        "n": int(finite.size),
+    }
     if finite.size:
         lo, hi = np.percentile(finite, [0.5, 99.5])
         if hi <= lo:
@@ -294,15 +335,25 @@ def plot_histogram(
         sig = float(1.4826 * np.median(np.abs(finite - med)))
         outside = int(np.sum((finite < lo) | (finite > hi)))
         ax.axvline(med, color="black", linestyle="--", linewidth=1)
-        note = (f"median = {med:.5g} {unit}\nσ_MAD = {sig:.3g} {unit}\n"
-                f"N = {finite.size}" + (f" ({outside} outside)" if outside else ""))
-        ax.text(0.98, 0.96, note, transform=ax.transAxes, ha="right", va="top", fontsize=9,
-                bbox={"facecolor": "white", "alpha": 0.8, "edgecolor": "0.7"})
+        note = f"median = {med:.5g} {unit}\nσ_MAD = {sig:.3g} {unit}\nN = {finite.size}" + (
+            f" ({outside} outside)" if outside else ""
+        )
+        ax.text(
+            0.98,
+            0.96,
+            note,
+            transform=ax.transAxes,
+            ha="right",
+            va="top",
+            fontsize=9,
+            bbox={"facecolor": "white", "alpha": 0.8, "edgecolor": "0.7"},
+        )
         info.update(median=med, sigma_mad=sig)
     else:
         ax.text(0.5, 0.5, "no finite values", transform=ax.transAxes, ha="center")
     ax.set_xlabel(_label(da, "value"))
     ax.set_ylabel("pixels")
+    info["xlabel"] = ax.get_xlabel()
     ax.set_title(title if title is not None else str(da.name or ""))
     return _save(fig, path, info)
 
@@ -322,8 +373,10 @@ def _spectra_list(obj: xr.DataArray, pixels) -> tuple[str, list[tuple[str, xr.Da
                 raise StepError(f"pixel ({iy}, {ix}) is outside the {ny} × {nx} map")
             s = obj.isel(y=iy, x=ix)
             s = s.squeeze([d for d in s.dims if d != sdim and s.sizes[d] == 1])
-            lab = (f"y = {float(s['y']):.4g}, x = {float(s['x']):.4g} "
-                   f"{_unit_text(obj['x'].attrs.get('units'))}".rstrip())
+            lab = (
+                f"y = {float(s['y']):.4g}, x = {float(s['x']):.4g} "
+                f"{_unit_text(obj['x'].attrs.get('units'))}".rstrip()
+            )
             out.append((lab, s))
     else:
         other = [d for d in obj.dims if d != sdim]
@@ -383,15 +436,29 @@ def plot_spectra(
         colour = f"C{i % 10}"
         if refs:
             r = refs[i][1]
-            ax.plot(r[sdim].values, r.values, color="0.55", linewidth=0.8,
-                    label=reference_label if i == 0 else None)
+            ax.plot(
+                r[sdim].values,
+                r.values,
+                color="0.55",
+                linewidth=0.8,
+                label=reference_label if i == 0 else None,
+            )
         ax.plot(s[sdim].values, s.values, color=colour, linewidth=1.1, label=lab)
     ax.set_xlabel(_label(cube_or_spectra[sdim], sdim))
     ax.set_ylabel(_label(cube_or_spectra, "intensity"))
     ax.legend(fontsize=8, loc="best")
     ax.set_title(title if title is not None else "")
-    return _save(fig, path, {"variable": str(cube_or_spectra.name), "n_spectra": len(spectra),
-                             "units": cube_or_spectra.attrs.get("units")})
+    return _save(
+        fig,
+        path,
+        {
+            "variable": str(cube_or_spectra.name),
+            "n_spectra": len(spectra),
+            "units": cube_or_spectra.attrs.get("units"),
+            "xlabel": ax.get_xlabel(),
+            "ylabel": ax.get_ylabel(),
+        },
+    )
 
 
 def _label_names(da: xr.DataArray, codes: np.ndarray, names) -> dict[int, str]:
@@ -462,15 +529,34 @@ def plot_labels(
     ax = fig.add_subplot()
     mapped = da.copy(data=index)
     art = _draw_map(ax, mapped, cmap=cmap, scale_bar=scale_bar, norm=norm)
-    handles = [Patch(facecolor=cmap(i), edgecolor="0.3",
-                     label=f"{label_names.get(int(c), str(int(c)))} ({int(c)})")
-               for i, c in enumerate(codes)]
-    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=8,
-              frameon=False, title=_label(da, "label"), title_fontsize=8)
+    handles = [
+        Patch(
+            facecolor=cmap(i),
+            edgecolor="0.3",
+            label=f"{label_names.get(int(c), str(int(c)))} ({int(c)})",
+        )
+        for i, c in enumerate(codes)
+    ]
+    ax.legend(
+        handles=handles,
+        loc="upper left",
+        bbox_to_anchor=(1.02, 1.0),
+        fontsize=8,
+        frameon=False,
+        title=_label(da, "label"),
+        title_fontsize=8,
+    )
     ax.set_title(title if title is not None else str(da.name or ""))
-    return _save(fig, path, {"variable": str(da.name), "codes": codes.tolist(),
-                             "names": [label_names.get(int(c), str(int(c))) for c in codes],
-                             "scale_bar_um": art.scale_bar_um})
+    return _save(
+        fig,
+        path,
+        {
+            "variable": str(da.name),
+            "codes": codes.tolist(),
+            "names": [label_names.get(int(c), str(int(c))) for c in codes],
+            "scale_bar_um": art.scale_bar_um,
+        },
+    )
 
 
 def _is_label_map(v: xr.DataArray) -> bool:
@@ -488,9 +574,10 @@ def write_figures(
 
     2-D (y, x) variables give one map each; 3-D variables (d, y, x), e.g.
     (peak, y, x), give one map per index along d, named by a ``peak_name``
-    (or other string) coordinate when present. Integer, boolean and CF-flag
-    variables are drawn as label maps. Variables with other dims (spectra)
-    are skipped unless named in ``variables`` (then it is an error).
+    (or other string) coordinate when present, up to :data:`MAX_SLICES` slices.
+    Integer, boolean and CF-flag variables are drawn as label maps. Variables
+    with other dims (spectra, masks with a spectral dim) are skipped unless
+    named in ``variables`` (then it is an error).
 
     Parameters
     ----------
@@ -519,7 +606,13 @@ def write_figures(
     for name in names:
         v = ds[name]
         extra = [d for d in v.dims if d not in ("y", "x") and v.sizes[d] > 1]
-        if not {"y", "x"} <= set(v.dims) or len(extra) > 1:
+        not_map = (
+            not {"y", "x"} <= set(v.dims)
+            or len(extra) > 1
+            or any(d in SPECTRAL_DIMS for d in extra)
+            or (extra and v.sizes[extra[0]] > MAX_SLICES)
+        )
+        if not_map:
             if variables is not None:
                 raise StepError(f"variable {name!r} with dims {v.dims} is not a map")
             continue
@@ -540,10 +633,13 @@ def write_figures(
         extra = [d for d in pe.dims if d not in ("y", "x") and pe.sizes[d] > 1]
         if extra:
             for i, lab in enumerate(_slice_labels(ds, pe, extra[0])):
-                written.append(plot_histogram(
-                    pe.isel({extra[0]: i}),
-                    out / f"{prefix}{_safe_name(f'peak_energy_{lab}_histogram')}.png",
-                    title=f"peak_energy {lab}"))
+                written.append(
+                    plot_histogram(
+                        pe.isel({extra[0]: i}),
+                        out / f"{prefix}{_safe_name(f'peak_energy_{lab}_histogram')}.png",
+                        title=f"peak_energy {lab}",
+                    )
+                )
         else:
             written.append(plot_histogram(pe, out / f"{prefix}peak_energy_histogram.png"))
     return written
@@ -557,3 +653,55 @@ def _slice_labels(ds: xr.Dataset, v: xr.DataArray, dim: str) -> list[str]:
     if dim in v.coords:
         return [f"{dim}{val}" for val in v[dim].values]
     return [f"{dim}{i}" for i in range(v.sizes[dim])]
+
+
+def summarise_result(ds: xr.Dataset) -> dict[str, float]:
+    """One-row summary of a result: median and robust spread of every map.
+
+    For each float (y, x) variable, and each slice of (d, y, x) variables,
+    gives ``"<name> median (<units>)"``, ``"<name> sigma_MAD (<units>)"``
+    (1.4826 × median absolute deviation) and ``"<name> finite fraction"``.
+    Integer and boolean maps (labels, flags) and spectra are left out.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        A pmap result.
+
+    Returns
+    -------
+    dict
+        Column name → value, e.g. for a table of many results.
+    """
+    if not isinstance(ds, xr.Dataset):
+        raise StepError(f"summarise_result needs an xarray Dataset, got {type(ds).__name__}")
+    row: dict[str, float] = {}
+    for name, v in ds.data_vars.items():
+        extra = [d for d in v.dims if d not in ("y", "x")]
+        if (
+            not {"y", "x"} <= set(v.dims)
+            or v.dtype.kind != "f"
+            or len(extra) > 1
+            or any(d in SPECTRAL_DIMS for d in extra)
+            or (extra and v.sizes[extra[0]] > MAX_SLICES)
+        ):
+            continue
+        unit = str(v.attrs.get("units", ""))
+        suffix = f" ({unit})" if unit not in ("", "1") else ""
+        slices = (
+            [
+                (v.isel({extra[0]: i}), f"{name}[{lab}]")
+                for i, lab in enumerate(_slice_labels(ds, v, extra[0]))
+            ]
+            if extra
+            else [(v, name)]
+        )
+        for sl, stem in slices:
+            vals = np.asarray(sl.values, dtype=float).ravel()
+            finite = vals[np.isfinite(vals)]
+            med = float(np.median(finite)) if finite.size else float("nan")
+            mad = float(1.4826 * np.median(np.abs(finite - med))) if finite.size else float("nan")
+            row[f"{stem} median{suffix}"] = med
+            row[f"{stem} sigma_MAD{suffix}"] = mad
+            row[f"{stem} finite fraction"] = finite.size / max(vals.size, 1)
+    return row

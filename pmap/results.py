@@ -43,19 +43,31 @@ __all__ = [
 RESULT_FORMAT_VERSION = 1
 
 
-def assemble_result(parts: list[xr.Dataset | xr.DataArray], *, provenance_json: str) -> xr.Dataset:
+def assemble_result(
+    parts: list[xr.Dataset | xr.DataArray], *, provenance_json: str, coords_from=None
+) -> xr.Dataset:
     """Merge result parts (maps, fit parameters, regions) into one lazy result Dataset.
 
-    Each part keeps its variables' attrs; the Dataset's attrs get the combined
-    provenance record (``provenance_json``) and the result-format markers.
+    Each part keeps its variables' attrs; the Dataset's attrs get each part's
+    attrs (stage settings), the combined provenance record (``provenance_json``)
+    and the result-format markers. ``coords_from`` (the cube) supplies the y, x
+    coordinates with their units.
     """
     dsets = [p.to_dataset() if isinstance(p, xr.DataArray) else p for p in parts]
     ds = xr.merge(dsets, compat="override", join="exact", combine_attrs="override")
+    kept: dict = {}
+    for part in dsets:  # settings of each stage (fit model, NMF solver...), provenance aside
+        kept.update({k: v for k, v in part.attrs.items() if k != PROVENANCE_ATTR})
     ds.attrs = {
+        **kept,
         "pmap_result": RESULT_FORMAT_VERSION,
         "pmap_complete": False,
         PROVENANCE_ATTR: provenance_json,
     }
+    if coords_from is not None:  # y, x (and stack) coords with their units attrs
+        for c in ("y", "x"):
+            if c in ds.coords and c in coords_from.coords:
+                ds = ds.assign_coords({c: coords_from[c]})
     return ds
 
 
@@ -130,9 +142,10 @@ def _block_name(ys: slice, xs: slice) -> str:
     return f"y{ys.start}-{ys.stop}_x{xs.start}-{xs.stop}"
 
 
-def _write_block(block: xr.Dataset, path: str, ys: slice, xs: slice, marker: str) -> None:
-    block.to_zarr(path, region={"y": ys, "x": xs}, mode="r+", consolidated=False)
-    Path(marker).touch()  # only after the write completed
+def _mark_done(marker: str, _written=None) -> str:
+    """Create a block's done-marker; runs only after the block's write task finished."""
+    Path(marker).touch()
+    return marker
 
 
 def write_result(
@@ -190,8 +203,9 @@ def write_result(
     import dask
 
     def task(ys, xs):
-        return dask.delayed(_write_block)(sp.isel(y=ys, x=xs), str(p), ys, xs,
-                                          str(pdir / _block_name(ys, xs)))
+        written = sp.isel(y=ys, x=xs).to_zarr(str(p), region={"y": ys, "x": xs}, mode="r+",
+                                              consolidated=False, compute=False)
+        return dask.delayed(_mark_done)(str(pdir / _block_name(ys, xs)), written)
 
     try:
         if client is not None:

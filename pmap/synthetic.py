@@ -113,6 +113,7 @@ __all__ = [
     "DemoPaths",
     "make_demo_cube",
     "write_demo_cube",
+    "compare_with_truth",
 ]
 
 #: Named demo sizes (y, x) in pixels. ``large`` is ≈ 4.1 GB uncompressed (float32, 512 channels).
@@ -189,10 +190,20 @@ class DemoScenario:
 
 
 class DemoPaths(NamedTuple):
-    """Where :func:`write_demo_cube` put the cube and its truth (Zarr stores)."""
+    """Where :func:`write_demo_cube` put the cube and its truth (Zarr stores).
+
+    Fields are reachable as attributes, by position, or by name (``paths["cube"]``).
+    """
 
     cube: Path
     truth: Path
+
+    def __getitem__(self, key):
+        if isinstance(key, str):
+            if key not in self._fields:
+                raise KeyError(key)
+            return getattr(self, key)
+        return tuple.__getitem__(self, key)
 
 
 # --------------------------------------------------------------------------- axis
@@ -234,7 +245,9 @@ def _edge_energies_ev(edges_nm: np.ndarray, medium: str) -> np.ndarray:
 
 def _smooth_field(rng: np.random.Generator, shape: tuple[int, int], sigma_px: float) -> np.ndarray:
     """Smooth random field with zero mean and unit standard deviation."""
-    f = ndimage.gaussian_filter(rng.standard_normal(shape), sigma=max(sigma_px, 0.5), mode="reflect")
+    f = ndimage.gaussian_filter(
+        rng.standard_normal(shape), sigma=max(sigma_px, 0.5), mode="reflect"
+    )
     f -= f.mean()
     sd = f.std()
     return f / sd if sd > 0 else f
@@ -266,7 +279,9 @@ def _scenario_maps(shape: tuple[int, int], scen: DemoScenario, seed: int) -> dic
     n_dom = max(1, round(height * width * scen.segregated_density_per_um2))
     centres = rng.uniform([0, 0], [height, width], size=(n_dom, 2))
     radii = rng.uniform(*scen.segregated_radius_um, size=n_dom)
-    dom_e = scen.segregated_energy_ev + scen.segregated_energy_spread_ev * rng.standard_normal(n_dom)
+    dom_e = scen.segregated_energy_ev + scen.segregated_energy_spread_ev * rng.standard_normal(
+        n_dom
+    )
     dd, di = cKDTree(centres).query(pts, k=1)
     in_dom = (dd < radii[di]).reshape(shape)
     dom_idx = di.reshape(shape)
@@ -304,8 +319,12 @@ def _scenario_maps(shape: tuple[int, int], scen: DemoScenario, seed: int) -> dic
     fwhm[2][gb] = scen.defect_fwhm_ev
     area[2][gb] = scen.defect_area_counts * gb_profile[gb]
 
-    bg_amp = np.where(on, scen.background_counts_per_channel
-                      * np.clip(1 + scen.background_variation * f_bg, 0.0, None), 0.0)
+    bg_amp = np.where(
+        on,
+        scen.background_counts_per_channel
+        * np.clip(1 + scen.background_variation * f_bg, 0.0, None),
+        0.0,
+    )
 
     # One dead and one saturated (hot-spot) pixel, in the matrix, away from the edges.
     inner = np.zeros(shape, dtype=bool)
@@ -323,8 +342,15 @@ def _scenario_maps(shape: tuple[int, int], scen: DemoScenario, seed: int) -> dic
     sat_yx = tuple(int(v) for v in np.unravel_index(sat_flat, shape))
     area[0][sat_yx] *= scen.saturated_pixel_factor
     return {
-        "y_um": y_um, "x_um": x_um, "region": region, "energy": energy, "fwhm": fwhm,
-        "area": area, "bg_amp": bg_amp, "dead_yx": dead_yx, "sat_yx": sat_yx,
+        "y_um": y_um,
+        "x_um": x_um,
+        "region": region,
+        "energy": energy,
+        "fwhm": fwhm,
+        "area": area,
+        "bg_amp": bg_amp,
+        "dead_yx": dead_yx,
+        "sat_yx": sat_yx,
     }
 
 
@@ -348,7 +374,9 @@ class _Renderer:
         self.spikes = spikes
         self.wavelength, edges = _wavelength_axis(n_channels, scen)
         self.edge_ev = _edge_energies_ev(edges, medium)
-        self.bg_shape = np.exp(-(self.wavelength - scen.wavelength_min_nm) / scen.background_decay_nm)
+        self.bg_shape = np.exp(
+            -(self.wavelength - scen.wavelength_min_nm) / scen.background_decay_nm
+        )
         self.maps = _scenario_maps(self.shape, scen, self.seed)
 
     def expected(self, ys: slice, xs: slice) -> np.ndarray:
@@ -373,9 +401,10 @@ class _Renderer:
         xs = slice(bx * NOISE_BLOCK, min((bx + 1) * NOISE_BLOCK, self.shape[1]))
         mean = self.expected(ys, xs)
         rng = np.random.default_rng(np.random.SeedSequence([self.seed, 1, by, bx]))
-        detected = mean.copy()
+        detected = mean
         dy, dx = self.maps["dead_yx"]
         if ys.start <= dy < ys.stop and xs.start <= dx < xs.stop:
+            detected = mean.copy()
             detected[dy - ys.start, dx - xs.start] = 0.0
         counts = rng.poisson(detected * sc.gain_e_per_count) / sc.gain_e_per_count
         counts += rng.normal(sc.dark_offset_counts, sc.read_noise_counts, size=counts.shape)
@@ -423,7 +452,7 @@ class _Renderer:
 
     def coords(self) -> dict[str, Any]:
         m = self.maps
-        long = f"wavelength ({self.medium})"
+        long = f"{self.medium} wavelength"
         return {
             "y": ("y", m["y_um"], {"units": "um", "long_name": "y position"}),
             "x": ("x", m["x_um"], {"units": "um", "long_name": "x position"}),
@@ -462,30 +491,57 @@ class _Renderer:
         sat = np.zeros(shape, dtype=bool)
         sat[m["sat_yx"]] = True
         data_vars = {
-            "region": (yx, m["region"], {
-                "long_name": "region", "units": "1",
-                "flag_values": np.array(sorted(REGION_NAMES), dtype=np.int8),
-                "flag_meanings": " ".join(REGION_NAMES[k] for k in sorted(REGION_NAMES)),
-            }),
-            "peak_energy": (pyx, m["energy"], {"long_name": "peak centre (photon energy)",
-                                               "units": "eV"}),
+            "region": (
+                yx,
+                m["region"],
+                {
+                    "long_name": "region",
+                    "units": "1",
+                    "flag_values": np.array(sorted(REGION_NAMES), dtype=np.int8),
+                    "flag_meanings": " ".join(REGION_NAMES[k] for k in sorted(REGION_NAMES)),
+                },
+            ),
+            "peak_energy": (
+                pyx,
+                m["energy"],
+                {"long_name": "peak centre photon energy", "units": "eV"},
+            ),
             "peak_fwhm": (pyx, m["fwhm"], {"long_name": "peak FWHM in energy", "units": "eV"}),
-            "peak_area": (pyx, m["area"], {
-                "long_name": "peak area (expected photon counts of the whole line)",
-                "units": "counts"}),
-            "background_amplitude": (yx, m["bg_amp"], {
-                "long_name": "background at the first channel", "units": "counts"}),
-            "background_shape": ("wavelength", self.bg_shape, {
-                "long_name": "background spectral shape (1 at the first channel)", "units": "1"}),
+            "peak_area": (
+                pyx,
+                m["area"],
+                {
+                    "long_name": "peak area (expected photon counts of the whole line)",
+                    "units": "counts",
+                },
+            ),
+            "background_amplitude": (
+                yx,
+                m["bg_amp"],
+                {"long_name": "background at the first channel", "units": "counts"},
+            ),
+            "background_shape": (
+                "wavelength",
+                self.bg_shape,
+                {"long_name": "background spectral shape (1 at the first channel)", "units": "1"},
+            ),
             "dead_pixel": (yx, dead, {"long_name": "dead pixel (zero response)", "units": "1"}),
             "saturated_pixel": (yx, sat, {"long_name": "saturated hot-spot pixel", "units": "1"}),
-            "spike_mask": (("y", "x", "wavelength"), spike_mask, {
-                "long_name": "cosmic-ray spike", "units": "1"}),
+            "spike_mask": (
+                ("y", "x", "wavelength"),
+                spike_mask,
+                {"long_name": "cosmic-ray spike", "units": "1"},
+            ),
         }
         if expected is not None:
-            data_vars["expected"] = (("y", "x", "wavelength"), expected, {
-                "long_name": "noise-free signal above dark offset, before detector defects",
-                "units": "counts"})
+            data_vars["expected"] = (
+                ("y", "x", "wavelength"),
+                expected,
+                {
+                    "long_name": "noise-free signal above dark offset, before detector defects",
+                    "units": "counts",
+                },
+            )
         coords = self.coords()
         coords["peak"] = ("peak", np.arange(len(PEAK_NAMES)), {"long_name": "peak index"})
         coords["peak_name"] = ("peak", np.array(PEAK_NAMES, dtype=object))
@@ -506,8 +562,14 @@ def _params(shape, n_channels, seed, spikes, medium, scen) -> dict[str, Any]:
         for f in dataclasses.fields(scen)
         if getattr(scen, f.name) != f.default
     }
-    return {"shape": list(shape), "n_channels": n_channels, "seed": seed, "spikes": spikes,
-            "wavelength_medium": medium, "scenario_changes": changed}
+    return {
+        "shape": list(shape),
+        "n_channels": n_channels,
+        "seed": seed,
+        "spikes": spikes,
+        "wavelength_medium": medium,
+        "scenario_changes": changed,
+    }
 
 
 # --------------------------------------------------------------------------- public API
@@ -567,8 +629,13 @@ def make_demo_cube(
     r = _Renderer(shape, n_channels, seed, scen, wavelength_medium, spikes)
     counts, mask, exp = r.render(0, shape[0], 0, shape[1], want_expected=expected)
     params = _params(shape, n_channels, seed, spikes, wavelength_medium, scen)
-    cube = xr.DataArray(counts, dims=("y", "x", "wavelength"), coords=r.coords(),
-                        name="intensity", attrs=r.cube_attrs(params))
+    cube = xr.DataArray(
+        counts,
+        dims=("y", "x", "wavelength"),
+        coords=r.coords(),
+        name="intensity",
+        attrs=r.cube_attrs(params),
+    )
     return validate_cube(cube), r.truth_dataset(spike_mask=mask, expected=exp)
 
 
@@ -656,9 +723,13 @@ def write_demo_cube(
     full = (*shape, n_channels)
     dchunks = (cy, cx, n_channels)
     params = _params(shape, n_channels, seed, spikes, wavelength_medium, scen)
-    template = xr.DataArray(dsa.zeros(full, chunks=dchunks, dtype=np.float32),
-                            dims=("y", "x", "wavelength"), coords=r.coords(),
-                            name="intensity", attrs=r.cube_attrs(params)).to_dataset()
+    template = xr.DataArray(
+        dsa.zeros(full, chunks=dchunks, dtype=np.float32),
+        dims=("y", "x", "wavelength"),
+        coords=r.coords(),
+        name="intensity",
+        attrs=r.cube_attrs(params),
+    ).to_dataset()
     truth_t = r.truth_dataset(
         spike_mask=dsa.zeros(full, chunks=dchunks, dtype=bool),
         expected=dsa.zeros(full, chunks=dchunks, dtype=np.float32) if expected else None,
@@ -689,3 +760,75 @@ def write_demo_cube(
         for s in starts:
             tile(*s)
     return paths
+
+
+def compare_with_truth(result: xr.Dataset, truth: xr.Dataset | str | Path) -> str:
+    """Text summary of how well a result recovers the demo truth.
+
+    For each truth line, every pixel where it is present is matched to the
+    result peak nearest in energy; the summary gives the median and 95th
+    percentile of |ΔE| (meV), the median bias and the fraction of pixels
+    recovered within 10 meV. When the result has a ``region`` map, the share of
+    pixels whose label agrees with the truth after matching each result label
+    to its most frequent truth region is given too.
+
+    Parameters
+    ----------
+    result : xarray.Dataset
+        pmap result with ``peak_energy`` (peak, y, x) or (y, x) in eV.
+    truth : xarray.Dataset or path
+        The truth of :func:`make_demo_cube` or a ``*_truth.zarr`` store.
+
+    Returns
+    -------
+    str
+        A few lines of text.
+
+    Raises
+    ------
+    StepError
+        Result and truth maps differ in shape.
+    """
+    if not isinstance(truth, xr.Dataset):
+        truth = xr.open_zarr(truth)
+    ny, nx = truth.sizes["y"], truth.sizes["x"]
+    if (result.sizes.get("y"), result.sizes.get("x")) != (ny, nx):
+        raise StepError(
+            f"result map is {result.sizes.get('y')} x {result.sizes.get('x')} pixels, "
+            f"truth is {ny} x {nx}: they cannot be compared"
+        )
+    lines = ["comparison with the synthetic truth:"]
+    if "peak_energy" in result:
+        fit = result["peak_energy"]
+        fit = fit.expand_dims("peak") if "peak" not in fit.dims else fit
+        fit_e = np.asarray(fit.transpose("peak", "y", "x").values, dtype=float)
+        true_e = np.asarray(truth["peak_energy"].values, dtype=float)
+        for k, name in enumerate(np.asarray(truth["peak_name"].values)):
+            present = np.isfinite(true_e[k])
+            if not present.any():
+                continue
+            diff = fit_e[:, present] - true_e[k][present]  # (n_fit_peaks, n_pixels)
+            absd = np.where(np.isfinite(diff), np.abs(diff), np.inf)
+            best = np.take_along_axis(diff, np.argmin(absd, axis=0)[None], axis=0)[0]
+            ok = np.isfinite(best)
+            if not ok.any():
+                lines.append(f"  {name}: not recovered in any of {present.sum()} pixels")
+                continue
+            err = np.abs(best[ok]) * 1e3
+            lines.append(
+                f"  {name}: |dE| median {np.median(err):.1f} meV, 95% {np.percentile(err, 95):.1f}"
+                f" meV, bias {np.median(best[ok]) * 1e3:+.1f} meV, within 10 meV in "
+                f"{np.mean(np.abs(best) < 0.010) * 100:.0f}% of {present.sum()} pixels"
+            )
+    if "region" in result:
+        got = np.asarray(result["region"].values)
+        want = np.asarray(truth["region"].values)
+        agree = 0
+        for lab in np.unique(got[np.isfinite(got)] if got.dtype.kind == "f" else got):
+            sel = got == lab
+            agree += np.bincount(want[sel] + 1).max()  # truth codes start at -1
+        lines.append(
+            f"  regions: {agree / want.size * 100:.0f}% of pixels agree after "
+            "matching each label to its most frequent truth region"
+        )
+    return "\n".join(lines)

@@ -51,8 +51,14 @@ def long_table_shape(size_bytes: float, n_channels: int = N_CHANNELS) -> tuple[i
     return max(1, pixels // nx), nx, n_channels
 
 
-def write_long_table(path: str | os.PathLike, size_bytes: float, *, n_channels: int = N_CHANNELS,
-                     pixel_um: float = 0.5, seed: int = 0) -> tuple[int, int, int]:
+def write_long_table(
+    path: str | os.PathLike,
+    size_bytes: float,
+    *,
+    n_channels: int = N_CHANNELS,
+    pixel_um: float = 0.5,
+    seed: int = 0,
+) -> tuple[int, int, int]:
     """Write a long-table text map of about ``size_bytes`` (raster order); return its shape.
 
     Each pixel holds a Gaussian PL peak near 750 nm (position varying across the
@@ -74,10 +80,14 @@ def write_long_table(path: str | os.PathLike, size_bytes: float, *, n_channels: 
             counts = np.minimum(rng.poisson(peak + 100.0), 99999).ravel()
             n = counts.size
             cols = [
-                _fixed(np.repeat(ix * pixel_um, ns), 4, 1), sep.repeat(n, 0),
-                _fixed(np.repeat(iy * pixel_um, ns), 4, 1), sep.repeat(n, 0),
-                _fixed(np.tile(wl, len(pix)), 4, 2), sep.repeat(n, 0),
-                _digits(counts, 5), nl.repeat(n, 0),
+                _fixed(np.repeat(ix * pixel_um, ns), 4, 1),
+                sep.repeat(n, 0),
+                _fixed(np.repeat(iy * pixel_um, ns), 4, 1),
+                sep.repeat(n, 0),
+                _fixed(np.tile(wl, len(pix)), 4, 2),
+                sep.repeat(n, 0),
+                _digits(counts, 5),
+                nl.repeat(n, 0),
             ]
             fh.write(np.hstack(cols).tobytes())
     return ny, nx, ns
@@ -96,7 +106,9 @@ def _rss_mib() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
-def _child_convert(src: str, out: str, chunk_rows: int, buffer_mib: float, chunk_mib: float) -> None:
+def _child_convert(
+    src: str, out: str, chunk_rows: int, buffer_mib: float, chunk_mib: float
+) -> None:
     import pmap.io
 
     # warm up on a tiny table so that lazily imported modules do not count as growth
@@ -105,8 +117,9 @@ def _child_convert(src: str, out: str, chunk_rows: int, buffer_mib: float, chunk
         pmap.io.text_to_zarr(Path(tmp) / "w.csv", Path(tmp) / "w.zarr", chunk_rows=chunk_rows)
     before = _rss_mib()
     t0 = time.perf_counter()
-    pmap.io.text_to_zarr(src, out, chunk_rows=chunk_rows, buffer_mib=buffer_mib,
-                         target_chunk_mib=chunk_mib)
+    pmap.io.text_to_zarr(
+        src, out, chunk_rows=chunk_rows, buffer_mib=buffer_mib, target_chunk_mib=chunk_mib
+    )
     dt = time.perf_counter() - t0
     print(json.dumps({"seconds": dt, "rss_before_mib": before, "rss_peak_mib": _rss_mib()}))
 
@@ -121,8 +134,11 @@ def _child_baseline(src: str, chunk_rows: int) -> None:
         for df in reader:
             rows += len(df)
     dt = time.perf_counter() - t0
-    print(json.dumps({"seconds": dt, "rows": rows, "rss_before_mib": before,
-                      "rss_peak_mib": _rss_mib()}))
+    print(
+        json.dumps(
+            {"seconds": dt, "rows": rows, "rss_before_mib": before, "rss_peak_mib": _rss_mib()}
+        )
+    )
 
 
 def run_child(*args: str) -> dict:
@@ -163,17 +179,29 @@ def main(argv: list[str] | None = None) -> None:
         shape = write_long_table(src, _parse_size(a.size))
         size = src.stat().st_size
         print(f"generated {size / 1e9:.2f} GB, cube {shape} in {time.perf_counter() - t0:.1f} s")
-        common = ["--chunk-rows", str(a.chunk_rows), "--buffer-mib", str(a.buffer_mib),
-                  "--chunk-mib", str(a.chunk_mib)]
+        common = [
+            "--chunk-rows",
+            str(a.chunk_rows),
+            "--buffer-mib",
+            str(a.buffer_mib),
+            "--chunk-mib",
+            str(a.chunk_mib),
+        ]
         conv = run_child("--child", "convert", str(src), str(out), *common)
         base = run_child("--child", "baseline", str(src), *common)
         mb = size / 1e6
-        print(f"text_to_zarr : {conv['seconds']:.1f} s, {mb / conv['seconds']:.0f} MB/s, "
-              f"peak RSS {conv['rss_peak_mib']:.0f} MiB (after imports {conv['rss_before_mib']:.0f})")
-        print(f"pandas read  : {base['seconds']:.1f} s, {mb / base['seconds']:.0f} MB/s, "
-              f"peak RSS {base['rss_peak_mib']:.0f} MiB (baseline, one chunked pass)")
-        print(f"ratio        : conversion takes {conv['seconds'] / base['seconds']:.2f}x the "
-              f"plain pandas read; peak RSS / file size = {conv['rss_peak_mib'] * 2**20 / size:.3f}")
+        print(
+            f"text_to_zarr : {conv['seconds']:.1f} s, {mb / conv['seconds']:.0f} MB/s, "
+            f"peak RSS {conv['rss_peak_mib']:.0f} MiB (after imports {conv['rss_before_mib']:.0f})"
+        )
+        print(
+            f"pandas read  : {base['seconds']:.1f} s, {mb / base['seconds']:.0f} MB/s, "
+            f"peak RSS {base['rss_peak_mib']:.0f} MiB (baseline, one chunked pass)"
+        )
+        print(
+            f"ratio        : conversion takes {conv['seconds'] / base['seconds']:.2f}x the "
+            f"plain pandas read; peak RSS / file size = {conv['rss_peak_mib'] * 2**20 / size:.3f}"
+        )
     finally:
         if not a.keep:
             shutil.rmtree(work, ignore_errors=True)

@@ -4,9 +4,16 @@ import numpy as np
 import pytest
 from scipy import constants
 
-from pmap.conventions import HC_EV_NM, K_B_EV_PER_K, ev_to_nm, nm_to_ev, nm_to_wavenumber
+from pmap.conventions import (
+    HC_EV_NM,
+    K_B_EV_PER_K,
+    ev_to_nm,
+    nm_to_ev,
+    nm_to_wavenumber,
+    normalise_intensity_unit,
+    normalise_length_unit,
+)
 from pmap.errors import CubeValidationError
-from pmap.conventions import normalise_intensity_unit, normalise_length_unit
 
 
 def test_hc_matches_scipy_constants():

@@ -43,9 +43,13 @@ def toy_cube(*, ny=30, nx=36, n_channels=64, height=100.0, read_noise=2.0, seed=
         region[y0:y1, edges[r] : edges[r + 1]] = r
     expected = np.where(region[..., None] >= 0, height * spectra[np.clip(region, 0, None)], 0.0)
     data = rng.poisson(expected) + rng.normal(0.0, read_noise, expected.shape)
-    cube = pmap.make_cube(data.astype(np.float32), energy_ev=energy,
-                          y_um=np.arange(ny) * PIXEL_UM, x_um=np.arange(nx) * PIXEL_UM,
-                          chunks=chunks)
+    cube = pmap.make_cube(
+        data.astype(np.float32),
+        energy_ev=energy,
+        y_um=np.arange(ny) * PIXEL_UM,
+        x_um=np.arange(nx) * PIXEL_UM,
+        chunks=chunks,
+    )
     return cube, region, spectra, energy
 
 
@@ -164,8 +168,9 @@ def test_pca_equals_sklearn_on_same_data():
     sign = np.sign(np.sum(got * ref.components_, axis=1))
     # Same loadings as scikit-learn (up to the sign convention we fix), same ratios, scores.
     np.testing.assert_allclose(got * sign[:, None], ref.components_, atol=1e-10)
-    np.testing.assert_allclose(ds["explained_variance"].values, ref.explained_variance_ratio_,
-                               rtol=1e-10)
+    np.testing.assert_allclose(
+        ds["explained_variance"].values, ref.explained_variance_ratio_, rtol=1e-10
+    )
     scores = ds["component_abundance"].values.reshape(4, -1).T
     np.testing.assert_allclose(scores * sign, ref.transform(x), atol=1e-8)
     np.testing.assert_allclose(ds["mean_spectrum"].values, ref.mean_, rtol=1e-12)
@@ -185,8 +190,9 @@ def test_sampled_dask_path_equals_numpy_path(method):
     b = decompose(_as_numpy(cube), method=method, n_components=3, sample_pixels=300, seed=5)
     assert a.attrs["n_fit_pixels"] == b.attrs["n_fit_pixels"] == 300
     np.testing.assert_allclose(a["component_spectrum"], b["component_spectrum"], rtol=1e-12)
-    np.testing.assert_allclose(a["component_abundance"].values, b["component_abundance"].values,
-                               rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(
+        a["component_abundance"].values, b["component_abundance"].values, rtol=1e-9, atol=1e-9
+    )
 
 
 def test_sample_agrees_with_all_pixels():
@@ -206,8 +212,9 @@ def test_incremental_agrees_with_in_memory():
     for k in range(3):
         assert abs(_corr(full["component_spectrum"][k], inc["component_spectrum"][k])) > 0.999
     nmf_full = decompose(_as_numpy(cube), method="nmf", n_components=3, sample_pixels=None)
-    nmf_inc = decompose(cube, method="nmf", n_components=3, incremental=True, batch_pixels=128,
-                        max_iter=3)
+    nmf_inc = decompose(
+        cube, method="nmf", n_components=3, incremental=True, batch_pixels=128, max_iter=3
+    )
     assert "MiniBatchNMF" in nmf_inc.attrs["solver"]
     for k in range(3):
         assert _corr(nmf_full["component_spectrum"][k], nmf_inc["component_spectrum"][k]) > 0.98
@@ -299,6 +306,24 @@ def test_registered_step_and_light_import():
 
     assert get_step("decompose").func is decompose
     assert get_step("segment").func is pmap.decomposition.segment
-    code = ("import sys, pmap, pmap.decomposition; pmap.decompose; "
-            "assert 'sklearn' not in sys.modules, 'scikit-learn imported'")
+    code = (
+        "import sys, pmap, pmap.decomposition; pmap.decompose; "
+        "assert 'sklearn' not in sys.modules, 'scikit-learn imported'"
+    )
     subprocess.run([sys.executable, "-c", code], check=True)
+
+
+def test_results_round_trip_through_zarr(tmp_path):
+    from pmap.decomposition import segment
+
+    cube, *_ = toy_cube(ny=12, nx=14, chunks={"y": 6})
+    ds = decompose(cube, method="nmf", n_components=2)
+    region = segment(cube, n_regions=2)
+    ds.to_zarr(tmp_path / "dec.zarr", consolidated=False)
+    region.to_dataset().to_zarr(tmp_path / "reg.zarr", consolidated=False)
+    back = xr.open_zarr(tmp_path / "dec.zarr", consolidated=False)
+    np.testing.assert_allclose(back["component_abundance"], ds["component_abundance"])
+    assert back.attrs["negative_policy"] == ds.attrs["negative_policy"]
+    reg = xr.open_zarr(tmp_path / "reg.zarr", consolidated=False)["region"]
+    np.testing.assert_array_equal(reg, region)
+    assert reg.attrs["scores"] == region.attrs["scores"]

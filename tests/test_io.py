@@ -54,9 +54,14 @@ def data() -> np.ndarray:
 
 @pytest.fixture
 def cube(data):
-    c = make_cube(data, wavelength_nm=WL, y_um=np.arange(4) * 0.5, x_um=10 + np.arange(5) * 0.5,
-                  units="counts/s",
-                  attrs={"temperature_K": 10.0, "excitation_wavelength_nm": 532.0})
+    c = make_cube(
+        data,
+        wavelength_nm=WL,
+        y_um=np.arange(4) * 0.5,
+        x_um=10 + np.arange(5) * 0.5,
+        units="counts/s",
+        attrs={"temperature_K": 10.0, "excitation_wavelength_nm": 532.0},
+    )
     c.attrs = with_step(c.attrs, "remove_spikes", {"threshold": 6.0})
     return c
 
@@ -67,8 +72,9 @@ def _stat(path):
     return [(f.read_bytes(), f.stat().st_mtime_ns) for f in files]
 
 
-@pytest.mark.parametrize("name,kw", [("c.zarr", {}), ("c2.zarr", {"zarr_format": 2}),
-                                     ("c.nc", {}), ("c.h5", {})])
+@pytest.mark.parametrize(
+    "name,kw", [("c.zarr", {}), ("c2.zarr", {"zarr_format": 2}), ("c.nc", {}), ("c.h5", {})]
+)
 def test_save_open_round_trip(tmp_path, cube, data, name, kw):
     out = save_cube(cube, tmp_path / name, **kw)
     back = open_cube(out)
@@ -89,10 +95,14 @@ def test_save_open_round_trip(tmp_path, cube, data, name, kw):
 @pytest.mark.parametrize("zarr_format", [2, 3])
 def test_zarr_written_by_xarray_readable(tmp_path, data, zarr_format):
     # a store written by plain xarray, variable not called intensity (the only one)
-    ds = xr.Dataset({"pl": (("y", "x", "energy"), data)},
-                    coords={"energy": ("energy", np.linspace(1.8, 2.0, 6), {"units": "eV"}),
-                            "y": ("y", np.arange(4.0), {"units": "um"}),
-                            "x": ("x", np.arange(5.0), {"units": "um"})})
+    ds = xr.Dataset(
+        {"pl": (("y", "x", "energy"), data)},
+        coords={
+            "energy": ("energy", np.linspace(1.8, 2.0, 6), {"units": "eV"}),
+            "y": ("y", np.arange(4.0), {"units": "um"}),
+            "x": ("x", np.arange(5.0), {"units": "um"}),
+        },
+    )
     path = tmp_path / f"plain_v{zarr_format}.zarr"
     ds.to_zarr(path, zarr_format=zarr_format, consolidated=False)
     back = open_cube(path)
@@ -101,7 +111,10 @@ def test_zarr_written_by_xarray_readable(tmp_path, data, zarr_format):
 
 
 def _write_all(tmp_path, cube, data):
-    paths = {"zarr": save_cube(cube, tmp_path / "a.zarr"), "netcdf": save_cube(cube, tmp_path / "a.nc")}
+    paths = {
+        "zarr": save_cube(cube, tmp_path / "a.zarr"),
+        "netcdf": save_cube(cube, tmp_path / "a.nc"),
+    }
     np.save(tmp_path / "a.npy", data)
     tifffile.imwrite(tmp_path / "a.tif", np.moveaxis(data, -1, 0))
     paths["npy"], paths["tiff"] = tmp_path / "a.npy", tmp_path / "a.tif"
@@ -140,16 +153,31 @@ def test_convert_every_format_and_inputs_unchanged(tmp_path, cube, data):
 def test_npy_options_sidecar_and_dims(tmp_path, data):
     path = tmp_path / "s.npy"
     np.save(path, np.moveaxis(data, -1, 0))  # (channels, y, x) on disk
-    c = open_cube(path, dims="wavelength,y,x", wavelength_start_nm=600, wavelength_step_nm=10,
-                  pixel_size_x_um=2.0, x0_um=5.0, temperature_K=77)
+    c = open_cube(
+        path,
+        dims="wavelength,y,x",
+        wavelength_start_nm=600,
+        wavelength_step_nm=10,
+        pixel_size_x_um=2.0,
+        x0_um=5.0,
+        temperature_K=77,
+    )
     np.testing.assert_array_equal(c.values, data)
     np.testing.assert_allclose(c.wavelength.values, WL)
     np.testing.assert_allclose(c.x.values, 5.0 + 2.0 * np.arange(5))
     assert c.y.attrs["units"] == "pixel" and c.attrs["temperature_K"] == 77
     # energy axis from a sidecar; keywords win over the sidecar
-    sidecar_path(path).write_text(json.dumps(
-        {"pmap_axes": 1, "dims": ["energy", "y", "x"], "energy_ev": [2.0, 2.1, 2.2, 2.3, 2.4, 2.5],
-         "pixel_size_um": 0.25, "attrs": {"sample": "A1"}}))
+    sidecar_path(path).write_text(
+        json.dumps(
+            {
+                "pmap_axes": 1,
+                "dims": ["energy", "y", "x"],
+                "energy_ev": [2.0, 2.1, 2.2, 2.3, 2.4, 2.5],
+                "pixel_size_um": 0.25,
+                "attrs": {"sample": "A1"},
+            }
+        )
+    )
     c = open_cube(path, pixel_size_um=1.0)
     assert c.dims == ("y", "x", "energy") and c.attrs["sample"] == "A1"
     np.testing.assert_allclose(c.x.values, np.arange(5.0))
@@ -195,13 +223,16 @@ def test_npy_content_detected_without_extension(tmp_path, data):
     assert detect_format(path) == "npy"
 
 
-@pytest.mark.parametrize("sidecar,match", [
-    ("{not json", "not valid JSON"),
-    ('{"wavelength_nm": [1, 2, 3, 4, 5, 6], "colour": "red"}', "unknown key"),
-    ('[1, 2, 3]', "JSON object"),
-    ('{"pmap_axes": 2, "wavelength_nm": [1, 2, 3, 4, 5, 6]}', "version"),
-    ('{"wavelength_nm": [1, 2, 3]}', "3 spectral values given for 6 channels"),
-])
+@pytest.mark.parametrize(
+    "sidecar,match",
+    [
+        ("{not json", "not valid JSON"),
+        ('{"wavelength_nm": [1, 2, 3, 4, 5, 6], "colour": "red"}', "unknown key"),
+        ("[1, 2, 3]", "JSON object"),
+        ('{"pmap_axes": 2, "wavelength_nm": [1, 2, 3, 4, 5, 6]}', "version"),
+        ('{"wavelength_nm": [1, 2, 3]}', "3 spectral values given for 6 channels"),
+    ],
+)
 def test_bad_sidecar(tmp_path, data, sidecar, match):
     path = tmp_path / "b.npy"
     np.save(path, data)

@@ -52,26 +52,26 @@ def test_interrupted_then_resumed_equals_uninterrupted(tmp_path, monkeypatch):
     ds = _result(3)
     full = write_result(ds, tmp_path / "full.zarr", progress=False)
     calls = {"n": 0}
-    real = results._write_block
+    real = results._mark_done
 
     def flaky(*args, **kw):
         calls["n"] += 1
         if calls["n"] > 4:
-            raise KeyboardInterrupt  # as if the user pressed Ctrl-C
+            raise KeyboardInterrupt  # as if the user pressed Ctrl-C mid-run
         return real(*args, **kw)
 
-    monkeypatch.setattr(results, "_write_block", flaky)
+    monkeypatch.setattr(results, "_mark_done", flaky)
     part = tmp_path / "part.zarr"
     with pytest.raises(KeyboardInterrupt):
         write_result(ds, part, progress=False, concurrency=1)
-    monkeypatch.setattr(results, "_write_block", real)
+    monkeypatch.setattr(results, "_mark_done", real)
     # an interrupted store never claims to be complete
     with pytest.raises(FormatError, match="incomplete"):
         open_result(part)
     assert len(list(progress_dir(part).iterdir())) == 4
     written = []
-    monkeypatch.setattr(results, "_write_block",
-                        lambda *a, **k: (written.append(a[2:4]), real(*a, **k)))
+    monkeypatch.setattr(results, "_mark_done",
+                        lambda *a, **k: (written.append(a[0]), real(*a, **k))[1])
     write_result(ds, part, progress=False, resume=True)
     assert len(written) == 9 - 4  # only unfinished blocks were recomputed
     xr.testing.assert_identical(open_result(part).compute(), open_result(full).compute())

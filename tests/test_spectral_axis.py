@@ -20,8 +20,9 @@ def _gauss_cube(centre, fwhm, lo, hi, n, units="counts/nm"):
     wl = np.linspace(lo, hi, n)
     sig = fwhm / (2 * np.sqrt(2 * np.log(2)))
     y = np.exp(-0.5 * ((wl - centre) / sig) ** 2)
-    return pmap.make_cube(y[None, :], wavelength_nm=wl, units=units,
-                          attrs={"wavelength_medium": "vacuum"})
+    return pmap.make_cube(
+        y[None, :], wavelength_nm=wl, units=units, attrs={"wavelength_medium": "vacuum"}
+    )
 
 
 @pytest.mark.parametrize(
@@ -36,7 +37,7 @@ def test_jacobian_moves_peak(centre, fwhm, shift_meV):
     x = e.energy.values
     i = int(np.argmax(y))
     # vertex of the parabola through the three top points (sub-channel peak)
-    a, b, c = y[i - 1: i + 2]
+    a, b, c = y[i - 1 : i + 2]
     h = x[i + 1] - x[i]
     peak = x[i] + 0.5 * h * (a - c) / (a - 2 * b + c)
     shift = (peak - HC_EV_NM / centre) * 1e3
@@ -90,8 +91,9 @@ def test_uniform_resampling_conserves_exactly(rng):
 
 def test_wavenumber_and_raman_shift():
     wl = np.linspace(540.0, 640.0, 101)
-    cube = pmap.make_cube(np.ones((1, 2, 101)), wavelength_nm=wl,
-                          attrs={"excitation_wavelength_nm": 532.0})
+    cube = pmap.make_cube(
+        np.ones((1, 2, 101)), wavelength_nm=wl, attrs={"excitation_wavelength_nm": 532.0}
+    )
     k = to_wavenumber(cube, jacobian=False)
     # ν̃ = 1e7/λ_vac (common practice)
     np.testing.assert_allclose(k.wavenumber.values, np.sort(1e7 / air_to_vacuum(wl)), rtol=1e-13)
@@ -117,7 +119,6 @@ def test_vacuum_axis_unchanged_energy():
 
 
 def test_bad_units_refused():
-    cube = pmap.make_cube(np.ones((1, 1, 5)), wavelength_nm=np.arange(5) + 600.0,
-                          units="counts/eV")
+    cube = pmap.make_cube(np.ones((1, 1, 5)), wavelength_nm=np.arange(5) + 600.0, units="counts/eV")
     with pytest.raises(StepError, match="cannot convert intensity unit"):
         to_energy(cube)

@@ -77,8 +77,9 @@ def test_recovers_cubic_dispersion(offset_nm, case):
 def test_auto_degree_chooses_enough():
     rng = np.random.default_rng(3)
     lamp = make_lamp(reference_lines("Ne"), rng)
-    cal = calibrate_wavelength(lamp, lines="Ne", nominal_nm=true_dispersion(PIX) - 0.8,
-                               degree="auto")
+    cal = calibrate_wavelength(
+        lamp, lines="Ne", nominal_nm=true_dispersion(PIX) - 0.8, degree="auto"
+    )
     assert cal.degree >= 2  # a cubic law is not linear
     assert np.sqrt(np.mean((cal.wavelength_nm() - true_dispersion(PIX)) ** 2)) < 0.02
 
@@ -121,5 +122,8 @@ def test_load_rejects_foreign_json(tmp_path):
 
 def test_too_few_lines():
     with pytest.raises(StepError, match="lines"):
-        calibrate_wavelength(np.full(N, 10.0) + np.random.default_rng(0).normal(0, 1, N),
-                             lines="Ne", nominal_nm=true_dispersion(PIX))
+        calibrate_wavelength(
+            np.full(N, 10.0) + np.random.default_rng(0).normal(0, 1, N),
+            lines="Ne",
+            nominal_nm=true_dispersion(PIX),
+        )

@@ -53,9 +53,18 @@ def test_validate_cube_accepts_and_metadata(demo):
     assert again.dims == ("y", "x", "wavelength")
     assert cube.attrs["units"] == "counts"
     assert cube["wavelength"].attrs["units"] == "nm" and cube["y"].attrs["units"] == "um"
-    for key in ("excitation_wavelength_nm", "exposure_s", "excitation_power_W", "temperature_K",
-                "saturation_counts", "read_noise_counts", "gain_e_per_count",
-                "dark_offset_counts", "wavelength_medium", "instrument_notes"):
+    for key in (
+        "excitation_wavelength_nm",
+        "exposure_s",
+        "excitation_power_W",
+        "temperature_K",
+        "saturation_counts",
+        "read_noise_counts",
+        "gain_e_per_count",
+        "dark_offset_counts",
+        "wavelength_medium",
+        "instrument_notes",
+    ):
         assert key in cube.attrs, key
     assert "synthetic" in cube.attrs["instrument_notes"].lower()
     for name, var in truth.variables.items():
@@ -107,11 +116,19 @@ def test_jacobian_shifts_maximum_in_wavelength(medium):
     3316 (2013)); d/dE[g(E) E²] = 0 gives E* = (E0 + sqrt(E0² + 8σ²))/2.
     """
     scen = DemoScenario(band_edge_fwhm_ev=0.30, band_edge_fwhm_variation_ev=0.0)
-    cube, truth = make_demo_cube(shape=(16, 16), n_channels=4096, seed=1, expected=True,
-                                 wavelength_medium=medium, scenario=scen)
+    cube, truth = make_demo_cube(
+        shape=(16, 16),
+        n_channels=4096,
+        seed=1,
+        expected=True,
+        wavelength_medium=medium,
+        scenario=scen,
+    )
     iy, ix = np.argwhere(truth["region"].values == 0)[-1]
-    line = (truth["expected"].values[iy, ix]
-            - truth["background_amplitude"].values[iy, ix] * truth["background_shape"].values)
+    line = (
+        truth["expected"].values[iy, ix]
+        - truth["background_amplitude"].values[iy, ix] * truth["background_shape"].values
+    )
     wl = truth["wavelength"].values
     to_vac = iau_air_to_vacuum if medium == "air" else np.asarray
     e0 = truth["peak_energy"].values[0, iy, ix]
@@ -178,13 +195,19 @@ def test_spikes_are_where_the_mask_says(demo):
     assert np.all(diff[mask & ~sat[..., None]] >= 0.3 * 500 - 1)
     # and no unmasked value stands out from the noise
     z = (cube - attrs["dark_offset_counts"] - truth["expected"].values) / _noise_sd(
-        truth["expected"].values, attrs)
+        truth["expected"].values, attrs
+    )
     usable = ~(truth["dead_pixel"].values | sat)[..., None] & ~mask
     assert np.abs(z[usable]).max() < 7
     # rate: 2e-4 events per value, half of them two channels wide
     n_values = mask.size
-    n_events = (np.diff(np.concatenate([np.zeros(mask.shape[:2] + (1,), bool), mask], -1)
-                        .astype(np.int8), axis=-1) == 1).sum()
+    n_events = (
+        np.diff(
+            np.concatenate([np.zeros(mask.shape[:2] + (1,), bool), mask], -1).astype(np.int8),
+            axis=-1,
+        )
+        == 1
+    ).sum()
     expected_events = 2e-4 * n_values
     assert abs(n_events - expected_events) < 5 * np.sqrt(expected_events)
 
@@ -198,7 +221,9 @@ def test_dead_and_saturated_pixels(demo):
     assert dead.mean() == pytest.approx(attrs["dark_offset_counts"], abs=1.5)
     assert dead.std() < 2 * attrs["read_noise_counts"]
     assert cube[sy, sx].max() == attrs["saturation_counts"]
-    assert (cube == attrs["saturation_counts"]).sum() == (cube[sy, sx] == attrs["saturation_counts"]).sum()
+    assert (cube == attrs["saturation_counts"]).sum() == (
+        cube[sy, sx] == attrs["saturation_counts"]
+    ).sum()
     assert truth["region"].values[dy, dx] == 0 and truth["region"].values[sy, sx] == 0
 
 
@@ -248,3 +273,22 @@ def test_bad_arguments():
         write_demo_cube("/nonexistent-never-written", size="huge")
     with pytest.raises(StepError, match="medium"):
         make_demo_cube(shape=(16, 16), wavelength_medium="water")
+
+
+def test_demo_paths_and_compare_with_truth(tmp_path):
+    from pmap.synthetic import compare_with_truth
+
+    paths = write_demo_cube(tmp_path, size="tiny", seed=0)
+    assert paths["cube"] == paths.cube == paths[0] and paths["truth"] == paths.truth
+    truth = xr.open_zarr(paths.truth).load()
+    # a "result" that recovers the band edge exactly and the segregated line 20 meV low
+    e = truth["peak_energy"].values
+    fit = np.stack([e[1] - 0.020, e[0]])  # ascending in energy, as in pmap results
+    result = xr.Dataset({"peak_energy": (("peak", "y", "x"), fit), "region": truth["region"]})
+    text = compare_with_truth(result, paths.truth)
+    assert "band_edge: |dE| median 0.0 meV" in text
+    assert np.isfinite(e[1]).any()  # seed 0 has a segregated domain in the tiny map
+    assert "segregated: |dE| median 20.0 meV" in text and "bias -20.0 meV" in text
+    assert "regions: 100% of pixels agree" in text
+    with pytest.raises(StepError, match="cannot be compared"):
+        compare_with_truth(result.isel(x=slice(0, 5)), truth)

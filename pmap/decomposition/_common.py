@@ -21,7 +21,9 @@ from ..errors import StepError
 def check_spectral(obj: Any, what: str = "cube") -> tuple[xr.DataArray, str]:
     """Check that ``obj`` is a DataArray with y, x and one spectral dim; return (array, dim)."""
     if not isinstance(obj, xr.DataArray):
-        raise StepError(f"{what} must be an xarray DataArray (a pmap cube), got {type(obj).__name__}")
+        raise StepError(
+            f"{what} must be an xarray DataArray (a pmap cube), got {type(obj).__name__}"
+        )
     sdims = [d for d in obj.dims if d in SPECTRAL_DIMS]
     if len(sdims) != 1:
         raise StepError(

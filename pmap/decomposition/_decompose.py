@@ -65,23 +65,38 @@ def _catch_convergence(fit, *args, warn: bool = True) -> bool:
         if issubclass(w.category, ConvergenceWarning):
             converged = False
             if warn:
-                warnings.warn(f"decomposition did not converge: {w.message}", PmapWarning,
-                              stacklevel=3)
+                warnings.warn(
+                    f"decomposition did not converge: {w.message}", PmapWarning, stacklevel=3
+                )
         else:
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     return converged
 
 
-def _nmf_model(n_components: int, *, seed: int, init: str | None, solver: str | None,
-               max_iter: int | None):
+def _nmf_model(
+    n_components: int, *, seed: int, init: str | None, solver: str | None, max_iter: int | None
+):
     from sklearn.decomposition import NMF
 
-    return NMF(n_components=n_components, init=init or "nndsvda", solver=solver or "cd",
-               max_iter=max_iter or 500, random_state=seed)
+    return NMF(
+        n_components=n_components,
+        init=init or "nndsvda",
+        solver=solver or "cd",
+        max_iter=max_iter or 500,
+        random_state=seed,
+    )
 
 
-def _fit_sample(x: np.ndarray, method: str, k: int, *, seed: int, init: str | None,
-                solver: str | None, max_iter: int | None) -> tuple[np.ndarray, np.ndarray | None, dict]:
+def _fit_sample(
+    x: np.ndarray,
+    method: str,
+    k: int,
+    *,
+    seed: int,
+    init: str | None,
+    solver: str | None,
+    max_iter: int | None,
+) -> tuple[np.ndarray, np.ndarray | None, dict]:
     """Fit on an in-memory (n, C) array; return (components (k, C), mean or None, info)."""
     if len(x) < k:
         raise StepError(f"only {len(x)} valid pixels to fit {k} components")
@@ -96,14 +111,27 @@ def _fit_sample(x: np.ndarray, method: str, k: int, *, seed: int, init: str | No
         return model.components_, model.mean_, info
     model = _nmf_model(k, seed=seed, init=init, solver=solver, max_iter=max_iter)
     _catch_convergence(model.fit, np.clip(x, 0.0, None))
-    info = {"solver": model.solver, "init": model.init, "max_iter": model.max_iter,
-            "n_iter": int(model.n_iter_)}
+    info = {
+        "solver": model.solver,
+        "init": model.init,
+        "max_iter": model.max_iter,
+        "n_iter": int(model.n_iter_),
+    }
     return model.components_, None, info
 
 
-def _fit_incremental(arr: xr.DataArray, sdim: str, method: str, k: int, *, seed: int,
-                     init: str | None, solver: str | None, max_iter: int | None,
-                     batch_pixels: int) -> tuple[np.ndarray, np.ndarray | None, dict]:
+def _fit_incremental(
+    arr: xr.DataArray,
+    sdim: str,
+    method: str,
+    k: int,
+    *,
+    seed: int,
+    init: str | None,
+    solver: str | None,
+    max_iter: int | None,
+    batch_pixels: int,
+) -> tuple[np.ndarray, np.ndarray | None, dict]:
     """Fit chunk by chunk with partial_fit (IncrementalPCA, MiniBatchNMF)."""
     if method == "pca":
         from sklearn.decomposition import IncrementalPCA
@@ -113,24 +141,33 @@ def _fit_incremental(arr: xr.DataArray, sdim: str, method: str, k: int, *, seed:
         model = IncrementalPCA(n_components=k, batch_size=batch_pixels)
         for batch in iter_batches(arr, sdim, batch_pixels, max(k, 2), seed):
             model.partial_fit(batch)
-        info = {"solver": "incremental SVD (IncrementalPCA.partial_fit)", "passes": 1,
-                "n_fit_pixels": int(model.n_samples_seen_),
-                "explained_variance": model.explained_variance_ratio_}
+        info = {
+            "solver": "incremental SVD (IncrementalPCA.partial_fit)",
+            "passes": 1,
+            "n_fit_pixels": int(model.n_samples_seen_),
+            "explained_variance": model.explained_variance_ratio_,
+        }
         return model.components_, model.mean_, info
     from sklearn.decomposition import MiniBatchNMF
 
     if solver not in (None, "mu"):
         raise StepError("incremental NMF uses multiplicative updates only (solver='mu')")
     passes = max_iter or 1
-    model = MiniBatchNMF(n_components=k, init=init or "nndsvda", batch_size=batch_pixels,
-                         random_state=seed)
+    model = MiniBatchNMF(
+        n_components=k, init=init or "nndsvda", batch_size=batch_pixels, random_state=seed
+    )
     n_seen = 0
     for p in range(passes):
         for batch in iter_batches(arr, sdim, batch_pixels, k, seed + p):
             _catch_convergence(model.partial_fit, np.clip(batch, 0.0, None))
             n_seen += len(batch) if p == 0 else 0
-    info = {"n_fit_pixels": n_seen,"solver": "mu (MiniBatchNMF.partial_fit, Frobenius loss)", "init": model.init,
-            "passes": passes, "n_steps": int(model.n_steps_)}
+    info = {
+        "n_fit_pixels": n_seen,
+        "solver": "mu (MiniBatchNMF.partial_fit, Frobenius loss)",
+        "init": model.init,
+        "passes": passes,
+        "n_steps": int(model.n_steps_),
+    }
     return model.components_, None, info
 
 
@@ -148,8 +185,9 @@ def _nmf_abundance(x: np.ndarray, *, spectra: np.ndarray) -> np.ndarray:
     return out
 
 
-def _normalise_components(method: str, comps: np.ndarray, axis: np.ndarray,
-                          info: dict) -> tuple[np.ndarray, np.ndarray, str]:
+def _normalise_components(
+    method: str, comps: np.ndarray, axis: np.ndarray, info: dict
+) -> tuple[np.ndarray, np.ndarray, str]:
     """Scale, sign and order the components; return (spectra, order, rule)."""
     comps = np.array(comps, dtype=np.float64)
     if method == "pca":
@@ -235,25 +273,43 @@ def decompose(
     """
     arr, sdim = check_spectral(cube)
     _check_method(method, n_components, arr.sizes[sdim])
-    params = {"method": method, "n_components": int(n_components), "sample_pixels": sample_pixels,
-              "seed": seed, "init": init, "solver": solver, "max_iter": max_iter,
-              "incremental": incremental, "batch_pixels": batch_pixels,
-              "mask": None if mask is None else "given"}
+    params = {
+        "method": method,
+        "n_components": int(n_components),
+        "sample_pixels": sample_pixels,
+        "seed": seed,
+        "init": init,
+        "solver": solver,
+        "max_iter": max_iter,
+        "incremental": incremental,
+        "batch_pixels": batch_pixels,
+        "mask": None if mask is None else "given",
+    }
     arr = apply_mask(arr, mask)
     axis = np.asarray(arr[sdim].values, dtype=float)
     opts = {"seed": seed, "init": init, "solver": solver, "max_iter": max_iter}
-    sample = _valid_sample(arr, sdim, sample_pixels, seed)
+    skip_sample = incremental and method == "pca"  # the sample only serves NMF's shares
+    sample = (
+        np.empty((0, arr.sizes[sdim]))
+        if skip_sample
+        else _valid_sample(arr, sdim, sample_pixels, seed)
+    )
     if incremental:
-        comps, mean, info = _fit_incremental(arr, sdim, method, n_components,
-                                             batch_pixels=batch_pixels, **opts)
+        comps, mean, info = _fit_incremental(
+            arr, sdim, method, n_components, batch_pixels=batch_pixels, **opts
+        )
         fit_desc = "incremental (partial_fit over spatial chunks)"
     else:
         comps, mean, info = _fit_sample(sample, method, n_components, **opts)
         fit_desc = f"random sample of {len(sample)} valid pixels (seed {seed})"
     spectra, order, rule = _normalise_components(method, comps, axis, info)
 
-    attrs: dict[str, Any] = {"method": method, "fit": fit_desc, "n_fit_pixels": len(sample),
-                             "component_order": rule}
+    attrs: dict[str, Any] = {
+        "method": method,
+        "fit": fit_desc,
+        "n_fit_pixels": len(sample),
+        "component_order": rule,
+    }
     attrs.update({k: v for k, v in info.items() if k != "explained_variance"})
     if method == "pca":
         ev = np.asarray(info["explained_variance"])[order]
@@ -265,11 +321,17 @@ def decompose(
         total = clipped.sum()
         ev = w.sum(axis=0) * spectra.sum(axis=1) / total if total > 0 else np.full(len(w), np.nan)
         resid = np.linalg.norm(clipped - w @ spectra) / max(np.linalg.norm(clipped), 1e-300)
-        ev_def = ("share of the summed intensity of the sampled pixels carried by each component "
-                  "(sum of abundance x spectrum over the sample / summed intensity)")
-        attrs.update({"negative_policy": NEGATIVE_POLICY,
-                      "negative_fraction": float(np.mean(sample < 0)) if sample.size else 0.0,
-                      "reconstruction_error_rel": float(resid)})
+        ev_def = (
+            "share of the summed intensity of the sampled pixels carried by each component "
+            "(sum of abundance x spectrum over the sample / summed intensity)"
+        )
+        attrs.update(
+            {
+                "negative_policy": NEGATIVE_POLICY,
+                "negative_fraction": float(np.mean(sample < 0)) if sample.size else 0.0,
+                "reconstruction_error_rel": float(resid),
+            }
+        )
         fn, kw = _nmf_abundance, {"spectra": spectra}
     attrs["explained_variance_definition"] = ev_def
     attrs = _result_attrs(cube, "decompose", params, n_fit_pixels=attrs["n_fit_pixels"]) | attrs
@@ -282,26 +344,54 @@ def decompose(
     s_units = arr[sdim].attrs.get("units", "")
     ds = xr.Dataset(
         {
-            "component_spectrum": (("component", sdim), spectra, {
-                "units": "1",
-                "long_name": ("component emission spectrum (maximum 1)" if method == "nmf"
-                              else "principal component loading (unit norm)")}),
-            "component_abundance": (abundance.dims, abundance.data, {
-                "units": units,
-                "long_name": ("component amplitude (height of its spectrum)" if method == "nmf"
-                              else "principal component score")}),
-            "explained_variance": (("component",), np.asarray(ev, dtype=float),
-                                   {"units": "1", "long_name": ev_def}),
-            "component_peak": (("component",), peak_positions(spectra, axis), {
-                "units": s_units, "long_name": f"{sdim} of the component spectrum's maximum"}),
+            "component_spectrum": (
+                ("component", sdim),
+                spectra,
+                {
+                    "units": "1",
+                    "long_name": (
+                        "component emission spectrum (maximum 1)"
+                        if method == "nmf"
+                        else "principal component loading (unit norm)"
+                    ),
+                },
+            ),
+            "component_abundance": (
+                abundance.dims,
+                abundance.data,
+                {
+                    "units": units,
+                    "long_name": (
+                        "component amplitude (height of its spectrum)"
+                        if method == "nmf"
+                        else "principal component score"
+                    ),
+                },
+            ),
+            "explained_variance": (
+                ("component",),
+                np.asarray(ev, dtype=float),
+                {"units": "1", "long_name": ev_def},
+            ),
+            "component_peak": (
+                ("component",),
+                peak_positions(spectra, axis),
+                {"units": s_units, "long_name": f"{sdim} of the component spectrum's maximum"},
+            ),
         },
-        coords={"component": ("component", comp, {"long_name": "component index"}),
-                sdim: arr[sdim], **{d: arr[d] for d in abundance.dims if d in arr.coords}},
+        coords={
+            "component": ("component", comp, {"long_name": "component index"}),
+            sdim: arr[sdim],
+            **{d: arr[d] for d in abundance.dims if d in arr.coords},
+        },
         attrs=attrs,
     )
     if mean is not None:
-        ds["mean_spectrum"] = ((sdim,), np.asarray(mean, dtype=float),
-                               {"units": units, "long_name": "mean spectrum of the fitted pixels"})
+        ds["mean_spectrum"] = (
+            (sdim,),
+            np.asarray(mean, dtype=float),
+            {"units": units, "long_name": "mean spectrum of the fitted pixels"},
+        )
     return ds
 
 
@@ -352,8 +442,11 @@ def component_count_curve(
         _, _, info = _fit_sample(x, method, ks[-1], **opts)
         cum = np.cumsum(info["explained_variance"])[np.asarray(ks) - 1]
         err = np.sqrt(np.clip(1.0 - cum, 0.0, None))
-        data["explained_variance_cumulative"] = (("n_components",), cum, {
-            "units": "1", "long_name": "cumulative explained-variance ratio"})
+        data["explained_variance_cumulative"] = (
+            ("n_components",),
+            cum,
+            {"units": "1", "long_name": "cumulative explained-variance ratio"},
+        )
         definition = "||Xc - Xc_hat||_F / ||Xc||_F of the mean-centred sample"
     else:
         xc = np.clip(x, 0.0, None)
@@ -366,8 +459,11 @@ def component_count_curve(
             err.append(model.reconstruction_err_ / norm)
         err = np.asarray(err)
         definition = "||X - WH||_F / ||X||_F of the sample (X clipped at 0)"
-    data["reconstruction_error"] = (("n_components",), np.asarray(err, dtype=float),
-                                    {"units": "1", "long_name": definition})
+    data["reconstruction_error"] = (
+        ("n_components",),
+        np.asarray(err, dtype=float),
+        {"units": "1", "long_name": definition},
+    )
     attrs = {"method": method, "n_fit_pixels": len(x), "seed": seed}
     if method == "nmf":
         attrs["not_converged"] = not_converged  # counts that hit max_iter (recorded, not warned)

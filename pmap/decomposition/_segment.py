@@ -65,8 +65,9 @@ def _signal_rows(x: np.ndarray, min_snr: float | None) -> tuple[np.ndarray, np.n
     return signal, xs
 
 
-def _cube_features(x: np.ndarray, *, axis: np.ndarray, with_intensity: bool,
-                   min_snr: float | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _cube_features(
+    x: np.ndarray, *, axis: np.ndarray, with_intensity: bool, min_snr: float | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     signal, xs = _signal_rows(x, min_snr)
     total = xs.sum(axis=1)
     norm = np.linalg.norm(xs, axis=1)
@@ -100,15 +101,20 @@ def signal_mask(cube: xr.DataArray, *, min_snr: float | None = 5.0) -> xr.DataAr
     :func:`segment` to apply the same rule to abundance or parameter features.
     """
     arr, core = check_spectral(cube)
-    out = map_pixels(_signal_core, arr, core, out_core=None, dtype=bool,
-                     kwargs={"min_snr": min_snr})
-    out.attrs = {"long_name": "pixel has signal", "units": "1",
-                 "rule": f"channel sum > {min_snr} x noise of the sum" if min_snr else "finite, not 0"}
+    out = map_pixels(
+        _signal_core, arr, core, out_core=None, dtype=bool, kwargs={"min_snr": min_snr}
+    )
+    out.attrs = {
+        "long_name": "pixel has signal",
+        "units": "1",
+        "rule": f"channel sum > {min_snr} x noise of the sum" if min_snr else "finite, not 0",
+    }
     return out.rename("signal")
 
 
-def _map_features(x: np.ndarray, *, weights: np.ndarray | None, order_index: int,
-                  positive: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _map_features(
+    x: np.ndarray, *, weights: np.ndarray | None, order_index: int, positive: bool
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     ok = finite_rows(x)
     xs = np.where(ok[:, None], x, 0.0)
     signal = ok
@@ -124,8 +130,16 @@ def _map_features(x: np.ndarray, *, weights: np.ndarray | None, order_index: int
     return xs, signal, prop
 
 
-def _predict(x: np.ndarray, *, transform, tkw: dict, mu: np.ndarray, sd: np.ndarray, model,
-             relabel: np.ndarray) -> np.ndarray:
+def _predict(
+    x: np.ndarray,
+    *,
+    transform,
+    tkw: dict,
+    mu: np.ndarray,
+    sd: np.ndarray,
+    model,
+    relabel: np.ndarray,
+) -> np.ndarray:
     feats, signal, _ = transform(x, **tkw)
     out = np.full(len(x), -1, dtype=np.int32)
     if signal.any():
@@ -139,8 +153,9 @@ def _predict(x: np.ndarray, *, transform, tkw: dict, mu: np.ndarray, sd: np.ndar
 def _parameter_array(ds: xr.Dataset, variables: Sequence[str] | None) -> tuple[xr.DataArray, list]:
     if not isinstance(ds, xr.Dataset):
         raise StepError("feature_space='parameters' needs an xarray Dataset of maps")
-    names = list(variables) if variables else [v for v in ds.data_vars
-                                                if {"y", "x"} <= set(ds[v].dims)]
+    names = (
+        list(variables) if variables else [v for v in ds.data_vars if {"y", "x"} <= set(ds[v].dims)]
+    )
     if not names:
         raise StepError("no parameter maps with y and x dims to segment on")
     parts, labels = [], []
@@ -162,8 +177,9 @@ def _parameter_array(ds: xr.Dataset, variables: Sequence[str] | None) -> tuple[x
             labels.append(name)
     lib = da if any(isinstance(p, da.Array) for p in parts) else np
     data = lib.concatenate(parts, axis=0)
-    arr = xr.DataArray(data, dims=("feature", "y", "x"),
-                       coords={"feature": labels, "y": ds["y"], "x": ds["x"]})
+    arr = xr.DataArray(
+        data, dims=("feature", "y", "x"), coords={"feature": labels, "y": ds["y"], "x": ds["x"]}
+    )
     return arr.transpose("y", "x", "feature"), names
 
 
@@ -172,8 +188,10 @@ def _abundance_array(features: Any) -> tuple[xr.DataArray, np.ndarray | None, bo
     method = None
     if isinstance(features, xr.Dataset):
         if "component_abundance" not in features:
-            raise StepError("feature_space='abundance' needs a Dataset with component_abundance "
-                            "(from pmap.decompose) or a DataArray with a component dim")
+            raise StepError(
+                "feature_space='abundance' needs a Dataset with component_abundance "
+                "(from pmap.decompose) or a DataArray with a component dim"
+            )
         method = features.attrs.get("method")
         if "component_spectrum" in features:
             spectra = features["component_spectrum"]
@@ -183,8 +201,9 @@ def _abundance_array(features: Any) -> tuple[xr.DataArray, np.ndarray | None, bo
     weights = None
     if spectra is not None and method == "nmf":
         sdim = [d for d in spectra.dims if d != "component"][0]
-        weights = centroid_of(np.asarray(spectra.values, dtype=float),
-                              np.asarray(spectra[sdim].values, dtype=float))
+        weights = centroid_of(
+            np.asarray(spectra.values, dtype=float), np.asarray(spectra[sdim].values, dtype=float)
+        )
     return features, weights, method in (None, "nmf")
 
 
@@ -195,14 +214,25 @@ def _feature_space(features, space, *, variables, min_snr, order_by):
         if order_by not in (None, "centroid"):
             raise StepError(f"order_by for spectra must be 'centroid', got {order_by!r}")
         units = arr[core].attrs.get("units", "")
-        kw = {"axis": np.asarray(arr[core].values, dtype=float),
-              "with_intensity": space == "shape+intensity", "min_snr": min_snr}
+        kw = {
+            "axis": np.asarray(arr[core].values, dtype=float),
+            "with_intensity": space == "shape+intensity",
+            "min_snr": min_snr,
+        }
         return arr, core, _cube_features, kw, (f"spectral centroid ({core})", units)
     if space == "abundance":
         arr, weights, positive = _abundance_array(features)
         arr, core = check_pixels(arr, "component", "abundance")
         if order_by not in (None, "centroid") or weights is None:
-            idx = 0 if order_by in (None, "centroid") else int(order_by)
+            if order_by in (None, "centroid"):
+                idx = 0
+            elif str(order_by).isdigit() and int(order_by) < arr.sizes["component"]:
+                idx = int(order_by)
+            else:
+                raise StepError(
+                    f"order_by for abundances must be 'centroid' or a component "
+                    f"index, got {order_by!r}"
+                )
             kw = {"weights": None, "order_index": idx, "positive": positive}
             return arr, core, _map_features, kw, (f"abundance of component {idx}", "")
         kw = {"weights": weights, "order_index": 0, "positive": positive}
@@ -230,7 +260,7 @@ def _standardise(feats: np.ndarray, space: str, intensity_weight: float):
             shape_var = feats[:, :-1].var(axis=0).sum()
             s = feats[:, -1].std()
             mu[-1] = feats[:, -1].mean()
-            sd[-1] = (s if s > 0 else 1.0) / (intensity_weight * np.sqrt(shape_var) or 1.0)
+            sd[-1] = (s if s > 0 else 1.0) / (intensity_weight * (np.sqrt(shape_var) or 1.0))
         return mu, sd
     sd = feats.std(axis=0)
     return feats.mean(axis=0), np.where(sd > 0, sd, 1.0)
@@ -239,8 +269,9 @@ def _standardise(feats: np.ndarray, space: str, intensity_weight: float):
 # ---------------------------------------------------------------- clustering
 
 
-def _cluster_model(method: str, k: int, n: int, n_features: int, seed: int,
-                   covariance_type: str | None):
+def _cluster_model(
+    method: str, k: int, n: int, n_features: int, seed: int, covariance_type: str | None
+):
     if method == "kmeans":
         from sklearn.cluster import KMeans, MiniBatchKMeans
 
@@ -275,8 +306,10 @@ def _choose_k(z: np.ndarray, method: str, ks: list[int], seed: int, cov: str | N
         raise StepError("no candidate number of regions could be scored")
     if method == "kmeans":
         best = ks[int(np.nanargmax(arr))]
-        rule = (f"largest mean silhouette (Rousseeuw, J. Comput. Appl. Math. 20, 53 (1987)) "
-                f"on up to {SILHOUETTE_PIXELS} sampled pixels")
+        rule = (
+            f"largest mean silhouette (Rousseeuw, J. Comput. Appl. Math. 20, 53 (1987)) "
+            f"on up to {SILHOUETTE_PIXELS} sampled pixels"
+        )
     else:
         best = ks[int(np.nanargmin(arr))]
         rule = "smallest Bayesian information criterion (Schwarz, Ann. Stat. 6, 461 (1978))"
@@ -347,10 +380,14 @@ def _clean(region: xr.DataArray, min_px: int) -> xr.DataArray:
     if isinstance(region.data, da.Array):
         region = region.chunk({"y": -1, "x": -1})
     return xr.apply_ufunc(
-        lambda a: np.stack([relabel_islands(s, min_px) for s in a.reshape(-1, *a.shape[-2:])])
-        .reshape(a.shape),
-        region, input_core_dims=[["y", "x"]], output_core_dims=[["y", "x"]],
-        dask="parallelized", output_dtypes=[region.dtype],
+        lambda a: np.stack(
+            [relabel_islands(s, min_px) for s in a.reshape(-1, *a.shape[-2:])]
+        ).reshape(a.shape),
+        region,
+        input_core_dims=[["y", "x"]],
+        output_core_dims=[["y", "x"]],
+        dask="parallelized",
+        output_dtypes=[region.dtype],
     ).transpose(*region.dims)
 
 
@@ -446,13 +483,25 @@ def segment(
         raise StepError(f"n_regions must be a positive integer or 'auto', got {n_regions!r}")
     if min_region_px < 0:
         raise StepError(f"min_region_px must be >= 0, got {min_region_px}")
-    params = {"n_regions": n_regions, "method": method, "feature_space": feature_space,
-              "min_region_px": min_region_px, "seed": seed, "sample_pixels": sample_pixels,
-              "k_range": list(k_range), "variables": list(variables) if variables else None,
-              "min_snr": min_snr, "order_by": order_by, "intensity_weight": intensity_weight,
-              "covariance_type": covariance_type}
+    if not intensity_weight > 0:
+        raise StepError(f"intensity_weight must be > 0, got {intensity_weight}")
+    params = {
+        "n_regions": n_regions,
+        "method": method,
+        "feature_space": feature_space,
+        "min_region_px": min_region_px,
+        "seed": seed,
+        "sample_pixels": sample_pixels,
+        "k_range": list(k_range),
+        "variables": list(variables) if variables else None,
+        "min_snr": min_snr,
+        "order_by": order_by,
+        "intensity_weight": intensity_weight,
+        "covariance_type": covariance_type,
+    }
     arr, core, transform, tkw, (prop_name, prop_units) = _feature_space(
-        features, feature_space, variables=variables, min_snr=min_snr, order_by=order_by)
+        features, feature_space, variables=variables, min_snr=min_snr, order_by=order_by
+    )
     arr = apply_mask(arr, mask)
 
     raw = gather(arr, core, sample_positions(arr, core, sample_pixels, seed))
@@ -463,8 +512,10 @@ def segment(
     else:
         ks = [int(n_regions)]
     if not ks or len(feats) < max(ks):
-        raise StepError(f"only {len(feats)} sampled pixels with signal: too few to find "
-                        f"{ks[-1] if ks else 'any'} regions (raise sample_pixels or lower min_snr)")
+        raise StepError(
+            f"only {len(feats)} sampled pixels with signal: too few to find "
+            f"{ks[-1] if ks else 'any'} regions (raise sample_pixels or lower min_snr)"
+        )
     mu, sd = _standardise(feats, feature_space, intensity_weight)
     z = (feats - mu) / sd
     if n_regions == "auto":
@@ -481,28 +532,56 @@ def segment(
     relabel = np.empty(k, dtype=np.int32)
     relabel[order] = np.arange(k, dtype=np.int32)
 
-    region = map_pixels(_predict, arr, core, out_core=None, dtype=np.int32, kwargs={
-        "transform": transform, "tkw": tkw, "mu": mu, "sd": sd, "model": model,
-        "relabel": relabel})
+    region = map_pixels(
+        _predict,
+        arr,
+        core,
+        out_core=None,
+        dtype=np.int32,
+        kwargs={
+            "transform": transform,
+            "tkw": tkw,
+            "mu": mu,
+            "sd": sd,
+            "model": model,
+            "relabel": relabel,
+        },
+    )
     if min_region_px > 1:
         region = _clean(region, int(min_region_px))
     legend = {"-1": "no signal, NaN or masked"}
     for j in range(k):
         src = order[j]
-        legend[str(j)] = (f"mean {prop_name} {means[src]:.6g} {prop_units}".rstrip()
-                          + f"; {counts[src]} of {len(z)} fitted pixels")
-    base = {PROVENANCE_ATTR: features.attrs[PROVENANCE_ATTR]} if PROVENANCE_ATTR in features.attrs else {}
+        legend[str(j)] = (
+            f"mean {prop_name} {means[src]:.6g} {prop_units}".rstrip()
+            + f"; {counts[src]} of {len(z)} fitted pixels"
+        )
+    base = (
+        {PROVENANCE_ATTR: features.attrs[PROVENANCE_ATTR]}
+        if PROVENANCE_ATTR in features.attrs
+        else {}
+    )
     attrs = with_step(base, "segment", jsonable_params(params), k=k, rule=rule)
-    attrs.update({
-        "long_name": "region label", "units": "1",
-        "flag_values": list(range(-1, k)),
-        "flag_meanings": " ".join(["no_signal"] + [f"region_{j}" for j in range(k)]),
-        "method": method, "k": k, "rule": rule, "k_candidates": ks if scores else [k],
-        "scores": scores, "legend": json.dumps(legend), "feature_space": feature_space,
-        "order_by": prop_name, "seed": seed, "n_fit_pixels": len(z),
-        "min_snr": "none" if min_snr is None else float(min_snr),
-        "min_region_px": int(min_region_px),
-    })
+    attrs.update(
+        {
+            "long_name": "region label",
+            "units": "1",
+            "flag_values": list(range(-1, k)),
+            "flag_meanings": " ".join(["no_signal"] + [f"region_{j}" for j in range(k)]),
+            "method": method,
+            "k": k,
+            "rule": rule,
+            "k_candidates": ks if scores else [k],
+            "scores": scores,
+            "legend": json.dumps(legend),
+            "feature_space": feature_space,
+            "order_by": prop_name,
+            "seed": seed,
+            "n_fit_pixels": len(z),
+            "min_snr": "none" if min_snr is None else float(min_snr),
+            "min_region_px": int(min_region_px),
+        }
+    )
     region.attrs = attrs
     region.name = "region"
     return region

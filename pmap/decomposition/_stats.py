@@ -70,12 +70,16 @@ def _spectra_stats(cube: xr.DataArray, lab: np.ndarray, k: int, ddof: int):
     if pix != ["y", "x"]:
         raise StepError(f"cube must have dims (y, x, {sdim}) to match the region map, has {pix}")
     if arr.shape[:2] != lab.shape:
-        raise StepError(f"cube (y, x) shape {arr.shape[:2]} differs from the region map {lab.shape}")
+        raise StepError(
+            f"cube (y, x) shape {arr.shape[:2]} differs from the region map {lab.shape}"
+        )
     data = arr.data
     if isinstance(data, da.Array):
         labd = da.from_array(lab, chunks=data.chunks[:2])
-        parts = [dask.delayed(_block_moments)(xb, lb, k) for xb, lb in
-                 zip(data.to_delayed()[..., 0].ravel(), labd.to_delayed().ravel())]
+        parts = [
+            dask.delayed(_block_moments)(xb, lb, k)
+            for xb, lb in zip(data.to_delayed()[..., 0].ravel(), labd.to_delayed().ravel())
+        ]
         parts = dask.compute(*parts)
     else:
         parts = [_block_moments(np.asarray(data), lab, k)]
@@ -139,25 +143,35 @@ def region_statistics(
     in_um = y_units == "um" and x_units == "um"
     dy = _spacing(region["y"]) if "y" in region.coords else 1.0
     dx = _spacing(region["x"]) if "x" in region.coords else 1.0
-    pixel_area = dy * dx if in_um else (dy if y_units == "pixel" else 1.0) * (
-        dx if x_units == "pixel" else 1.0)
-    area_name, area_units = ("region_area_um2", "um2") if in_um else ("region_area_pixel2", "pixel2")
+    pixel_area = (
+        dy * dx
+        if in_um
+        else (dy if y_units == "pixel" else 1.0) * (dx if x_units == "pixel" else 1.0)
+    )
+    area_name, area_units = (
+        ("region_area_um2", "um2") if in_um else ("region_area_pixel2", "pixel2")
+    )
     coords = {"region": ("region", np.arange(k), {"long_name": "region label"})}
     ds = xr.Dataset(coords=coords)
     ds["region_pixel_count"] = ("region", counts, {"units": "1", "long_name": "pixels in region"})
     ds[area_name] = ("region", counts * pixel_area, {"units": area_units, "long_name": "area"})
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = counts / n_signal if n_signal else np.full(k, np.nan)
-    ds["region_fraction"] = ("region", frac, {
-        "units": "1", "long_name": "fraction of the pixels with signal"})
+    ds["region_fraction"] = (
+        "region",
+        frac,
+        {"units": "1", "long_name": "fraction of the pixels with signal"},
+    )
 
     flat_lab = lab.ravel()
-    for name, var in (maps.data_vars.items() if maps is not None else ()):
+    for name, var in maps.data_vars.items() if maps is not None else ():
         if not {"y", "x"} <= set(var.dims) or var.dtype.kind not in "iufb":
             continue
         var = var.transpose(..., "y", "x")
         if var.shape[-2:] != lab.shape:
-            raise StepError(f"map {name!r} has (y, x) shape {var.shape[-2:]}, region map {lab.shape}")
+            raise StepError(
+                f"map {name!r} has (y, x) shape {var.shape[-2:]}, region map {lab.shape}"
+            )
         lead = var.dims[:-2]
         vals = np.asarray(var.values, dtype=np.float64).reshape(-1, lab.size)
         means, stds = [], []
@@ -175,24 +189,46 @@ def region_statistics(
         lname = var.attrs.get("long_name", name)
         dims = ("region", *lead)
         extra = {d: var[d] for d in lead if d in var.coords}
-        ds[f"{name}_mean"] = xr.DataArray(mean_arr, dims=dims, coords=extra,
-                                          attrs={"units": units, "long_name": f"mean {lname}"})
-        ds[f"{name}_std"] = xr.DataArray(std_arr, dims=dims, coords=extra, attrs={
-            "units": units, "long_name": f"standard deviation of {lname} (ddof={ddof})"})
+        ds[f"{name}_mean"] = xr.DataArray(
+            mean_arr, dims=dims, coords=extra, attrs={"units": units, "long_name": f"mean {lname}"}
+        )
+        ds[f"{name}_std"] = xr.DataArray(
+            std_arr,
+            dims=dims,
+            coords=extra,
+            attrs={"units": units, "long_name": f"standard deviation of {lname} (ddof={ddof})"},
+        )
 
     if cube is not None:
         arr, sdim, mean, std, _ = _spectra_stats(cube, lab, k, ddof)
         units = arr.attrs.get("units", "")
         ds = ds.assign_coords({sdim: arr[sdim]})
-        ds["region_mean_spectrum"] = (("region", sdim), mean, {
-            "units": units, "long_name": "mean spectrum of the region"})
-        ds["region_std_spectrum"] = (("region", sdim), std, {
-            "units": units, "long_name": f"standard deviation of the region's spectra (ddof={ddof})"})
-    base = {PROVENANCE_ATTR: region.attrs[PROVENANCE_ATTR]} if PROVENANCE_ATTR in region.attrs else {}
+        ds["region_mean_spectrum"] = (
+            ("region", sdim),
+            mean,
+            {"units": units, "long_name": "mean spectrum of the region"},
+        )
+        ds["region_std_spectrum"] = (
+            ("region", sdim),
+            std,
+            {
+                "units": units,
+                "long_name": f"standard deviation of the region's spectra (ddof={ddof})",
+            },
+        )
+    base = (
+        {PROVENANCE_ATTR: region.attrs[PROVENANCE_ATTR]} if PROVENANCE_ATTR in region.attrs else {}
+    )
     ds.attrs = with_step(base, "region_statistics", {"ddof": ddof}, k=k)
-    ds.attrs.update({"pixel_area": pixel_area, "pixel_area_units": area_units, "ddof": ddof,
-                     "n_signal_pixels": n_signal,
-                     "n_no_signal_pixels": int(lab.size - n_signal)})
+    ds.attrs.update(
+        {
+            "pixel_area": pixel_area,
+            "pixel_area_units": area_units,
+            "ddof": ddof,
+            "n_signal_pixels": n_signal,
+            "n_no_signal_pixels": int(lab.size - n_signal),
+        }
+    )
     if "legend" in region.attrs:
         ds.attrs["legend"] = region.attrs["legend"]
     return ds

@@ -16,25 +16,28 @@ def apply_per_spectrum(
     n_out: int,
     *extra: xr.DataArray,
     out_dim: str = "fit_output",
+    keep_float32: bool = False,
 ) -> xr.DataArray:
     """Lazily apply a batched row function to every spectrum of a cube.
 
-    ``func(Y, *extra_1d)`` gets ``Y`` shaped (n_spectra, n_channels) float64 and
-    each extra array as a 1-D (n_channels,) vector, and returns (n_spectra, n_out).
-    The result has dims (*stack, y, x, out_dim). Computes nothing.
+    ``func(Y, *extra_1d)`` gets ``Y`` shaped (n_spectra, n_channels) float64 (or
+    float32 as stored when ``keep_float32``, saving a float64 copy of the chunk)
+    and each extra array as a 1-D (n_channels,) vector, and returns
+    (n_spectra, n_out). The result has dims (*stack, y, x, out_dim). Computes nothing.
     """
     sdim = spectral_dim(cube)
     n_ch = cube.sizes[sdim]
 
     def block(y, *ex):
         shp = y.shape[:-1]
-        rows = np.ascontiguousarray(y.reshape(-1, y.shape[-1]), dtype=np.float64)
+        dt = np.float32 if keep_float32 and y.dtype == np.float32 else np.float64
+        rows = np.ascontiguousarray(y.reshape(-1, y.shape[-1]), dtype=dt)
         vecs = [np.asarray(e, dtype=np.float64).reshape(-1, n_ch)[0] for e in ex]
         if rows.shape[0] == 0:
             return np.empty((*shp, n_out))
         return func(rows, *vecs).reshape(*shp, n_out)
 
-    return xr.apply_ufunc(
+    out = xr.apply_ufunc(
         block,
         cube,
         *extra,
@@ -45,6 +48,7 @@ def apply_per_spectrum(
         dask_gufunc_kwargs={"output_sizes": {out_dim: n_out}},
         keep_attrs=False,
     )
+    return out.assign_coords({d: cube[d] for d in out.dims if d in cube.coords})
 
 
 def parabolic_vertex(x: np.ndarray, Y: np.ndarray, imax: np.ndarray) -> np.ndarray:
@@ -93,10 +97,12 @@ def smooth3(Y: np.ndarray) -> np.ndarray:
     return out
 
 
-def robust_noise(Y: np.ndarray) -> np.ndarray:
-    """White-noise σ per row from the MAD of first differences (1.4826·MAD/√2)."""
-    if Y.shape[-1] < 3:
+def diff_noise(Y: np.ndarray) -> np.ndarray:
+    """White-noise σ per row from second differences: var(Δ²y) = 6σ² for white noise.
+
+    Smooth bands add little to Δ²y when they span many channels; O(n) per row.
+    """
+    if Y.shape[-1] < 4:
         return np.zeros(Y.shape[0])
-    d = np.diff(Y, axis=-1)
-    med = np.median(d, axis=-1, keepdims=True)
-    return 1.4826 * np.median(np.abs(d - med), axis=-1) / np.sqrt(2.0)
+    d2 = Y[:, 2:] - 2.0 * Y[:, 1:-1] + Y[:, :-2]
+    return np.sqrt(np.mean(d2 * d2, axis=-1) / 6.0)

@@ -94,14 +94,18 @@ def spectral_descriptors(cube, *, window_ev=None, ratio_windows=None) -> xr.Data
         if len(ratio_windows) != 2:
             raise StepError("ratio_windows must be two (low, high) energy windows in eV")
         rwin = (_window_index(x, ratio_windows[0]), _window_index(x, ratio_windows[1]))
-    arr = apply_per_spectrum(cube, lambda Y: _descriptor_rows(Y, x, win, rwin), 5,
-                             out_dim="descriptor")
+    arr = apply_per_spectrum(
+        cube, lambda Y: _descriptor_rows(Y, x, win, rwin), 5, out_dim="descriptor"
+    )
     unit = cube.attrs.get("units", "1")
     spec = [
         ("max_energy", "eV", "energy of the spectral maximum (parabolic interpolation)"),
         ("centroid_energy", "eV", "intensity-weighted mean energy"),
-        ("integrated_intensity", f"{unit} eV" if unit not in ("1", "arbitrary") else unit,
-         "integrated intensity"),
+        (
+            "integrated_intensity",
+            f"{unit} eV" if unit not in ("1", "arbitrary") else unit,
+            "integrated intensity",
+        ),
         ("fwhm_interp", "eV", "full width at half maximum (interpolated)"),
         ("window_ratio", "1", "ratio of integrated intensities in two energy windows"),
     ]

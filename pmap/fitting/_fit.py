@@ -7,7 +7,6 @@ import warnings
 from dataclasses import dataclass
 
 import dask.array as da
-import numba
 import numpy as np
 import xarray as xr
 
@@ -17,7 +16,7 @@ from ..errors import PmapNotice, StepError
 from ..provenance import with_step
 from ..steps import register_step
 from . import _kernels as K
-from ._common import apply_per_spectrum, fwhm_at_half, parabolic_vertex, robust_noise, smooth3
+from ._common import apply_per_spectrum, fwhm_at_half, smooth3
 from ._lineshapes import (
     FWHM_TO_SIGMA,
     _voigt0,
@@ -46,13 +45,26 @@ SHAPE_NAMES = {
 _SHAPE_BOUNDS = {"voigt": (0.0, 0.99), "pseudo_voigt": (0.0, 1.0), "split_gaussian": (-0.9, 0.9)}
 _SHAPE_START = {"voigt": 0.3, "pseudo_voigt": 0.5, "split_gaussian": 0.0}
 _ALIASES = {
-    "center": "center", "centre": "center", "energy": "center", "center_ev": "center",
-    "fwhm": "fwhm", "width": "fwhm", "fwhm_ev": "fwhm", "area": "area", "shape": "shape",
-    "offset": "offset", "background": "offset", "slope": "slope",
-    "lorentz_fraction": "shape", "eta": "shape", "asymmetry": "shape",
+    "center": "center",
+    "centre": "center",
+    "energy": "center",
+    "center_ev": "center",
+    "fwhm": "fwhm",
+    "width": "fwhm",
+    "fwhm_ev": "fwhm",
+    "area": "area",
+    "shape": "shape",
+    "offset": "offset",
+    "background": "offset",
+    "slope": "slope",
+    "lorentz_fraction": "shape",
+    "eta": "shape",
+    "asymmetry": "shape",
 }
 _BACKGROUNDS = {"none": 0, "constant": 1, "linear": 2}
 _PEAK_FIELDS = 10  # energy, err, fwhm, err, area, err, height, err, shape, err
+# relative cost / step tolerances, as MINPACK's defaults used by scipy curve_fit
+_FTOL = _XTOL = 1.49012e-8
 _N_TAIL = 7  # offset, err, slope, err, status, chi2_red, n_iter
 
 
@@ -81,6 +93,18 @@ class _Spec:
         return len(self.kind)
 
 
+def _spatial_chunks(cube) -> dict | None:
+    """The cube's own spatial chunk sizes (dask-backed), so validation does not rechunk it.
+
+    A rechunk would copy the whole cube once and change the parallel decomposition
+    the caller chose; None (default chunking) for in-memory cubes.
+    """
+    if not isinstance(getattr(cube, "data", None), da.Array):
+        return None
+    sizes = cube.chunksizes
+    return {d: max(sizes[d]) for d in ("y", "x") if d in sizes}
+
+
 def _canon(key: str) -> str:
     k = _ALIASES.get(str(key).lower())
     if k is None:
@@ -92,8 +116,10 @@ def _canon(key: str) -> str:
 
 
 def _per_peak(value, K: int, what: str) -> list:
-    if isinstance(value, (list, tuple)) and len(value) == K and not (
-        what == "bounds" and K == 2 and all(np.isscalar(v) for v in value)
+    if (
+        isinstance(value, (list, tuple))
+        and len(value) == K
+        and not (what == "bounds" and K == 2 and all(np.isscalar(v) for v in value))
     ):
         return list(value)
     return [value] * K
@@ -198,21 +224,38 @@ def _build_spec(x, *, model, peaks, background, bounds, fixed, shared, init) -> 
             raise StepError(f"shared parameter {s!r} is fixed in some peaks only")
     if nfree == 0:
         raise StepError("every parameter is fixed: nothing to fit")
-    return _Spec(model, code, peaks, nbg, npp, kind, peak, free_idx, nfree, lo, hi, flag,
-                 fixed_v, start, x, float(0.5 * (x[0] + x[-1])), init_mode)
+    return _Spec(
+        model,
+        code,
+        peaks,
+        nbg,
+        npp,
+        kind,
+        peak,
+        free_idx,
+        nfree,
+        lo,
+        hi,
+        flag,
+        fixed_v,
+        start,
+        x,
+        float(0.5 * (x[0] + x[-1])),
+        init_mode,
+    )
 
 
 def _quick_desc(Y, x):
-    """Background (5th percentile), maximum energy, height above it, FWHM, for starting values."""
-    Ys = smooth3(Y)
-    b = np.percentile(Y, 5, axis=1)
-    imax = np.argmax(Ys, axis=1)
-    rows = np.arange(Y.shape[0])
-    height = Ys[rows, imax] - b
-    e_max = parabolic_vertex(x, Ys, imax)
-    fw = fwhm_at_half(x, Ys, imax, b + 0.5 * height)
+    """Per-row descriptors (one compiled pass, see ``describe_rows``) for starting values.
+
+    Returns (finite, base, e_max, height, fwhm, noise): base = minimum of the
+    3-channel running mean, FWHM from its half-maximum crossings (a quarter of
+    the span where none), noise = white-noise σ from second differences.
+    """
+    finite, _, D = K.describe_rows(Y, x)
+    b, height, e_max, fw, noise = D.T
     fw = np.where(np.isfinite(fw) & (fw > 0), fw, 0.25 * (x[-1] - x[0]))
-    return b, e_max, height, fw
+    return finite, b, e_max, height, fw, noise
 
 
 def _area_from(height, fwhm):
@@ -230,40 +273,74 @@ def _finish_start(P0, spec):
     return np.clip(P0, spec.lo, spec.hi)
 
 
-def _run(Y, spec, P0, var_mode, gain, rn2, max_iter, n_pass=None):
-    m = Y.shape[0]
-    active = np.ones(m, dtype=bool)
-    lo = np.ascontiguousarray(np.broadcast_to(spec.lo, (m, spec.nfull)))
-    hi = np.ascontiguousarray(np.broadcast_to(spec.hi, (m, spec.nfull)))
-    npass = n_pass if n_pass is not None else (2 if var_mode == 1 else 1)
-    return K.lm_batch(Y, spec.x, spec.xref, np.ascontiguousarray(P0), active, lo, hi,
-                      spec.free_idx, spec.nfree, spec.code, spec.K, spec.nbg, var_mode,
-                      gain, rn2, npass, max_iter, 1e-10, 1e-9,
-                      4 * numba.get_num_threads())
+def _run(Y, spec, P0, var_mode, gain, rn2, max_iter, rows=None):
+    """Fit rows ``rows`` of Y (all by default) from starting values P0 (len(rows), n_full)."""
+    if rows is None:
+        rows = np.arange(Y.shape[0])
+    return K.lm_batch(
+        Y,
+        np.asarray(rows, dtype=np.int64),
+        spec.x,
+        spec.xref,
+        np.ascontiguousarray(P0, dtype=np.float64),
+        spec.lo,
+        spec.hi,
+        spec.free_idx,
+        spec.nfree,
+        spec.code,
+        spec.K,
+        spec.nbg,
+        var_mode,
+        gain,
+        rn2,
+        max_iter,
+        _FTOL,
+        _XTOL,
+    )
 
 
 def _template(mean, spec, var_mode, gain, rn2):
     """Fit the mean spectrum with K peaks (greedy: add each peak at the largest residual)."""
     x = spec.x
-    Y = mean[None, :]
-    b, e_max, height, fw = _quick_desc(Y, x)
+    Y = np.ascontiguousarray(mean[None, :], dtype=np.float64)
+    _, b, e_max, height, fw, _ = _quick_desc(Y, x)
     # unconstrained single-peak spec, then grow
     p = []
     sub = None
+    prev = np.zeros(0)
     for k in range(1, spec.K + 1):
-        sub = _build_spec(x, model=spec.model, peaks=k, background=list(_BACKGROUNDS)[spec.nbg],
-                          bounds=None, fixed=None, shared=None, init="auto")
+        sub = _build_spec(
+            x,
+            model=spec.model,
+            peaks=k,
+            background=list(_BACKGROUNDS)[spec.nbg],
+            bounds=None,
+            fixed=None,
+            shared=None,
+            init="auto",
+        )
         if k == 1:
             p = [e_max[0], fw[0], _area_from(height, fw)[0]]
             if spec.npp == 4:
                 p.append(_SHAPE_START[spec.model])
         else:
             f = np.empty(x.size)
-            K.eval_model(spec.code, x, spec.xref, np.asarray(prev), k - 1, spec.nbg, f,
-                         np.zeros((x.size, len(prev))), False)
+            K.eval_model(
+                spec.code,
+                x,
+                spec.xref,
+                np.asarray(prev),
+                k - 1,
+                spec.nbg,
+                f,
+                np.zeros((x.size, len(prev))),
+                False,
+            )
             resid = smooth3((mean - f)[None, :])[0]
             i = int(np.argmax(resid))
-            w = max(fw[0] / 2.0, 3 * float(np.min(np.diff(x))))
+            rw = fwhm_at_half(x, resid[None, :], np.array([i]), np.array([0.5 * resid[i]]))[0]
+            w = rw if np.isfinite(rw) and rw > 0 else fw[0] / 2.0
+            w = max(w, 3 * float(np.min(np.diff(x))))
             newp = [x[i], w, max(resid[i], 1e-12) * w * 1.0645]
             if spec.npp == 4:
                 newp.append(_SHAPE_START[spec.model])
@@ -280,9 +357,10 @@ def _template(mean, spec, var_mode, gain, rn2):
     return np.asarray(prev, dtype=float), float(height[0])
 
 
-def _starts(Y, spec, template, var_mode, gain, rn2):
-    m = Y.shape[0]
-    b, e_max, height, fw = _quick_desc(Y, spec.x)
+def _starts(Y, rows, desc, spec, template):
+    """Starting values (len(rows), n_full) for rows ``rows`` of Y, ``desc`` of those rows."""
+    m = rows.size
+    b, e_max, height, fw = desc
     P0 = np.zeros((m, spec.nfull))
     npp = spec.npp
     if template is not None:
@@ -307,8 +385,8 @@ def _starts(Y, spec, template, var_mode, gain, rn2):
             j = k * npp
             if given[j] and not given[j + 2]:
                 i = np.clip(np.searchsorted(spec.x, spec.start[j]), 0, spec.x.size - 1)
-                P0[:, j + 2] = _area_from(Y[:, i] - b, P0[:, j + 1])
-    return _finish_start(P0, spec), b, height
+                P0[:, j + 2] = _area_from(Y[rows, i] - b, P0[:, j + 1])
+    return _finish_start(P0, spec)
 
 
 def _height(model, fw, area, shape):
@@ -324,28 +402,22 @@ def _height(model, fw, area, shape):
 
 
 def _fit_rows(Y, mean, spec, var_mode, gain, rn2, max_iter, min_snr):
+    """Fit every row of Y (m, n), float32 or float64; returns (m, n_out) packed outputs."""
     m = Y.shape[0]
     out = np.full((m, _PEAK_FIELDS * spec.K + _N_TAIL), np.nan)
-    status = np.full(m, 4, dtype=np.int64)
-    finite = np.all(np.isfinite(Y), axis=1)
-    if np.any(finite):
-        Yf = Y[finite]
-        med = np.median(Yf, axis=1)
-        peak = smooth3(Yf).max(axis=1) - med
-        noise = robust_noise(Yf)
-        if var_mode == 1:
-            noise = np.maximum(noise, np.sqrt(np.maximum(med, 0.0) / gain + rn2))
-        weak = ~(peak > 0) | (peak < min_snr * noise)
-        st_f = np.where(weak, 3, -1)
-        status[finite] = st_f
+    finite, b, e_max, height, fw, noise = _quick_desc(Y, spec.x)
+    if var_mode == 1:
+        noise = np.maximum(noise, np.sqrt(np.maximum(b, 0.0) / gain + rn2))
+    weak = ~(height > 0) | (height < min_snr * noise)
+    status = np.where(finite, np.where(weak, 3, -1), 4)
     fit_rows = np.flatnonzero(status == -1)
     if fit_rows.size:
         template = None
         if spec.K > 1 or spec.init == "mean":
             template = _template(mean, spec, var_mode, gain, rn2)
-        Yfit = np.ascontiguousarray(Y[fit_rows])
-        P0, _, _ = _starts(Yfit, spec, template, var_mode, gain, rn2)
-        P, COV, chi2, st, niter = _run(Yfit, spec, P0, var_mode, gain, rn2, max_iter)
+        sel = (b[fit_rows], e_max[fit_rows], height[fit_rows], fw[fit_rows])
+        P0 = _starts(Y, fit_rows, sel, spec, template)
+        P, COV, chi2, st, niter = _run(Y, spec, P0, var_mode, gain, rn2, max_iter, fit_rows)
         out[fit_rows] = _postprocess(P, COV, chi2, st, niter, spec)
         status[fit_rows] = out[fit_rows, -3].astype(np.int64)
     out[:, -3] = status
@@ -354,13 +426,17 @@ def _fit_rows(Y, mean, spec, var_mode, gain, rn2, max_iter, min_snr):
 
 def _postprocess(P, COV, chi2, st, niter, spec):
     m, K_, npp = P.shape[0], spec.K, spec.npp
-    M = np.zeros((spec.nfull, spec.nfree))
-    for j, f in enumerate(spec.free_idx):
-        if f >= 0:
-            M[j, f] = 1.0
-    C = np.einsum("jf,mfg,kg->mjk", M, COV, M)
-    err = np.sqrt(np.maximum(np.einsum("mjj->mj", C), 0.0))
-    err[~np.isfinite(np.einsum("mjj->mj", C))] = np.nan
+    if np.array_equal(spec.free_idx, np.arange(spec.nfull)):
+        C = COV  # every parameter free and its own
+    else:
+        M = np.zeros((spec.nfull, spec.nfree))
+        for j, f in enumerate(spec.free_idx):
+            if f >= 0:
+                M[j, f] = 1.0
+        C = np.einsum("jf,mfg,kg->mjk", M, COV, M)
+    var = np.diagonal(C, axis1=1, axis2=2)
+    with np.errstate(invalid="ignore"):
+        err = np.where(np.isfinite(var), np.sqrt(np.maximum(var, 0.0)), np.nan)
     status = st.copy()
     x0, x1 = spec.x[0], spec.x[-1]
     tol = 1e-9 * np.maximum(1.0, np.abs(P))
@@ -427,27 +503,43 @@ def _noise_model(cube, noise, read_noise_counts, gain_e_per_count):
     if noise not in ("poisson", "residual"):
         raise StepError(f"noise must be 'auto', 'poisson' or 'residual', got {noise!r}")
     if noise == "residual":
-        return 0, 1.0, 0.0, (
-            "unit weights; 1-sigma errors from the covariance scaled by chi2_red "
-            "(noise estimated from the residual); chi2_red is the residual variance "
-            f"in ({unit})^2"
+        return (
+            0,
+            1.0,
+            0.0,
+            (
+                "unit weights; 1-sigma errors from the covariance scaled by chi2_red "
+                "(noise estimated from the residual); chi2_red is the residual variance "
+                f"in ({unit})^2"
+            ),
         )
     if unit != "counts":
         raise StepError(f"noise='poisson' needs a cube in counts, this one is in {unit!r}")
     gain = gain_e_per_count if gain_e_per_count is not None else cube.attrs.get("gain_e_per_count")
     if gain is None:
-        warnings.warn("no detector gain given: assuming 1 electron per count for the Poisson "
-                      "weights", PmapNotice, stacklevel=3)
+        warnings.warn(
+            "no detector gain given: assuming 1 electron per count for the Poisson weights",
+            PmapNotice,
+            stacklevel=3,
+        )
         gain = 1.0
-    rn = read_noise_counts if read_noise_counts is not None else cube.attrs.get(
-        "read_noise_counts", 0.0)
+    rn = (
+        read_noise_counts
+        if read_noise_counts is not None
+        else cube.attrs.get("read_noise_counts", 0.0)
+    )
     gain, rn = float(gain), float(rn)
     if not gain > 0 or not rn >= 0:
         raise StepError(f"gain must be > 0 and read noise >= 0, got {gain}, {rn}")
-    return 1, gain, rn * rn, (
-        f"weighted least squares, variance = max(model, 0)/gain + read_noise^2 "
-        f"(gain {gain:g} e/count, read noise {rn:g} counts); absolute 1-sigma errors "
-        "from the unscaled covariance; weights from the fitted model (two passes)"
+    return (
+        1,
+        gain,
+        rn * rn,
+        (
+            f"weighted least squares, variance = max(model, 0)/gain + read_noise^2 "
+            f"(gain {gain:g} e/count, read noise {rn:g} counts); absolute 1-sigma errors "
+            "from the unscaled covariance; weights from the fitted model (two passes)"
+        ),
     )
 
 
@@ -508,7 +600,7 @@ def fit_peaks(
     energy_range_ev : (float, float), optional
         Fit only this energy window (eV).
     min_snr : float
-        Spectra whose maximum above the median is below ``min_snr`` × noise are
+        Spectra whose maximum above the minimum (3-channel running mean) is below ``min_snr`` × noise are
         not fitted (status 3, NaN).
 
     Returns
@@ -526,7 +618,7 @@ def fit_peaks(
     float64 inside. Errors are 1σ from the covariance (see attr ``uncertainty_method``).
     Cost per spectrum ~ iterations × channels × peaks.
     """
-    cube = validate_cube(cube)
+    cube = validate_cube(cube, chunks=_spatial_chunks(cube))
     if spectral_dim(cube) != "energy":
         raise StepError(
             f"fit_peaks needs an energy axis (eV), got {spectral_dim(cube)!r}; convert first "
@@ -538,27 +630,58 @@ def fit_peaks(
     x = np.asarray(cube["energy"].values, dtype=float)
     if x.size < 5:
         raise StepError(f"only {x.size} channels to fit (need at least 5)")
-    spec = _build_spec(x, model=model, peaks=peaks, background=background, bounds=bounds,
-                       fixed=fixed, shared=shared, init=init)
+    spec = _build_spec(
+        x,
+        model=model,
+        peaks=peaks,
+        background=background,
+        bounds=bounds,
+        fixed=fixed,
+        shared=shared,
+        init=init,
+    )
     n_par = spec.nfree
     if x.size <= n_par:
         raise StepError(f"{x.size} channels cannot fit {n_par} free parameters")
     var_mode, gain, rn2, unc = _noise_model(cube, noise, read_noise_counts, gain_e_per_count)
-    sdim = "energy"
-    spatial = [d for d in cube.dims if d != sdim]
-    mean = cube.mean(dim=spatial, skipna=True)
-    mean = mean.chunk({sdim: -1}) if isinstance(mean.data, da.Array) else mean
     n_out = _PEAK_FIELDS * spec.K + _N_TAIL
+    if spec.K > 1 or spec.init == "mean":
+        # the mean spectrum (a lazy reduction) seeds multi-peak starting values
+        spatial = [d for d in cube.dims if d != "energy"]
+        mean = cube.mean(dim=spatial, skipna=True)
+        mean = mean.chunk({"energy": -1}) if isinstance(mean.data, da.Array) else mean
 
-    def rows(Y, mean_vec):
-        return _fit_rows(Y, mean_vec, spec, var_mode, gain, rn2, int(max_iter), float(min_snr))
+        def rows(Y, mean_vec):
+            return _fit_rows(Y, mean_vec, spec, var_mode, gain, rn2, int(max_iter), float(min_snr))
 
-    arr = apply_per_spectrum(cube, rows, n_out, mean)
-    return _assemble(arr, cube, spec, unc, dict(
-        model=model, peaks=int(peaks), background=background, bounds=bounds, fixed=fixed,
-        shared=shared, init=init, max_iter=int(max_iter), read_noise_counts=read_noise_counts,
-        gain_e_per_count=gain_e_per_count, noise=noise, energy_range_ev=energy_range_ev,
-        min_snr=min_snr))
+        arr = apply_per_spectrum(cube, rows, n_out, mean, keep_float32=True)
+    else:
+
+        def rows(Y):
+            return _fit_rows(Y, None, spec, var_mode, gain, rn2, int(max_iter), float(min_snr))
+
+        arr = apply_per_spectrum(cube, rows, n_out, keep_float32=True)
+    return _assemble(
+        arr,
+        cube,
+        spec,
+        unc,
+        dict(
+            model=model,
+            peaks=int(peaks),
+            background=background,
+            bounds=bounds,
+            fixed=fixed,
+            shared=shared,
+            init=init,
+            max_iter=int(max_iter),
+            read_noise_counts=read_noise_counts,
+            gain_e_per_count=gain_e_per_count,
+            noise=noise,
+            energy_range_ev=energy_range_ev,
+            min_snr=min_snr,
+        ),
+    )
 
 
 def _assemble(arr, cube, spec, unc, params):
@@ -594,47 +717,63 @@ def _assemble(arr, cube, spec, unc, params):
     dv["peak_wavelength"] = wl
     t = spec.K * _PEAK_FIELDS
     if spec.nbg >= 1:
-        for off, name, u, long in ((0, "background_offset", unit, "background offset"),
-                                   (1, "background_offset_err", unit, "1-sigma uncertainty")):
+        for off, name, u, long in (
+            (0, "background_offset", unit, "background offset"),
+            (1, "background_offset_err", unit, "1-sigma uncertainty"),
+        ):
             dv[name] = arr.isel(fit_output=t + off, drop=True)
             dv[name].attrs = {"units": u, "long_name": long}
     if spec.nbg == 2:
         su = f"{unit}/eV"
-        for off, name, long in ((2, "background_slope", "background slope"),
-                                (3, "background_slope_err", "1-sigma uncertainty")):
+        for off, name, long in (
+            (2, "background_slope", "background slope"),
+            (3, "background_slope_err", "1-sigma uncertainty"),
+        ):
             dv[name] = arr.isel(fit_output=t + off, drop=True)
-            dv[name].attrs = {"units": su, "long_name": long,
-                              "reference_energy_ev": spec.xref}
+            dv[name].attrs = {"units": su, "long_name": long, "reference_energy_ev": spec.xref}
     st = arr.isel(fit_output=-3, drop=True).astype(np.int8)
-    st.attrs = {"units": "1", "long_name": "fit status", "legend": FIT_STATUS_LEGEND,
-                "flag_values": list(range(7)), "flag_meanings": FIT_STATUS_LEGEND}
+    st.attrs = {
+        "units": "1",
+        "long_name": "fit status",
+        "legend": FIT_STATUS_LEGEND,
+        "flag_values": list(range(7)),
+        "flag_meanings": FIT_STATUS_LEGEND,
+    }
     dv["fit_status"] = st
     c2 = arr.isel(fit_output=-2, drop=True)
-    c2.attrs = {"units": "1" if "weighted" in unc else f"({unit})^2",
-                "long_name": "reduced chi-square"}
+    c2.attrs = {
+        "units": "1" if "weighted" in unc else f"({unit})^2",
+        "long_name": "reduced chi-square",
+    }
     dv["chi2_red"] = c2
     it = arr.isel(fit_output=-1, drop=True)
     it.attrs = {"units": "1", "long_name": "Levenberg-Marquardt iterations"}
     dv["n_iter"] = it
     keep = {k: v for k, v in cube.attrs.items() if k not in ("units", "long_name")}
     attrs = with_step(keep, "fit_peaks", params)
-    attrs.update({
-        "fit_model": spec.model,
-        "fit_n_peaks": spec.K,
-        "fit_background": list(_BACKGROUNDS)[spec.nbg],
-        "fit_background_reference_energy_ev": spec.xref,
-        "fit_parameters": json.dumps({
-            "names": [f"{kd}[{p}]" if p >= 0 else kd for kd, p in zip(spec.kind, spec.peak)],
-            "lower": [None if not np.isfinite(v) else float(v) for v in spec.lo],
-            "upper": [None if not np.isfinite(v) else float(v) for v in spec.hi],
-            "fixed": [None if not np.isfinite(v) else float(v) for v in spec.fixed],
-            "free_index": [int(v) for v in spec.free_idx],
-        }),
-        "fit_status_legend": FIT_STATUS_LEGEND,
-        "uncertainty_method": unc,
-        "fit_energy_range_ev": [float(spec.x[0]), float(spec.x[-1])],
-        "fit_intensity_units": unit,
-    })
+    attrs.update(
+        {
+            "fit_model": spec.model,
+            "fit_n_peaks": spec.K,
+            "fit_background": list(_BACKGROUNDS)[spec.nbg],
+            "fit_background_reference_energy_ev": spec.xref,
+            "fit_parameters": json.dumps(
+                {
+                    "names": [
+                        f"{kd}[{p}]" if p >= 0 else kd for kd, p in zip(spec.kind, spec.peak)
+                    ],
+                    "lower": [None if not np.isfinite(v) else float(v) for v in spec.lo],
+                    "upper": [None if not np.isfinite(v) else float(v) for v in spec.hi],
+                    "fixed": [None if not np.isfinite(v) else float(v) for v in spec.fixed],
+                    "free_index": [int(v) for v in spec.free_idx],
+                }
+            ),
+            "fit_status_legend": FIT_STATUS_LEGEND,
+            "uncertainty_method": unc,
+            "fit_energy_range_ev": [float(spec.x[0]), float(spec.x[-1])],
+            "fit_intensity_units": unit,
+        }
+    )
     if spec.npp == 4:
         attrs["fit_shape_parameter"] = SHAPE_NAMES[spec.model][0]
     return xr.Dataset(dv, attrs=attrs)
@@ -666,10 +805,14 @@ def model_spectrum(params, energy_ev, *, model=None, background=None, reference_
         if extra:
             raise StepError(f"select one pixel first (dims left: {extra})")
         model = model or params.attrs.get("fit_model", "gaussian")
-        ref = reference_energy_ev if reference_energy_ev is not None else params.attrs.get(
-            "fit_background_reference_energy_ev", 0.0)
+        ref = (
+            reference_energy_ev
+            if reference_energy_ev is not None
+            else params.attrs.get("fit_background_reference_energy_ev", 0.0)
+        )
         d = {
-            "center": params["peak_energy"].values, "fwhm": params["peak_fwhm"].values,
+            "center": params["peak_energy"].values,
+            "fwhm": params["peak_fwhm"].values,
             "area": params["peak_area"].values,
             "shape": params["peak_shape"].values if "peak_shape" in params else None,
             "offset": float(params["background_offset"]) if "background_offset" in params else 0.0,
@@ -679,8 +822,11 @@ def model_spectrum(params, energy_ev, *, model=None, background=None, reference_
     else:
         d = dict(params)
         model = model or d.get("model", "gaussian")
-        ref = reference_energy_ev if reference_energy_ev is not None else d.get(
-            "reference_energy_ev", 0.0)
+        ref = (
+            reference_energy_ev
+            if reference_energy_ev is not None
+            else d.get("reference_energy_ev", 0.0)
+        )
         unit = d.get("units", "1")
     if model not in K.MODEL_CODES:
         raise StepError(f"unknown model {model!r}")
@@ -710,8 +856,11 @@ def model_spectrum(params, energy_ev, *, model=None, background=None, reference_
     return xr.Dataset(
         {
             "total": ("energy", total, {"units": unit, "long_name": f"fitted {model} model"}),
-            "peak_component": (("peak", "energy"), comps, {"units": unit,
-                                                         "long_name": "peak components"}),
+            "peak_component": (
+                ("peak", "energy"),
+                comps,
+                {"units": unit, "long_name": "peak components"},
+            ),
             "background": ("energy", bg, {"units": unit, "long_name": "fitted background"}),
         },
         coords=coords,

@@ -187,8 +187,12 @@ def pseudo_voigt_tch(fwhm_g_ev, fwhm_l_ev):
     g = np.asarray(fwhm_g_ev, dtype=float)
     lo = np.asarray(fwhm_l_ev, dtype=float)
     big = (
-        g**5 + 2.69269 * g**4 * lo + 2.42843 * g**3 * lo**2 + 4.47163 * g**2 * lo**3
-        + 0.07842 * g * lo**4 + lo**5
+        g**5
+        + 2.69269 * g**4 * lo
+        + 2.42843 * g**3 * lo**2
+        + 4.47163 * g**2 * lo**3
+        + 0.07842 * g * lo**4
+        + lo**5
     ) ** 0.2
     q = lo / big
     eta = 1.36603 * q - 0.47719 * q * q + 0.11116 * q**3

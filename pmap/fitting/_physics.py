@@ -46,25 +46,43 @@ def bandgap_from_peak(
     """
     if material_gap not in ("direct", "indirect"):
         raise StepError(f"material_gap must be 'direct' or 'indirect', got {material_gap!r}")
-    for name, v in (("exciton_binding_ev", exciton_binding_ev), ("stokes_shift_ev", stokes_shift_ev)):
+    for name, v in (
+        ("exciton_binding_ev", exciton_binding_ev),
+        ("stokes_shift_ev", stokes_shift_ev),
+    ):
         if not np.isfinite(v) or v < 0:
             raise StepError(f"{name} must be a finite non-negative energy in eV, got {v!r}")
-    caveat = ("estimate: PL peak energy + exciton binding energy + Stokes shift; the PL maximum "
-              "is shifted from the gap by band filling, tail states and temperature")
+    caveat = (
+        "estimate: PL peak energy + exciton binding energy + Stokes shift; the PL maximum "
+        "is shifted from the gap by band filling, tail states and temperature"
+    )
     if material_gap == "indirect":
         caveat += "; indirect gap: emission is phonon-assisted, the PL peak is not the gap"
-        warnings.warn("indirect-gap material: the PL peak lies below the gap by phonon energies "
-                      "and is not the bandgap", PmapNotice, stacklevel=2)
+        warnings.warn(
+            "indirect-gap material: the PL peak lies below the gap by phonon energies "
+            "and is not the bandgap",
+            PmapNotice,
+            stacklevel=2,
+        )
     if stokes_shift_ev > 0:
         caveat += f"; Stokes shift {stokes_shift_ev:g} eV added back"
-        warnings.warn("Stokes-shifted emission: the PL peak is not the absorption gap; the given "
-                      "shift was added back", PmapNotice, stacklevel=2)
+        warnings.warn(
+            "Stokes-shifted emission: the PL peak is not the absorption gap; the given "
+            "shift was added back",
+            PmapNotice,
+            stacklevel=2,
+        )
     gap = peak_energy + exciton_binding_ev + stokes_shift_ev
     if isinstance(gap, xr.DataArray):
         gap = gap.rename("bandgap_estimate")
-        gap.attrs = {"units": "eV", "long_name": "bandgap estimate from PL peak",
-                     "caveat": caveat, "exciton_binding_ev": exciton_binding_ev,
-                     "stokes_shift_ev": stokes_shift_ev, "material_gap": material_gap}
+        gap.attrs = {
+            "units": "eV",
+            "long_name": "bandgap estimate from PL peak",
+            "caveat": caveat,
+            "exciton_binding_ev": exciton_binding_ev,
+            "stokes_shift_ev": stokes_shift_ev,
+            "material_gap": material_gap,
+        }
     return gap
 
 
@@ -75,6 +93,9 @@ def peak_shift(peak_energy, reference_ev: float):
     out = peak_energy - reference_ev
     if isinstance(out, xr.DataArray):
         out = out.rename("peak_shift")
-        out.attrs = {"units": "eV", "long_name": f"peak shift from {reference_ev:g} eV",
-                     "reference_ev": reference_ev}
+        out.attrs = {
+            "units": "eV",
+            "long_name": f"peak shift from {reference_ev:g} eV",
+            "reference_ev": reference_ev,
+        }
     return out

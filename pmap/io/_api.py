@@ -98,6 +98,7 @@ def convert(
     fmt: str | None = None,
     overwrite: bool = False,
     zarr_format: int = 3,
+    src_fmt: str | None = None,
     **read_options: Any,
 ) -> Path:
     """Convert a map file to Zarr (default) or NetCDF without loading it into memory.
@@ -114,6 +115,8 @@ def convert(
         Replace an existing output (never the input).
     zarr_format : {2, 3}
         Zarr version for Zarr output.
+    src_fmt : str, optional
+        Input format, if the ending of ``src`` does not tell.
     **read_options
         Read options of :func:`open_cube` (or of :func:`text_to_zarr` for text,
         e.g. ``chunk_rows``, ``buffer_mib``).
@@ -125,9 +128,9 @@ def convert(
     """
     p = check_input(src)
     out = Path(dst).expanduser()
-    if detect_format(p) == "text" and output_format(out, fmt) == "zarr":
+    if (src_fmt or detect_format(p)) == "text" and output_format(out, fmt) == "zarr":
         return Path(
             text_to_zarr(p, out, overwrite=overwrite, zarr_format=zarr_format, **read_options)
         )
-    cube = open_cube(p, **read_options)
+    cube = open_cube(p, fmt=src_fmt, **read_options)
     return save_cube(cube, out, fmt=fmt, overwrite=overwrite, zarr_format=zarr_format)

@@ -16,9 +16,8 @@ import numpy as np
 
 from ..errors import FormatError
 
-#: Ratio between the spacing of grid lines and the spread within a line above
-#: which small differences are read as jitter rather than as grid steps.
-_JITTER_RATIO = 3.0
+#: Default largest distance of a position from its grid line, as a fraction of the step.
+DEFAULT_TOLERANCE = 0.15
 
 
 @dataclass(frozen=True)
@@ -55,8 +54,8 @@ def infer_grid(
     positions: np.ndarray,
     *,
     step: float | None = None,
-    tolerance: float = 0.25,
-    min_fill: float = 0.02,
+    tolerance: float = DEFAULT_TOLERANCE,
+    min_fill: float = 0.5,
     axis: str = "x",
 ) -> Grid:
     """Infer the regular grid behind scanned positions along one axis.
@@ -69,10 +68,11 @@ def infer_grid(
         Known step (pixel size); inferred from the positions when omitted.
     tolerance : float
         Largest allowed distance of a position from its grid line, as a fraction
-        of the step (default 0.25).
+        of the step (default 0.15).
     min_fill : float
-        Smallest fraction of grid lines that must hold at least one position;
-        sparser sets are not a scan grid (default 0.02).
+        Smallest fraction of grid lines (columns or rows) that must hold at least
+        one position; sparser sets are not a scan grid (default 0.5). Missing
+        pixels are fine; whole missing columns beyond this are not.
     axis : str
         Axis name used in error messages.
 
@@ -91,47 +91,63 @@ def infer_grid(
         raise FormatError(f"{axis} positions contain missing or non-finite values")
     if u.size == 0:
         raise FormatError(f"no {axis} positions")
+    if step is not None and not step > 0:
+        raise FormatError(f"{axis} step must be positive, got {step}")
     if u.size == 1:
         return Grid(float(u[0]), float(step) if step else 1.0, 1)
-    if step is not None:
-        if not step > 0:
-            raise FormatError(f"{axis} step must be positive, got {step}")
-        centres = u
-    else:
-        d = np.diff(u)
-        ds = np.sort(d)
-        ratios = ds[1:] / np.maximum(ds[:-1], np.finfo(float).tiny)
-        split = None
-        if ratios.size and ratios.max() >= _JITTER_RATIO:
-            j = int(np.argmax(ratios))
-            split = ds[j]  # largest within-line spacing
-        if split is None:
-            centres = u
-        else:
-            breaks = np.flatnonzero(d > split)
-            groups = np.split(u, breaks + 1)
-            centres = np.array([g.mean() for g in groups])
-        if centres.size == 1:
-            return Grid(float(centres[0]), 1.0, 1)
-        cd = np.diff(centres)
-        base = cd.min()
-        near = cd[cd < 1.5 * base]
-        step = float(np.median(near))
-    origin = float(centres[0])
-    k = np.rint((centres - origin) / step)
-    if centres.size > 2 and k[-1] > 0:
-        # refine the step by least squares through all grid lines
-        step = float(np.polyfit(k, centres, 1)[0])
-        origin = float(np.mean(centres - k * step))
-    # snap away float noise (1e-16 offsets) so exact grids give exact coordinates
-    step = float(f"{step:.10g}")
-    origin = round(origin / step, 6) * step
-    n = int(k[-1]) + 1
-    if n > 1 and np.unique(k).size / n < min_fill:
+    fit = None
+    for cand in [float(step)] if step is not None else _candidates(np.diff(u)):
+        fit = _fit(u, cand, tolerance)
+        if fit is not None:
+            break  # the largest step that fits; finer ones would leave lines empty
+    if fit is None:
+        if step is not None:
+            raise FormatError(
+                f"{axis} positions do not fit a regular grid of step {step:g} "
+                f"(tolerance {tolerance:g} of a step): the points are not on a regular grid"
+            )
+        if np.ptp(u) <= 2 * tolerance * np.max(np.diff(u)) or u.size == 2:
+            return Grid(float(u.mean()), 1.0, 1)
         raise FormatError(
-            f"{axis} positions do not form a regular grid: with step {step:g} only "
-            f"{np.unique(k).size} of {n} grid lines would be filled"
+            f"{axis} positions do not fit any regular grid within {tolerance:g} of a step: "
+            "the points are not on a regular grid"
         )
-    grid = Grid(origin, step, n)
+    origin, found, k = fit
+    # snap away float noise (1e-16 offsets) so exact grids give exact coordinates
+    found = float(f"{found:.10g}")
+    origin = round(origin / found, 6) * found
+    n = int(k[-1]) + 1
+    filled = np.unique(k).size
+    if n > 1 and filled / n < min_fill:
+        raise FormatError(
+            f"{axis} positions do not form a regular grid: with step {found:g} only "
+            f"{filled} of {n} grid lines would be filled"
+        )
+    grid = Grid(origin, found, n)
     grid.index(u, tolerance=tolerance, axis=axis)  # raises if any position is off-grid
     return grid
+
+
+def _candidates(d: np.ndarray) -> list[float]:
+    """Candidate steps from neighbour spacings, largest first (one per 2 % bin)."""
+    d = d[d > 0]
+    bins = np.rint(np.log(d) / 0.02)
+    out = []
+    for b in np.unique(bins)[::-1]:
+        out.append(float(np.median(d[bins == b])))
+    return out
+
+
+def _fit(u: np.ndarray, step: float, tolerance: float):
+    """Index sorted positions by neighbour spacing, fit origin and step; None if off-grid."""
+    k = np.concatenate([[0.0], np.cumsum(np.rint(np.diff(u) / step))])
+    if k[-1] == 0:
+        return None
+    slope, origin = np.polyfit(k, u, 1)
+    if not slope > 0:
+        return None
+    resid = np.abs(u - (origin + k * slope))
+    if resid.max() > tolerance * slope:
+        return None
+    k0 = k - k.min()
+    return float(origin + k.min() * slope), float(slope), k0.astype(np.int64)

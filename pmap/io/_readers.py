@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 import warnings
 from pathlib import Path
 from typing import Any
@@ -162,6 +163,11 @@ def _tiff_pages(path: Path) -> tuple[tuple[int, int, int], np.dtype, bool]:
     import tifffile
 
     size = path.stat().st_size
+    log = logging.getLogger("tifffile")
+    problems: list[str] = []
+    catcher = logging.Handler(logging.ERROR)
+    catcher.emit = lambda record: problems.append(record.getMessage())  # type: ignore[method-assign]
+    log.addHandler(catcher)
     try:
         with tifffile.TiffFile(path) as tf:
             pages = tf.pages
@@ -184,12 +190,18 @@ def _tiff_pages(path: Path) -> tuple[tuple[int, int, int], np.dtype, bool]:
             series = tf.series[0]
             mappable = series.dataoffset is not None and len(tf.series) == 1
             dtype = first.dtype
+            if int(np.prod(series.shape)) != n * shape2[0] * shape2[1]:
+                problems.append(f"series shape {series.shape} but {n} readable pages")
     except FormatError:
         raise
     except Exception as exc:  # tifffile raises several kinds on corrupt files
         raise InputFileError(
             f"{path.name}: cannot read TIFF, truncated or corrupt ({exc})"
         ) from exc
+    finally:
+        log.removeHandler(catcher)
+    if problems:
+        raise InputFileError(f"{path.name}: TIFF is truncated or corrupt ({problems[0]})")
     if end > size:
         raise InputFileError(
             f"{path.name}: truncated TIFF (data run to byte {end}, file has {size})"

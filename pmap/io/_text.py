@@ -44,7 +44,7 @@ from ..cube import DEFAULT_CHUNK_MIB, validate_cube
 from ..errors import CubeValidationError, FormatError, InputFileError
 from ..provenance import with_input
 from ._common import META_OPTIONS, check_input, check_options, metadata_attrs
-from ._grid import Grid, infer_grid
+from ._grid import DEFAULT_TOLERANCE, Grid, infer_grid
 from ._write import cube_dataset, prepare_output, write_zarr
 
 TEXT_OPTIONS = (
@@ -210,7 +210,8 @@ def inspect_text(path: str | os.PathLike, **options: Any) -> TextSpec:
                 isp, sdim = hit, sdim or dim
                 break
     elif sdim is None:
-        sdim = "energy" if any(n in bases[isp] for n in ("energy", "ev")) else "wavelength"
+        energy = bases[isp] in _SPEC_NAMES["energy"] or str(units[isp]).lower() in ("ev", "mev")
+        sdim = "energy" if energy else "wavelength"
     ival = pick["value"] if pick["value"] is not None else by_name(_VALUE_NAMES)
     rest = [i for i in range(len(fields)) if i not in (ix, iy)]
     layout = options.get("layout")
@@ -363,8 +364,8 @@ def scan_text(
         raise FormatError(f"{spec.path.name}: the table has a header but no data rows")
     ux = np.unique(np.concatenate([ux, *xs]))
     uy = np.unique(np.concatenate([uy, *ys]))
-    tol = float(options.get("grid_tolerance", 0.25))
-    fill = float(options.get("min_fill", 0.02))
+    tol = float(options.get("grid_tolerance", DEFAULT_TOLERANCE))
+    fill = float(options.get("min_fill", 0.5))
     gx = infer_grid(
         ux, step=_grid_step(options, "x", spec.xy_units), tolerance=tol, min_fill=fill, axis="x"
     )
@@ -566,7 +567,7 @@ def text_to_zarr(
         Text read options: ``x_col``, ``y_col``, ``spectral_col``, ``value_col``,
         ``columns``, ``delimiter``, ``layout`` ("long"/"wide"), ``spectral_dim``,
         ``spectral_units``, ``xy_units``, ``pixel_size_um``, ``grid_tolerance``
-        (fraction of a step, default 0.25), ``min_fill``, ``dtype`` (default
+        (fraction of a step, default 0.15), ``min_fill`` (default 0.5), ``dtype`` (default
         float32), ``units`` and metadata such as ``excitation_wavelength_nm``.
 
     Returns
@@ -597,7 +598,7 @@ def text_to_zarr(
         layout,
         array,
         chunk_rows=chunk_rows,
-        tolerance=float(options.get("grid_tolerance", 0.25)),
+        tolerance=float(options.get("grid_tolerance", DEFAULT_TOLERANCE)),
         buffer_mib=buffer_mib,
     )
     return target

@@ -76,8 +76,9 @@ def vacuum_to_air(wavelength_vac_nm: Any, *, method: str = DEFAULT_AIR_METHOD) -
     return lam / refractive_index_air(lam, method=method)
 
 
-def air_to_vacuum(wavelength_air_nm: Any, *, method: str = DEFAULT_AIR_METHOD,
-                  tol_nm: float = 1e-12) -> np.ndarray:
+def air_to_vacuum(
+    wavelength_air_nm: Any, *, method: str = DEFAULT_AIR_METHOD, tol_nm: float = 1e-12
+) -> np.ndarray:
     """Vacuum wavelength in nm for an air wavelength in nm, by fixed-point iteration.
 
     Solves λ_vac = λ_air · n(λ_vac); each pass gains about four digits (n − 1 ≈ 3e-4),

@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 import xarray as xr
+from scipy import sparse
 
 from ..conventions import HC_EV_NM, INTENSITY_UNITS
 from ..errors import StepError
@@ -21,8 +22,14 @@ from ._common import check_cube, finish, float_dtype
 __all__ = ["channel_edges", "to_energy", "to_wavenumber", "to_raman_shift"]
 
 # intensity unit -> (is a density per nm, unit without the per-nm / per-channel part)
-_PER_CHANNEL = {"counts": "counts", "counts/s": "counts/s", "counts/s/W": "counts/s/W",
-                "W": "W", "arbitrary": "arbitrary", "1": "arbitrary"}
+_PER_CHANNEL = {
+    "counts": "counts",
+    "counts/s": "counts/s",
+    "counts/s/W": "counts/s/W",
+    "W": "W",
+    "arbitrary": "arbitrary",
+    "1": "arbitrary",
+}
 _PER_NM = {"counts/nm": "counts", "W/nm": "W"}
 
 
@@ -53,26 +60,48 @@ def _target_unit(unit: str, per: str) -> tuple[bool, str]:
     return per_channel, out
 
 
-def _rebin_uniform(values: np.ndarray, edges: np.ndarray, new_edges: np.ndarray) -> np.ndarray:
-    """Rebin densities (…, n) on ascending ``edges`` (n + 1) onto ``new_edges`` (m + 1).
+def _rebin_matrix(edges: np.ndarray, new_edges: np.ndarray) -> sparse.csr_matrix:
+    """Sparse (n, m) matrix R so that densities on ``new_edges`` are ``values @ R``.
 
-    The cumulative integral is interpolated linearly at the new edges (uniform density
-    inside each old bin), so every new bin holds exactly the old area it overlaps.
+    R[i, j] = |old bin i ∩ new bin j| / |new bin j| (uniform density inside each old bin):
+    the same as interpolating the cumulative integral linearly at the new edges, so every
+    new bin holds exactly the old area it overlaps.
     """
-    widths = np.diff(edges)
-    cum = np.concatenate(
-        [np.zeros(values.shape[:-1] + (1,)), np.cumsum(values * widths, axis=-1)], axis=-1
-    )
-    idx = np.clip(np.searchsorted(edges, new_edges, side="right") - 1, 0, edges.size - 2)
-    t = np.clip((new_edges - edges[idx]) / widths[idx], 0.0, 1.0)
-    cnew = cum[..., idx] * (1.0 - t) + cum[..., idx + 1] * t
-    return np.diff(cnew, axis=-1) / np.diff(new_edges)
+    lo = np.maximum(edges[:-1, None], new_edges[None, :-1])
+    hi = np.minimum(edges[1:, None], new_edges[None, 1:])
+    overlap = np.clip(hi - lo, 0.0, None) / np.diff(new_edges)[None, :]
+    return sparse.csr_matrix(overlap)
 
 
-def _convert_axis(cube: xr.DataArray, *, name: str, dim: str, unit: str, long_name: str,
-                  per: str, x_of_vac: Callable[[np.ndarray], np.ndarray], jacobian: bool,
-                  resample: str | None, n_channels: int | None, method: str,
-                  params: dict, attrs_extra: dict | None = None) -> xr.DataArray:
+#: target dim -> (axis unit, long_name, intensity density "per" unit)
+_AXES = {
+    "energy": ("eV", "photon energy", "eV"),
+    "wavenumber": ("cm-1", "wavenumber", "cm-1"),
+    "raman_shift": ("cm-1", "shift from excitation", "cm-1"),
+}
+
+
+def _convert_axis(
+    cube: xr.DataArray,
+    dim: str,
+    x_of_vac: Callable[[np.ndarray], np.ndarray],
+    *,
+    jacobian: bool,
+    resample: str | None,
+    n_channels: int | None,
+    method: str,
+    extra_params: dict | None = None,
+    attrs_extra: dict | None = None,
+) -> xr.DataArray:
+    unit, long_name, per = _AXES[dim]
+    name = f"to_{dim}"
+    params = {
+        **(extra_params or {}),
+        "resample": resample,
+        "n_channels": n_channels,
+        "jacobian": jacobian,
+        "method": method,
+    }
     cube, sdim = check_cube(cube)
     if sdim != "wavelength":
         raise StepError(f"{name} needs a wavelength axis (nm), the cube has {sdim!r}")
@@ -95,7 +124,7 @@ def _convert_axis(cube: xr.DataArray, *, name: str, dim: str, unit: str, long_na
         h = 1e-3
         dx = np.abs(x_of_vac(lam_vac + h) - x_of_vac(lam_vac - h)) / (2 * h)
         if medium == "air":
-            dvac = (air_to_vacuum(lam + h, method=method) - air_to_vacuum(lam - h, method=method))
+            dvac = air_to_vacuum(lam + h, method=method) - air_to_vacuum(lam - h, method=method)
             dvac /= 2 * h
         else:
             dvac = np.ones_like(lam)
@@ -120,11 +149,21 @@ def _convert_axis(cube: xr.DataArray, *, name: str, dim: str, unit: str, long_na
         xs = 0.5 * (new_edges[1:] + new_edges[:-1])
         if not jacobian:
             raise StepError("resample='uniform' needs jacobian=True (it conserves densities)")
+        rebin = _rebin_matrix(e_sorted, new_edges)
+
+        def core(v: np.ndarray) -> np.ndarray:
+            flat = v.reshape(-1, v.shape[-1]).astype(np.float64)
+            return np.asarray(flat @ rebin).reshape(v.shape[:-1] + (n_new,)).astype(out_dtype)
+
         dens = xr.apply_ufunc(
-            lambda v: _rebin_uniform(v.astype(float), e_sorted, new_edges).astype(out_dtype),
-            dens, input_core_dims=[[dim]], output_core_dims=[[dim + "_new"]],
-            dask="parallelized", output_dtypes=[out_dtype],
-            dask_gufunc_kwargs={"output_sizes": {dim + "_new": n_new}}, keep_attrs=True,
+            core,
+            dens,
+            input_core_dims=[[dim]],
+            output_core_dims=[[dim + "_new"]],
+            dask="parallelized",
+            output_dtypes=[out_dtype],
+            dask_gufunc_kwargs={"output_sizes": {dim + "_new": n_new}},
+            keep_attrs=True,
         ).rename({dim + "_new": dim})
     elif n_channels is not None:
         raise StepError("n_channels is only used with resample='uniform'")
@@ -136,8 +175,14 @@ def _convert_axis(cube: xr.DataArray, *, name: str, dim: str, unit: str, long_na
 
 
 @register_step("to_energy")
-def to_energy(cube: xr.DataArray, *, resample: str | None = None, n_channels: int | None = None,
-              jacobian: bool = True, method: str = DEFAULT_AIR_METHOD) -> xr.DataArray:
+def to_energy(
+    cube: xr.DataArray,
+    *,
+    resample: str | None = None,
+    n_channels: int | None = None,
+    jacobian: bool = True,
+    method: str = DEFAULT_AIR_METHOD,
+) -> xr.DataArray:
     """Convert a wavelength cube to photon energy in eV (ascending), Jacobian applied.
 
     Parameters
@@ -175,36 +220,51 @@ def to_energy(cube: xr.DataArray, *, resample: str | None = None, n_channels: in
     Mooney & Kambhampati, J. Phys. Chem. Lett. 4, 3316 (2013).
     """
     return _convert_axis(
-        cube, name="to_energy", dim="energy", unit="eV", long_name="photon energy", per="eV",
-        x_of_vac=lambda lv: HC_EV_NM / lv, jacobian=jacobian, resample=resample,
-        n_channels=n_channels, method=method,
-        params={"resample": resample, "n_channels": n_channels, "jacobian": jacobian,
-                "method": method},
+        cube,
+        "energy",
+        lambda lv: HC_EV_NM / lv,
+        jacobian=jacobian,
+        resample=resample,
+        n_channels=n_channels,
+        method=method,
     )
 
 
 @register_step("to_wavenumber")
-def to_wavenumber(cube: xr.DataArray, *, resample: str | None = None,
-                  n_channels: int | None = None, jacobian: bool = True,
-                  method: str = DEFAULT_AIR_METHOD) -> xr.DataArray:
+def to_wavenumber(
+    cube: xr.DataArray,
+    *,
+    resample: str | None = None,
+    n_channels: int | None = None,
+    jacobian: bool = True,
+    method: str = DEFAULT_AIR_METHOD,
+) -> xr.DataArray:
     """Convert a wavelength cube to absolute (vacuum) wavenumber in cm⁻¹, ascending.
 
     ν̃ = 10⁷/λ_vac (λ in nm). Options and units as :func:`to_energy`, per cm⁻¹
     (e.g. "counts/cm-1").
     """
     return _convert_axis(
-        cube, name="to_wavenumber", dim="wavenumber", unit="cm-1", long_name="wavenumber",
-        per="cm-1", x_of_vac=lambda lv: 1e7 / lv, jacobian=jacobian, resample=resample,
-        n_channels=n_channels, method=method,
-        params={"resample": resample, "n_channels": n_channels, "jacobian": jacobian,
-                "method": method},
+        cube,
+        "wavenumber",
+        lambda lv: 1e7 / lv,
+        jacobian=jacobian,
+        resample=resample,
+        n_channels=n_channels,
+        method=method,
     )
 
 
 @register_step("to_raman_shift")
-def to_raman_shift(cube: xr.DataArray, *, excitation_wavelength_nm: float | None = None,
-                   resample: str | None = None, n_channels: int | None = None,
-                   jacobian: bool = True, method: str = DEFAULT_AIR_METHOD) -> xr.DataArray:
+def to_raman_shift(
+    cube: xr.DataArray,
+    *,
+    excitation_wavelength_nm: float | None = None,
+    resample: str | None = None,
+    n_channels: int | None = None,
+    jacobian: bool = True,
+    method: str = DEFAULT_AIR_METHOD,
+) -> xr.DataArray:
     """Convert a wavelength cube to shift from the excitation line in cm⁻¹ (Stokes positive).
 
     Parameters
@@ -236,11 +296,13 @@ def to_raman_shift(cube: xr.DataArray, *, excitation_wavelength_nm: float | None
     medium = str(cube.attrs.get("wavelength_medium", "air")).lower()
     exc_vac = float(air_to_vacuum(exc, method=method)) if medium == "air" else exc
     return _convert_axis(
-        cube, name="to_raman_shift", dim="raman_shift", unit="cm-1",
-        long_name="shift from excitation", per="cm-1",
-        x_of_vac=lambda lv: 1e7 / exc_vac - 1e7 / lv, jacobian=jacobian, resample=resample,
-        n_channels=n_channels, method=method,
-        params={"excitation_wavelength_nm": exc, "resample": resample,
-                "n_channels": n_channels, "jacobian": jacobian, "method": method},
+        cube,
+        "raman_shift",
+        lambda lv: 1e7 / exc_vac - 1e7 / lv,
+        jacobian=jacobian,
+        resample=resample,
+        n_channels=n_channels,
+        method=method,
+        extra_params={"excitation_wavelength_nm": exc},
         attrs_extra={"excitation_wavelength_nm": exc},
     )

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from typing import Any
 
 import dask.array as da
@@ -16,9 +17,10 @@ from ._common import check_cube, finish, float_dtype, robust_sigma_of_diff
 __all__ = ["mask_bad_pixels", "hot_channels"]
 
 
-def hot_channels(mean_spectrum: Any, *, threshold: float = 10.0, half_window: int = 3
-                 ) -> np.ndarray:
-    """Channels standing out of the map's mean spectrum like a one-channel spike (bool (n,)).
+def hot_channels(
+    mean_spectrum: Any, *, threshold: float = 10.0, half_window: int = 3
+) -> np.ndarray:
+    """Channels standing out of the map's median spectrum like a one-channel spike (bool (n,)).
 
     A detector hot pixel adds signal to one channel of every spectrum; in the mean
     spectrum it rises above the median of ±``half_window`` channels by more than
@@ -38,15 +40,46 @@ def hot_channels(mean_spectrum: Any, *, threshold: float = 10.0, half_window: in
     return flags
 
 
-def _mask_core(x: np.ndarray, gmax: np.ndarray, hot: np.ndarray, sat_level: float | None,
-               auto_sat: bool, dead: bool) -> np.ndarray:
+def _block_hot_votes(block: np.ndarray, threshold: float) -> np.ndarray:
+    """Per channel, how many spectra of one chunk show a one-channel excess (shape (1,..,1,n)).
+
+    A channel votes "hot" in a spectrum when it exceeds *both* neighbours by more than
+    ``threshold`` noise s.d. (noise from the MAD of the spectrum's first difference). A
+    real emission line spans several channels and so never votes; a cosmic spike votes
+    in one spectrum only.
+    """
+    n = block.shape[-1]
+    flat = block.reshape(-1, n).astype(np.float64)
+    votes = np.zeros(n, dtype=np.float64)
+    if n >= 3 and flat.shape[0]:
+        d = np.diff(flat, axis=-1)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN spectra
+            med = np.nanmedian(d, axis=-1, keepdims=True)
+            sigma = 1.4826 * np.nanmedian(np.abs(d - med), axis=-1, keepdims=True) / np.sqrt(2)
+        sigma = np.where(np.isfinite(sigma) & (sigma > 0), sigma, np.inf)
+        left = np.concatenate([flat[:, 1:2], flat[:, :-1]], axis=-1)
+        right = np.concatenate([flat[:, 1:], flat[:, -2:-1]], axis=-1)
+        with np.errstate(invalid="ignore"):
+            excess = flat - np.maximum(left, right)
+            votes = np.nansum(excess > threshold * sigma, axis=0).astype(np.float64)
+    return votes.reshape((1,) * (block.ndim - 1) + (n,))
+
+
+def _mask_core(
+    x: np.ndarray,
+    gmax: np.ndarray,
+    hot: np.ndarray,
+    sat_level: float | None,
+    auto_sat: bool,
+    dead: bool,
+) -> np.ndarray:
     """Codes (…, n) uint8: 1 dead, 2 saturated, 4 bad channel; 0 good."""
     code = np.zeros(x.shape, dtype=np.uint8)
     if dead:
         with np.errstate(invalid="ignore"):
             flat = np.nanmax(x, axis=-1, keepdims=True) == np.nanmin(x, axis=-1, keepdims=True)
-        code |= np.where(flat | np.all(np.isnan(x), axis=-1, keepdims=True), 1, 0).astype(
-            np.uint8)
+        code |= np.where(flat | np.all(np.isnan(x), axis=-1, keepdims=True), 1, 0).astype(np.uint8)
     if sat_level is not None:
         code |= np.where(x >= sat_level, 2, 0).astype(np.uint8)
     elif auto_sat:
@@ -60,11 +93,17 @@ def _mask_core(x: np.ndarray, gmax: np.ndarray, hot: np.ndarray, sat_level: floa
 
 
 @register_step("mask_bad_pixels")
-def mask_bad_pixels(cube: xr.DataArray, *, dead: bool = True, saturated: bool = True,
-                    saturation_counts: float | None = None, hot: bool = True,
-                    hot_threshold: float = 10.0, bad_channels: Any = None,
-                    return_mask: bool = False) -> xr.DataArray | tuple[xr.DataArray,
-                                                                        xr.DataArray]:
+def mask_bad_pixels(
+    cube: xr.DataArray,
+    *,
+    dead: bool = True,
+    saturated: bool = True,
+    saturation_counts: float | None = None,
+    hot: bool = True,
+    hot_threshold: float = 10.0,
+    bad_channels: Any = None,
+    return_mask: bool = False,
+) -> xr.DataArray | tuple[xr.DataArray, xr.DataArray]:
     """Set dead spectra, saturated values, hot and bad channels to NaN.
 
     Parameters
@@ -80,8 +119,8 @@ def mask_bad_pixels(cube: xr.DataArray, *, dead: bool = True, saturated: bool = 
         neither, the level is estimated as the cube's maximum, and only values on a plateau
         (two or more adjacent channels at that maximum) are masked.
     hot : bool
-        Mask hot detector channels found in the map's mean spectrum
-        (:func:`hot_channels`, ``hot_threshold`` noise s.d.).
+        Mask hot detector channels: channels that exceed both neighbours by more
+        than ``hot_threshold`` noise s.d. in more than half of the spectra.
     bad_channels : list of int, optional
         Channel indices (0-based, ascending axis) to mask in every spectrum.
     return_mask : bool
@@ -96,7 +135,7 @@ def mask_bad_pixels(cube: xr.DataArray, *, dead: bool = True, saturated: bool = 
     Notes
     -----
     The hot-channel test and the estimated saturation level need a reduction over the
-    whole cube (mean spectrum, maximum) before the masking pass: computing the result
+    whole cube (hot-channel votes, maximum) before the masking pass: computing the result
     reads the cube twice.
     """
     cube, sdim = check_cube(cube)
@@ -111,28 +150,44 @@ def mask_bad_pixels(cube: xr.DataArray, *, dead: bool = True, saturated: bool = 
         bad[ch] = True
     lead = tuple(range(data.ndim - 1))
     if hot:
-        mean_spec = da.nanmean(data, axis=lead)
-        hot_mask = da.map_blocks(hot_channels, mean_spec, dtype=bool,
-                                 threshold=float(hot_threshold)) | bad
+        # A hot detector channel stands out in most spectra; cosmic spikes (one spectrum
+        # each) and a saturated pixel do not reach a majority.
+        one = tuple((1,) * len(c) for c in data.chunks[:-1])
+        votes = data.map_blocks(_block_hot_votes, chunks=(*one, data.chunks[-1]),
+                                dtype=np.float64, threshold=float(hot_threshold))
+        n_spectra = int(np.prod(data.shape[:-1]))
+        hot_mask = (da.sum(votes, axis=lead) > 0.5 * n_spectra) | bad
     else:
         hot_mask = da.from_array(bad, chunks=-1)
-    level = saturation_counts if saturation_counts is not None else cube.attrs.get(
-        "saturation_counts")
+    level = (
+        saturation_counts if saturation_counts is not None else cube.attrs.get("saturation_counts")
+    )
     level = float(level) if (saturated and level is not None) else None
     auto = saturated and level is None
     gmax = da.nanmax(data) if auto else da.zeros((), dtype=dt)
-    code = da.map_blocks(_mask_core, data, gmax, hot_mask, dtype=np.uint8,
-                         sat_level=level, auto_sat=auto, dead=dead)
+    code = da.map_blocks(
+        _mask_core, data, gmax, hot_mask, dtype=np.uint8, sat_level=level, auto_sat=auto, dead=dead
+    )
     cleaned = da.where(code > 0, np.nan, data).astype(dt)
-    out = finish(cube.copy(data=cleaned), cube, "mask_bad_pixels",
-                 {"dead": dead, "saturated": saturated, "saturation_counts": level,
-                  "hot": hot, "hot_threshold": hot_threshold,
-                  "bad_channels": None if bad_channels is None else np.atleast_1d(
-                      bad_channels).tolist()})
+    out = finish(
+        cube.copy(data=cleaned),
+        cube,
+        "mask_bad_pixels",
+        {
+            "dead": dead,
+            "saturated": saturated,
+            "saturation_counts": level,
+            "hot": hot,
+            "hot_threshold": hot_threshold,
+            "bad_channels": None if bad_channels is None else np.atleast_1d(bad_channels).tolist(),
+        },
+    )
     if not return_mask:
         return out
     codes = cube.copy(data=code)
-    codes.attrs = {"long_name": "bad-value code (1 dead, 2 saturated, 4 hot/bad channel)",
-                   "units": "1"}
+    codes.attrs = {
+        "long_name": "bad-value code (1 dead, 2 saturated, 4 hot/bad channel)",
+        "units": "1",
+    }
     codes.name = "bad_pixel_code"
     return out, codes

@@ -104,8 +104,15 @@ def _als_core(y, bands, lam, p, max_iter, tol):  # pragma: no cover - compiled
     return out
 
 
-def als_baseline(y: Any, *, lam: float = 1e5, p: float = 0.01, diff_order: int = 2,
-                 max_iter: int = 50, tol: float = 1e-3) -> np.ndarray:
+def als_baseline(
+    y: Any,
+    *,
+    lam: float = 1e5,
+    p: float = 0.01,
+    diff_order: int = 2,
+    max_iter: int = 50,
+    tol: float = 1e-3,
+) -> np.ndarray:
     """Asymmetric least-squares baselines of a batch of spectra (…, n), numpy in and out.
 
     Minimises Σ wᵢ(yᵢ − zᵢ)² + λ Σ (Δᵈz)ᵢ² with wᵢ = p above the baseline and 1 − p below,
@@ -133,7 +140,8 @@ def als_baseline(y: Any, *, lam: float = 1e5, p: float = 0.01, diff_order: int =
     bands = _penalty_bands(n, int(diff_order))
     flat = np.ascontiguousarray(arr.reshape(-1, n))
     return _als_core(flat, bands, float(lam), float(p), int(max_iter), float(tol)).reshape(
-        arr.shape)
+        arr.shape
+    )
 
 
 def _windows_mask(axis: np.ndarray, window: Any) -> np.ndarray:
@@ -149,36 +157,53 @@ def _windows_mask(axis: np.ndarray, window: Any) -> np.ndarray:
     for lo, hi in wins:
         mask |= (axis >= min(lo, hi)) & (axis <= max(lo, hi))
     if not mask.any():
-        raise StepError(f"window {window!r} holds no channels of the axis "
-                        f"({axis[0]:g}–{axis[-1]:g})")
+        raise StepError(
+            f"window {window!r} holds no channels of the axis ({axis[0]:g}–{axis[-1]:g})"
+        )
     return mask
 
 
-def _poly_baseline(x: np.ndarray, t: np.ndarray, degree: int, mask: np.ndarray | None,
-                   max_iter: int) -> np.ndarray:
+def _poly_baseline(
+    x: np.ndarray, t: np.ndarray, degree: int, mask: np.ndarray | None, max_iter: int, tol: float
+) -> np.ndarray:
     """Polynomial baselines (…, n): least squares on the masked channels, or iterative
     clipping (values above the fit replaced by the fit) over all channels."""
     v = np.polynomial.polynomial.polyvander(t, degree)
     if mask is not None:
         coef = np.linalg.lstsq(v[mask], x[..., mask].reshape(-1, mask.sum()).T, rcond=None)[0]
         return (v @ coef).T.reshape(x.shape)
-    proj = v @ np.linalg.pinv(v)  # hat matrix, shared by every spectrum
-    y = x.reshape(-1, x.shape[-1]).astype(np.float64)
-    base = y @ proj.T
-    for _ in range(max_iter):
-        y = np.minimum(y, base)
-        new = y @ proj.T
-        if np.max(np.abs(new - base)) <= 1e-6 * max(np.max(np.abs(base)), 1e-300):
+    q, _ = np.linalg.qr(v)  # orthonormal basis: the fit of y is (y q) qᵀ, cost 2n(d + 1)
+    q, qt = np.ascontiguousarray(q), np.ascontiguousarray(q.T)  # C order: fast BLAS path
+    flat = x.reshape(-1, x.shape[-1])
+    out = np.empty(flat.shape, dtype=np.float64)
+    for start in range(0, flat.shape[0], 1024):  # cache-sized batches of spectra
+        y = flat[start : start + 1024].astype(np.float64)
+        base = (y @ q) @ qt
+        for _ in range(max_iter):
+            np.minimum(y, base, out=y)
+            new = (y @ q) @ qt
+            change = np.linalg.norm(new - base, axis=-1) / np.maximum(
+                np.linalg.norm(base, axis=-1), 1e-300
+            )
             base = new
-            break
-        base = new
-    return base.reshape(x.shape)
+            if np.all(change < tol):
+                break
+        out[start : start + 1024] = base
+    return out.reshape(x.shape)
 
 
 @register_step("remove_baseline")
-def remove_baseline(cube: xr.DataArray, *, method: str = "als", lam: float = 1e5,
-                    p: float = 0.01, degree: int = 2, window: Any = None, max_iter: int = 50,
-                    tol: float = 1e-3) -> xr.DataArray:
+def remove_baseline(
+    cube: xr.DataArray,
+    *,
+    method: str = "als",
+    lam: float = 1e5,
+    p: float = 0.01,
+    degree: int = 2,
+    window: Any = None,
+    max_iter: int = 50,
+    tol: float = 1e-3,
+) -> xr.DataArray:
     """Subtract a baseline from every spectrum.
 
     Parameters
@@ -189,15 +214,17 @@ def remove_baseline(cube: xr.DataArray, *, method: str = "als", lam: float = 1e5
         "als": asymmetric least squares (``lam``, ``p``, ``max_iter``, ``tol``);
         "poly": polynomial of ``degree`` fitted to the channels in ``window`` (one
         (lo, hi) pair or a list, axis units) or, without ``window``, by iterative clipping
-        of the values above the fit; "constant": mean of the channels in ``window``.
+        of the values above the fit (until the relative change of every baseline is below
+        ``tol`` or ``max_iter``); "constant": mean of the channels in ``window``.
     lam : float
         ALS smoothness λ (second differences; larger is stiffer). Default 1e5.
     p : float
         ALS asymmetry: weight of points above the baseline (default 0.01).
     degree : int
         Polynomial degree for "poly".
-    window : (float, float) or list of them
-        Signal-free range(s) of the spectral axis (nm, eV…).
+    window : (float, float) or list of them, or "edges"
+        Signal-free range(s) of the spectral axis (nm, eV…); for "constant",
+        ``"edges"`` takes the outer 5 % of channels at each end.
 
     Returns
     -------
@@ -233,14 +260,23 @@ def remove_baseline(cube: xr.DataArray, *, method: str = "als", lam: float = 1e5
         t = (axis - axis.mean()) / max(np.ptp(axis) / 2, 1e-300)
 
         def core(x):
-            return x - _poly_baseline(x.astype(np.float64), t, degree, mask, max_iter)
+            return x - _poly_baseline(x.astype(np.float64), t, degree, mask, max_iter, tol)
 
-        params.update(degree=degree, window=window, max_iter=max_iter)
+        params.update(degree=degree, window=window, max_iter=max_iter, tol=tol)
     elif method == "constant":
-        mask = _windows_mask(axis, window)
+        if isinstance(window, str) and window == "edges":
+            # the outer 5 % of channels at each end (at least 3): signal-free on a
+            # spectrometer window chosen around the emission (common practice)
+            k = max(3, int(round(0.05 * axis.size)))
+            mask = np.zeros(axis.size, dtype=bool)
+            mask[:k] = mask[-k:] = True
+        else:
+            mask = _windows_mask(axis, window)
 
         def core(x):
-            return x - np.mean(x[..., mask], axis=-1, keepdims=True, dtype=np.float64)
+            return x - np.nanmean(x[..., mask], axis=-1, keepdims=True, dtype=np.float64).astype(
+                x.dtype
+            )
 
         params.update(window=window)
     else:
@@ -279,6 +315,10 @@ def smooth(cube: xr.DataArray, *, window: int = 5, order: int = 2) -> xr.DataArr
         raise StepError(f"order must be between 0 and window − 1, got {order}")
     if window > cube.sizes[sdim]:
         raise StepError(f"window {window} is longer than the spectrum ({cube.sizes[sdim]})")
-    out = map_spectra(signal.savgol_filter, cube, sdim,
-                      kwargs={"window_length": window, "polyorder": order, "axis": -1})
+    out = map_spectra(
+        signal.savgol_filter,
+        cube,
+        sdim,
+        kwargs={"window_length": window, "polyorder": order, "axis": -1},
+    )
     return finish(out, cube, "smooth", {"window": window, "order": order})

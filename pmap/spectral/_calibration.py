@@ -160,9 +160,22 @@ def find_lines(spectrum: Any, *, min_snr: float = 10.0, max_lines: int = 200) ->
         raise StepError("lamp spectrum must be finite with at least 8 channels")
     bg = ndimage.median_filter(y, size=min(41, y.size | 1), mode="nearest")
     r = y - bg
-    noise = float(robust_sigma_of_diff(r))
-    if noise <= 0:
-        noise = max(1e-12, 1e-6 * float(np.max(np.abs(r))))
+    # noise s.d. from the first difference away from the lines: estimate, mask what stands
+    # above 5 s.d. (widened by 3 channels), estimate again on the rest
+    keep = np.ones(y.size, dtype=bool)
+    noise = 0.0
+    for _ in range(3):
+        d = np.diff(r)[keep[1:] & keep[:-1]]
+        noise = (
+            float(robust_sigma_of_diff(np.concatenate([[0.0], np.cumsum(d)])))
+            if (d.size > 4)
+            else noise
+        )
+        line = ndimage.binary_dilation(r > 5 * noise, iterations=3)
+        if line.all() or noise <= 0:
+            break
+        keep = ~line
+    noise = max(noise, 1e-6 * float(np.max(np.abs(r))), 1e-300)
     peaks, props = signal.find_peaks(r, prominence=min_snr * noise, distance=2)
     if peaks.size > max_lines:
         keep = np.argsort(props["prominences"])[::-1][:max_lines]
@@ -185,16 +198,17 @@ def find_lines(spectrum: Any, *, min_snr: float = 10.0, max_lines: int = 200) ->
                 centre = popt[1]
         except (RuntimeError, optimize.OptimizeWarning, ValueError):
             pass
-        if not np.isfinite(centre) and 0 < pk < y.size - 1 and np.all(r[pk - 1:pk + 2] > 0):
-            la, lb, lc = np.log(r[pk - 1:pk + 2])
+        if not np.isfinite(centre) and 0 < pk < y.size - 1 and np.all(r[pk - 1 : pk + 2] > 0):
+            la, lb, lc = np.log(r[pk - 1 : pk + 2])
             den = la - 2 * lb + lc
             centre = pk + 0.5 * (la - lc) / den if den < 0 else float(pk)
         out.append(centre if np.isfinite(centre) else float(pk))
     return np.asarray(sorted(out))
 
 
-def _search_shift_scale(lam_det: np.ndarray, ref: np.ndarray, *, max_shift_nm: float,
-                        max_scale: float, sigma_nm: float) -> tuple[float, float, float]:
+def _search_shift_scale(
+    lam_det: np.ndarray, ref: np.ndarray, *, max_shift_nm: float, max_scale: float, sigma_nm: float
+) -> tuple[float, float, float]:
     """Shift s (nm) and relative scale a maximising the overlap of detected and reference lines.
 
     Model: λ = λ_c + (λ_nom − λ_c)(1 + a) + s; score = Σ_j Σ_k exp(−½((λ_j − r_k)/σ)²),
@@ -218,8 +232,11 @@ def _search_shift_scale(lam_det: np.ndarray, ref: np.ndarray, *, max_shift_nm: f
 
 def _match(lam: np.ndarray, ref: np.ndarray, tol_nm: float) -> tuple[np.ndarray, np.ndarray]:
     """Nearest reference line for each detected line within ``tol_nm``, one-to-one."""
-    k = np.clip(np.searchsorted(ref, lam), 1, ref.size - 1) if ref.size > 1 else np.zeros(
-        lam.size, dtype=int)
+    k = (
+        np.clip(np.searchsorted(ref, lam), 1, ref.size - 1)
+        if ref.size > 1
+        else np.zeros(lam.size, dtype=int)
+    )
     if ref.size > 1:
         k = np.where(np.abs(ref[k - 1] - lam) <= np.abs(ref[k] - lam), k - 1, k)
     dist = np.abs(ref[k] - lam)
@@ -232,9 +249,14 @@ def _match(lam: np.ndarray, ref: np.ndarray, tol_nm: float) -> tuple[np.ndarray,
     return np.flatnonzero(ok), k[ok]
 
 
-def _robust_polyfit(p: np.ndarray, lam: np.ndarray, degree: int, domain: list[float],
-                    clip_sigma: float, floor_nm: float) -> tuple[np.polynomial.Polynomial,
-                                                                 np.ndarray]:
+def _robust_polyfit(
+    p: np.ndarray,
+    lam: np.ndarray,
+    degree: int,
+    domain: list[float],
+    clip_sigma: float,
+    floor_nm: float,
+) -> tuple[np.polynomial.Polynomial, np.ndarray]:
     """Polynomial fit with iterative sigma clipping (MAD scale); returns (poly, used mask)."""
     used = np.ones(p.size, dtype=bool)
     poly = None
@@ -300,8 +322,9 @@ class WavelengthCalibration:
     @property
     def polynomial(self) -> np.polynomial.Polynomial:
         """The solution as a numpy Polynomial (pixel → nm)."""
-        return np.polynomial.Polynomial(self.coefficients, domain=list(self.domain_pixel),
-                                        window=[-1, 1])
+        return np.polynomial.Polynomial(
+            self.coefficients, domain=list(self.domain_pixel), window=[-1, 1]
+        )
 
     def wavelength_nm(self, pixel: Any = None) -> np.ndarray:
         """Wavelength in nm at pixel positions (default: every channel 0 … n_pixels − 1)."""
@@ -340,9 +363,7 @@ class WavelengthCalibration:
             raise StepError(f"a wavelength calibration needs a wavelength axis, got {sdim!r}")
         n = cube.sizes[sdim]
         if n != self.n_pixels:
-            raise StepError(
-                f"calibration is for {self.n_pixels} channels, the cube has {n}"
-            )
+            raise StepError(f"calibration is for {self.n_pixels} channels, the cube has {n}")
         lam = self.wavelength_nm()
         if not np.all(np.diff(lam) > 0):
             raise StepError("the calibration is not strictly ascending over the detector")
@@ -350,20 +371,31 @@ class WavelengthCalibration:
         out = cube.assign_coords({sdim: (sdim, lam, attrs_c)})
         attrs = dict(cube.attrs)
         attrs["wavelength_medium"] = self.medium
-        return finish(out, cube, "apply_calibration",
-                      {"reference": self.reference, "degree": self.degree},
-                      attrs=attrs, rms_pm=round(self.rms_pm, 4),
-                      n_lines=int(self.used.sum()))
+        return finish(
+            out,
+            cube,
+            "apply_calibration",
+            {"reference": self.reference, "degree": self.degree},
+            attrs=attrs,
+            rms_pm=round(self.rms_pm, 4),
+            n_lines=int(self.used.sum()),
+        )
 
     def to_dict(self) -> dict:
         """The JSON-ready record (schema in the module docstring)."""
         return {
-            "format": _FORMAT_TAG, "version": 1, "model": "polynomial",
+            "format": _FORMAT_TAG,
+            "version": 1,
+            "model": "polynomial",
             "domain_pixel": [float(v) for v in self.domain_pixel],
             "coefficients": [float(c) for c in self.coefficients],
-            "degree": int(self.degree), "n_pixels": int(self.n_pixels),
-            "medium": self.medium, "reference": self.reference,
-            "rms_nm": self.rms_nm, "lines": self.lines, "pmap_version": __version__,
+            "degree": int(self.degree),
+            "n_pixels": int(self.n_pixels),
+            "medium": self.medium,
+            "reference": self.reference,
+            "rms_nm": self.rms_nm,
+            "lines": self.lines,
+            "pmap_version": __version__,
         }
 
     def save(self, path: str | os.PathLike) -> Path:
@@ -385,14 +417,18 @@ def load_calibration(path: str | os.PathLike) -> WavelengthCalibration:
     if not isinstance(rec, dict) or rec.get("format") != _FORMAT_TAG:
         raise InputFileError(f"{p} is not a pmap wavelength calibration (format tag missing)")
     if rec.get("version") != 1 or rec.get("model") != "polynomial":
-        raise InputFileError(f"{p}: unsupported calibration version/model "
-                             f"{rec.get('version')!r}/{rec.get('model')!r}")
+        raise InputFileError(
+            f"{p}: unsupported calibration version/model "
+            f"{rec.get('version')!r}/{rec.get('model')!r}"
+        )
     try:
         return WavelengthCalibration(
             coefficients=[float(c) for c in rec["coefficients"]],
             domain_pixel=tuple(float(v) for v in rec["domain_pixel"]),
-            degree=int(rec["degree"]), n_pixels=int(rec["n_pixels"]),
-            medium=str(rec.get("medium", "air")), reference=str(rec.get("reference", "")),
+            degree=int(rec["degree"]),
+            n_pixels=int(rec["n_pixels"]),
+            medium=str(rec.get("medium", "air")),
+            reference=str(rec.get("reference", "")),
             lines=list(rec.get("lines", [])),
         )
     except (KeyError, TypeError, ValueError) as exc:
@@ -426,11 +462,19 @@ def _lamp_and_axis(lamp: Any, nominal_nm: Any) -> tuple[np.ndarray, np.ndarray]:
     return y, axis
 
 
-def calibrate_wavelength(lamp: Any, *, lines: Any = "Ne", nominal_nm: Any = None,
-                         degree: int | str = 3, max_shift_nm: float = 2.0,
-                         max_scale: float = 0.005, tolerance_nm: float | None = None,
-                         clip_sigma: float = 3.5, min_snr: float = 10.0,
-                         medium: str = "air") -> WavelengthCalibration:
+def calibrate_wavelength(
+    lamp: Any,
+    *,
+    lines: Any = "Ne",
+    nominal_nm: Any = None,
+    degree: int | str = 3,
+    max_shift_nm: float = 2.0,
+    max_scale: float = 0.005,
+    tolerance_nm: float | None = None,
+    clip_sigma: float = 3.5,
+    min_snr: float = 10.0,
+    medium: str = "air",
+) -> WavelengthCalibration:
     """Fit a pixel → wavelength polynomial from a reference-lamp spectrum.
 
     Parameters
@@ -493,12 +537,14 @@ def calibrate_wavelength(lamp: Any, *, lines: Any = "Ne", nominal_nm: Any = None
     n = y.size
     lam_det = np.interp(pix, np.arange(n), nom)
     coarse = max(3 * disp, 0.1)
-    s, a, lc = _search_shift_scale(lam_det, ref, max_shift_nm=max_shift_nm,
-                                   max_scale=max_scale, sigma_nm=coarse)
+    s, a, lc = _search_shift_scale(
+        lam_det, ref, max_shift_nm=max_shift_nm, max_scale=max_scale, sigma_nm=coarse
+    )
     fine = max(disp, 0.02)
     lam0 = lc + (lam_det - lc) * (1 + a) + s
-    s2, a2, lc2 = _search_shift_scale(lam0, ref, max_shift_nm=2 * coarse,
-                                      max_scale=max_scale / 4, sigma_nm=fine)
+    s2, a2, lc2 = _search_shift_scale(
+        lam0, ref, max_shift_nm=2 * coarse, max_scale=max_scale / 4, sigma_nm=fine
+    )
     lam1 = lc2 + (lam0 - lc2) * (1 + a2) + s2
     tol = float(tolerance_nm) if tolerance_nm is not None else max(4 * disp, 0.1)
     j, k = _match(lam1, ref, tol)
@@ -513,8 +559,10 @@ def calibrate_wavelength(lamp: Any, *, lines: Any = "Ne", nominal_nm: Any = None
         if not 1 <= deg <= 7:
             raise StepError(f"degree must be between 1 and 7, got {deg}")
     if j.size < deg + 2:
-        raise StepError(f"only {j.size} lines matched the reference list {lines!r}; "
-                        f"a degree-{deg} fit needs at least {deg + 2}")
+        raise StepError(
+            f"only {j.size} lines matched the reference list {lines!r}; "
+            f"a degree-{deg} fit needs at least {deg + 2}"
+        )
     floor = max(0.02 * disp, 1e-4)
     poly, used = _robust_polyfit(pix[j], ref[k], deg, domain, clip_sigma, floor)
     for _ in range(5):
@@ -523,29 +571,44 @@ def calibrate_wavelength(lamp: Any, *, lines: Any = "Ne", nominal_nm: Any = None
             break
         if deg_auto:
             deg = _bic_degree(pix[j_new], ref[k_new], domain, 5) if j_new.size >= 5 else 1
-        poly_new, used_new = _robust_polyfit(pix[j_new], ref[k_new], deg, domain, clip_sigma,
-                                             floor)
+        poly_new, used_new = _robust_polyfit(pix[j_new], ref[k_new], deg, domain, clip_sigma, floor)
         same = np.array_equal(j_new, j) and np.array_equal(used_new, used)
         j, k, poly, used = j_new, k_new, poly_new, used_new
         if same:
             break
     fitted = poly(pix[j])
     recs = [
-        {"pixel": float(pp), "reference_nm": float(rr), "fitted_nm": float(ff),
-         "residual_pm": float((ff - rr) * 1e3), "used": bool(u)}
+        {
+            "pixel": float(pp),
+            "reference_nm": float(rr),
+            "fitted_nm": float(ff),
+            "residual_pm": float((ff - rr) * 1e3),
+            "used": bool(u),
+        }
         for pp, rr, ff, u in zip(pix[j], ref[k], fitted, used)
     ]
     name = lines if isinstance(lines, str) else "user line list"
     return WavelengthCalibration(
-        coefficients=[float(c) for c in poly.coef], domain_pixel=(domain[0], domain[1]),
-        degree=deg, n_pixels=n, medium=medium, reference=str(name), lines=recs,
+        coefficients=[float(c) for c in poly.coef],
+        domain_pixel=(domain[0], domain[1]),
+        degree=deg,
+        n_pixels=n,
+        medium=medium,
+        reference=str(name),
+        lines=recs,
     )
 
 
 @register_step("apply_calibration")
-def apply_calibration(cube: xr.DataArray, *, calibration: Any = None, lamp: Any = None,
-                      lines: Any = "Ne", degree: int | str = 3,
-                      max_shift_nm: float = 2.0) -> xr.DataArray:
+def apply_calibration(
+    cube: xr.DataArray,
+    *,
+    calibration: Any = None,
+    lamp: Any = None,
+    lines: Any = "Ne",
+    degree: int | str = 3,
+    max_shift_nm: float = 2.0,
+) -> xr.DataArray:
     """Put the cube on a calibrated wavelength axis (from a saved calibration or a lamp).
 
     Parameters
@@ -571,8 +634,9 @@ def apply_calibration(cube: xr.DataArray, *, calibration: Any = None, lamp: Any 
         nominal = None
         if isinstance(spec, xr.DataArray) and "wavelength" not in spec.dims:
             nominal = np.asarray(cube_c[sdim].values)
-        calibration = calibrate_wavelength(spec, lines=lines, nominal_nm=nominal,
-                                           degree=degree, max_shift_nm=max_shift_nm)
+        calibration = calibrate_wavelength(
+            spec, lines=lines, nominal_nm=nominal, degree=degree, max_shift_nm=max_shift_nm
+        )
     elif not isinstance(calibration, WavelengthCalibration):
         calibration = load_calibration(calibration)
     return calibration.apply(cube)

@@ -47,8 +47,14 @@ def float_dtype(dtype: np.dtype) -> np.dtype:
     return np.result_type(dtype, np.float32)
 
 
-def finish(out: xr.DataArray, cube: xr.DataArray, name: str, params: Mapping[str, Any],
-           attrs: Mapping[str, Any] | None = None, **results: Any) -> xr.DataArray:
+def finish(
+    out: xr.DataArray,
+    cube: xr.DataArray,
+    name: str,
+    params: Mapping[str, Any],
+    attrs: Mapping[str, Any] | None = None,
+    **results: Any,
+) -> xr.DataArray:
     """Name the result ``intensity`` and record the step in its provenance."""
     base = dict(cube.attrs) if attrs is None else dict(attrs)
     out.attrs = with_step(base, name, dict(params), **results)
@@ -56,9 +62,15 @@ def finish(out: xr.DataArray, cube: xr.DataArray, name: str, params: Mapping[str
     return out
 
 
-def map_spectra(func: Callable[..., np.ndarray], cube: xr.DataArray, sdim: str, *,
-                dtype: Any = None, kwargs: Mapping[str, Any] | None = None,
-                extra: tuple = ()) -> xr.DataArray:
+def map_spectra(
+    func: Callable[..., np.ndarray],
+    cube: xr.DataArray,
+    sdim: str,
+    *,
+    dtype: Any = None,
+    kwargs: Mapping[str, Any] | None = None,
+    extra: tuple = (),
+) -> xr.DataArray:
     """Apply a batched core ``func(x (..., n), *extra, **kwargs) -> (..., n)`` lazily.
 
     ``extra`` are numpy arrays broadcast to every block (spectra, channel weights).
@@ -70,8 +82,13 @@ def map_spectra(func: Callable[..., np.ndarray], cube: xr.DataArray, sdim: str, 
         return np.asarray(func(x, *extra, **kw), dtype=dtype)
 
     return xr.apply_ufunc(
-        core, cube, input_core_dims=[[sdim]], output_core_dims=[[sdim]],
-        dask="parallelized", output_dtypes=[dtype], keep_attrs=True,
+        core,
+        cube,
+        input_core_dims=[[sdim]],
+        output_core_dims=[[sdim]],
+        dask="parallelized",
+        output_dtypes=[dtype],
+        keep_attrs=True,
     )
 
 
@@ -131,9 +148,12 @@ def load_spectrum(obj: Any, *, what: str, sdim: str = "wavelength") -> xr.DataAr
             order = np.argsort(axis)
             if np.any(np.diff(axis[order]) == 0):
                 raise InputFileError(f"{path}: repeated axis values in the first column")
-            return xr.DataArray(values[order], dims=(sdim,), name=what,
-                                coords={sdim: (sdim, axis[order],
-                                               {"units": SPECTRAL_DIMS[sdim]})})
+            return xr.DataArray(
+                values[order],
+                dims=(sdim,),
+                name=what,
+                coords={sdim: (sdim, axis[order], {"units": SPECTRAL_DIMS[sdim]})},
+            )
         from ..io import open_cube  # io is a lower layer; imported on use
 
         return open_cube(path)
@@ -141,8 +161,9 @@ def load_spectrum(obj: Any, *, what: str, sdim: str = "wavelength") -> xr.DataAr
         arr = np.asarray(obj, dtype=float)
         if arr.ndim == 2 and arr.shape[1] == 2:
             order = np.argsort(arr[:, 0])
-            return xr.DataArray(arr[order, 1], dims=(sdim,),
-                                coords={sdim: arr[order, 0]}, name=what)
+            return xr.DataArray(
+                arr[order, 1], dims=(sdim,), coords={sdim: arr[order, 0]}, name=what
+            )
         if arr.ndim == 1:
             return xr.DataArray(arr, dims=("channel",), name=what)
     raise StepError(
@@ -151,8 +172,9 @@ def load_spectrum(obj: Any, *, what: str, sdim: str = "wavelength") -> xr.DataAr
     )
 
 
-def spectrum_on_axis(spec: xr.DataArray, cube: xr.DataArray, sdim: str, *, what: str,
-                     interpolate: bool) -> np.ndarray:
+def spectrum_on_axis(
+    spec: xr.DataArray, cube: xr.DataArray, sdim: str, *, what: str, interpolate: bool
+) -> np.ndarray:
     """Values of a 1-D spectrum on the cube's channels (numpy, length n).
 
     With ``interpolate`` the spectrum is linearly interpolated on the cube's axis
@@ -190,7 +212,9 @@ def region_slice(cube: xr.DataArray, region: Mapping[str, Any]) -> xr.DataArray:
         try:
             lo, hi = (float(b) for b in bounds)
         except (TypeError, ValueError):
-            raise StepError(f"region[{dim!r}] must be a pair (start, stop), got {bounds!r}") from None
+            raise StepError(
+                f"region[{dim!r}] must be a pair (start, stop), got {bounds!r}"
+            ) from None
         sel[dim] = slice(min(lo, hi), max(lo, hi))
     sub = cube.sel(sel)
     if sub.sizes["x"] == 0 or sub.sizes["y"] == 0:

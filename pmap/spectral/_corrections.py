@@ -30,8 +30,9 @@ def _describe(obj: Any) -> Any:
 
 
 @register_step("subtract_dark")
-def subtract_dark(cube: xr.DataArray, *, dark: Any = None,
-                  region: Mapping[str, Any] | None = None) -> xr.DataArray:
+def subtract_dark(
+    cube: xr.DataArray, *, dark: Any = None, region: Mapping[str, Any] | None = None
+) -> xr.DataArray:
     """Subtract a dark (background) signal.
 
     Parameters
@@ -70,8 +71,10 @@ def subtract_dark(cube: xr.DataArray, *, dark: Any = None,
             out = x - dt.type(d)
         elif "y" in d.dims and "x" in d.dims and (d.sizes["y"] > 1 or d.sizes["x"] > 1):
             if d.sizes["y"] != cube.sizes["y"] or d.sizes["x"] != cube.sizes["x"]:
-                raise StepError(f"dark cube is {d.sizes['y']}×{d.sizes['x']} pixels, "
-                                f"the cube {cube.sizes['y']}×{cube.sizes['x']}")
+                raise StepError(
+                    f"dark cube is {d.sizes['y']}×{d.sizes['x']} pixels, "
+                    f"the cube {cube.sizes['y']}×{cube.sizes['x']}"
+                )
             dsd = next((s for s in d.dims if s not in ("y", "x")), None)
             if dsd is None or d.sizes[dsd] != cube.sizes[sdim]:
                 raise StepError("dark cube must have the same number of channels as the cube")
@@ -87,8 +90,9 @@ def subtract_dark(cube: xr.DataArray, *, dark: Any = None,
 
 
 @register_step("correct_response")
-def correct_response(cube: xr.DataArray, *, response: Any, units: str | None = None
-                     ) -> xr.DataArray:
+def correct_response(
+    cube: xr.DataArray, *, response: Any, units: str | None = None
+) -> xr.DataArray:
     """Divide by an instrument spectral response curve interpolated onto the cube's axis.
 
     Parameters
@@ -112,14 +116,17 @@ def correct_response(cube: xr.DataArray, *, response: Any, units: str | None = N
     if isinstance(r, float):
         raise StepError("response must be a spectrum (DataArray or 2-column file), not a number")
     if sdim not in r.dims:
-        raise StepError(f"response must be given on the cube's {sdim!r} axis, has dims "
-                        f"{list(r.dims)}")
+        raise StepError(
+            f"response must be given on the cube's {sdim!r} axis, has dims {list(r.dims)}"
+        )
     vals = spectrum_on_axis(r, cube, sdim, what="response", interpolate=True)
     bad = ~(np.isfinite(vals) & (vals > 0))
     if np.any(bad):
         first = float(cube[sdim].values[np.flatnonzero(bad)[0]])
-        raise StepError(f"response is not positive and finite over the cube's axis "
-                        f"({int(bad.sum())} channels, first at {sdim}={first:g})")
+        raise StepError(
+            f"response is not positive and finite over the cube's axis "
+            f"({int(bad.sum())} channels, first at {sdim}={first:g})"
+        )
     dt = float_dtype(cube.dtype)
     out = cube.astype(dt) / xr.DataArray(vals.astype(dt), dims=(sdim,))
     attrs = dict(cube.attrs)
@@ -127,12 +134,16 @@ def correct_response(cube: xr.DataArray, *, response: Any, units: str | None = N
         from ..conventions import normalise_intensity_unit
 
         attrs["units"] = normalise_intensity_unit(units)
-    return finish(out.transpose(*cube.dims), cube, "correct_response",
-                  {"response": _describe(response), "units": units}, attrs=attrs)
+    return finish(
+        out.transpose(*cube.dims),
+        cube,
+        "correct_response",
+        {"response": _describe(response), "units": units},
+        attrs=attrs,
+    )
 
 
-def response_from_lamp(measured: Any, certified: Any, *, normalise: bool = True
-                       ) -> xr.DataArray:
+def response_from_lamp(measured: Any, certified: Any, *, normalise: bool = True) -> xr.DataArray:
     """Instrument response from a reference lamp: measured / certified spectrum.
 
     Parameters
@@ -166,9 +177,11 @@ def response_from_lamp(measured: Any, certified: Any, *, normalise: bool = True
         resp = resp / resp.max()
     resp = resp.assign_coords(wavelength=m1["wavelength"])
     resp.name = "response"
-    resp.attrs = {"units": "1" if normalise else "arbitrary",
-                  "long_name": "instrument spectral response",
-                  "wavelength_medium": m.attrs.get("wavelength_medium", "air")}
+    resp.attrs = {
+        "units": "1" if normalise else "arbitrary",
+        "long_name": "instrument spectral response",
+        "wavelength_medium": m.attrs.get("wavelength_medium", "air"),
+    }
     return resp
 
 
@@ -186,9 +199,13 @@ def _positive(value: Any, what: str) -> float:
 
 
 @register_step("normalise_exposure")
-def normalise_exposure(cube: xr.DataArray, *, exposure_s: float | None = None,
-                       per_power: bool = False, excitation_power_W: float | None = None
-                       ) -> xr.DataArray:
+def normalise_exposure(
+    cube: xr.DataArray,
+    *,
+    exposure_s: float | None = None,
+    per_power: bool = False,
+    excitation_power_W: float | None = None,
+) -> xr.DataArray:
     """Divide by exposure time (→ counts/s) and optionally by excitation power (→ counts/s/W).
 
     Parameters
@@ -220,23 +237,32 @@ def normalise_exposure(cube: xr.DataArray, *, exposure_s: float | None = None,
     dt = float_dtype(cube.dtype)
     out = cube.astype(dt)
     attrs = dict(cube.attrs)
-    params: dict[str, Any] = {"exposure_s": exposure_s, "per_power": per_power,
-                              "excitation_power_W": excitation_power_W}
+    params: dict[str, Any] = {
+        "exposure_s": exposure_s,
+        "per_power": per_power,
+        "excitation_power_W": excitation_power_W,
+    }
     if unit == "counts":
         exp = exposure_s if exposure_s is not None else cube.attrs.get("exposure_s")
         if exp is None:
-            raise StepError("exposure time unknown: the cube has no 'exposure_s' attr; "
-                            "give exposure_s=")
+            raise StepError(
+                "exposure time unknown: the cube has no 'exposure_s' attr; give exposure_s="
+            )
         exp = _positive(exp, "exposure_s")
         out = out / dt.type(exp)
         attrs["exposure_s"] = exp
         unit = "counts/s"
     elif unit != "counts/s" or not per_power:
-        raise StepError(f"normalise_exposure needs a cube in counts (or counts/s to divide by "
-                        f"power only), this one is in {unit!r}")
+        raise StepError(
+            f"normalise_exposure needs a cube in counts (or counts/s to divide by "
+            f"power only), this one is in {unit!r}"
+        )
     if per_power:
-        pw = excitation_power_W if excitation_power_W is not None else cube.attrs.get(
-            "excitation_power_W")
+        pw = (
+            excitation_power_W
+            if excitation_power_W is not None
+            else cube.attrs.get("excitation_power_W")
+        )
         if pw is not None:
             pw = _positive(pw, "excitation_power_W")
             out = out / dt.type(pw)
@@ -244,12 +270,15 @@ def normalise_exposure(cube: xr.DataArray, *, exposure_s: float | None = None,
         else:
             dim = next((d for d in ("excitation_power", "power") if d in cube.dims), None)
             if dim is None or dim not in cube.coords:
-                raise StepError("excitation power unknown: no 'excitation_power_W' attr, no "
-                                "excitation_power coordinate; give excitation_power_W=")
+                raise StepError(
+                    "excitation power unknown: no 'excitation_power_W' attr, no "
+                    "excitation_power coordinate; give excitation_power_W="
+                )
             u = str(cube[dim].attrs.get("units", "W"))
             if u not in _POWER_UNITS:
-                raise StepError(f"{dim} coordinate unit {u!r} is not a power unit "
-                                f"({', '.join(_POWER_UNITS)})")
+                raise StepError(
+                    f"{dim} coordinate unit {u!r} is not a power unit ({', '.join(_POWER_UNITS)})"
+                )
             pv = np.asarray(cube[dim].values, dtype=float) * _POWER_UNITS[u]
             if np.any(~np.isfinite(pv) | (pv <= 0)):
                 raise StepError(f"{dim} coordinate has non-positive powers")

@@ -75,13 +75,26 @@ def _interp_fill(x: np.ndarray, mask: np.ndarray) -> np.ndarray:
     return out
 
 
-def _clean_block(block: np.ndarray, threshold: float, min_neighbours: int,
-                 out_dtype: np.dtype) -> np.ndarray:
+def _local_sigma(inner: np.ndarray, ib, iy, ix, ic, half: int = 10) -> np.ndarray:
+    """Noise s.d. near each candidate: 1.4826·MAD/√2 of the first difference over
+    2·half + 1 channels of its own spectrum (follows shot noise, which grows with signal)."""
+    n = inner.shape[-1]
+    w = min(2 * half + 1, n)
+    start = np.clip(ic - half, 0, n - w)
+    cc = start[:, None] + np.arange(w)
+    win = inner[ib[:, None], iy[:, None], ix[:, None], cc]
+    _, mad = _robust_scale(np.diff(win, axis=-1))
+    return 1.4826 * mad[:, 0] / np.sqrt(2.0)
+
+
+def _clean_block(
+    block: np.ndarray, threshold: float, min_neighbours: int, out_dtype: np.dtype
+) -> np.ndarray:
     """Core over a padded block (B…, Y + 2, X + 2, n) with NaN outside the map."""
     shape = block.shape
     b = block.reshape((-1,) + shape[-3:])
     inner = b[:, 1:-1, 1:-1, :].astype(np.float64)
-    cand, sigma = spike_candidates(inner, threshold)
+    cand, _ = spike_candidates(inner, threshold)
     out = b.astype(out_dtype, copy=True)
     ib, iy, ix, ic = np.nonzero(cand)
     if ib.size == 0:
@@ -95,7 +108,7 @@ def _clean_block(block: np.ndarray, threshold: float, min_neighbours: int,
         warnings.simplefilter("ignore", RuntimeWarning)
         nb_med = np.nanmedian(nb, axis=-1)
         nb_mad = np.nanmedian(np.abs(nb - nb_med[:, None]), axis=-1)
-    sig = sigma[ib, iy, ix, 0]
+    sig = _local_sigma(inner, ib, iy, ix, ic)
     scale = np.maximum(sig, np.where(np.isfinite(nb_mad), 1.4826 * nb_mad, 0.0))
     spike_sp = spatial & (val - nb_med > threshold * scale) & (scale >= 0)
     # spectral fallback (map edges with < min_neighbours, single spectra): compare with the
@@ -132,8 +145,13 @@ def _clean_block(block: np.ndarray, threshold: float, min_neighbours: int,
 
 
 @register_step("remove_spikes")
-def remove_spikes(cube: xr.DataArray, *, threshold: float = 6.0, min_neighbours: int = 3,
-                  return_mask: bool = False) -> xr.DataArray | tuple[xr.DataArray, xr.DataArray]:
+def remove_spikes(
+    cube: xr.DataArray,
+    *,
+    threshold: float = 6.0,
+    min_neighbours: int = 3,
+    return_mask: bool = False,
+) -> xr.DataArray | tuple[xr.DataArray, xr.DataArray]:
     """Remove cosmic-ray spikes using both the spectrum and the spatial neighbours.
 
     Parameters
@@ -162,8 +180,9 @@ def remove_spikes(cube: xr.DataArray, *, threshold: float = 6.0, min_neighbours:
     (:func:`spike_candidates`: modified z-score of the first difference beyond
     ``threshold``, the channel entered by a rise or left by a fall, widened by one channel)
     and (2) it exceeds the median of its 3×3 spatial neighbours at channel i by more than
-    ``threshold`` × s, s = max(σ of the spectrum from its differences, 1.4826·MAD of the
-    neighbours at i). Spikes are replaced by that neighbour median. Where fewer than
+    ``threshold`` × s, s = max(local noise s.d. of the spectrum, 1.4826·MAD of the
+    neighbours at i); the local s.d. is 1.4826·MAD/√2 of the first difference over 21
+    channels around i, so it follows shot noise. Spikes are replaced by that neighbour median. Where fewer than
     ``min_neighbours`` neighbours exist, (2) compares with the median of ±3 channels and the
     spike is replaced by linear interpolation across the flagged channels. Chunks are read
     with a 1-pixel spatial overlap (:func:`dask.array.map_overlap`). Cost: two medians per
@@ -187,12 +206,19 @@ def remove_spikes(cube: xr.DataArray, *, threshold: float = 6.0, min_neighbours:
     boundary = {i: "none" for i in range(data.ndim)}
     boundary.update({ay: np.nan, ax: np.nan})
     cleaned = da.map_overlap(
-        _clean_block, data, depth=depth, boundary=boundary, dtype=dt,
-        threshold=threshold, min_neighbours=int(min_neighbours), out_dtype=dt,
+        _clean_block,
+        data,
+        depth=depth,
+        boundary=boundary,
+        dtype=dt,
+        threshold=threshold,
+        min_neighbours=int(min_neighbours),
+        out_dtype=dt,
     )
     out = cube.copy(data=cleaned)
-    out = finish(out, cube, "remove_spikes",
-                 {"threshold": threshold, "min_neighbours": int(min_neighbours)})
+    out = finish(
+        out, cube, "remove_spikes", {"threshold": threshold, "min_neighbours": int(min_neighbours)}
+    )
     if not return_mask:
         return out
     changed = (cleaned != data) & ~(da.isnan(cleaned) & da.isnan(data))

@@ -1,0 +1,186 @@
+"""Tests of pmap.report: PNG figures with units, robust limits and scale bars."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+import xarray as xr
+from PIL import Image
+from scipy import stats
+
+from pmap import report
+from pmap.errors import StepError
+from pmap.synthetic import make_demo_cube
+
+
+def png_info(path):
+    """Image size and the pmap Description text chunk of a PNG."""
+    with Image.open(path) as im:
+        im.load()
+        assert im.format == "PNG"
+        return im.size, json.loads(im.text["Description"]), np.asarray(im)
+
+
+def energy_map(ny=30, nx=40, *, outlier=None, seed=0):
+    rng = np.random.default_rng(seed)
+    data = 1.60 + 0.05 * rng.random((ny, nx))
+    data[0, :3] = np.nan
+    if outlier is not None:
+        data[ny // 2, nx // 2] = outlier
+    return xr.DataArray(
+        data,
+        dims=("y", "x"),
+        name="peak_energy",
+        coords={
+            "y": ("y", np.arange(ny) * 0.5, {"units": "um"}),
+            "x": ("x", np.arange(nx) * 0.5, {"units": "um"}),
+        },
+        attrs={"units": "eV", "long_name": "peak energy"},
+    )
+
+
+@pytest.fixture(scope="module")
+def tiny_demo():
+    return make_demo_cube(shape=(16, 24), seed=0)
+
+
+def test_plot_map_writes_png_with_units(tmp_path):
+    path = report.plot_map(energy_map(), tmp_path / "sub" / "map.png", title="E")
+    assert path.exists() and path.stat().st_size > 5_000
+    size, info, pixels = png_info(path)
+    assert size[0] > 300 and size[1] > 200
+    assert "(eV)" in info["colorbar_label"] and "peak energy" in info["colorbar_label"]
+    assert pixels.std() > 10  # not a blank image
+
+
+def test_robust_limits_ignore_outlier_and_nan(tmp_path):
+    da = energy_map(outlier=1e6)
+    _, info, _ = png_info(report.plot_map(da, tmp_path / "robust.png"))
+    finite = da.values[np.isfinite(da.values)]
+    # 2nd–98th percentile colour limits (common practice), numpy as reference
+    np.testing.assert_allclose(info["clim"], np.percentile(finite, [2, 98]), rtol=1e-12)
+    assert info["clim"][1] < 1.7
+    _, info_full, _ = png_info(report.plot_map(da, tmp_path / "full.png", robust=False))
+    assert info_full["clim"] == [pytest.approx(finite.min()), pytest.approx(1e6)]
+
+
+@pytest.mark.parametrize("width", [0.37, 3.0, 19.5, 48.0, 95.5, 1234.0])
+def test_scale_bar_length_is_round(width):
+    length = report.nice_scale_length(width)
+    mantissa = length / 10 ** math.floor(math.log10(length) + 1e-9)
+    assert round(mantissa, 9) in (1.0, 2.0, 5.0)
+    # closest 1-2-5 step to a fifth of the width: within sqrt(2.5) of it
+    assert 1 / math.sqrt(2.5) <= length / (width / 5) <= math.sqrt(2.5)
+
+
+def test_scale_bar_drawn_on_map(tmp_path):
+    from matplotlib.figure import Figure
+
+    da = energy_map(ny=64, nx=96)  # 48 µm wide
+    _, info, _ = png_info(report.plot_map(da, tmp_path / "bar.png"))
+    assert info["scale_bar_um"] == 10.0
+    fig = Figure()
+    ax = fig.add_subplot()
+    art = report._draw_map(ax, da)
+    bars = [p for p in ax.patches if p.get_gid() == "scale_bar"]
+    assert len(bars) == 1 and bars[0].get_width() == pytest.approx(10.0)
+    assert any(t.get_text() == "10 µm" for t in ax.texts)
+    assert art.image.cmap.get_bad()[:3] == pytest.approx((0.62, 0.62, 0.62))  # NaN grey
+    assert ax.get_aspect() == 1.0
+    # no scale bar for maps in pixel units
+    ax2 = Figure().add_subplot()
+    px = da.assign_coords(x=("x", np.arange(96.0), {"units": "pixel"}))
+    assert report._draw_map(ax2, px).scale_bar_um is None
+
+
+def test_plot_histogram_median_and_spread(tmp_path):
+    rng = np.random.default_rng(1)
+    da = xr.DataArray(
+        rng.normal(1.62, 0.01, (50, 60)),
+        dims=("y", "x"),
+        name="peak_energy",
+        attrs={"units": "eV", "long_name": "peak energy"},
+    )
+    da[0, 0] = np.nan
+    _, info, _ = png_info(report.plot_histogram(da, tmp_path / "h.png"))
+    finite = da.values[np.isfinite(da.values)]
+    assert info["n"] == finite.size
+    assert info["median"] == pytest.approx(np.median(finite), rel=1e-12)
+    # 1.4826·MAD: scipy.stats.median_abs_deviation(scale="normal") as the reference
+    ref = stats.median_abs_deviation(finite, scale="normal")
+    assert info["sigma_mad"] == pytest.approx(ref, rel=1e-4)
+    assert "(eV)" in info["xlabel"]
+
+
+def test_plot_spectra_with_reference(tmp_path, tiny_demo):
+    cube, _ = tiny_demo
+    path = report.plot_spectra(
+        cube, tmp_path / "s.png", pixels=[(8, 12), (2, 20)], reference=cube + 5.0
+    )
+    _, info, _ = png_info(path)
+    assert info["n_spectra"] == 2
+    assert "(nm)" in info["xlabel"] and "(counts)" in info["ylabel"]
+    _, info_default, _ = png_info(report.plot_spectra(cube, tmp_path / "d.png"))
+    assert info_default["n_spectra"] == 3
+    with pytest.raises(StepError, match="outside"):
+        report.plot_spectra(cube, tmp_path / "bad.png", pixels=[(99, 0)])
+
+
+def test_plot_labels_legend_names(tmp_path, tiny_demo):
+    _, truth = tiny_demo
+    _, info, _ = png_info(report.plot_labels(truth["region"], tmp_path / "r.png"))
+    present = sorted(int(v) for v in np.unique(truth["region"].values))
+    assert info["codes"] == present
+    names = dict(zip([-1, 0, 1, 2], truth["region"].attrs["flag_meanings"].split()))
+    assert info["names"] == [names[c] for c in present]
+    lab = xr.DataArray(np.array([[0, 1], [1, 2]]), dims=("y", "x"), name="cluster")
+    _, info2, _ = png_info(report.plot_labels(lab, tmp_path / "c.png", names=["a", "b", "c"]))
+    assert info2["names"] == ["a", "b", "c"] and info2["scale_bar_um"] is None
+    with pytest.raises(StepError, match="non-integer"):
+        report.plot_labels(lab.astype(float) + 0.5, tmp_path / "x.png")
+
+
+def test_write_figures_on_result_dataset(tmp_path, tiny_demo):
+    _, truth = tiny_demo
+    paths = report.write_figures(truth, tmp_path / "figs")
+    names = {p.name for p in paths}
+    assert {
+        "region.png",
+        "peak_energy_band_edge.png",
+        "peak_area_defect.png",
+        "peak_energy_band_edge_histogram.png",
+    } <= names
+    assert not any(n.startswith("spike_mask") for n in names)  # has a spectral dim
+    assert all(p.stat().st_size > 1_000 for p in paths)
+    assert len(paths) == len(set(paths))
+    with pytest.raises(StepError, match="not a map"):
+        report.write_figures(truth, tmp_path / "x", variables=["spike_mask"])
+    with pytest.raises(StepError, match="not in the dataset"):
+        report.write_figures(truth, tmp_path / "x", variables=["nope"])
+
+
+def test_bad_map_input(tmp_path, tiny_demo):
+    cube, _ = tiny_demo
+    with pytest.raises(StepError, match=r"dims \(y, x\)"):
+        report.plot_map(cube, tmp_path / "c.png")
+    with pytest.raises(StepError, match="colormap"):
+        report.plot_map(energy_map(), tmp_path / "m.png", cmap="no-such-map")
+    with pytest.raises(StepError, match="DataArray"):
+        report.plot_map(np.zeros((3, 3)), tmp_path / "n.png")
+
+
+def test_summarise_result_matches_numpy(tiny_demo):
+    _, truth = tiny_demo
+    row = report.summarise_result(truth)
+    e = truth["peak_energy"].values[0]
+    finite = e[np.isfinite(e)]
+    assert row["peak_energy[band_edge] median (eV)"] == pytest.approx(np.median(finite))
+    # 1.4826·MAD: scipy.stats.median_abs_deviation(scale="normal") as the reference
+    assert row["peak_energy[band_edge] sigma_MAD (eV)"] == pytest.approx(
+        stats.median_abs_deviation(finite, scale="normal"), rel=1e-4
+    )
+    assert row["peak_energy[band_edge] finite fraction"] == pytest.approx(finite.size / e.size)
+    assert not any(k.startswith(("region", "spike_mask", "dead_pixel")) for k in row)
