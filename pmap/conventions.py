@@ -22,6 +22,7 @@ __all__ = [
     "nm_to_ev",
     "ev_to_nm",
     "nm_to_wavenumber",
+    "integrated_unit",
     "normalise_length_unit",
     "normalise_intensity_unit",
 ]
@@ -83,6 +84,20 @@ def ev_to_nm(energy_ev):
 def nm_to_wavenumber(wavelength_nm):
     """Wavenumber in cm⁻¹ for a vacuum wavelength in nm (1e7/λ)."""
     return 1e7 / np.asarray(wavelength_nm, dtype=float)
+
+
+def integrated_unit(unit: str, axis_unit: str = "eV") -> str:
+    """Unit of an intensity in ``unit`` integrated over an axis in ``axis_unit``.
+
+    A density per axis unit loses the denominator ("counts/eV" over eV → "counts");
+    anything else gains the factor ("counts" over eV → "counts eV").
+    """
+    if unit in ("1", "arbitrary"):
+        return unit
+    suffix = "/" + axis_unit
+    if unit.endswith(suffix):
+        return unit[: -len(suffix)]
+    return f"{unit} {axis_unit}"
 
 
 def normalise_length_unit(unit: str | None) -> str:

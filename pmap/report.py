@@ -642,6 +642,24 @@ def write_figures(
                 )
         else:
             written.append(plot_histogram(pe, out / f"{prefix}peak_energy_histogram.png"))
+    if variables is None:
+        written.extend(_spectra_figures(ds, out, prefix))
+    return written
+
+
+def _spectra_figures(ds: xr.Dataset, out: Path, prefix: str) -> list[Path]:
+    """Component spectra (NMF/PCA) and mean spectrum per region, when the result has them."""
+    written = []
+    if "component_spectrum" in ds.data_vars:
+        written.append(plot_spectra(ds["component_spectrum"].load(),
+                                    out / f"{prefix}component_spectra.png",
+                                    title="component spectra"))
+    if "region_mean_spectrum" in ds.data_vars:
+        m = ds["region_mean_spectrum"].load()
+        rdim = next(d for d in m.dims if d.startswith("region"))
+        m = m.assign_coords({rdim: np.arange(m.sizes[rdim])})
+        written.append(plot_spectra(m, out / f"{prefix}region_mean_spectra.png",
+                                    title="mean spectrum per region"))
     return written
 
 

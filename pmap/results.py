@@ -55,6 +55,7 @@ def assemble_result(
     """
     dsets = [p.to_dataset() if isinstance(p, xr.DataArray) else p for p in parts]
     ds = xr.merge(dsets, compat="override", join="exact", combine_attrs="override")
+    ds = ds.unify_chunks()  # stages may chunk differently; blocks must align for region writes
     kept: dict = {}
     for part in dsets:  # settings of each stage (fit model, NMF solver...), provenance aside
         kept.update({k: v for k, v in part.attrs.items() if k != PROVENANCE_ATTR})

@@ -107,7 +107,7 @@ def test_table_and_csv(setup, tmp_path):
     path = write_region_csv(st, tmp_path / "regions.csv")
     back = pd.read_csv(path, index_col=0)
     assert "region_area_um2 [um2]" in back.columns
-    np.testing.assert_allclose(back["peak_fwhm_mean [eV]"], df["peak_fwhm_mean"], rtol=1e-12)
+    np.testing.assert_allclose(back["peak_fwhm_mean [eV]"], df["peak_fwhm_mean"], rtol=1e-9)
 
 
 def test_bad_input(setup):

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
+from ..conventions import integrated_unit
 from ..cube import spectral_dim, validate_cube
 from ..errors import StepError
 from ..provenance import with_step
@@ -103,7 +104,7 @@ def spectral_descriptors(cube, *, window_ev=None, ratio_windows=None) -> xr.Data
         ("centroid_energy", "eV", "intensity-weighted mean energy"),
         (
             "integrated_intensity",
-            f"{unit} eV" if unit not in ("1", "arbitrary") else unit,
+            integrated_unit(unit, "eV"),
             "integrated intensity",
         ),
         ("fwhm_interp", "eV", "full width at half maximum (interpolated)"),

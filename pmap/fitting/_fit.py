@@ -65,6 +65,9 @@ _BACKGROUNDS = {"none": 0, "constant": 1, "linear": 2}
 _PEAK_FIELDS = 10  # energy, err, fwhm, err, area, err, height, err, shape, err
 # relative cost / step tolerances, as MINPACK's defaults used by scipy curve_fit
 _FTOL = _XTOL = 1.49012e-8
+# stop when the next Gauss–Newton step is below this many standard errors (it is then
+# taken without another evaluation: the error left is second order in it)
+_STOL = 0.1
 _N_TAIL = 7  # offset, err, slope, err, status, chi2_red, n_iter
 
 
@@ -246,16 +249,26 @@ def _build_spec(x, *, model, peaks, background, bounds, fixed, shared, init) -> 
 
 
 def _quick_desc(Y, x):
-    """Per-row descriptors (one compiled pass, see ``describe_rows``) for starting values.
+    """Per-row descriptors (one compiled pass, see ``describe_rows``).
 
-    Returns (finite, base, e_max, height, fwhm, noise): base = minimum of the
-    3-channel running mean, FWHM from its half-maximum crossings (a quarter of
-    the span where none), noise = white-noise σ from second differences.
+    Returns (finite, base, height, noise, start): base = minimum of the 3-channel
+    running mean, height = its maximum above base, noise = white-noise σ from
+    second differences (the signal test); ``start`` = (offset, centre, height,
+    fwhm) starting values: the log-parabola estimate where it succeeds, else the
+    maximum's parabolic vertex and the half-maximum width (a quarter of the span
+    where there is none) above the minimum.
     """
     finite, _, D = K.describe_rows(Y, x)
-    b, height, e_max, fw, noise = D.T
+    b, height, e_max, fw, noise, b2, h2, c2, fw2 = D.T
     fw = np.where(np.isfinite(fw) & (fw > 0), fw, 0.25 * (x[-1] - x[0]))
-    return finite, b, e_max, height, fw, noise
+    ok = np.isfinite(fw2)
+    start = (
+        np.where(ok, b2, b),
+        np.where(ok, c2, e_max),
+        np.where(ok, h2, height),
+        np.where(ok, fw2, fw),
+    )
+    return finite, b, height, noise, start
 
 
 def _area_from(height, fwhm):
@@ -273,7 +286,7 @@ def _finish_start(P0, spec):
     return np.clip(P0, spec.lo, spec.hi)
 
 
-def _run(Y, spec, P0, var_mode, gain, rn2, max_iter, rows=None):
+def _run(Y, spec, P0, var_mode, gain, rn2, max_iter, rows=None, stol=None):
     """Fit rows ``rows`` of Y (all by default) from starting values P0 (len(rows), n_full)."""
     if rows is None:
         rows = np.arange(Y.shape[0])
@@ -296,6 +309,7 @@ def _run(Y, spec, P0, var_mode, gain, rn2, max_iter, rows=None):
         max_iter,
         _FTOL,
         _XTOL,
+        _STOL if stol is None else stol,
     )
 
 
@@ -303,7 +317,7 @@ def _template(mean, spec, var_mode, gain, rn2):
     """Fit the mean spectrum with K peaks (greedy: add each peak at the largest residual)."""
     x = spec.x
     Y = np.ascontiguousarray(mean[None, :], dtype=np.float64)
-    _, b, e_max, height, fw, _ = _quick_desc(Y, x)
+    _, _, _, _, (b, e_max, height, fw) = _quick_desc(Y, x)
     # unconstrained single-peak spec, then grow
     p = []
     sub = None
@@ -405,7 +419,7 @@ def _fit_rows(Y, mean, spec, var_mode, gain, rn2, max_iter, min_snr):
     """Fit every row of Y (m, n), float32 or float64; returns (m, n_out) packed outputs."""
     m = Y.shape[0]
     out = np.full((m, _PEAK_FIELDS * spec.K + _N_TAIL), np.nan)
-    finite, b, e_max, height, fw, noise = _quick_desc(Y, spec.x)
+    finite, b, height, noise, start = _quick_desc(Y, spec.x)
     if var_mode == 1:
         noise = np.maximum(noise, np.sqrt(np.maximum(b, 0.0) / gain + rn2))
     weak = ~(height > 0) | (height < min_snr * noise)
@@ -415,7 +429,7 @@ def _fit_rows(Y, mean, spec, var_mode, gain, rn2, max_iter, min_snr):
         template = None
         if spec.K > 1 or spec.init == "mean":
             template = _template(mean, spec, var_mode, gain, rn2)
-        sel = (b[fit_rows], e_max[fit_rows], height[fit_rows], fw[fit_rows])
+        sel = tuple(v[fit_rows] for v in start)
         P0 = _starts(Y, fit_rows, sel, spec, template)
         P, COV, chi2, st, niter = _run(Y, spec, P0, var_mode, gain, rn2, max_iter, fit_rows)
         out[fit_rows] = _postprocess(P, COV, chi2, st, niter, spec)

@@ -57,6 +57,8 @@ _LOG2E = 1.0 / math.log(2.0)
 _LN2 = math.log(2.0)
 
 STATUS_CONVERGED, STATUS_MAXITER, STATUS_FAILED = 0, 1, 5
+# beyond ±9σ a Gaussian and its derivatives (∝ u·g, u²·g) are below 2.2e-16 of their maximum
+_CUT_SIGMA = 9.0
 
 # fast-math without "nnan"/"ninf": sums may be re-associated (SIMD), isfinite still works
 FM = {"nsz", "arcp", "contract", "afn", "reassoc"}
@@ -75,6 +77,52 @@ def _pow2(typingctx, k):
         return builder.bitcast(bits, ir.DoubleType())
 
     return sig, codegen
+
+
+@intrinsic
+def _f64_bits(typingctx, v):
+    """The IEEE-754 bits of a float64 as an int64 (no libm call)."""
+    sig = types.int64(types.float64)
+
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], ir.IntType(64))
+
+    return sig, codegen
+
+
+@intrinsic
+def _bits_f64(typingctx, k):
+    """The float64 with IEEE-754 bits k (int64)."""
+    sig = types.float64(types.int64)
+
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], ir.DoubleType())
+
+    return sig, codegen
+
+
+@nb.njit(cache=True, error_model="numpy", inline="always")
+def _log_pos(v):
+    """ln(v) for a normal v > 0, |error| < 1e-12: exponent from the bits, then the atanh series.
+
+    v = 2**e·m with m in [√½, √2); ln m = 2 atanh(s), s = (m − 1)/(m + 1), |s| < 0.172.
+    """
+    bits = _f64_bits(v)
+    e = ((bits >> 52) & 0x7FF) - 1023
+    m = _bits_f64((bits & 0x000FFFFFFFFFFFFF) | 0x3FF0000000000000)
+    if m > 1.4142135623730951:
+        m *= 0.5
+        e += 1
+    sv = (m - 1.0) / (m + 1.0)
+    s2 = sv * sv
+    q = 1.0 / 13.0
+    q = q * s2 + 1.0 / 11.0
+    q = q * s2 + 1.0 / 9.0
+    q = q * s2 + 1.0 / 7.0
+    q = q * s2 + 1.0 / 5.0
+    q = q * s2 + 1.0 / 3.0
+    q = q * s2 + 1.0
+    return e * _LN2 + 2.0 * sv * q
 
 
 @nb.njit(cache=True, error_model="numpy", inline="always", fastmath=FM)
@@ -320,38 +368,65 @@ def _normal_eq(Jf, y, f, w, A, g, wj):
             A[b, a] = s
 
 
-@nb.njit(cache=True, error_model="numpy", fastmath=FM)
-def _gauss1_pass(x, xref, p, nbg, y, w, var_mode, gain, rn2, f, wn, H, gv):
-    """One Gaussian + background: model, costs, new weights and normal equations in one pass.
+@nb.njit(cache=True, error_model="numpy", inline="always", fastmath=FM)
+def _bg_sums(y, w, wn, b0, jb0, model_w, ig, rn2, floor):
+    """Channels (slices) where the peak is below 2.2e-16 of its maximum: offset terms only.
 
-    Slots [centre, fwhm, area, offset, slope] (a slot absent from the model has a
-    zero column). Fills f (model), wn (weights at p: from f for var_mode 1, else
-    a copy of w), H (5, 5) = Jᵀ Wn J and gv (5,) = Jᵀ Wn (y − f); returns
-    (Σ w r², Σ wn r²): the cost under the old and the new weights.
+    Returns (Σ w r², Σ wn r², h33, g3) in the slots of :func:`_gauss1_pass`.
+    """
+    c_old = c_new = h33 = g3 = 0.0
+    wb = 1.0 / max(max(b0, 0.0) * ig + rn2, floor)
+    for i in range(y.size):
+        r = y[i] - b0
+        wo = w[i]
+        wv = wb if model_w else wo
+        wn[i] = wv
+        c_old += wo * r * r
+        c_new += wv * r * r
+        h33 += wv
+        g3 += wv * r
+    return c_old, c_new, h33 * jb0 * jb0, g3 * jb0
+
+
+@nb.njit(cache=True, error_model="numpy", fastmath=FM)
+def _gauss1_pass(p, nbg, x, y, w, var_mode, gain, rn2, wn, H, gv):
+    """One Gaussian + constant offset: costs, new weights and normal equations in one pass.
+
+    Slots [centre, fwhm, area, offset] (without a background the offset column is
+    zero). Fills wn (weights at p: from the model for var_mode 1, else a copy of
+    w), H (4, 4) = Jᵀ Wn J and gv (4,) = Jᵀ Wn (y − f); returns (Σ w r², Σ wn r²):
+    the cost under the old and the new weights. The Gaussian and its derivatives
+    are evaluated only within ±9σ of the centre (beyond, they are below 2.2e-16,
+    the double-precision epsilon, times their maximum); the offset terms use every
+    channel.
     """
     c = p[0]
     fw = p[1]
     A = p[2]
     b0 = p[3] if nbg >= 1 else 0.0
-    b1 = p[4] if nbg >= 2 else 0.0
     jb0 = 1.0 if nbg >= 1 else 0.0
-    sb1 = 1.0 if nbg >= 2 else 0.0
     inv_s = 1.0 / (fw * _F2S)
     norm = inv_s / math.sqrt(2.0 * math.pi)
     inv_fw = 1.0 / fw
     ig = 1.0 / gain
     floor = ig * ig + rn2
     model_w = var_mode == 1
-    c_old = c_new = 0.0
-    h00 = h01 = h02 = h03 = h04 = h11 = h12 = h13 = h14 = 0.0
-    h22 = h23 = h24 = h33 = h34 = h44 = 0.0
-    g0 = g1 = g2 = g3 = g4 = 0.0
+    i0 = np.searchsorted(x, c - _CUT_SIGMA / inv_s)
+    i1 = max(np.searchsorted(x, c + _CUT_SIGMA / inv_s, side="right"), i0)
+    lo_ = _bg_sums(y[:i0], w[:i0], wn[:i0], b0, jb0, model_w, ig, rn2, floor)
+    hi_ = _bg_sums(y[i1:], w[i1:], wn[i1:], b0, jb0, model_w, ig, rn2, floor)
+    c_old = lo_[0] + hi_[0]
+    c_new = lo_[1] + hi_[1]
+    h33 = lo_[2] + hi_[2]
+    g3 = lo_[3] + hi_[3]
+    h00 = h01 = h02 = h03 = h11 = h12 = h13 = h22 = h23 = 0.0
+    g0 = g1 = g2 = 0.0
+    # the peak window as views, so loop indices are provably ≥ 0 (no wrap-around code)
+    x, y, w, wn = x[i0:i1], y[i0:i1], w[i0:i1], wn[i0:i1]
     for i in range(x.size):
         u = (x[i] - c) * inv_s
         gi = _exp_neg(-0.5 * u * u) * norm
-        xb = (x[i] - xref) * sb1
-        fi = A * gi + b0 + b1 * xb
-        f[i] = fi
+        fi = A * gi + b0
         r = y[i] - fi
         wo = w[i]
         wv = 1.0 / max(max(fi, 0.0) * ig + rn2, floor) if model_w else wo
@@ -361,35 +436,29 @@ def _gauss1_pass(x, xref, p, nbg, y, w, var_mode, gain, rn2, f, wn, H, gv):
         ag = A * gi
         j0 = ag * u * inv_s
         j1 = ag * (u * u - 1.0) * inv_fw
-        w0, w1, w2, w3, w4 = wv * j0, wv * j1, wv * gi, wv * jb0, wv * xb
+        w0, w1, w2, w3 = wv * j0, wv * j1, wv * gi, wv * jb0
         h00 += w0 * j0
         h01 += w0 * j1
         h02 += w0 * gi
         h03 += w0 * jb0
-        h04 += w0 * xb
         h11 += w1 * j1
         h12 += w1 * gi
         h13 += w1 * jb0
-        h14 += w1 * xb
         h22 += w2 * gi
         h23 += w2 * jb0
-        h24 += w2 * xb
         h33 += w3 * jb0
-        h34 += w3 * xb
-        h44 += w4 * xb
         g0 += w0 * r
         g1 += w1 * r
         g2 += w2 * r
         g3 += w3 * r
-        g4 += w4 * r
-    vals = (h00, h01, h02, h03, h04, h11, h12, h13, h14, h22, h23, h24, h33, h34, h44)
+    vals = (h00, h01, h02, h03, h11, h12, h13, h22, h23, h33)
     k = 0
-    for a in range(5):
-        for b in range(a, 5):
+    for a in range(4):
+        for b in range(a, 4):
             H[a, b] = vals[k]
             H[b, a] = vals[k]
             k += 1
-    gv[0], gv[1], gv[2], gv[3], gv[4] = g0, g1, g2, g3, g4
+    gv[0], gv[1], gv[2], gv[3] = g0, g1, g2, g3
     return c_old, c_new
 
 
@@ -463,6 +532,18 @@ def _spd_inverse(A, scale, L, e, d, cov):
 
 
 @nb.njit(cache=True, error_model="numpy")
+def _predicted_drop(A, g, d):
+    """Cost decrease the quadratic model predicts for step d: 2 d·g − d·A·d."""
+    s = 0.0
+    for a in range(g.size):
+        q = 0.0
+        for b in range(g.size):
+            q += A[a, b] * d[b]
+        s += d[a] * (2.0 * g[a] - q)
+    return s
+
+
+@nb.njit(cache=True, error_model="numpy")
 def _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, gain, rn2, f, wn, A, g):
     """Model, costs, new weights and normal equations at p; returns (cost_old_w, cost_new_w).
 
@@ -471,7 +552,7 @@ def _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, gain, rn2, f, wn, A
     """
     x, xref, model, K, nbg, J, Jf, H, gv, wj = wk
     if fused:
-        c_old, c_new = _gauss1_pass(x, xref, p, nbg, y, w, var_mode, gain, rn2, f, wn, H, gv)
+        c_old, c_new = _gauss1_pass(p, nbg, x, y, w, var_mode, gain, rn2, wn, H, gv)
         _collapse_normal(H, gv, free_idx, A, g)
         return c_old, c_new
     _model_cols(model, x, xref, p, K, nbg, f, J, True)
@@ -487,7 +568,7 @@ def _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, gain, rn2, f, wn, A
 
 
 @nb.njit(cache=True, error_model="numpy")
-def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter, ftol, xtol,
+def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter, ftol, xtol, stol,
              wk, vec, mats, small_vec, pn):  # fmt: skip
     """Fit one spectrum in place (p); return (status, chi2_red, n_iter); cov in mats[3].
 
@@ -501,6 +582,7 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
     n = y.size
     nfull = p.size
     nfree = small_vec.shape[1]
+    dof = max(n - nfree, 1)
     f, fn, w, wn = vec[0], vec[1], vec[2], vec[3]
     A, An, L, cov = mats[0], mats[1], mats[2], mats[3]
     g, gn, d, e = small_vec[0], small_vec[1], small_vec[2], small_vec[3]
@@ -516,7 +598,7 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
     it = 0
     while it < max_iter:
         it += 1
-        accepted = False
+        accepted = final = False
         cost_trial = cost_new = cost
         for _trial in range(12):
             if not _cholesky(A, lam, L):
@@ -526,6 +608,16 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
             for j in range(nfull):
                 fj = free_idx[j]
                 pn[j] = p[j] if fj < 0 else min(max(p[j] + d[fj], lo[j]), hi[j])
+            if lam <= 1e-2 and _predicted_drop(A, g, d) <= max(ftol, stol * stol / dof) * cost:
+                # an (almost) Gauss–Newton step whose predicted cost drop is below ftol
+                # (the test after evaluating it would stop) or that moves the
+                # parameters by less than ~stol standard errors (a drop of stol²·χ²_red):
+                # take it unevaluated and stop; what remains is of second order in
+                # the step (covariance and χ² from this point)
+                for j in range(nfull):
+                    p[j] = pn[j]
+                final = True
+                break
             cost_trial, cost_new = _evaluate(
                 pn, y, w, wk, fused, free_idx, ident, var_mode, gain, rn2, fn, wn, An, gn
             )
@@ -533,6 +625,9 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
                 accepted = True
                 break
             lam *= 10.0
+        if final:
+            status = STATUS_CONVERGED
+            break
         if not accepted:
             status = STATUS_CONVERGED  # no downhill step left: at a minimum
             break
@@ -551,7 +646,6 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
         if done:
             status = STATUS_CONVERGED
             break
-    dof = max(n - nfree, 1)
     chi2 = cost / dof
     _spd_inverse(A, chi2 if var_mode == 0 else 1.0, L, e, d, cov)
     for j in range(nfull):
@@ -564,13 +658,13 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
 
 @nb.njit(cache=True, error_model="numpy", nogil=True)
 def lm_batch(Y, rows, x, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, var_mode, gain, rn2,
-             max_iter, ftol, xtol):  # fmt: skip
+             max_iter, ftol, xtol, stol):  # fmt: skip
     """Batched Levenberg–Marquardt over the rows ``rows`` of Y (n_pix, n_ch), float32/64.
 
     ``P0`` (len(rows), n_full): starting values (fixed parameters hold their value);
     ``lo``/``hi`` (n_full,): bounds. Returns (P (m, n_full), COV (m, nfree, nfree),
     chi2_red (m,), status (m,), n_iter (m,)) for the m = len(rows) spectra.
-    One Gaussian peak uses the one-pass kernel. Releases the GIL: dask threads
+    One Gaussian peak with a constant (or no) background uses the one-pass kernel. Releases the GIL: dask threads
     run chunks concurrently.
     """
     m = rows.size
@@ -585,11 +679,11 @@ def lm_batch(Y, rows, x, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, var_m
     for j in range(nfull):
         if free_idx[j] != j:
             ident = False
-    fused = model == GAUSSIAN and K == 1
+    fused = model == GAUSSIAN and K == 1 and nbg <= 1
     y = np.empty(n)
     vec = np.empty((4, n))
     wk = (x, xref, model, K, nbg, np.zeros((nfull, n)), np.zeros((nfree, n)),
-          np.zeros((5, 5)), np.zeros(5), np.empty(n))  # fmt: skip
+          np.zeros((4, 4)), np.zeros(4), np.empty(n))  # fmt: skip
     mats = np.zeros((4, nfree, nfree))
     small_vec = np.zeros((4, nfree))
     pn = np.empty(nfull)
@@ -601,13 +695,116 @@ def lm_batch(Y, rows, x, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, var_m
         for j in range(nfull):
             p[j] = P0[k, j]
         st, c2, it = _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2,
-                              max_iter, ftol, xtol, wk, vec, mats, small_vec, pn)  # fmt: skip
+                              max_iter, ftol, xtol, stol, wk, vec, mats, small_vec,
+                              pn)  # fmt: skip
         P[k] = p
         COV[k] = mats[3]
         chi2[k] = c2
         status[k] = st
         niter[k] = it
     return P, COV, chi2, status, niter
+
+
+@nb.njit(cache=True, error_model="numpy", fastmath=True)
+def _min_max(s):
+    """(min, max) of a finite array; full fast-math (no NaN/Inf here) lets it vectorise."""
+    lo = s[0]
+    hi = s[0]
+    for c in range(1, s.size):
+        lo = min(lo, s[c])
+        hi = max(hi, s[c])
+    return lo, hi
+
+
+@nb.njit(cache=True, error_model="numpy")
+def _half_width(x, s, im, half):
+    """Width where s crosses ``half`` nearest im on each side (linear interpolation).
+
+    Returns (width, left, right): left/right are the first channels below ``half``
+    (−1 / n when none; width NaN then).
+    """
+    n = s.size
+    left = im - 1
+    while left >= 0 and not (s[left] < half):
+        left -= 1
+    right = im + 1
+    while right < n and not (s[right] < half):
+        right += 1
+    if left < 0 or right >= n:
+        return np.nan, left, right
+    xl = x[left] + (half - s[left]) * (x[left + 1] - x[left]) / (s[left + 1] - s[left])
+    xr = x[right - 1] + (half - s[right - 1]) * (x[right] - x[right - 1]) / (
+        s[right] - s[right - 1]
+    )
+    return xr - xl, left, right
+
+
+@nb.njit(cache=True, error_model="numpy")
+def _log_parabola(x, yb, s, im, b, fw):
+    """Non-iterative Gaussian estimate: offset from the wings, then Caruana's log-parabola.
+
+    Offset = mean of the channels further than 2·fw from the maximum (≥ 8 of them);
+    then ln(y − offset) = a0 + a1 t + a2 t² (t = x − x[imax]) by least squares over
+    (about 12 of) the channels above half maximum, weighted by (y − offset)² (Guo's weighting
+    against the noise that the logarithm amplifies). Returns (offset, height,
+    centre, fwhm), NaN where the estimate fails. Caruana et al., Anal. Chem. 58,
+    1162 (1986); Guo, IEEE Signal Process. Mag. 28, 134 (2011).
+    """
+    n = x.size
+    nan = np.nan
+    xm = x[im]
+    off = b
+    if math.isfinite(fw):
+        acc = 0.0
+        cnt = 0
+        for c in range(n):
+            if abs(x[c] - xm) > 2.0 * fw:
+                acc += yb[c]
+                cnt += 1
+        if cnt >= 8:
+            off = acc / cnt
+    h = s[im] - off
+    if not h > 0.0:
+        return nan, nan, nan, nan
+    _, left, right = _half_width(x, s, im, off + 0.5 * h)
+    lo = left + 1
+    hi = right - 1
+    if hi - lo < 2:
+        return nan, nan, nan, nan
+    S0 = S1 = S2 = S3 = S4 = T0 = T1 = T2 = 0.0
+    step = max(1, (hi - lo + 1) // 1000)  # ~1000 channels are plenty for a starting value
+    for c in range(lo, hi + 1, step):
+        v = yb[c] - off
+        if not v > 0.0:
+            continue
+        t = x[c] - xm
+        w = v * v
+        lv = _log_pos(v)
+        t2 = t * t
+        S0 += w
+        S1 += w * t
+        S2 += w * t2
+        S3 += w * t2 * t
+        S4 += w * t2 * t2
+        T0 += w * lv
+        T1 += w * lv * t
+        T2 += w * lv * t2
+    # 3×3 symmetric system [[S0,S1,S2],[S1,S2,S3],[S2,S3,S4]] a = T, Cramer's rule
+    det = S0 * (S2 * S4 - S3 * S3) - S1 * (S1 * S4 - S3 * S2) + S2 * (S1 * S3 - S2 * S2)
+    if not abs(det) > 0.0:
+        return nan, nan, nan, nan
+    d0 = T0 * (S2 * S4 - S3 * S3) - S1 * (T1 * S4 - S3 * T2) + S2 * (T1 * S3 - S2 * T2)
+    d1 = S0 * (T1 * S4 - T2 * S3) - T0 * (S1 * S4 - S3 * S2) + S2 * (S1 * T2 - T1 * S2)
+    d2 = S0 * (S2 * T2 - S3 * T1) - S1 * (S1 * T2 - T1 * S2) + T0 * (S1 * S3 - S2 * S2)
+    a0, a1, a2 = d0 / det, d1 / det, d2 / det
+    if not a2 < 0.0:
+        return nan, nan, nan, nan
+    centre = xm - a1 / (2.0 * a2)
+    fwhm = math.sqrt(-1.0 / (2.0 * a2)) / _F2S
+    height = math.exp(min(a0 - a1 * a1 / (4.0 * a2), 700.0))
+    if not (x[left + 1] <= centre <= x[right - 1]) or not (0.0 < fwhm < 4.0 * (x[-1] - x[0])):
+        return nan, nan, nan, nan
+    return off, height, centre, fwhm
 
 
 @nb.njit(cache=True, error_model="numpy", nogil=True, fastmath=FM)
@@ -619,13 +816,15 @@ def describe_rows(Y, x):
     through imax and its neighbours (x[imax] at the edges), ``fwhm`` = width where
     s crosses base + height/2 nearest imax on each side (linear interpolation; NaN
     when a side never crosses); on the raw row, ``noise`` = white-noise σ from
-    second differences, var(Δ²y) = 6σ². Returns (finite (m,) bool, imax (m,),
-    D (m, 5) = [base, height, e_max, fwhm, noise]); rows with NaN/Inf are NaN.
+    second differences, var(Δ²y) = 6σ²; then a refined Gaussian estimate
+    (:func:`_log_parabola`: offset, height, centre, fwhm; NaN where it fails).
+    Returns (finite (m,) bool, imax (m,), D (m, 9) = [base, height, e_max, fwhm,
+    noise, offset_est, height_est, centre_est, fwhm_est]); rows with NaN/Inf are NaN.
     """
     m, n = Y.shape
     finite = np.zeros(m, dtype=np.bool_)
     imax = np.zeros(m, dtype=np.int64)
-    D = np.full((m, 5), np.nan)
+    D = np.full((m, 9), np.nan)
     yb = np.empty(n)
     s = np.empty(n)
     for r in range(m):
@@ -641,11 +840,7 @@ def describe_rows(Y, x):
         s[n - 1] = yb[n - 1]
         for c in range(1, n - 1):
             s[c] = (yb[c - 1] + yb[c] + yb[c + 1]) * (1.0 / 3.0)
-        top = s[0]
-        b = s[0]
-        for c in range(1, n):
-            top = max(top, s[c])
-            b = min(b, s[c])
+        b, top = _min_max(s)
         im = 0
         while s[im] < top:
             im += 1
@@ -659,21 +854,7 @@ def describe_rows(Y, x):
         xv = x1 - 0.5 * num / den if den != 0.0 else np.nan
         if im <= 0 or im >= n - 1 or not math.isfinite(xv) or xv < x0 or xv > x2:
             xv = x[im]
-        # half-maximum crossings nearest the maximum
-        half = b + 0.5 * h
-        left = im - 1
-        while left >= 0 and not (s[left] < half):
-            left -= 1
-        right = im + 1
-        while right < n and not (s[right] < half):
-            right += 1
-        fw = np.nan
-        if left >= 0 and right < n:
-            lj = min(left, n - 2)
-            rj = max(right, 1)
-            xl = x[lj] + (half - s[lj]) * (x[lj + 1] - x[lj]) / (s[lj + 1] - s[lj])
-            xr = x[rj - 1] + (half - s[rj - 1]) * (x[rj] - x[rj - 1]) / (s[rj] - s[rj - 1])
-            fw = xr - xl
+        fw, _, _ = _half_width(x, s, im, b + 0.5 * h)
         q = 0.0
         for c in range(1, n - 1):
             d2 = yb[c + 1] - 2.0 * yb[c] + yb[c - 1]
@@ -684,4 +865,5 @@ def describe_rows(Y, x):
         D[r, 2] = xv
         D[r, 3] = fw
         D[r, 4] = math.sqrt(q / (n - 2) / 6.0) if n >= 4 else 0.0
+        D[r, 5], D[r, 6], D[r, 7], D[r, 8] = _log_parabola(x, yb, s, im, b, fw)
     return finite, imax, D
