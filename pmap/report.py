@@ -657,7 +657,7 @@ def _spectra_figures(ds: xr.Dataset, out: Path, prefix: str) -> list[Path]:
     if "region_mean_spectrum" in ds.data_vars:
         m = ds["region_mean_spectrum"].load()
         rdim = next(d for d in m.dims if d.startswith("region"))
-        m = m.assign_coords({rdim: np.arange(m.sizes[rdim])})
+        m = m.rename({rdim: "region"}).assign_coords(region=np.arange(m.sizes[rdim]))
         written.append(plot_spectra(m, out / f"{prefix}region_mean_spectra.png",
                                     title="mean spectrum per region"))
     return written

@@ -95,14 +95,3 @@ def smooth3(Y: np.ndarray) -> np.ndarray:
     if Y.shape[-1] >= 3:
         out[:, 1:-1] = (Y[:, :-2] + Y[:, 1:-1] + Y[:, 2:]) / 3.0
     return out
-
-
-def diff_noise(Y: np.ndarray) -> np.ndarray:
-    """White-noise σ per row from second differences: var(Δ²y) = 6σ² for white noise.
-
-    Smooth bands add little to Δ²y when they span many channels; O(n) per row.
-    """
-    if Y.shape[-1] < 4:
-        return np.zeros(Y.shape[0])
-    d2 = Y[:, 2:] - 2.0 * Y[:, 1:-1] + Y[:, :-2]
-    return np.sqrt(np.mean(d2 * d2, axis=-1) / 6.0)

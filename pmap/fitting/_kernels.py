@@ -79,6 +79,20 @@ def _pow2(typingctx, k):
     return sig, codegen
 
 
+# polynomial coefficients, highest power first (global arrays are compile-time constants)
+_EXP_C = np.array([1.0 / math.factorial(k) for k in range(12, -1, -1)])  # exp(r), Taylor
+_LOG_C = np.array([1.0 / k for k in range(13, 0, -2)])  # atanh(s)/s in s², 1/13 … 1
+
+
+@nb.njit(cache=True, error_model="numpy", inline="always")
+def _horner(coef, r):
+    """Σ coef[j]·r**(len−1−j) by Horner's rule (constant length: unrolled, SIMD-friendly)."""
+    p = coef[0]
+    for j in range(1, coef.size):
+        p = p * r + coef[j]
+    return p
+
+
 @intrinsic
 def _f64_bits(typingctx, v):
     """The IEEE-754 bits of a float64 as an int64 (no libm call)."""
@@ -114,15 +128,7 @@ def _log_pos(v):
         m *= 0.5
         e += 1
     sv = (m - 1.0) / (m + 1.0)
-    s2 = sv * sv
-    q = 1.0 / 13.0
-    q = q * s2 + 1.0 / 11.0
-    q = q * s2 + 1.0 / 9.0
-    q = q * s2 + 1.0 / 7.0
-    q = q * s2 + 1.0 / 5.0
-    q = q * s2 + 1.0 / 3.0
-    q = q * s2 + 1.0
-    return e * _LN2 + 2.0 * sv * q
+    return e * _LN2 + 2.0 * sv * _horner(_LOG_C, sv * sv)
 
 
 @nb.njit(cache=True, error_model="numpy", inline="always", fastmath=FM)
@@ -131,25 +137,12 @@ def _exp_neg(t):
 
     t = k·ln2 + r with |r| ≤ ln2/2, exp(r) by its degree-12 Taylor polynomial
     (truncation < 2e-16), times 2**k from the exponent bits; relative error
-    < 3e-14 over t ≥ −708, below which it returns ≈ 3e-308 instead of 0.
+    < 1e-13 over t ≥ −708 (< 1e-14 for t ≥ −50), below which it returns ≈ 3e-308, not 0.
     """
     t = max(t, -708.0)
     kf = math.floor(t * _LOG2E + 0.5)
     r = t - kf * _LN2
-    p = 1.0 / 479001600.0
-    p = p * r + 1.0 / 39916800.0
-    p = p * r + 1.0 / 3628800.0
-    p = p * r + 1.0 / 362880.0
-    p = p * r + 1.0 / 40320.0
-    p = p * r + 1.0 / 5040.0
-    p = p * r + 1.0 / 720.0
-    p = p * r + 1.0 / 120.0
-    p = p * r + 1.0 / 24.0
-    p = p * r + 1.0 / 6.0
-    p = p * r + 0.5
-    p = p * r + 1.0
-    p = p * r + 1.0
-    return p * _pow2(np.int64(kf))
+    return _horner(_EXP_C, r) * _pow2(np.int64(kf))
 
 
 @nb.njit(cache=True, error_model="numpy", inline="always", fastmath=FM)
@@ -608,10 +601,13 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
             for j in range(nfull):
                 fj = free_idx[j]
                 pn[j] = p[j] if fj < 0 else min(max(p[j] + d[fj], lo[j]), hi[j])
-            if lam <= 1e-2 and _predicted_drop(A, g, d) <= max(ftol, stol * stol / dof) * cost:
+            # a step of stol standard errors lowers χ² by stol² (absolute weights) or by
+            # stol²·χ²_red (unit weights, errors scaled by χ²_red)
+            drop_tol = stol * stol * (cost / dof if var_mode == 0 else 1.0)
+            if lam <= 1e-2 and _predicted_drop(A, g, d) <= max(ftol * cost, drop_tol):
                 # an (almost) Gauss–Newton step whose predicted cost drop is below ftol
                 # (the test after evaluating it would stop) or that moves the
-                # parameters by less than ~stol standard errors (a drop of stol²·χ²_red):
+                # parameters by less than ~stol standard errors:
                 # take it unevaluated and stop; what remains is of second order in
                 # the step (covariance and χ² from this point)
                 for j in range(nfull):
@@ -705,15 +701,38 @@ def lm_batch(Y, rows, x, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, var_m
     return P, COV, chi2, status, niter
 
 
+@nb.njit(cache=True, error_model="numpy", fastmath=FM)
+def _smooth3(yb, s):
+    """s[c] = mean of yb[c−1..c+1] for 1 ≤ c ≤ n−2 (views: indices provably ≥ 0, SIMD)."""
+    a, b, c, t = yb[:-2], yb[1:-1], yb[2:], s[1:-1]
+    for i in range(t.size):
+        t[i] = (a[i] + b[i] + c[i]) * (1.0 / 3.0)
+
+
+@nb.njit(cache=True, error_model="numpy", fastmath=FM)
+def _sum_d2_squared(yb):
+    """Σ (second difference)² of yb."""
+    a, b, c = yb[:-2], yb[1:-1], yb[2:]
+    q = 0.0
+    for i in range(a.size):
+        d2 = c[i] - 2.0 * b[i] + a[i]
+        q += d2 * d2
+    return q
+
+
 @nb.njit(cache=True, error_model="numpy", fastmath=True)
 def _min_max(s):
-    """(min, max) of a finite array; full fast-math (no NaN/Inf here) lets it vectorise."""
-    lo = s[0]
-    hi = s[0]
-    for c in range(1, s.size):
-        lo = min(lo, s[c])
-        hi = max(hi, s[c])
-    return lo, hi
+    """(min, max) of a finite array, four interleaved chains (latency, not one long chain)."""
+    n = s.size
+    l0 = l1 = l2 = l3 = h0 = h1 = h2 = h3 = s[0]
+    m = n - n % 4
+    for c in range(0, m, 4):
+        a, b, d, e = s[c], s[c + 1], s[c + 2], s[c + 3]
+        l0, l1, l2, l3 = min(l0, a), min(l1, b), min(l2, d), min(l3, e)
+        h0, h1, h2, h3 = max(h0, a), max(h1, b), max(h2, d), max(h3, e)
+    for c in range(m, n):
+        l0, h0 = min(l0, s[c]), max(h0, s[c])
+    return min(min(l0, l1), min(l2, l3)), max(max(h0, h1), max(h2, h3))
 
 
 @nb.njit(cache=True, error_model="numpy")
@@ -838,8 +857,7 @@ def describe_rows(Y, x):
         finite[r] = True
         s[0] = yb[0]
         s[n - 1] = yb[n - 1]
-        for c in range(1, n - 1):
-            s[c] = (yb[c - 1] + yb[c] + yb[c + 1]) * (1.0 / 3.0)
+        _smooth3(yb, s)
         b, top = _min_max(s)
         im = 0
         while s[im] < top:
@@ -855,10 +873,7 @@ def describe_rows(Y, x):
         if im <= 0 or im >= n - 1 or not math.isfinite(xv) or xv < x0 or xv > x2:
             xv = x[im]
         fw, _, _ = _half_width(x, s, im, b + 0.5 * h)
-        q = 0.0
-        for c in range(1, n - 1):
-            d2 = yb[c + 1] - 2.0 * yb[c] + yb[c - 1]
-            q += d2 * d2
+        q = _sum_d2_squared(yb)
         imax[r] = im
         D[r, 0] = b
         D[r, 1] = h
