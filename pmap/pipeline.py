@@ -18,6 +18,11 @@ the result-producing stages::
     peaks = 1
     background = "constant"
 
+    [properties]              # maps derived from the fit (optional)
+    reference_energy_ev = 1.60        # -> peak_shift (eV, positive = blue shift)
+    exciton_binding_ev = 0.0          # -> bandgap_estimate (eV), with its caveat
+    material_gap = "direct"           # "indirect": the PL peak is phonon-assisted, not the gap
+
     [components]              # NMF/PCA decomposition (optional)
     method = "nmf"
     n_components = 3
@@ -96,7 +101,9 @@ figures = true
 keep_cube = "auto"
 """
 
-_TOP_KEYS = {"pipeline", "steps", "descriptors", "fit", "components", "regions", "output"}
+_TOP_KEYS = {"pipeline", "steps", "descriptors", "fit", "properties", "components", "regions",
+             "output"}
+_PROPERTY_KEYS = {"reference_energy_ev", "exciton_binding_ev", "material_gap", "stokes_shift_ev"}
 _OUTPUT_KEYS = {"figures", "keep_cube", "chunk_mib"}
 _KEEP_CUBE_AUTO_BYTES = 512 * 2**20
 
@@ -108,6 +115,7 @@ class Pipeline:
     steps: list[tuple[str, dict]] = field(default_factory=list)
     descriptors: dict | None = field(default_factory=dict)
     fit: dict | None = None
+    properties: dict | None = None
     components: dict | None = None
     regions: dict | None = None
     output: dict = field(default_factory=lambda: {"figures": True, "keep_cube": "auto"})
@@ -119,6 +127,7 @@ class Pipeline:
             "steps": [{"step": n, **p} for n, p in self.steps],
             "descriptors": self.descriptors,
             "fit": self.fit,
+            "properties": self.properties,
             "components": self.components,
             "regions": self.regions,
             "output": self.output,
@@ -157,6 +166,14 @@ def load_pipeline(source: str | Path | None = None) -> Pipeline:
         name = params.pop("step")
         get_step(name)  # raises StepError for unknown names
         steps.append((name, params))
+    props = raw.get("properties")
+    if props is not None:
+        bad = set(props) - _PROPERTY_KEYS
+        if bad:
+            raise StepError(f"pipeline {origin}: unknown [properties] key(s) {sorted(bad)}; "
+                            f"known: {sorted(_PROPERTY_KEYS)}")
+        if "fit" not in raw:
+            raise StepError(f"pipeline {origin}: [properties] needs a [fit] table")
     output = {"figures": True, "keep_cube": "auto"}
     output.update(raw.get("output", {}))
     bad = set(output) - _OUTPUT_KEYS
@@ -166,6 +183,7 @@ def load_pipeline(source: str | Path | None = None) -> Pipeline:
         steps=steps,
         descriptors=raw.get("descriptors"),
         fit=raw.get("fit"),
+        properties=props,
         components=raw.get("components"),
         regions=raw.get("regions"),
         output=output,
@@ -202,8 +220,12 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
         params = getattr(pipeline, attr)
         if params is None:
             continue
-        parts.append(_run_step(step, cube, dict(params)))
+        part = _run_step(step, cube, dict(params))
+        parts.append(part)
         prov["steps"].append({"step": step, "params": params})
+        if step == "fit_peaks" and pipeline.properties:
+            parts.append(_derived_properties(part, pipeline.properties))
+            prov["steps"].append({"step": "properties", "params": pipeline.properties})
     keep = pipeline.output.get("keep_cube", "auto")
     if keep == "auto":
         keep = cube.nbytes <= _KEEP_CUBE_AUTO_BYTES
@@ -214,6 +236,21 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
     prov["pipeline"] = pipeline.as_dict()
     ds = assemble_result(parts, provenance_json=json.dumps(prov), coords_from=cube)
     return ds, cube
+
+
+def _derived_properties(fit: xr.Dataset, props: dict) -> xr.Dataset:
+    """Peak shift from a reference and a bandgap estimate, from the fitted peak energies."""
+    from .fitting import bandgap_from_peak, peak_shift
+
+    out = xr.Dataset()
+    pe = fit["peak_energy"]
+    if "reference_energy_ev" in props:
+        out["peak_shift"] = peak_shift(pe, float(props["reference_energy_ev"]))
+    gap_keys = {"exciton_binding_ev", "material_gap", "stokes_shift_ev"}
+    if gap_keys & set(props):
+        kw = {k: props[k] for k in gap_keys if k in props}
+        out["bandgap_estimate"] = bandgap_from_peak(pe, **kw)
+    return out
 
 
 def add_regions(store: str | Path, cube: xr.DataArray, params: dict, *, csv: bool = True) -> None:

@@ -44,7 +44,12 @@ import json, sys, time, warnings
 import pmap
 warnings.simplefilter("ignore")
 t = time.perf_counter()
-ds = pmap.process(sys.argv[1], sys.argv[2], memory_limit=sys.argv[3], progress=True)
+pipe = pmap.load_pipeline(None)
+if sys.argv[4] != "0":
+    pipe.components = {"method": "nmf", "n_components": int(sys.argv[4])}
+    pipe.regions = {"n_regions": 3, "method": "gmm", "feature_space": "shape+intensity"}
+ds = pmap.process(sys.argv[1], sys.argv[2], pipeline=pipe, memory_limit=sys.argv[3],
+                  progress=True)
 dt = time.perf_counter() - t
 st = ds.fit_status.values
 hwm = [int(l.split()[1]) for l in open("/proc/self/status") if l.startswith("VmHWM")][0]
@@ -68,6 +73,8 @@ def main() -> None:
     ap.add_argument("--memory-limit", default="1GB")
     ap.add_argument("--workdir", default=None, help="folder for the cube (default: a temp dir)")
     ap.add_argument("--keep", action="store_true", help="keep the generated files")
+    ap.add_argument("--regions", action="store_true",
+                    help="also NMF (3 components) and 3 regions, as `pmap demo` does")
     args = ap.parse_args()
 
     from pmap.synthetic import write_demo_cube
@@ -91,7 +98,8 @@ def main() -> None:
           f"{disk / 1e9 / read['seconds']:.2f} GB/s from disk, peak RSS {read['rss_mib']:.0f} MiB")
     out = work / "bench_result.zarr"
     shutil.rmtree(out, ignore_errors=True)
-    proc = run(PROCESS, str(paths["cube"]), str(out), args.memory_limit)
+    proc = run(PROCESS, str(paths["cube"]), str(out), args.memory_limit,
+               "3" if args.regions else "0")
     print(f"end to end:  {proc['seconds']:.1f} s, {n / proc['seconds']:,.0f} spectra/s, "
           f"peak RSS {proc['rss_mib']:.0f} MiB (limit {args.memory_limit}), "
           f"{100 * proc['converged']:.1f} % of fits converged")

@@ -57,3 +57,29 @@ def test_parse_memory_rejects_nonsense():
     with pytest.raises(StepError, match="not understood"):
         parse_memory("lots")
     assert parse_memory(None) > 0
+
+
+def test_properties_table_adds_bandgap_and_shift(tmp_path):
+    import numpy as np
+
+    import pmap
+    from pmap.synthetic import make_demo_cube
+
+    cube, _ = make_demo_cube(shape=(8, 12), n_channels=128, seed=2)
+    # exciton binding energy of monolayer WS2, 0.32 eV (Chernikov et al., Phys. Rev. Lett.
+    # 113, 076802 (2014)); E_g ≈ E_peak + E_b (common practice for excitonic emission)
+    pipe = load_pipeline('[[steps]]\nstep = "to_energy"\n[fit]\n[properties]\n'
+                         "reference_energy_ev = 1.6\nexciton_binding_ev = 0.32\n")
+    ds = pmap.process(cube, tmp_path / "r.zarr", pipeline=pipe, progress=False)
+    ok = np.isfinite(ds.peak_energy.values)
+    assert ok.sum() > 10
+    np.testing.assert_allclose((ds.bandgap_estimate - ds.peak_energy).values[ok], 0.32)
+    np.testing.assert_allclose((ds.peak_shift - ds.peak_energy).values[ok], -1.6)
+    assert "caveat" in ds.bandgap_estimate.attrs and ds.peak_shift.attrs["units"] == "eV"
+
+
+def test_properties_need_a_fit():
+    with pytest.raises(StepError, match="needs a \\[fit\\]"):
+        load_pipeline("[properties]\nreference_energy_ev = 1.6\n")
+    with pytest.raises(StepError, match="unknown \\[properties\\] key"):
+        load_pipeline("[fit]\n[properties]\ngap = 1\n")
