@@ -275,6 +275,7 @@ def add_regions(store: str | Path, cube: xr.DataArray, params: dict, *, csv: boo
         features = cube
     region = segment(features, **params)
     region = region.rename("region").compute()
+    region = region.assign_coords(y=maps["y"], x=maps["x"])  # µm coords with their units
     stats = region_statistics(region, maps, cube=cube).compute()
     # The map is the variable "region" (y, x); the statistics live on dim "region_id".
     stats_store = stats.rename({"region": "region_id"})

@@ -815,6 +815,13 @@ def compare_with_truth(result: xr.Dataset, truth: xr.Dataset | str | Path) -> st
                 lines.append(f"  {name}: not recovered in any of {present.sum()} pixels")
                 continue
             err = np.abs(best[ok]) * 1e3
+            if np.median(err) > 50.0:
+                lines.append(
+                    f"  {name}: not resolved by the fit (nearest of its {fit_e.shape[0]} "
+                    f"fitted peak(s) is {np.median(err):.0f} meV away in the median pixel; "
+                    "fit more peaks with --peaks)"
+                )
+                continue
             lines.append(
                 f"  {name}: |dE| median {np.median(err):.1f} meV, 95% {np.percentile(err, 95):.1f}"
                 f" meV, bias {np.median(best[ok]) * 1e3:+.1f} meV, within 10 meV in "

@@ -38,8 +38,14 @@ fi
 
 stamp=.venv/.pmap-installed
 if [[ ! -f $stamp || pyproject.toml -nt $stamp ]]; then
-    .venv/bin/python -m pip install -q --upgrade pip 2>&1 | grep -v '^WARNING: Location' || true
-    .venv/bin/python -m pip install -q -e ".[all]" 2>&1 | grep -vE '^WARNING: Location|^ *$' || true
+    echo "setup: installing pmap with all extras into .venv (first time: a few minutes)" >&2
+    log=.venv/pip-install.log
+    if ! { .venv/bin/python -m pip install -q --upgrade pip && \
+           .venv/bin/python -m pip install -q -e ".[all]"; } >"$log" 2>&1; then
+        tail -n 30 "$log" >&2
+        echo "setup: pip install failed (full log: $log)" >&2
+        exit 1
+    fi
     .venv/bin/python -c 'import pmap, xarray, dask, zarr, napari' || { echo "setup: install failed" >&2; exit 1; }
     touch "$stamp"
 fi

@@ -5,7 +5,6 @@ built once per module from the demo cube with pmap's own steps (energy axis,
 per-pixel Gaussian fit, descriptors, regions) following the store contract.
 """
 
-import json
 import subprocess
 import sys
 from pathlib import Path
@@ -23,42 +22,19 @@ N_CHANNELS = 96
 
 @pytest.fixture(scope="module")
 def store(tmp_path_factory):
-    """A complete result store with the processed cube, a 1-peak Gaussian fit and 3 regions."""
-    import zarr
-
-    from pmap.decomposition import region_statistics, segment
-    from pmap.fitting import fit_peaks, spectral_descriptors
-    from pmap.io import open_cube, save_cube
-    from pmap.provenance import get_provenance
-    from pmap.results import assemble_result, mark_complete, open_result, write_result
-    from pmap.spectral import to_energy
+    """A result store made by the real pipeline: processed cube, 1-peak fit, 3 regions."""
+    from pmap.io import save_cube
+    from pmap.pipeline import load_pipeline, process
     from pmap.synthetic import make_demo_cube
 
     tmp = tmp_path_factory.mktemp("viewer")
     cube, _ = make_demo_cube(shape=SHAPE, n_channels=N_CHANNELS, seed=7)
     raw = tmp / "demo.zarr"
     save_cube(cube, raw)
-    c = to_energy(open_cube(raw))
-    fit = fit_peaks(c, model="gaussian", peaks=1, background="constant").compute()
-    prov = get_provenance(c.attrs)
-    prov["steps"].append({"step": "fit_peaks", "params": {"model": "gaussian", "peaks": 1}})
-    ds = assemble_result(
-        [spectral_descriptors(c), fit, c.rename("intensity").to_dataset()],
-        provenance_json=json.dumps(prov),
-    )
+    pipe = load_pipeline(None)
+    pipe.regions = {"n_regions": 3, "method": "gmm", "feature_space": "shape+intensity"}
     out = tmp / "result.zarr"
-    write_result(ds, out, progress=False, complete=False)
-    maps = open_result(out, require_complete=False)
-    region = segment(c, n_regions=3).rename("region").compute()
-    stats = region_statistics(region, maps[["peak_energy", "peak_fwhm"]].load(), cube=c)
-    g = zarr.open_group(str(out), mode="r+")
-    attrs = dict(g.attrs)
-    region.drop_vars(["y", "x"]).to_dataset().to_zarr(str(out), mode="a", consolidated=False)
-    stats.drop_vars([k for k in ("y", "x", "region") if k in stats.coords]).to_zarr(
-        str(out), mode="a", consolidated=False
-    )
-    zarr.open_group(str(out), mode="r+").attrs.update(attrs)  # appending replaced the attrs
-    mark_complete(out)
+    process(raw, out, pipeline=pipe, progress=False)
     return out
 
 
@@ -232,9 +208,9 @@ def test_process_panel_runs_in_background(make_napari_viewer, qtbot, tmp_path):
     viewer, panel = _panel(make_napari_viewer, "ProcessPanel")
     assert panel.sources.count() == 1
     pipe = tmp_path / "maps.toml"
-    pipe.write_text('[[steps]]\nstep = "to_energy"\n\n[descriptors]\n')
+    pipe.write_text('[[steps]]\nstep = "to_energy"\n\n[descriptors]\n\n[fit]\n')
     panel.pipeline.setText(str(pipe))
-    panel.peaks.setValue(0)  # "no fit": descriptor maps only
+    panel.peaks.setValue(1)
     out = tmp_path / "demo_result.zarr"
     panel.output.setText(str(out))
     ticks, progress = [], []

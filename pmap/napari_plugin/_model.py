@@ -827,7 +827,18 @@ def region_stats_table(ds: xr.Dataset) -> tuple[list[str], list[list[str]], list
     units = df.attrs.get("units", {})
     first = ("region_pixel_count", "region_area_um2", "region_area_pixel2", "region_fraction")
     cols = [c for c in first if c in df.columns]
-    cols += [c for c in df.columns if c not in cols and "_std" not in c]
+    rest = [c for c in df.columns if c not in cols and "_std" not in c]
+    # the physics first (peak energy, width, area, intensity), fit diagnostics last
+    priority = ("peak_energy", "peak_fwhm", "peak_area", "peak_height", "integrated_intensity",
+                "max_energy", "centroid_energy", "bandgap", "peak_shift")
+
+    def rank(c: str) -> tuple[int, int]:
+        for i, p in enumerate(priority):
+            if c.startswith(p) and "_err" not in c:
+                return (0, i)
+        return (2, 0) if ("_err" in c or c.startswith(("chi2", "n_iter", "fit_status"))) else (1, 0)
+
+    cols += sorted(rest, key=rank)
     titles = ["region", *(_column_title(c, units.get(c, "")) for c in cols)]
     rows, labels = [], []
     for reg, row in df.iterrows():
