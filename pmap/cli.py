@@ -1,4 +1,4 @@
-"""The ``pmap`` command: info, convert, demo, process, steps (and view when napari is there).
+"""The ``pmap`` command: info, convert, process, report, demo, steps, view.
 
 User errors print one line on stderr (``pmap: error: ...``) and exit with
 status 2, without a traceback; ``--debug`` shows the traceback. No subcommand
@@ -232,6 +232,25 @@ def _demo_spike_figure(cube_path: Path, truth_path: Path, out_dir: Path) -> Path
                         title="cosmic-spike removal at the pixels with most spikes")
 
 
+def cmd_report(args: argparse.Namespace) -> int:
+    from .report import write_figures
+    from .results import open_result
+
+    store = Path(args.result)
+    ds = open_result(store)
+    out = Path(args.out) if args.out else _figures_dir(store)
+    figs = write_figures(ds, out)
+    print(f"figures ({len(figs)}): {out}")
+    region_vars = [v for v in ds.data_vars if "region_id" in ds[v].dims]
+    if region_vars:
+        from .decomposition import write_region_csv
+
+        csv = out / "regions.csv"
+        write_region_csv(ds[region_vars].rename({"region_id": "region"}).load(), csv)
+        print(f"region table: {csv}")
+    return 0
+
+
 def cmd_steps(args: argparse.Namespace) -> int:
     from .steps import available_steps
 
@@ -310,6 +329,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--overwrite", action="store_true", help="replace earlier demo files")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("report", help="(re)draw the figures and region table of a result store")
+    p.add_argument("result", help="result store written by pmap process")
+    p.add_argument("-o", "--out", help="folder for the figures (default RESULT_figures/)")
+    p.set_defaults(func=cmd_report)
 
     p = sub.add_parser("steps", help="list the processing steps a pipeline TOML may name")
     p.set_defaults(func=cmd_steps)

@@ -87,14 +87,38 @@ def spectral_dim(obj: xr.DataArray | xr.Dataset) -> str:
 
 
 def choose_spatial_chunks(
-    shape_yx: tuple[int, int], n_spectral: int, itemsize: int, *, target_mib: float = DEFAULT_CHUNK_MIB
+    shape_yx: tuple[int, int],
+    n_spectral: int,
+    itemsize: int,
+    *,
+    target_mib: float = DEFAULT_CHUNK_MIB,
+    align: tuple[int, int] | None = None,
 ) -> tuple[int, int]:
-    """Spatial chunk (cy, cx) so that one chunk with the whole spectral axis is ≈ target_mib MiB."""
+    """Spatial chunk (cy, cx) so that one chunk with the whole spectral axis is ≈ target_mib MiB.
+
+    ``align`` is the stored (on-disk) chunk (sy, sx): chunks are then whole multiples of
+    it (or an even split of one stored chunk when that alone exceeds the target), so no
+    stored chunk is read by more than one task.
+    """
     ny, nx = shape_yx
     per_pixel = max(1, n_spectral * itemsize)
     npix = max(1, int(target_mib * 2**20 // per_pixel))
     if npix >= ny * nx:
         return max(ny, 1), max(nx, 1)
+    if align is not None:
+        sy, sx = (max(1, min(int(a), n)) for a, n in zip(align, (ny, nx)))
+        tiles = npix // (sy * sx)
+        if tiles >= 1:
+            n_tiles_x = -(-nx // sx)
+            if tiles >= n_tiles_x:  # whole rows of stored tiles
+                return min(ny, (tiles // n_tiles_x) * sy), nx
+            side = max(1, math.isqrt(tiles))
+            return min(ny, side * sy), min(nx, (tiles // side) * sx)
+        # one stored tile is larger than the target: split it evenly
+        parts = -(-sy * sx // npix)
+        py = min(sy, max(1, math.isqrt(parts)))
+        px = max(1, -(-parts // py))
+        return max(1, -(-sy // py)), max(1, -(-sx // px))
     # Prefer whole rows when they fit (contiguous reads from row-major stores).
     if nx <= npix:
         return max(1, min(ny, npix // nx)), nx
@@ -104,12 +128,17 @@ def choose_spatial_chunks(
 
 def rechunk_cube(cube: xr.DataArray, *, target_mib: float = DEFAULT_CHUNK_MIB,
                  chunks: Mapping[str, int] | None = None) -> xr.DataArray:
-    """Rechunk a cube in space (spectral axis whole) to ``chunks`` or a memory target in MiB."""
+    """Rechunk a cube in space (spectral axis whole) to ``chunks`` or a memory target in MiB.
+
+    Chunks follow the stored chunking (``encoding["preferred_chunks"]``) when known.
+    """
     sdim = spectral_dim(cube)
     if chunks is None:
+        pref = cube.encoding.get("preferred_chunks") or {}
+        align = (pref["y"], pref["x"]) if "y" in pref and "x" in pref else None
         cy, cx = choose_spatial_chunks(
             (cube.sizes["y"], cube.sizes["x"]), cube.sizes[sdim], cube.dtype.itemsize,
-            target_mib=target_mib,
+            target_mib=target_mib, align=align,
         )
         chunks = {"y": cy, "x": cx}
     full = {d: 1 for d in cube.dims if d not in ("y", "x", sdim)}
@@ -200,6 +229,7 @@ def validate_cube(
     chunks: Mapping[str, int] | None = None,
     target_chunk_mib: float = DEFAULT_CHUNK_MIB,
     units: str | None = None,
+    rechunk: bool = False,
 ) -> xr.DataArray:
     """Turn anything that claims to be a cube into the canonical form, or raise.
 
@@ -215,6 +245,10 @@ def validate_cube(
         Spatial chunk sizes ``{"y": cy, "x": cx}``; default from ``target_chunk_mib``.
     target_chunk_mib : float
         Memory target of one chunk in MiB (spectral axis whole), default 64.
+    rechunk : bool
+        Rechunk a dask-backed input to ``target_chunk_mib`` even when its spectral
+        axis is already whole. By default such an input keeps its spatial chunks;
+        in-memory inputs and inputs with a split spectral axis are always rechunked.
     units : str, optional
         Intensity unit to assume when the data carry none (default "counts").
 
@@ -292,8 +326,11 @@ def validate_cube(
     arr.attrs = attrs
     arr.name = CUBE_NAME
     if not isinstance(arr.data, da.Array):
-        arr = arr.chunk()
-    return rechunk_cube(arr, target_mib=target_chunk_mib, chunks=chunks)
+        return rechunk_cube(arr.chunk(), target_mib=target_chunk_mib, chunks=chunks)
+    spectral_whole = len(arr.chunks[arr.dims.index(sdim)]) == 1
+    if rechunk or chunks is not None or not spectral_whole:
+        return rechunk_cube(arr, target_mib=target_chunk_mib, chunks=chunks)
+    return arr  # keep the caller's spatial chunking (e.g. set from a memory limit)
 
 
 def make_cube(

@@ -60,7 +60,7 @@ from .results import (
     prepare_output,
     write_result,
 )
-from .steps import get_step
+from .steps import eager_globals, get_step
 
 __all__ = [
     "DEFAULT_PIPELINE_TOML",
@@ -202,11 +202,19 @@ def _run_step(name: str, cube: xr.DataArray, params: dict) -> Any:
 def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr.DataArray]:
     """Build the lazy per-pixel result Dataset for ``cube`` (computes no map).
 
-    Runs the cube steps, descriptors, fit and decomposition (components are
-    fitted on a pixel sample now; abundances stay lazy). Regions, which need the
+    Runs the cube steps, descriptors, fit and decomposition. Small reductions over
+    the whole map that steps need (hot channels, saturation level, the mean
+    spectrum seeding multi-peak fits, PCA/NMF bases fitted on a pixel sample) are
+    computed now, once (:func:`pmap.steps.eager_globals`), so that every block of
+    the result depends only on its own chunks; the maps stay lazy. Regions, which need the
     whole map, are made afterwards from the written store (:func:`add_regions`).
     Returns (result, processed_cube).
     """
+    with eager_globals():
+        return _build_result(cube, pipeline)
+
+
+def _build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr.DataArray]:
     for name, params in pipeline.steps:
         out = _run_step(name, cube, params)
         if not isinstance(out, xr.DataArray):
@@ -323,8 +331,11 @@ def parse_memory(text: str | int | float | None) -> int:
 
 
 #: Peak memory of processing one chunk, as a multiple of its raw size (float64
-#: copies, energy conversion, fit work arrays); measured with scripts/bench_scale.py.
-CHUNK_MEMORY_FACTOR = 12
+#: copies, energy conversion, fit work arrays), and the memory the process holds
+#: before any chunk (interpreter, numpy, numba, dask); measured with
+#: scripts/bench_scale.py (peak RSS ≈ base + 14 × chunk × threads on the demo pipeline).
+CHUNK_MEMORY_FACTOR = 16
+BASE_MEMORY_BYTES = 350 * 2**20
 
 
 def process(
@@ -384,18 +395,20 @@ def process(
             return done
     mem = parse_memory(memory_limit)
     threads = (sum(client.nthreads().values()) if client is not None else (os.cpu_count() or 1))
+    chunk_mib = pipe.output.get("chunk_mib")
+    if chunk_mib is None:
+        spare = max(mem - BASE_MEMORY_BYTES, mem / 4)
+        chunk_mib = min(64.0, spare / (CHUNK_MEMORY_FACTOR * max(threads, 1)) / 2**20)
+    chunk_mib = max(float(chunk_mib), 0.25)
     in_path = None
     if isinstance(source, xr.DataArray):
-        cube = validate_cube(source)
+        cube = rechunk_cube(validate_cube(source), target_mib=chunk_mib)
     else:
         from .io import open_cube
 
         in_path = Path(source)
-        cube = open_cube(in_path, **(read_options or {}))
-    chunk_mib = pipe.output.get("chunk_mib")
-    if chunk_mib is None:
-        chunk_mib = min(64.0, mem / (CHUNK_MEMORY_FACTOR * max(threads, 1)) / 2**20)
-    cube = rechunk_cube(cube, target_mib=max(float(chunk_mib), 0.25))
+        # chunks chosen at open time, aligned with the stored chunks (no re-reads)
+        cube = open_cube(in_path, target_chunk_mib=chunk_mib, **(read_options or {}))
     if not (resume and out.exists()):
         prepare_output(out, overwrite=overwrite, input_paths=(in_path,))
     if spectral_dim(cube) == "wavelength" and not any(n == "to_energy" for n, _ in pipe.steps):

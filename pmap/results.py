@@ -55,7 +55,7 @@ def assemble_result(
     """
     dsets = [p.to_dataset() if isinstance(p, xr.DataArray) else p for p in parts]
     ds = xr.merge(dsets, compat="override", join="exact", combine_attrs="override")
-    ds = ds.unify_chunks()  # stages may chunk differently; blocks must align for region writes
+    ds = _uniform_spatial_chunks(ds)  # blocks must align and be uniform for region writes
     kept: dict = {}
     for part in dsets:  # settings of each stage (fit model, NMF solver...), provenance aside
         kept.update({k: v for k, v in part.attrs.items() if k != PROVENANCE_ATTR})
@@ -70,6 +70,18 @@ def assemble_result(
             if c in ds.coords and c in coords_from.coords:
                 ds = ds.assign_coords({c: coords_from[c]})
     return ds
+
+
+def _uniform_spatial_chunks(ds: xr.Dataset) -> xr.Dataset:
+    """Give every spatial variable the same, uniform (y, x) chunks (the first variable's)."""
+    ds = ds.unify_chunks()
+    sizes = ds.chunksizes
+    if not sizes or "y" not in sizes or "x" not in sizes:
+        return ds
+    target = {d: max(sizes[d]) for d in ("y", "x")}
+    uniform = all(len(set(sizes[d][:-1])) <= 1 and sizes[d][-1] <= sizes[d][0]
+                  for d in ("y", "x"))
+    return ds if uniform else ds.chunk(target)
 
 
 def is_result_store(path: str | Path) -> bool:

@@ -19,13 +19,22 @@ Pipeline TOML (read by :mod:`pmap.pipeline`) lists steps in order::
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import contextlib
+import threading
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from importlib import import_module
 
 from .errors import StepError
 
-__all__ = ["StepSpec", "register_step", "get_step", "available_steps"]
+__all__ = [
+    "StepSpec",
+    "register_step",
+    "get_step",
+    "available_steps",
+    "eager_globals",
+    "materialize",
+]
 
 
 @dataclass(frozen=True)
@@ -79,3 +88,38 @@ def available_steps() -> dict[str, StepSpec]:
     """All registered steps, by name."""
     _load_all()
     return dict(sorted(_REGISTRY.items()))
+
+
+# ----------------------------------------------------------------------------- globals
+# Some steps need a small quantity reduced over the whole map (hot-channel votes, the
+# maximum for saturation, the mean spectrum that seeds multi-peak fits, a PCA basis).
+# Lazily, every block written on its own would recompute that reduction, i.e. re-read
+# the whole cube per block. Inside ``eager_globals()`` (the pipeline runner uses it),
+# steps pass such reductions through ``materialize``, which computes them once, at
+# graph-build time, so that each block then depends only on its own chunks. Outside
+# the context (the default) steps stay fully lazy.
+_EAGER = threading.local()
+
+
+@contextlib.contextmanager
+def eager_globals() -> Iterator[None]:
+    """Within this block, :func:`materialize` computes small global reductions at once."""
+    old = getattr(_EAGER, "on", False)
+    _EAGER.on = True
+    try:
+        yield
+    finally:
+        _EAGER.on = old
+
+
+def materialize(*arrs):
+    """Compute small dask arrays now (in one pass) inside :func:`eager_globals`.
+
+    Outside the context they are returned unchanged. One argument gives one array
+    back, several give a tuple.
+    """
+    if getattr(_EAGER, "on", False):
+        import dask
+
+        arrs = dask.persist(*arrs)
+    return arrs[0] if len(arrs) == 1 else tuple(arrs)

@@ -9,7 +9,7 @@ import pytest
 
 from pmap.cli import main
 
-SUBCOMMANDS = ["info", "convert", "process", "demo", "steps", "view"]
+SUBCOMMANDS = ["info", "convert", "process", "report", "demo", "steps", "view"]
 
 
 def run_cli(*args, cwd=None):
@@ -87,3 +87,17 @@ def test_bad_regions_value(tmp_path):
     msg = _one_line_error(run_cli("process", tmp_path / "x.zarr", "-o", tmp_path / "r.zarr",
                                   "--regions", "many"))
     assert "many" in msg
+
+
+def test_report_on_a_result_store(tmp_path):
+    import pmap
+    from pmap.synthetic import make_demo_cube
+
+    cube, _ = make_demo_cube(shape=(8, 12), n_channels=128, seed=4)
+    pipe = '[[steps]]\nstep = "to_energy"\n[descriptors]\n[fit]\n'
+    pmap.process(cube, tmp_path / "r.zarr", pipeline=pipe, progress=False)
+    assert main(["report", str(tmp_path / "r.zarr"), "-o", str(tmp_path / "figs")]) == 0
+    names = {p.name for p in (tmp_path / "figs").glob("*.png")}
+    assert "peak_energy_peak0.png" in names or any(n.startswith("peak_energy") for n in names)
+    msg = _one_line_error(run_cli("report", tmp_path / "missing.zarr"))
+    assert "missing.zarr" in msg

@@ -14,7 +14,7 @@ from ..conventions import HC_EV_NM, integrated_unit
 from ..cube import spectral_dim, validate_cube
 from ..errors import PmapNotice, StepError
 from ..provenance import with_step
-from ..steps import register_step
+from ..steps import materialize, register_step
 from . import _kernels as K
 from ._common import apply_per_spectrum, fwhm_at_half, smooth3
 from ._lineshapes import (
@@ -685,6 +685,7 @@ def fit_peaks(
         spatial = [d for d in cube.dims if d != "energy"]
         mean = cube.mean(dim=spatial, skipna=True)
         mean = mean.chunk({"energy": -1}) if isinstance(mean.data, da.Array) else mean
+        mean = mean.copy(data=materialize(mean.data))
 
         def rows(Y, mean_vec):
             return _fit_rows(Y, mean_vec, spec, var_mode, gain, rn2, int(max_iter), float(min_snr))

@@ -266,7 +266,7 @@ def finish_cube(
 ) -> xr.DataArray:
     """Validate a freshly read cube and record the input file in its provenance."""
     try:
-        cube = validate_cube(arr, chunks=chunks, target_chunk_mib=target_chunk_mib)
+        cube = validate_cube(arr, chunks=chunks, target_chunk_mib=target_chunk_mib, rechunk=True)
     except CubeValidationError as exc:
         raise CubeValidationError(f"{path.name}: {exc}") from exc
     cube.attrs = with_input(cube.attrs, path, fmt=fmt)

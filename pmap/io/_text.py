@@ -485,7 +485,7 @@ def _skeleton(
     }
     arr = xr.DataArray(data, dims=("y", "x", sdim), coords=coords, name=CUBE_NAME, attrs=attrs)
     try:
-        return validate_cube(arr, target_chunk_mib=target_chunk_mib)
+        return validate_cube(arr, target_chunk_mib=target_chunk_mib, rechunk=True)
     except CubeValidationError as exc:
         raise CubeValidationError(f"{spec.path.name}: {exc}") from exc
 

@@ -11,7 +11,7 @@ import xarray as xr
 from scipy import ndimage
 
 from ..errors import StepError
-from ..steps import register_step
+from ..steps import materialize, register_step
 from ._common import check_cube, finish, float_dtype, robust_sigma_of_diff
 
 __all__ = ["mask_bad_pixels", "hot_channels"]
@@ -165,6 +165,7 @@ def mask_bad_pixels(
     level = float(level) if (saturated and level is not None) else None
     auto = saturated and level is None
     gmax = da.nanmax(data) if auto else da.zeros((), dtype=dt)
+    hot_mask, gmax = materialize(hot_mask, gmax)  # one pass over the data for both
     code = da.map_blocks(
         _mask_core, data, gmax, hot_mask, dtype=np.uint8, sat_level=level, auto_sat=auto, dead=dead
     )

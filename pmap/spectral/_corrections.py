@@ -9,7 +9,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import StepError
-from ..steps import register_step
+from ..steps import materialize, register_step
 from ._common import (
     check_cube,
     finish,
@@ -62,6 +62,7 @@ def subtract_dark(
             raise StepError(f"region must be a mapping like {{'x': (0, 5)}}, got {region!r}")
         sub = region_slice(x, region)
         ref = sub.mean(("y", "x"))
+        ref = ref.copy(data=materialize(ref.data)) if ref.chunks is not None else ref
         out = x - ref
         params = {"region": {k: list(v) for k, v in region.items()}}
     else:

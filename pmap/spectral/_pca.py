@@ -8,7 +8,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import StepError
-from ..steps import register_step
+from ..steps import materialize, register_step
 from ._common import check_cube, finish, float_dtype, robust_sigma_of_diff
 
 __all__ = ["pca_denoise", "choose_n_components", "PCA_RULES"]
@@ -145,8 +145,10 @@ def pca_denoise(
     sample = cube.data.vindex[idx]
     width = int(n_components) if n_components is not None else min(n, int(max_components))
     fit = dask.delayed(_fit, nout=2)(sample, n_components, rule, width)
-    mean = da.from_delayed(fit[0], shape=(n,), dtype=np.float64)
-    proj = da.from_delayed(fit[1], shape=(n, width), dtype=np.float64)
+    mean, proj = materialize(
+        da.from_delayed(fit[0], shape=(n,), dtype=np.float64),
+        da.from_delayed(fit[1], shape=(n, width), dtype=np.float64),
+    )
     dt = float_dtype(cube.dtype)
     out = xr.apply_ufunc(
         _project,

@@ -5,6 +5,7 @@ from __future__ import annotations
 import warnings
 
 import dask.array as da
+import numba
 import numpy as np
 import xarray as xr
 
@@ -18,18 +19,35 @@ __all__ = ["remove_spikes", "spike_candidates"]
 _NEIGHBOURS = [(dy, dx) for dy in (-1, 0, 1) for dx in (-1, 0, 1) if (dy, dx) != (0, 0)]
 
 
+@numba.njit(cache=True, nogil=True)
+def _row_stats(flat):  # pragma: no cover - compiled
+    """Per row of (m, k): NaN-aware median, MAD and mean absolute deviation."""
+    m = flat.shape[0]
+    med = np.empty(m)
+    mad = np.empty(m)
+    meanad = np.empty(m)
+    for i in range(m):
+        r = flat[i]
+        mi = np.nanmedian(r)
+        dev = np.abs(r - mi)
+        med[i] = mi
+        mad[i] = np.nanmedian(dev)
+        meanad[i] = np.nanmean(dev)
+    return med, mad, meanad
+
+
 def _robust_scale(d: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Median and MAD of (…, m) along the last axis, NaN-aware; MAD = 0 → scaled mean |dev|."""
-    nan = np.isnan(d).any()
-    med_f = np.nanmedian if nan else np.median
-    mean_f = np.nanmean if nan else np.mean
-    med = med_f(d, axis=-1, keepdims=True)
-    dev = np.abs(d - med)
-    mad = med_f(dev, axis=-1, keepdims=True)
+    """Median and MAD of (…, m) along the last axis, NaN-aware; MAD = 0 → scaled mean |dev|.
+
+    Compiled per-row loop (numba); all-NaN rows give NaN.
+    """
+    flat = np.ascontiguousarray(d.reshape(-1, d.shape[-1]), dtype=np.float64)
+    med, mad, meanad = _row_stats(flat)
     # MAD = 0 happens with quantised or flat data: use the mean absolute deviation
     # scaled to the MAD of a Gaussian (0.6745/0.7979), and if that is 0 too, no spikes.
-    mad = np.where(mad > 0, mad, mean_f(dev, axis=-1, keepdims=True) * (0.6745 / 0.7979))
-    return med, mad
+    mad = np.where(mad > 0, mad, meanad * (0.6745 / 0.7979))
+    shape = d.shape[:-1] + (1,)
+    return med.reshape(shape), mad.reshape(shape)
 
 
 def spike_candidates(x: np.ndarray, threshold: float = 6.0) -> tuple[np.ndarray, np.ndarray]:
@@ -46,19 +64,44 @@ def spike_candidates(x: np.ndarray, threshold: float = 6.0) -> tuple[np.ndarray,
     (candidates bool (…, n), sigma (…, 1))
         sigma is the white-noise s.d. of one value, 1.4826·MAD/√2.
     """
-    d = np.diff(x, axis=-1)
-    med, mad = _robust_scale(d)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        z = np.where(mad > 0, 0.6745 * (d - med) / mad, 0.0)
-    up = z > threshold
-    down = z < -threshold
-    cand = np.zeros(x.shape, dtype=bool)
-    cand[..., 1:] |= up
-    cand[..., :-1] |= down
-    wide = cand.copy()
-    wide[..., 1:] |= cand[..., :-1]
-    wide[..., :-1] |= cand[..., 1:]
-    return wide, 1.4826 * mad / np.sqrt(2.0)
+    flat = np.ascontiguousarray(x.reshape(-1, x.shape[-1]), dtype=np.float64)
+    wide, mad = _candidates_rows(flat, float(threshold))
+    shape = x.shape[:-1]
+    return wide.reshape(x.shape), (1.4826 * mad / np.sqrt(2.0)).reshape(shape + (1,))
+
+
+@numba.njit(cache=True, nogil=True)
+def _candidates_rows(flat, threshold):  # pragma: no cover - compiled
+    """Compiled core of :func:`spike_candidates` over rows (m, n): (wide bool, MAD (m,))."""
+    m, n = flat.shape
+    wide = np.zeros((m, n), dtype=np.bool_)
+    mads = np.empty(m)
+    if n < 2:
+        mads[:] = np.nan
+        return wide, mads
+    d = np.empty(n - 1)
+    cand = np.zeros(n, dtype=np.bool_)
+    for i in range(m):
+        for j in range(n - 1):
+            d[j] = flat[i, j + 1] - flat[i, j]
+        med = np.nanmedian(d)
+        dev = np.abs(d - med)
+        mad = np.nanmedian(dev)
+        if not mad > 0:  # quantised or flat data: scaled mean absolute deviation
+            mad = np.nanmean(dev) * (0.6745 / 0.7979)
+        mads[i] = mad
+        cand[:] = False
+        if mad > 0:
+            for j in range(n - 1):
+                z = 0.6745 * (d[j] - med) / mad
+                if z > threshold:
+                    cand[j + 1] = True
+                elif z < -threshold:
+                    cand[j] = True
+        for j in range(n):
+            if cand[j] or (j > 0 and cand[j - 1]) or (j < n - 1 and cand[j + 1]):
+                wide[i, j] = True
+    return wide, mads
 
 
 def _interp_fill(x: np.ndarray, mask: np.ndarray) -> np.ndarray:
