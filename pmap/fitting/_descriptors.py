@@ -28,6 +28,16 @@ def _window_index(x: np.ndarray, window) -> slice:
     return slice(int(i0), int(i1))
 
 
+def _trapezoid_weights(x: np.ndarray) -> np.ndarray:
+    """Weights w with Y @ w == np.trapezoid(Y, x, axis=-1) (one matrix-vector product)."""
+    w = np.zeros(x.size)
+    if x.size > 1:
+        dx = np.diff(x)
+        w[:-1] += 0.5 * dx
+        w[1:] += 0.5 * dx
+    return w
+
+
 def _descriptor_rows(Y, x, win, rwin):
     n_pix = Y.shape[0]
     out = np.full((n_pix, 5), np.nan)
@@ -40,16 +50,17 @@ def _descriptor_rows(Y, x, win, rwin):
     ymax = Yg[rows, imax]
     out[good, 0] = parabolic_vertex(x, Yg, imax)
     Yw, xw = Yg[:, win], x[win]
-    total = np.trapezoid(Yw, xw, axis=1)
+    w = _trapezoid_weights(xw)
+    total = Yw @ w
     with np.errstate(divide="ignore", invalid="ignore"):
-        out[good, 1] = np.trapezoid(Yw * xw, xw, axis=1) / total
+        out[good, 1] = (Yw @ (w * xw)) / total
     out[good, 2] = total
     fw = fwhm_at_half(x, Yg, imax, 0.5 * ymax)
     out[good, 3] = np.where(ymax > 0, fw, np.nan)
     if rwin is not None:
         (s1, s2) = rwin
-        i1 = np.trapezoid(Yg[:, s1], x[s1], axis=1)
-        i2 = np.trapezoid(Yg[:, s2], x[s2], axis=1)
+        i1 = Yg[:, s1] @ _trapezoid_weights(x[s1])
+        i2 = Yg[:, s2] @ _trapezoid_weights(x[s2])
         with np.errstate(divide="ignore", invalid="ignore"):
             out[good, 4] = np.where(i2 != 0, i1 / i2, np.nan)
     return out
