@@ -151,6 +151,35 @@ def _spatial_blocks(ds: xr.Dataset) -> list[tuple[slice, slice]]:
             for i in range(len(ys)) for j in range(len(xs))]
 
 
+#: Target size of one written block of result maps (bytes). Maps are small next to
+#: the cube (a few numbers per pixel), so one write block spans several compute
+#: chunks: fewer, larger Zarr writes and fewer scheduler round trips.
+WRITE_BLOCK_BYTES = 32 * 2**20
+
+
+def _grow_write_blocks(ds: xr.Dataset, spatial: list[str]) -> xr.Dataset:
+    """Rechunk the spatial maps to whole multiples of the compute chunks, ≈ WRITE_BLOCK_BYTES."""
+    sizes = ds.chunksizes
+    if not spatial or "y" not in sizes or "x" not in sizes:
+        return ds
+    per_px = 0
+    for k in spatial:
+        v = ds[k]
+        per_px += v.dtype.itemsize * int(np.prod([v.sizes[d] for d in v.dims
+                                                   if d not in ("y", "x")] or [1]))
+    cy, cx = sizes["y"][0], sizes["x"][0]
+    ny, nx = ds.sizes["y"], ds.sizes["x"]
+    k = max(1, int(WRITE_BLOCK_BYTES // max(per_px * cy * cx, 1)))
+    if k == 1:
+        return ds
+    if cx >= nx:  # chunks are whole rows: stack more rows
+        new = {"y": min(ny, cy * k), "x": nx}
+    else:
+        side = max(1, int(np.sqrt(k)))
+        new = {"y": min(ny, cy * side), "x": min(nx, cx * max(1, k // side))}
+    return ds.chunk(new)
+
+
 def _block_name(ys: slice, xs: slice) -> str:
     return f"y{ys.start}-{ys.stop}_x{xs.start}-{xs.stop}"
 
@@ -195,6 +224,7 @@ def write_result(
         v.encoding.pop("chunks", None)
         v.encoding.pop("preferred_chunks", None)
     spatial = [k for k, v in ds.data_vars.items() if "y" in v.dims and "x" in v.dims]
+    ds = _grow_write_blocks(ds, spatial)
     others = [k for k in ds.data_vars if k not in spatial]
     pdir = progress_dir(p)
     if fresh:

@@ -129,7 +129,10 @@ def test_input_never_modified_and_no_overwrite(demo, result, tmp_path):
     assert _tree_digest(demo["cube"]) == before
 
 
-def test_results_do_not_depend_on_memory_limit_or_chunks(demo, tmp_path):
+def test_results_do_not_depend_on_memory_limit_or_chunks(demo, tmp_path, monkeypatch):
+    import pmap.results as results
+
+    monkeypatch.setattr(results, "WRITE_BLOCK_BYTES", 1)  # store chunks = compute chunks
     pipe = """[[steps]]\nstep = "remove_spikes"\n[[steps]]\nstep = "to_energy"\n[descriptors]\n[fit]\npeaks = 1\n"""
     a = pmap.process(demo["cube"], tmp_path / "a.zarr", pipeline=pipe, progress=False,
                      memory_limit="2GB")
@@ -182,6 +185,7 @@ def test_cli_process_writes_store_and_figures(demo, tmp_path):
 def test_interrupted_then_resumed_process_equals_uninterrupted(demo, tmp_path, monkeypatch):
     import pmap.results as results
 
+    monkeypatch.setattr(results, "WRITE_BLOCK_BYTES", 1)  # several blocks on a small cube
     pipe = """[[steps]]\nstep = "remove_spikes"\n[[steps]]\nstep = "to_energy"\n[descriptors]\n[fit]\npeaks = 1\n"""
     ref = pmap.process(demo["cube"], tmp_path / "ref.zarr", pipeline=pipe, progress=False,
                        memory_limit="8MB").compute()

@@ -49,6 +49,7 @@ def test_refuses_overwrite_and_foreign_folders(tmp_path):
 
 
 def test_interrupted_then_resumed_equals_uninterrupted(tmp_path, monkeypatch):
+    monkeypatch.setattr(results, "WRITE_BLOCK_BYTES", 1)  # one write block per chunk
     ds = _result(3)
     full = write_result(ds, tmp_path / "full.zarr", progress=False)
     calls = {"n": 0}

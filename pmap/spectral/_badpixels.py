@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import warnings
 from typing import Any
 
 import dask.array as da
@@ -13,6 +12,7 @@ from scipy import ndimage
 from ..errors import StepError
 from ..steps import materialize, register_step
 from ._common import check_cube, finish, float_dtype, robust_sigma_of_diff
+from ._spikes import _robust_scale
 
 __all__ = ["mask_bad_pixels", "hot_channels"]
 
@@ -53,10 +53,8 @@ def _block_hot_votes(block: np.ndarray, threshold: float) -> np.ndarray:
     votes = np.zeros(n, dtype=np.float64)
     if n >= 3 and flat.shape[0]:
         d = np.diff(flat, axis=-1)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN spectra
-            med = np.nanmedian(d, axis=-1, keepdims=True)
-            sigma = 1.4826 * np.nanmedian(np.abs(d - med), axis=-1, keepdims=True) / np.sqrt(2)
+        _, mad = _robust_scale(d)  # compiled per-row median/MAD (NaN-aware)
+        sigma = 1.4826 * mad / np.sqrt(2)
         sigma = np.where(np.isfinite(sigma) & (sigma > 0), sigma, np.inf)
         left = np.concatenate([flat[:, 1:2], flat[:, :-1]], axis=-1)
         right = np.concatenate([flat[:, 1:], flat[:, -2:-1]], axis=-1)
