@@ -333,8 +333,8 @@ def parse_memory(text: str | int | float | None) -> int:
 #: Peak memory of processing one chunk, as a multiple of its raw size (float64
 #: copies, energy conversion, fit work arrays), and the memory the process holds
 #: before any chunk (interpreter, numpy, numba, dask); measured with
-#: scripts/bench_scale.py (peak RSS ≈ base + 14 × chunk × threads on the demo pipeline).
-CHUNK_MEMORY_FACTOR = 16
+#: scripts/bench_scale.py (peak RSS ≈ base + 14–20 × chunk × threads on the demo pipeline).
+CHUNK_MEMORY_FACTOR = 20
 BASE_MEMORY_BYTES = 350 * 2**20
 
 

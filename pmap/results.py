@@ -154,7 +154,7 @@ def _spatial_blocks(ds: xr.Dataset) -> list[tuple[slice, slice]]:
 #: Target size of one written block of result maps (bytes). Maps are small next to
 #: the cube (a few numbers per pixel), so one write block spans several compute
 #: chunks: fewer, larger Zarr writes and fewer scheduler round trips.
-WRITE_BLOCK_BYTES = 32 * 2**20
+WRITE_BLOCK_BYTES = 16 * 2**20
 
 
 def _grow_write_blocks(ds: xr.Dataset, spatial: list[str]) -> xr.Dataset:
