@@ -99,6 +99,7 @@ import xarray as xr
 from scipy import ndimage, special
 from scipy.spatial import cKDTree
 
+from .airvac import air_to_vacuum
 from .conventions import HC_EV_NM
 from .cube import validate_cube
 from .errors import InputFileError, StepError
@@ -209,21 +210,6 @@ class DemoPaths(NamedTuple):
 # --------------------------------------------------------------------------- axis
 
 
-def _iau_refractive_index(vacuum_nm: np.ndarray) -> np.ndarray:
-    """Refractive index of standard air, IAU formula (Morton 2000, from Birch & Downs 1994)."""
-    sigma2 = (1e3 / vacuum_nm) ** 2  # (1/λ_vac in µm⁻¹)²
-    return 1.0 + 8.34254e-5 + 2.406147e-2 / (130.0 - sigma2) + 1.5998e-4 / (38.9 - sigma2)
-
-
-def _air_to_vacuum_nm(air_nm: np.ndarray) -> np.ndarray:
-    """Vacuum wavelength (nm) of an air wavelength, by fixed-point iteration of λ_vac = n·λ_air."""
-    air = np.asarray(air_nm, dtype=float)
-    vac = air.copy()
-    for _ in range(6):  # converges to < 1e-12 nm in 3–4 iterations
-        vac = air * _iau_refractive_index(vac)
-    return vac
-
-
 def _wavelength_axis(n_channels: int, scen: DemoScenario) -> tuple[np.ndarray, np.ndarray]:
     """Channel centres (nm) and channel edges (n_channels + 1, nm), both in the axis medium."""
     centres = np.linspace(scen.wavelength_min_nm, scen.wavelength_max_nm, n_channels)
@@ -236,7 +222,7 @@ def _wavelength_axis(n_channels: int, scen: DemoScenario) -> tuple[np.ndarray, n
 
 def _edge_energies_ev(edges_nm: np.ndarray, medium: str) -> np.ndarray:
     """Photon energies (eV, descending) of channel edges given in ``medium`` wavelengths."""
-    vac = _air_to_vacuum_nm(edges_nm) if medium == "air" else np.asarray(edges_nm, dtype=float)
+    vac = air_to_vacuum(edges_nm, method="iau") if medium == "air" else np.asarray(edges_nm, dtype=float)
     return HC_EV_NM / vac
 
 
