@@ -5,7 +5,7 @@ napari, Qt and scikit-learn are never imported here.
 
 Layers (data flow one way, lower never imports higher)::
 
-    errors, conventions, provenance, steps, cube      (model and conventions)
+    errors, conventions, airvac, provenance, steps, cube   (model and conventions)
     io, synthetic                                     (reading, writing, demo data)
     spectral                                          (axis, calibration, cleaning)
     fitting, decomposition                            (per-pixel fits, NMF, regions)
