@@ -27,6 +27,7 @@ __all__ = [
     "vacuum_wavelength_nm",
 ]
 
+
 def vacuum_wavelength_nm(cube: xr.DataArray, *, method: str = DEFAULT_AIR_METHOD) -> np.ndarray:
     """The cube's wavelength axis in vacuum nm (converted if ``wavelength_medium`` is air)."""
     lam = np.asarray(cube["wavelength"].values, dtype=float)

@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 import dask.array as da
+import numba
 import numpy as np
 import xarray as xr
 from scipy import ndimage
@@ -12,7 +13,7 @@ from scipy import ndimage
 from ..errors import StepError
 from ..steps import materialize, register_step
 from ._common import check_cube, finish, float_dtype, robust_sigma_of_diff
-from ._spikes import _robust_scale
+from ._robust import diff_scale
 
 __all__ = ["mask_bad_pixels", "hot_channels"]
 
@@ -49,19 +50,35 @@ def _block_hot_votes(block: np.ndarray, threshold: float) -> np.ndarray:
     in one spectrum only.
     """
     n = block.shape[-1]
-    flat = block.reshape(-1, n).astype(np.float64)
+    flat = block.reshape(-1, n)
+    if flat.dtype not in (np.float32, np.float64):
+        flat = flat.astype(np.float64)
     votes = np.zeros(n, dtype=np.float64)
     if n >= 3 and flat.shape[0]:
-        d = np.diff(flat, axis=-1)
-        _, mad = _robust_scale(d)  # compiled per-row median/MAD (NaN-aware)
-        sigma = 1.4826 * mad / np.sqrt(2)
-        sigma = np.where(np.isfinite(sigma) & (sigma > 0), sigma, np.inf)
-        left = np.concatenate([flat[:, 1:2], flat[:, :-1]], axis=-1)
-        right = np.concatenate([flat[:, 1:], flat[:, -2:-1]], axis=-1)
-        with np.errstate(invalid="ignore"):
-            excess = flat - np.maximum(left, right)
-            votes = np.nansum(excess > threshold * sigma, axis=0).astype(np.float64)
+        _hot_votes_rows(np.ascontiguousarray(flat), float(threshold), votes)
     return votes.reshape((1,) * (block.ndim - 1) + (n,))
+
+
+@numba.njit(cache=True, nogil=True)
+def _hot_votes_rows(flat, threshold, votes):  # pragma: no cover - compiled
+    """Add each spectrum's one-channel-excess votes of rows (m, n) to votes (n,)."""
+    m, n = flat.shape
+    x = np.empty(n)
+    d = np.empty(n)
+    buf = np.empty(n)
+    for i in range(m):
+        for j in range(n):
+            x[j] = flat[i, j]
+        _, mad = diff_scale(x, 0, n, d, buf)
+        sigma = 1.4826 * mad / np.sqrt(2.0)
+        if not (np.isfinite(sigma) and sigma > 0):
+            continue
+        limit = threshold * sigma
+        for j in range(n):
+            left = x[1] if j == 0 else x[j - 1]
+            right = x[n - 2] if j == n - 1 else x[j + 1]
+            if x[j] - left > limit and x[j] - right > limit:  # NaN anywhere: no vote
+                votes[j] += 1.0
 
 
 def _mask_core(
@@ -151,8 +168,12 @@ def mask_bad_pixels(
         # A hot detector channel stands out in most spectra; cosmic spikes (one spectrum
         # each) and a saturated pixel do not reach a majority.
         one = tuple((1,) * len(c) for c in data.chunks[:-1])
-        votes = data.map_blocks(_block_hot_votes, chunks=(*one, data.chunks[-1]),
-                                dtype=np.float64, threshold=float(hot_threshold))
+        votes = data.map_blocks(
+            _block_hot_votes,
+            chunks=(*one, data.chunks[-1]),
+            dtype=np.float64,
+            threshold=float(hot_threshold),
+        )
         n_spectra = int(np.prod(data.shape[:-1]))
         hot_mask = (da.sum(votes, axis=lead) > 0.5 * n_spectra) | bad
     else:

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import warnings
-
 import dask.array as da
 import numba
 import numpy as np
@@ -12,42 +10,9 @@ import xarray as xr
 from ..errors import StepError
 from ..steps import register_step
 from ._common import check_cube, finish, float_dtype
+from ._robust import diff_scale, median_of, nan_median_mad
 
 __all__ = ["remove_spikes", "spike_candidates"]
-
-# offsets of the 8 spatial neighbours (dy, dx)
-_NEIGHBOURS = [(dy, dx) for dy in (-1, 0, 1) for dx in (-1, 0, 1) if (dy, dx) != (0, 0)]
-
-
-@numba.njit(cache=True, nogil=True)
-def _row_stats(flat):  # pragma: no cover - compiled
-    """Per row of (m, k): NaN-aware median, MAD and mean absolute deviation."""
-    m = flat.shape[0]
-    med = np.empty(m)
-    mad = np.empty(m)
-    meanad = np.empty(m)
-    for i in range(m):
-        r = flat[i]
-        mi = np.nanmedian(r)
-        dev = np.abs(r - mi)
-        med[i] = mi
-        mad[i] = np.nanmedian(dev)
-        meanad[i] = np.nanmean(dev)
-    return med, mad, meanad
-
-
-def _robust_scale(d: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Median and MAD of (…, m) along the last axis, NaN-aware; MAD = 0 → scaled mean |dev|.
-
-    Compiled per-row loop (numba); all-NaN rows give NaN.
-    """
-    flat = np.ascontiguousarray(d.reshape(-1, d.shape[-1]), dtype=np.float64)
-    med, mad, meanad = _row_stats(flat)
-    # MAD = 0 happens with quantised or flat data: use the mean absolute deviation
-    # scaled to the MAD of a Gaussian (0.6745/0.7979), and if that is 0 too, no spikes.
-    mad = np.where(mad > 0, mad, meanad * (0.6745 / 0.7979))
-    shape = d.shape[:-1] + (1,)
-    return med.reshape(shape), mad.reshape(shape)
 
 
 def spike_candidates(x: np.ndarray, threshold: float = 6.0) -> tuple[np.ndarray, np.ndarray]:
@@ -71,120 +36,165 @@ def spike_candidates(x: np.ndarray, threshold: float = 6.0) -> tuple[np.ndarray,
 
 
 @numba.njit(cache=True, nogil=True)
+def _mark_candidates(x, n, threshold, d, buf, cand, wide):  # pragma: no cover - compiled
+    """Candidates of one spectrum x[:n] into ``wide`` (bool, widened by ±1); returns MAD."""
+    for j in range(n):
+        cand[j] = False
+        wide[j] = False
+    if n < 2:
+        return np.nan
+    med, mad = diff_scale(x, 0, n, d, buf)
+    if not mad > 0:
+        return mad
+    found = False
+    for j in range(n - 1):
+        z = 0.6745 * (d[j] - med) / mad
+        if z > threshold:
+            cand[j + 1] = True
+            found = True
+        elif z < -threshold:
+            cand[j] = True
+            found = True
+    if found:
+        for j in range(n):
+            if cand[j] or (j > 0 and cand[j - 1]) or (j < n - 1 and cand[j + 1]):
+                wide[j] = True
+    return mad
+
+
+@numba.njit(cache=True, nogil=True)
 def _candidates_rows(flat, threshold):  # pragma: no cover - compiled
     """Compiled core of :func:`spike_candidates` over rows (m, n): (wide bool, MAD (m,))."""
     m, n = flat.shape
     wide = np.zeros((m, n), dtype=np.bool_)
     mads = np.empty(m)
-    if n < 2:
-        mads[:] = np.nan
-        return wide, mads
-    d = np.empty(n - 1)
+    d = np.empty(max(n, 1))
+    buf = np.empty(max(n, 1))
     cand = np.zeros(n, dtype=np.bool_)
     for i in range(m):
-        for j in range(n - 1):
-            d[j] = flat[i, j + 1] - flat[i, j]
-        med = np.nanmedian(d)
-        dev = np.abs(d - med)
-        mad = np.nanmedian(dev)
-        if not mad > 0:  # quantised or flat data: scaled mean absolute deviation
-            mad = np.nanmean(dev) * (0.6745 / 0.7979)
-        mads[i] = mad
-        cand[:] = False
-        if mad > 0:
-            for j in range(n - 1):
-                z = 0.6745 * (d[j] - med) / mad
-                if z > threshold:
-                    cand[j + 1] = True
-                elif z < -threshold:
-                    cand[j] = True
-        for j in range(n):
-            if cand[j] or (j > 0 and cand[j - 1]) or (j < n - 1 and cand[j + 1]):
-                wide[i, j] = True
+        mads[i] = _mark_candidates(flat[i], n, threshold, d, buf, cand, wide[i])
     return wide, mads
 
 
-def _interp_fill(x: np.ndarray, mask: np.ndarray) -> np.ndarray:
-    """Linear interpolation across masked channels (…, n) from the nearest unmasked ones."""
-    n = x.shape[-1]
-    idx = np.broadcast_to(np.arange(n), x.shape)
-    left = np.maximum.accumulate(np.where(~mask, idx, -1), axis=-1)
-    right = np.minimum.accumulate(np.where(~mask, idx, n)[..., ::-1], axis=-1)[..., ::-1]
-    lc, rc = np.clip(left, 0, n - 1), np.clip(right, 0, n - 1)
-    xl = np.take_along_axis(x, lc, -1)
-    xr_ = np.take_along_axis(x, rc, -1)
-    t = np.where((left >= 0) & (right < n), (idx - left) / np.maximum(right - left, 1), 0.0)
-    out = np.where(left < 0, xr_, np.where(right >= n, xl, xl + t * (xr_ - xl)))
+#: Half width (channels) of the window giving the local noise s.d. near a candidate.
+_LOCAL_HALF = 10
+
+
+@numba.njit(cache=True, nogil=True)
+def _local_sigma(x, n, c, d, buf):  # pragma: no cover - compiled
+    """Noise s.d. near channel c of x[:n]: 1.4826·MAD/√2 of the first difference over
+    2·_LOCAL_HALF + 1 channels (follows shot noise, which grows with signal)."""
+    w = min(2 * _LOCAL_HALF + 1, n)
+    start = min(max(c - _LOCAL_HALF, 0), n - w)
+    _, mad = diff_scale(x, start, start + w, d, buf)
+    return 1.4826 * mad / np.sqrt(2.0)
+
+
+@numba.njit(cache=True, nogil=True)
+def _clean_kernel(b, threshold, min_neighbours, out):  # pragma: no cover - compiled
+    """Spike removal over a padded block b (B, Y + 2, X + 2, n), NaN outside the map,
+    into out (B, Y, X, n). See :func:`remove_spikes` for the rule."""
+    nb_, y2, x2, n = b.shape
+    x = np.empty(n)
+    d = np.empty(n)
+    buf = np.empty(n)
+    cand = np.zeros(n, dtype=np.bool_)
+    wide = np.zeros(n, dtype=np.bool_)
+    fb = np.zeros(n, dtype=np.bool_)
+    nbv = np.empty(8)
+    nbuf = np.empty(8)
+    win = np.empty(7)
+    for ib in range(nb_):
+        for iy in range(y2 - 2):
+            for ix in range(x2 - 2):
+                for j in range(n):
+                    v = b[ib, iy + 1, ix + 1, j]
+                    x[j] = v
+                    out[ib, iy, ix, j] = v
+                mad = _mark_candidates(x, n, threshold, d, buf, cand, wide)
+                if not mad > 0:
+                    continue
+                any_fb = False
+                for c in range(n):
+                    if not wide[c]:
+                        continue
+                    val = x[c]
+                    cnt = 0
+                    for dy in range(3):
+                        for dx in range(3):
+                            if dy == 1 and dx == 1:
+                                continue
+                            v = b[ib, iy + dy, ix + dx, c]
+                            if v == v:
+                                nbv[cnt] = v
+                                cnt += 1
+                    if cnt >= min_neighbours:
+                        # spatial test: against the median of the 3×3 neighbours, in units of
+                        # max(local noise s.d., neighbour spread); the cheap spread test first
+                        nb_med, nb_mad, _ = nan_median_mad(nbv, cnt, nbuf)
+                        spread = 1.4826 * nb_mad if np.isfinite(nb_mad) else 0.0
+                        excess = val - nb_med
+                        if not excess > threshold * spread:
+                            continue
+                        sig = _local_sigma(x, n, c, d, buf)
+                        if excess > threshold * sig:
+                            out[ib, iy, ix, c] = nb_med
+                    else:
+                        # spectral fallback: median of ±3 channels that are not candidates
+                        k = 0
+                        for o in range(-3, 4):
+                            cc = min(max(c + o, 0), n - 1)
+                            if not wide[cc] and cc != c and x[cc] == x[cc]:
+                                win[k] = x[cc]
+                                k += 1
+                        sig = _local_sigma(x, n, c, d, buf)
+                        diff = val - median_of(win, k)
+                        if diff == diff and diff > threshold * sig:
+                            fb[c] = True
+                            any_fb = True
+                if any_fb:
+                    _fill_flagged(x, n, fb, out[ib, iy, ix])
     return out
 
 
-def _local_sigma(inner: np.ndarray, ib, iy, ix, ic, half: int = 10) -> np.ndarray:
-    """Noise s.d. near each candidate: 1.4826·MAD/√2 of the first difference over
-    2·half + 1 channels of its own spectrum (follows shot noise, which grows with signal)."""
-    n = inner.shape[-1]
-    w = min(2 * half + 1, n)
-    start = np.clip(ic - half, 0, n - w)
-    cc = start[:, None] + np.arange(w)
-    win = inner[ib[:, None], iy[:, None], ix[:, None], cc]
-    _, mad = _robust_scale(np.diff(win, axis=-1))
-    return 1.4826 * mad[:, 0] / np.sqrt(2.0)
+@numba.njit(cache=True, nogil=True)
+def _fill_flagged(x, n, flag, out):  # pragma: no cover - compiled
+    """Linear interpolation of x across flagged channels (from the nearest unflagged ones)
+    into out; clears the flags."""
+    for c in range(n):
+        if not flag[c]:
+            continue
+        left = c - 1
+        while left >= 0 and flag[left]:
+            left -= 1
+        right = c + 1
+        while right < n and flag[right]:
+            right += 1
+        if left < 0:
+            out[c] = x[min(right, n - 1)]
+        elif right >= n:
+            out[c] = x[left]
+        else:
+            t = (c - left) / (right - left)
+            out[c] = x[left] + t * (x[right] - x[left])
+    for c in range(n):
+        flag[c] = False
 
 
 def _clean_block(
     block: np.ndarray, threshold: float, min_neighbours: int, out_dtype: np.dtype
 ) -> np.ndarray:
-    """Core over a padded block (B…, Y + 2, X + 2, n) with NaN outside the map."""
+    """Core over a padded block (B…, Y + 2, X + 2, n) with NaN outside the map.
+
+    Returns the cleaned inner block (B…, Y, X, n) in ``out_dtype``.
+    """
     shape = block.shape
     b = block.reshape((-1,) + shape[-3:])
-    inner = b[:, 1:-1, 1:-1, :].astype(np.float64)
-    cand, _ = spike_candidates(inner, threshold)
-    out = b.astype(out_dtype, copy=True)
-    ib, iy, ix, ic = np.nonzero(cand)
-    if ib.size == 0:
-        return out.reshape(shape)
-    val = inner[ib, iy, ix, ic]
-    nb = np.stack([b[ib, iy + 1 + dy, ix + 1 + dx, ic] for dy, dx in _NEIGHBOURS], axis=-1)
-    nb = nb.astype(np.float64)
-    n_valid = np.sum(~np.isnan(nb), axis=-1)
-    spatial = n_valid >= min_neighbours
-    with warnings.catch_warnings():  # all-NaN neighbourhoods (single spectra) are expected
-        warnings.simplefilter("ignore", RuntimeWarning)
-        nb_med = np.nanmedian(nb, axis=-1)
-        nb_mad = np.nanmedian(np.abs(nb - nb_med[:, None]), axis=-1)
-    sig = _local_sigma(inner, ib, iy, ix, ic)
-    scale = np.maximum(sig, np.where(np.isfinite(nb_mad), 1.4826 * nb_mad, 0.0))
-    spike_sp = spatial & (val - nb_med > threshold * scale) & (scale >= 0)
-    # spectral fallback (map edges with < min_neighbours, single spectra): compare with the
-    # median of ±3 channels that are not candidates themselves
-    fb = ~spatial
-    spike_fb = np.zeros_like(fb)
-    if fb.any():
-        n = inner.shape[-1]
-        win = np.arange(-3, 4)
-        cc = np.clip(ic[fb, None] + win, 0, n - 1)
-        wv = inner[ib[fb, None], iy[fb, None], ix[fb, None], cc]
-        wc = cand[ib[fb, None], iy[fb, None], ix[fb, None], cc]
-        wv = np.where(wc | (cc == ic[fb, None]), np.nan, wv)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            ref = np.nanmedian(wv, axis=-1)
-        spike_fb[fb] = np.nan_to_num(val[fb] - ref, nan=-np.inf) > threshold * sig[fb]
-    spike = spike_sp | spike_fb
-    if not spike.any():
-        return out.reshape(shape)
-    inner_out = out[:, 1:-1, 1:-1, :]
-    s_sp = spike_sp
-    inner_out[ib[s_sp], iy[s_sp], ix[s_sp], ic[s_sp]] = nb_med[s_sp]
-    if spike_fb.any():
-        mask = np.zeros(inner.shape, dtype=bool)
-        mask[ib[spike_fb], iy[spike_fb], ix[spike_fb], ic[spike_fb]] = True
-        rows = np.unique(np.stack([ib[spike_fb], iy[spike_fb], ix[spike_fb]]), axis=1)
-        sub = inner[rows[0], rows[1], rows[2]]
-        filled = _interp_fill(sub, mask[rows[0], rows[1], rows[2]])
-        m = mask[rows[0], rows[1], rows[2]]
-        cur = inner_out[rows[0], rows[1], rows[2]]
-        inner_out[rows[0], rows[1], rows[2]] = np.where(m, filled, cur)
-    return out.reshape(shape)
+    if b.dtype not in (np.float32, np.float64):
+        b = b.astype(np.float64)
+    out = np.empty((b.shape[0], shape[-3] - 2, shape[-2] - 2, shape[-1]), dtype=out_dtype)
+    _clean_kernel(b, float(threshold), int(min_neighbours), out)
+    return out.reshape(shape[:-3] + out.shape[1:])
 
 
 @register_step("remove_spikes")
@@ -253,6 +263,8 @@ def remove_spikes(
         data,
         depth=depth,
         boundary=boundary,
+        trim=False,
+        chunks=data.chunks,
         dtype=dt,
         threshold=threshold,
         min_neighbours=int(min_neighbours),
