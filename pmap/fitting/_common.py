@@ -51,21 +51,6 @@ def apply_per_spectrum(
     return out.assign_coords({d: cube[d] for d in out.dims if d in cube.coords})
 
 
-def parabolic_vertex(x: np.ndarray, Y: np.ndarray, imax: np.ndarray) -> np.ndarray:
-    """Abscissa of the parabola through the maximum channel and its neighbours (any spacing)."""
-    n = x.size
-    i1 = np.clip(imax, 1, n - 2)
-    rows = np.arange(Y.shape[0])
-    x0, x1, x2 = x[i1 - 1], x[i1], x[i1 + 1]
-    y0, y1, y2 = Y[rows, i1 - 1], Y[rows, i1], Y[rows, i1 + 1]
-    num = (x1 - x0) ** 2 * (y1 - y2) - (x1 - x2) ** 2 * (y1 - y0)
-    den = (x1 - x0) * (y1 - y2) - (x1 - x2) * (y1 - y0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        xv = x1 - 0.5 * num / den
-    edge = (imax <= 0) | (imax >= n - 1) | ~np.isfinite(xv) | (xv < x0) | (xv > x2)
-    return np.where(edge, x[imax], xv)
-
-
 def fwhm_at_half(x: np.ndarray, Y: np.ndarray, imax: np.ndarray, half: np.ndarray) -> np.ndarray:
     """Full width where Y crosses ``half`` either side of ``imax`` (linear interpolation).
 

@@ -10,7 +10,7 @@ from ..cube import spectral_dim, validate_cube
 from ..errors import StepError
 from ..provenance import with_step
 from ..steps import register_step
-from ._common import apply_per_spectrum, fwhm_at_half, parabolic_vertex
+from ._common import apply_per_spectrum
 
 __all__ = ["spectral_descriptors"]
 
@@ -39,31 +39,18 @@ def _trapezoid_weights(x: np.ndarray) -> np.ndarray:
 
 
 def _descriptor_rows(Y, x, win, rwin):
-    n_pix = Y.shape[0]
-    out = np.full((n_pix, 5), np.nan)
-    good = np.all(np.isfinite(Y), axis=1)
-    if not np.any(good):
-        return out
-    Yg = Y[good]
-    imax = np.argmax(Yg, axis=1)
-    rows = np.arange(Yg.shape[0])
-    ymax = Yg[rows, imax]
-    out[good, 0] = parabolic_vertex(x, Yg, imax)
-    Yw, xw = Yg[:, win], x[win]
-    w = _trapezoid_weights(xw)
-    total = Yw @ w
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out[good, 1] = (Yw @ (w * xw)) / total
-    out[good, 2] = total
-    fw = fwhm_at_half(x, Yg, imax, 0.5 * ymax)
-    out[good, 3] = np.where(ymax > 0, fw, np.nan)
-    if rwin is not None:
-        (s1, s2) = rwin
-        i1 = Yg[:, s1] @ _trapezoid_weights(x[s1])
-        i2 = Yg[:, s2] @ _trapezoid_weights(x[s2])
-        with np.errstate(divide="ignore", invalid="ignore"):
-            out[good, 4] = np.where(i2 != 0, i1 / i2, np.nan)
-    return out
+    """Descriptors of rows Y (m, n) on axis x (eV): (m, 5), through the compiled kernel."""
+    from ._kernels import descriptor_rows
+
+    i0, i1, _ = win.indices(x.size)
+    if rwin is None:
+        ratio = np.array([-1, -1, -1, -1])
+        w1 = w2 = np.zeros(0)
+    else:
+        (a0, a1, _), (b0, b1, _) = (s.indices(x.size) for s in rwin)
+        ratio = np.array([a0, a1, b0, b1])
+        w1, w2 = _trapezoid_weights(x[a0:a1]), _trapezoid_weights(x[b0:b1])
+    return descriptor_rows(Y, x, np.array([i0, i1]), _trapezoid_weights(x[i0:i1]), ratio, w1, w2)
 
 
 @register_step("spectral_descriptors")
@@ -107,7 +94,11 @@ def spectral_descriptors(cube, *, window_ev=None, ratio_windows=None) -> xr.Data
             raise StepError("ratio_windows must be two (low, high) energy windows in eV")
         rwin = (_window_index(x, ratio_windows[0]), _window_index(x, ratio_windows[1]))
     arr = apply_per_spectrum(
-        cube, lambda Y: _descriptor_rows(Y, x, win, rwin), 5, out_dim="descriptor"
+        cube,
+        lambda Y: _descriptor_rows(Y, x, win, rwin),
+        5,
+        out_dim="descriptor",
+        keep_float32=True,
     )
     unit = cube.attrs.get("units", "1")
     spec = [

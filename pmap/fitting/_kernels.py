@@ -882,3 +882,61 @@ def describe_rows(Y, x):
         D[r, 4] = math.sqrt(q / (n - 2) / 6.0) if n >= 4 else 0.0
         D[r, 5], D[r, 6], D[r, 7], D[r, 8] = _log_parabola(x, yb, s, im, b, fw)
     return finite, imax, D
+
+
+@nb.njit(cache=True, error_model="numpy", nogil=True)
+def descriptor_rows(Y, x, win, ww, ratio, wr1, wr2):
+    """Spectral descriptors of rows Y (m, n), one pass per row, into (m, 5).
+
+    Columns: [vertex of the parabola through the maximum channel and its neighbours
+    (x[imax] at the edges), centroid Σ w·x·y / Σ w·y over ``win`` = (start, stop) with
+    trapezoid weights ``ww``, the integral Σ w·y, the FWHM at half the maximum (linear
+    interpolation, NaN when a side never falls below it or the maximum is ≤ 0), the
+    ratio of the integrals over ratio = (a0, a1, b0, b1) with weights wr1, wr2 (NaN
+    when a0 < 0)]. Rows with any NaN/Inf give NaN throughout.
+    """
+    m, n = Y.shape
+    out = np.full((m, 5), np.nan)
+    yb = np.empty(n)
+    for r in range(m):
+        tot = 0.0
+        im = 0
+        top = -np.inf
+        for c in range(n):
+            v = float(Y[r, c])
+            yb[c] = v
+            tot += v * 0.0  # NaN when any channel is NaN or infinite
+            if v > top:
+                top = v
+                im = c
+        if not math.isfinite(tot):
+            continue
+        i1 = min(max(im, 1), n - 2)
+        x0, x1, x2 = x[i1 - 1], x[i1], x[i1 + 1]
+        y0, y1, y2 = yb[i1 - 1], yb[i1], yb[i1 + 1]
+        num = (x1 - x0) ** 2 * (y1 - y2) - (x1 - x2) ** 2 * (y1 - y0)
+        den = (x1 - x0) * (y1 - y2) - (x1 - x2) * (y1 - y0)
+        xv = x1 - 0.5 * num / den if den != 0.0 else np.nan
+        if im <= 0 or im >= n - 1 or not math.isfinite(xv) or xv < x0 or xv > x2:
+            xv = x[im]
+        out[r, 0] = xv
+        s0 = 0.0
+        s1 = 0.0
+        for j in range(win[1] - win[0]):
+            wy = ww[j] * yb[win[0] + j]
+            s0 += wy
+            s1 += wy * x[win[0] + j]
+        out[r, 1] = s1 / s0
+        out[r, 2] = s0
+        if top > 0:
+            fw, _, _ = _half_width(x, yb, im, 0.5 * top)
+            out[r, 3] = fw
+        if ratio[0] >= 0:
+            a = 0.0
+            for j in range(ratio[1] - ratio[0]):
+                a += wr1[j] * yb[ratio[0] + j]
+            b = 0.0
+            for j in range(ratio[3] - ratio[2]):
+                b += wr2[j] * yb[ratio[2] + j]
+            out[r, 4] = a / b if b != 0.0 else np.nan
+    return out

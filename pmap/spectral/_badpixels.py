@@ -88,23 +88,61 @@ def _mask_core(
     sat_level: float | None,
     auto_sat: bool,
     dead: bool,
+    masked: bool = False,
 ) -> np.ndarray:
-    """Codes (…, n) uint8: 1 dead, 2 saturated, 4 bad channel; 0 good."""
-    code = np.zeros(x.shape, dtype=np.uint8)
-    if dead:
-        with np.errstate(invalid="ignore"):
-            flat = np.nanmax(x, axis=-1, keepdims=True) == np.nanmin(x, axis=-1, keepdims=True)
-        code |= np.where(flat | np.all(np.isnan(x), axis=-1, keepdims=True), 1, 0).astype(np.uint8)
-    if sat_level is not None:
-        code |= np.where(x >= sat_level, 2, 0).astype(np.uint8)
-    elif auto_sat:
-        top = x >= np.asarray(gmax).reshape(())
-        run = np.zeros_like(top)
-        run[..., 1:] |= top[..., 1:] & top[..., :-1]
-        run[..., :-1] |= top[..., :-1] & top[..., 1:]
-        code |= np.where(run, 2, 0).astype(np.uint8)
-    code |= np.where(hot, 4, 0).astype(np.uint8)
-    return code
+    """Codes (…, n) uint8: 1 dead, 2 saturated, 4 bad channel; 0 good.
+
+    With ``masked``, return x (floating) with every coded value set to NaN instead.
+    """
+    n = x.shape[-1]
+    flat = x.reshape(-1, n)
+    if flat.dtype not in (np.float32, np.float64):
+        flat = flat.astype(np.float64)
+    flat = np.ascontiguousarray(flat)
+    code = np.zeros(flat.shape, dtype=np.uint8)
+    out = np.empty(flat.shape, dtype=flat.dtype) if masked else flat[:0]
+    level = np.nan if sat_level is None else float(sat_level)
+    top = float(np.asarray(gmax).reshape(())) if auto_sat else np.nan
+    _mask_rows(flat, np.asarray(hot, dtype=np.bool_).reshape(n), level, top, dead, code, out)
+    return (out if masked else code).reshape(x.shape)
+
+
+@numba.njit(cache=True, nogil=True)
+def _mask_rows(flat, hot, level, top, dead, code, out):  # pragma: no cover - compiled
+    """Bad-value codes of rows (m, n) into code; if out has rows, the masked values too.
+
+    level: fixed saturation level (NaN: none); top: estimated level, where only runs of
+    two or more adjacent values at or above it count (NaN: none).
+    """
+    m, n = flat.shape
+    fill = out.shape[0] > 0
+    for i in range(m):
+        if dead:
+            lo = np.inf
+            hi = -np.inf
+            for j in range(n):
+                v = flat[i, j]
+                if v < lo:
+                    lo = v
+                if v > hi:
+                    hi = v
+            if lo == hi or lo > hi:  # constant, or all NaN
+                for j in range(n):
+                    code[i, j] = 1
+        for j in range(n):
+            v = flat[i, j]
+            c = code[i, j]
+            if level == level:
+                if v >= level:
+                    c |= 2
+            elif top == top and v >= top:
+                if (j > 0 and flat[i, j - 1] >= top) or (j < n - 1 and flat[i, j + 1] >= top):
+                    c |= 2
+            if hot[j]:
+                c |= 4
+            code[i, j] = c
+            if fill:
+                out[i, j] = np.nan if c else v
 
 
 @register_step("mask_bad_pixels")
@@ -185,10 +223,8 @@ def mask_bad_pixels(
     auto = saturated and level is None
     gmax = da.nanmax(data) if auto else da.zeros((), dtype=dt)
     hot_mask, gmax = materialize(hot_mask, gmax)  # one pass over the data for both
-    code = da.map_blocks(
-        _mask_core, data, gmax, hot_mask, dtype=np.uint8, sat_level=level, auto_sat=auto, dead=dead
-    )
-    cleaned = da.where(code > 0, np.nan, data).astype(dt)
+    opts = {"sat_level": level, "auto_sat": auto, "dead": dead}
+    cleaned = da.map_blocks(_mask_core, data, gmax, hot_mask, dtype=dt, masked=True, **opts)
     out = finish(
         cube.copy(data=cleaned),
         cube,
@@ -204,6 +240,7 @@ def mask_bad_pixels(
     )
     if not return_mask:
         return out
+    code = da.map_blocks(_mask_core, data, gmax, hot_mask, dtype=np.uint8, **opts)
     codes = cube.copy(data=code)
     codes.attrs = {
         "long_name": "bad-value code (1 dead, 2 saturated, 4 hot/bad channel)",
