@@ -184,10 +184,66 @@ def _block_name(ys: slice, xs: slice) -> str:
     return f"y{ys.start}-{ys.stop}_x{xs.start}-{xs.stop}"
 
 
-def _mark_done(marker: str, _written=None) -> str:
-    """Create a block's done-marker; runs only after the block's write task finished."""
+_DONE_KEY = "pmap-block-done-"
+
+
+def _write_block(path: str, marker: str, blocks: dict) -> str:
+    """Write one block of every map into the store's Zarr arrays, then its done-marker.
+
+    ``blocks`` maps a variable name to a list of (index tuple, computed values). Runs as
+    one task, so the marker exists only once every variable of the block is on disk.
+    """
+    import zarr
+
+    g = zarr.open_group(path, mode="r+")
+    for name, pieces in blocks.items():
+        arr = g[name]
+        for idx, values in pieces:
+            arr[idx] = np.asarray(values, dtype=arr.dtype)
+    return _mark_done(marker)
+
+
+def _mark_done(marker: str) -> str:
+    """Create a block's done-marker; called only after the block's writes returned."""
     Path(marker).touch()
     return marker
+
+
+def _block_pieces(maps: dict, blocks: list[tuple[slice, slice]]) -> dict:
+    """Per write block, per variable: the (region index, chunk) pieces inside it.
+
+    Dask-backed variables are optimised together once and cut into their chunks as
+    Delayed objects (no per-block graph optimisation); in-memory ones are sliced.
+    """
+    import dask
+
+    lazy = {k: v for k, v in maps.items() if dask.is_dask_collection(v.data)}
+    optimised = {k: v.data for k, v in lazy.items()}
+    pieces: dict = {_block_name(ys, xs): {} for ys, xs in blocks}
+    starts = [(ys.start, xs.start, _block_name(ys, xs)) for ys, xs in blocks]
+
+    def owner(y0, x0):
+        best = None
+        for ys0, xs0, name in starts:
+            if ys0 <= y0 and xs0 <= x0 and (best is None or (ys0, xs0) >= best[:2]):
+                best = (ys0, xs0, name)
+        return best[2]
+
+    for k, v in maps.items():
+        ay, ax = v.dims.index("y"), v.dims.index("x")
+        if k not in lazy:
+            for ys, xs in blocks:
+                idx = tuple(ys if d == "y" else xs if d == "x" else slice(None) for d in v.dims)
+                pieces[_block_name(ys, xs)].setdefault(k, []).append((idx, v.data[idx]))
+            continue
+        arr = optimised[k]
+        bounds = [np.cumsum((0, *c)) for c in arr.chunks]
+        delayed = arr.to_delayed(optimize_graph=False)
+        for ij in np.ndindex(delayed.shape):
+            idx = tuple(slice(int(b[i]), int(b[i + 1])) for b, i in zip(bounds, ij, strict=True))
+            name = owner(idx[ay].start, idx[ax].start)
+            pieces[name].setdefault(k, []).append((idx, delayed[ij]))
+    return pieces
 
 
 def write_result(
@@ -205,12 +261,13 @@ def write_result(
     """Write a lazy result Dataset to Zarr block by block, resumable, then mark it complete.
 
     Metadata (and the small non-spatial variables) are written first with
-    ``pmap_complete = False``; then each aligned spatial block is computed and
-    written with ``region=``; a block is marked done (a marker file in
-    ``STORE.progress/`` beside the store) only after its write completed. ``resume=True`` on an
+    ``pmap_complete = False``; then each aligned spatial block is computed and written
+    into its region of the Zarr arrays by one task, which then creates the block's
+    done-marker (in ``STORE.progress/`` beside the store). All blocks form one graph, so
+    chunks that neighbouring blocks share are computed once. ``resume=True`` on an
     existing incomplete store recomputes only the blocks not marked done.
-    ``concurrency`` bounds how many blocks are in flight (memory); ``client``
-    is a dask.distributed Client to run the blocks on a cluster.
+    ``concurrency`` is the number of threads; ``client`` is a dask.distributed Client
+    to run the blocks on a cluster.
     """
     p = Path(path)
     fresh = not (resume and p.exists())
@@ -235,8 +292,7 @@ def write_result(
         shutil.rmtree(pdir, ignore_errors=True)
     pdir.mkdir(exist_ok=True)
     done = {f.name for f in pdir.iterdir()}
-    sp = ds[spatial].reset_coords(drop=True)
-    sp = sp.drop_vars(list(sp.coords))
+    maps = {k: ds[k].variable for k in spatial}
     todo = [(ys, xs) for ys, xs in _spatial_blocks(ds) if _block_name(ys, xs) not in done]
     total = len(_spatial_blocks(ds))
     from tqdm import tqdm
@@ -245,24 +301,35 @@ def write_result(
                file=sys.stderr, disable=not progress, dynamic_ncols=True, mininterval=0.5)
     import dask
 
+    pieces = _block_pieces(maps, _spatial_blocks(ds))
+
     def task(ys, xs):
-        written = sp.isel(y=ys, x=xs).to_zarr(str(p), region={"y": ys, "x": xs}, mode="r+",
-                                              consolidated=False, compute=False)
-        return dask.delayed(_mark_done)(str(pdir / _block_name(ys, xs)), written)
+        name = _block_name(ys, xs)
+        return dask.delayed(_write_block)(str(p), str(pdir / name), pieces[name],
+                                          dask_key_name=f"{_DONE_KEY}{name}")
 
     try:
+        tasks = [task(ys, xs) for ys, xs in todo]
         if client is not None:
             from distributed import as_completed
 
-            futures = client.compute([task(ys, xs) for ys, xs in todo])
-            for _ in as_completed(futures):
+            for _ in as_completed(client.compute(tasks)):
                 bar.update(1)
         else:
+            # One graph for all blocks: a chunk that neighbouring blocks share (the
+            # 1-pixel overlap of spike removal) is read and cleaned once. The scheduler's
+            # ordering finishes a chunk's dependents before starting far-away chunks, so
+            # memory stays near (threads × one chunk's working set).
+            from dask.callbacks import Callback
+
+            class _Ticks(Callback):
+                def _posttask(self, key, result, dsk, state, worker_id):
+                    if isinstance(key, str) and key.startswith(_DONE_KEY):
+                        bar.update(1)
+
             n = max(1, concurrency or os.cpu_count() or 1)
-            for i in range(0, len(todo), n):
-                batch = todo[i:i + n]
-                dask.compute(*[task(ys, xs) for ys, xs in batch])
-                bar.update(len(batch))
+            with _Ticks():
+                dask.compute(*tasks, num_workers=n)
     finally:
         bar.close()
     if complete:
