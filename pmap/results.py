@@ -158,7 +158,7 @@ WRITE_BLOCK_BYTES = 16 * 2**20
 
 
 def _grow_write_blocks(ds: xr.Dataset, spatial: list[str]) -> xr.Dataset:
-    """Rechunk the spatial maps to whole multiples of the compute chunks, ≈ WRITE_BLOCK_BYTES."""
+    """Rechunk the spatial maps to strips of whole compute chunks, ≈ WRITE_BLOCK_BYTES each."""
     sizes = ds.chunksizes
     if not spatial or "y" not in sizes or "x" not in sizes:
         return ds
@@ -172,11 +172,13 @@ def _grow_write_blocks(ds: xr.Dataset, spatial: list[str]) -> xr.Dataset:
     k = max(1, int(WRITE_BLOCK_BYTES // max(per_px * cy * cx, 1)))
     if k == 1:
         return ds
-    if cx >= nx:  # chunks are whole rows: stack more rows
-        new = {"y": min(ny, cy * k), "x": nx}
+    nbx = -(-nx // cx)
+    # full-width strips of chunk rows: the blocks are then written in raster order and
+    # a chunk's spatial neighbours (spike removal) are needed only by the next strip
+    if k >= nbx:
+        new = {"y": min(ny, cy * (k // nbx)), "x": nx}
     else:
-        side = max(1, int(np.sqrt(k)))
-        new = {"y": min(ny, cy * side), "x": min(nx, cx * max(1, k // side))}
+        new = {"y": cy, "x": min(nx, cx * k)}
     return ds.chunk(new)
 
 
