@@ -52,3 +52,23 @@ def test_bad_channel_errors(rng):
     data, wl = _cube(rng)
     with pytest.raises(StepError, match="bad_channels"):
         mask_bad_pixels(pmap.make_cube(data, wavelength_nm=wl), bad_channels=[100])
+
+
+def test_hot_channel_vote_on_a_large_map_is_chunking_independent(rng):
+    # 128 x 128 = 16384 spectra: the vote runs on the fixed lattice of one spectrum in
+    # four; a detector defect adding counts to one channel of every spectrum (common
+    # practice: a hot CCD column) must still win, a real line and spikes must not, and the
+    # decision must not depend on the chunking.
+    wl = np.linspace(600, 700, 64)
+    line = 300 * np.exp(-0.5 * ((wl - 650) / 6) ** 2)
+    data = (100 + line + rng.normal(0, 3, (128, 128, 64))).astype(np.float32)
+    data[:, :, 17] += 60.0  # hot channel
+    data[::3, ::5, 40] += 500.0  # spikes in one spectrum in 15: not a majority
+    cube = pmap.make_cube(data, wavelength_nm=wl)
+    masks = []
+    for chunks in ({"y": 128, "x": 128}, {"y": 33, "x": 17}, {"y": 7, "x": 128}):
+        _, code = mask_bad_pixels(cube.chunk(chunks), return_mask=True)
+        masks.append(np.all(code.values & 4, axis=(0, 1)))
+    assert np.flatnonzero(masks[0]).tolist() == [17]
+    for m in masks[1:]:
+        np.testing.assert_array_equal(m, masks[0])

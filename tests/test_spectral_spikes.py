@@ -95,3 +95,30 @@ def test_stack_dims_and_chunk_borders():
     m = mask.values
     assert m.sum() == 1 and m[1, 3, 4, 30]
     assert abs(cleaned.values[1, 3, 4, 30] - 100) < 10
+
+
+@pytest.mark.parametrize("chunks", [(1, 10, 7, 5), (2, 37, 29, 5), (1, 1, 3, 5)])
+def test_halo_equals_dask_map_overlap(rng, chunks):
+    # The copied-edge halo must hand each block exactly what dask's own map_overlap
+    # (reference implementation, dask.array) gives with depth 1 and a NaN boundary.
+    import dask.array as da
+
+    from pmap.spectral._halo import map_with_halo
+
+    x = rng.normal(size=(2, 37, 29, 5)).astype(np.float32)
+    d = da.from_array(x, chunks=chunks)
+
+    def neighbourhood(b):  # every one of the 9 positions with its own weight
+        out = np.zeros(b.shape[:-3] + (b.shape[-3] - 2, b.shape[-2] - 2, b.shape[-1]))
+        for k, (dy, dx) in enumerate((a, c) for a in range(3) for c in range(3)):
+            win = b[..., dy : dy + out.shape[-3], dx : dx + out.shape[-2], :]
+            out += np.where(np.isnan(win), -1000.0, win) * 10.0**k
+        return out
+
+    got = map_with_halo(neighbourhood, d, dtype=np.float64).compute()
+    ref = da.map_overlap(
+        neighbourhood, d, depth={0: 0, 1: 1, 2: 1, 3: 0},
+        boundary={0: "none", 1: np.nan, 2: np.nan, 3: "none"},
+        trim=False, chunks=d.chunks, dtype=np.float64,
+    ).compute()
+    np.testing.assert_array_equal(got, ref)

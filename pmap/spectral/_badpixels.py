@@ -41,15 +41,27 @@ def hot_channels(
     return flags
 
 
-def _block_hot_votes(block: np.ndarray, threshold: float) -> np.ndarray:
+#: Maps with at least this many spectra vote on hot channels from one spectrum in four
+#: (every other pixel in y and in x); smaller maps vote with every spectrum.
+HOT_VOTE_SUBSAMPLE_FROM = 16384
+
+
+def _block_hot_votes(
+    block: np.ndarray, threshold: float, stride: int = 1, block_info=None
+) -> np.ndarray:
     """Per channel, how many spectra of one chunk show a one-channel excess (shape (1,..,1,n)).
 
     A channel votes "hot" in a spectrum when it exceeds *both* neighbours by more than
     ``threshold`` noise s.d. (noise from the MAD of the spectrum's first difference). A
     real emission line spans several channels and so never votes; a cosmic spike votes
-    in one spectrum only.
+    in one spectrum only. With ``stride`` > 1 only the pixels whose map indices y and x
+    are multiples of ``stride`` vote (a fixed lattice: the same whatever the chunking).
     """
     n = block.shape[-1]
+    if stride > 1:
+        loc = block_info[0]["array-location"] if block_info else None
+        y0, x0 = (loc[-3][0], loc[-2][0]) if loc else (0, 0)
+        block = block[..., (-y0) % stride :: stride, (-x0) % stride :: stride, :]
     flat = block.reshape(-1, n)
     if flat.dtype not in (np.float32, np.float64):
         flat = flat.astype(np.float64)
@@ -173,7 +185,9 @@ def mask_bad_pixels(
         (two or more adjacent channels at that maximum) are masked.
     hot : bool
         Mask hot detector channels: channels that exceed both neighbours by more
-        than ``hot_threshold`` noise s.d. in more than half of the spectra.
+        than ``hot_threshold`` noise s.d. in more than half of the spectra (on maps of
+        16384 spectra or more, half of a fixed lattice of one spectrum in four: every
+        other pixel in y and x).
     bad_channels : list of int, optional
         Channel indices (0-based, ascending axis) to mask in every spectrum.
     return_mask : bool
@@ -206,13 +220,19 @@ def mask_bad_pixels(
         # A hot detector channel stands out in most spectra; cosmic spikes (one spectrum
         # each) and a saturated pixel do not reach a majority.
         one = tuple((1,) * len(c) for c in data.chunks[:-1])
+        ny, nx = cube.sizes["y"], cube.sizes["x"]
+        canonical = cube.dims[-3:-1] == ("y", "x")
+        big = ny * nx >= HOT_VOTE_SUBSAMPLE_FROM and min(ny, nx) >= 2
+        stride = 2 if canonical and big else 1
         votes = data.map_blocks(
             _block_hot_votes,
             chunks=(*one, data.chunks[-1]),
             dtype=np.float64,
             threshold=float(hot_threshold),
+            stride=stride,
         )
-        n_spectra = int(np.prod(data.shape[:-1]))
+        voters = -(-ny // stride) * -(-nx // stride)
+        n_spectra = cube.size // (ny * nx * n) * voters
         hot_mask = (da.sum(votes, axis=lead) > 0.5 * n_spectra) | bad
     else:
         hot_mask = da.from_array(bad, chunks=-1)
