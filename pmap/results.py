@@ -214,13 +214,12 @@ def _mark_done(marker: str) -> str:
 def _block_pieces(maps: dict, blocks: list[tuple[slice, slice]]) -> dict:
     """Per write block, per variable: the (region index, chunk) pieces inside it.
 
-    Dask-backed variables are optimised together once and cut into their chunks as
-    Delayed objects (no per-block graph optimisation); in-memory ones are sliced.
+    Dask-backed variables are cut into their chunks as Delayed objects of the one
+    shared graph (no per-block graph optimisation); in-memory ones are sliced.
     """
     import dask
 
     lazy = {k: v for k, v in maps.items() if dask.is_dask_collection(v.data)}
-    optimised = {k: v.data for k, v in lazy.items()}
     pieces: dict = {_block_name(ys, xs): {} for ys, xs in blocks}
     starts = [(ys.start, xs.start, _block_name(ys, xs)) for ys, xs in blocks]
 
@@ -238,7 +237,7 @@ def _block_pieces(maps: dict, blocks: list[tuple[slice, slice]]) -> dict:
                 idx = tuple(ys if d == "y" else xs if d == "x" else slice(None) for d in v.dims)
                 pieces[_block_name(ys, xs)].setdefault(k, []).append((idx, v.data[idx]))
             continue
-        arr = optimised[k]
+        arr = v.data
         bounds = [np.cumsum((0, *c)) for c in arr.chunks]
         delayed = arr.to_delayed(optimize_graph=False)
         for ij in np.ndindex(delayed.shape):
