@@ -136,7 +136,14 @@ def _convert_axis(
         scale = np.ones_like(lam)
     order = np.argsort(x)
     factor = xr.DataArray(scale.astype(out_dtype), dims=("wavelength",))
-    dens = (cube.astype(out_dtype) * factor).isel(wavelength=order)
+    n = order.size
+    if np.array_equal(order, np.arange(n)):
+        take: slice | np.ndarray = slice(None)
+    elif np.array_equal(order, np.arange(n)[::-1]):  # E = hc/λ: a reversal, a view per chunk
+        take = slice(None, None, -1)
+    else:
+        take = order
+    dens = (cube.astype(out_dtype) * factor).isel(wavelength=take)
     dens = dens.drop_vars([c for c in dens.coords if "wavelength" in dens[c].dims])
     dens = dens.rename({"wavelength": dim})
     xs = x[order]

@@ -30,8 +30,10 @@ def _copy_edge(block: np.ndarray, axis: int, first: bool) -> np.ndarray:
 def _padded_call(func, center, above, below, left, right, tl, tr, bl, br):
     """Assemble the NaN-padded block (…, Y + 2, X + 2, n) from a chunk and its halo; call func."""
     shape = center.shape[:-3] + (center.shape[-3] + 2, center.shape[-2] + 2, center.shape[-1])
-    pad = np.full(shape, np.nan, dtype=center.dtype)
+    pad = np.empty(shape, dtype=center.dtype)
     pad[..., 1:-1, 1:-1, :] = center
+    for border in ((0, slice(None)), (-1, slice(None)), (slice(None), 0), (slice(None), -1)):
+        pad[(..., *border, slice(None))] = np.nan  # outside the map unless a neighbour fills it
     if above is not None:
         pad[..., 0, 1:-1, :] = above[..., 0, :, :]
     if below is not None:
