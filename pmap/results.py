@@ -189,6 +189,19 @@ def _block_name(ys: slice, xs: slice) -> str:
 _DONE_KEY = "pmap-block-done-"
 
 
+def _metadata_template(ds: xr.Dataset) -> xr.Dataset:
+    """``ds`` with every dask variable replaced by zeros of the same chunks: writing it with
+    ``compute=False`` creates the Zarr arrays without building a store graph of the real maps."""
+    import dask.array as da
+
+    out = ds.copy()
+    for k, v in ds.data_vars.items():
+        if isinstance(v.data, da.Array):
+            out[k] = v.copy(data=da.zeros(v.shape, dtype=v.dtype, chunks=v.data.chunks))
+            out[k].encoding = dict(v.encoding)
+    return out
+
+
 def _write_block(path: str, marker: str, blocks: dict) -> str:
     """Write one block of every map into the store's Zarr arrays, then its done-marker.
 
@@ -289,7 +302,8 @@ def write_result(
         base = ds[others] if others else xr.Dataset()
         base.attrs = dict(ds.attrs)
         base.to_zarr(str(p), mode="w", consolidated=False)  # small global variables, in full
-        ds[spatial].to_zarr(str(p), mode="a", compute=False, consolidated=False)
+        _metadata_template(ds[spatial]).to_zarr(str(p), mode="a", compute=False,
+                                                consolidated=False)
         shutil.rmtree(pdir, ignore_errors=True)
     pdir.mkdir(exist_ok=True)
     done = {f.name for f in pdir.iterdir()}
