@@ -826,6 +826,22 @@ def _log_parabola(x, yb, s, im, b, fw):
     return off, height, centre, fwhm
 
 
+@nb.njit(cache=True, error_model="numpy", nogil=True)
+def _parabolic_vertex(x, y, im):
+    """Abscissa of the parabola through channel im and its neighbours (any spacing);
+    x[im] at the axis ends or when the vertex falls outside the three channels."""
+    n = y.size
+    i1 = min(max(im, 1), n - 2)
+    x0, x1, x2 = x[i1 - 1], x[i1], x[i1 + 1]
+    y0, y1, y2 = y[i1 - 1], y[i1], y[i1 + 1]
+    num = (x1 - x0) ** 2 * (y1 - y2) - (x1 - x2) ** 2 * (y1 - y0)
+    den = (x1 - x0) * (y1 - y2) - (x1 - x2) * (y1 - y0)
+    xv = x1 - 0.5 * num / den if den != 0.0 else np.nan
+    if im <= 0 or im >= n - 1 or not math.isfinite(xv) or xv < x0 or xv > x2:
+        return x[im]
+    return xv
+
+
 @nb.njit(cache=True, error_model="numpy", nogil=True, fastmath=FM)
 def describe_rows(Y, x):
     """Per-spectrum quantities for starting values and the signal test, one pass per row.
@@ -863,15 +879,7 @@ def describe_rows(Y, x):
         while s[im] < top:
             im += 1
         h = s[im] - b
-        # parabolic vertex on any spacing
-        i1 = min(max(im, 1), n - 2)
-        x0, x1, x2 = x[i1 - 1], x[i1], x[i1 + 1]
-        y0, y1, y2 = s[i1 - 1], s[i1], s[i1 + 1]
-        num = (x1 - x0) ** 2 * (y1 - y2) - (x1 - x2) ** 2 * (y1 - y0)
-        den = (x1 - x0) * (y1 - y2) - (x1 - x2) * (y1 - y0)
-        xv = x1 - 0.5 * num / den if den != 0.0 else np.nan
-        if im <= 0 or im >= n - 1 or not math.isfinite(xv) or xv < x0 or xv > x2:
-            xv = x[im]
+        xv = _parabolic_vertex(x, s, im)
         fw, _, _ = _half_width(x, s, im, b + 0.5 * h)
         q = _sum_d2_squared(yb)
         imax[r] = im
@@ -911,15 +919,7 @@ def descriptor_rows(Y, x, win, ww, ratio, wr1, wr2):
                 im = c
         if not math.isfinite(tot):
             continue
-        i1 = min(max(im, 1), n - 2)
-        x0, x1, x2 = x[i1 - 1], x[i1], x[i1 + 1]
-        y0, y1, y2 = yb[i1 - 1], yb[i1], yb[i1 + 1]
-        num = (x1 - x0) ** 2 * (y1 - y2) - (x1 - x2) ** 2 * (y1 - y0)
-        den = (x1 - x0) * (y1 - y2) - (x1 - x2) * (y1 - y0)
-        xv = x1 - 0.5 * num / den if den != 0.0 else np.nan
-        if im <= 0 or im >= n - 1 or not math.isfinite(xv) or xv < x0 or xv > x2:
-            xv = x[im]
-        out[r, 0] = xv
+        out[r, 0] = _parabolic_vertex(x, yb, im)
         s0 = 0.0
         s1 = 0.0
         for j in range(win[1] - win[0]):
