@@ -338,6 +338,16 @@ CHUNK_MEMORY_FACTOR = 20
 BASE_MEMORY_BYTES = 350 * 2**20
 
 
+def _row_bytes(cube: xr.DataArray) -> int:
+    """Bytes of one row of chunks of the cube once processed (float32 or wider)."""
+    per_value = max(cube.dtype.itemsize, 4)
+    if cube.chunks is None:
+        return int(cube.size * per_value)
+    sizes = dict(zip(cube.dims, cube.chunks, strict=True))
+    row = cube.size // cube.sizes["y"] * max(sizes["y"])
+    return int(row * per_value)
+
+
 def process(
     source: str | Path | xr.DataArray,
     out: str | Path,
@@ -417,7 +427,8 @@ def process(
     result, processed = build_result(cube, pipe)
     path = write_result(result, out, overwrite=overwrite, resume=resume, progress=progress,
                         input_paths=(in_path,), concurrency=threads, client=client,
-                        complete=pipe.regions is None)
+                        complete=pipe.regions is None, memory_limit=mem,
+                        row_bytes=_row_bytes(cube))
     if pipe.regions is not None:
         add_regions(path, processed, pipe.regions)
         mark_complete(path)

@@ -151,14 +151,19 @@ def _spatial_blocks(ds: xr.Dataset) -> list[tuple[slice, slice]]:
             for i in range(len(ys)) for j in range(len(xs))]
 
 
+#: Largest share of the memory limit that one row of processed chunks may take before
+#: the writer switches from streaming strips to bounded batches of tiles.
+HELD_ROW_FRACTION = 0.25
+
 #: Target size of one written block of result maps (bytes). Maps are small next to
 #: the cube (a few numbers per pixel), so one write block spans several compute
 #: chunks: fewer, larger Zarr writes and fewer scheduler round trips.
 WRITE_BLOCK_BYTES = 16 * 2**20
 
 
-def _grow_write_blocks(ds: xr.Dataset, spatial: list[str]) -> xr.Dataset:
-    """Rechunk the spatial maps to strips of whole compute chunks, ≈ WRITE_BLOCK_BYTES each."""
+def _grow_write_blocks(ds: xr.Dataset, spatial: list[str], *, strips: bool = True) -> xr.Dataset:
+    """Rechunk the spatial maps to blocks of whole compute chunks, ≈ WRITE_BLOCK_BYTES each:
+    full-width strips (streaming) or square-ish tiles (bounded batches)."""
     sizes = ds.chunksizes
     if not spatial or "y" not in sizes or "x" not in sizes:
         return ds
@@ -172,6 +177,13 @@ def _grow_write_blocks(ds: xr.Dataset, spatial: list[str]) -> xr.Dataset:
     k = max(1, int(WRITE_BLOCK_BYTES // max(per_px * cy * cx, 1)))
     if k == 1:
         return ds
+    if not strips or cx >= nx:
+        side = max(1, int(np.sqrt(k)))
+        if cx >= nx:  # chunks are whole rows: stack more rows
+            new = {"y": min(ny, cy * k), "x": nx}
+        else:
+            new = {"y": min(ny, cy * side), "x": min(nx, cx * max(1, k // side))}
+        return ds.chunk(new)
     nbx = -(-nx // cx)
     # full-width strips of chunk rows: the blocks are then written in raster order and
     # a chunk's spatial neighbours (spike removal) are needed only by the next strip
@@ -271,6 +283,8 @@ def write_result(
     concurrency: int | None = None,
     client=None,
     complete: bool = True,
+    memory_limit: int | None = None,
+    row_bytes: int | None = None,
 ) -> Path:
     """Write a lazy result Dataset to Zarr block by block, resumable, then mark it complete.
 
@@ -282,6 +296,13 @@ def write_result(
     existing incomplete store recomputes only the blocks not marked done.
     ``concurrency`` is the number of threads; ``client`` is a dask.distributed Client
     to run the blocks on a cluster.
+
+    Streaming in one graph keeps about one row of processed chunks in memory (a chunk's
+    lower neighbours wait for the next strip). When that row (``row_bytes``, the
+    processed cube's bytes per row of chunks) exceeds ``HELD_ROW_FRACTION`` of
+    ``memory_limit`` (bytes), as on very wide maps, blocks are square tiles computed
+    ``concurrency`` at a time instead: memory stays bounded and chunks on tile borders
+    are read more than once.
     """
     p = Path(path)
     fresh = not (resume and p.exists())
@@ -295,7 +316,9 @@ def write_result(
         v.encoding.pop("chunks", None)
         v.encoding.pop("preferred_chunks", None)
     spatial = [k for k, v in ds.data_vars.items() if "y" in v.dims and "x" in v.dims]
-    ds = _grow_write_blocks(ds, spatial)
+    streaming = (client is not None or row_bytes is None or memory_limit is None
+                 or row_bytes <= HELD_ROW_FRACTION * memory_limit)
+    ds = _grow_write_blocks(ds, spatial, strips=streaming)
     others = [k for k in ds.data_vars if k not in spatial]
     pdir = progress_dir(p)
     if fresh:
@@ -331,10 +354,10 @@ def write_result(
             for _ in as_completed(client.compute(tasks)):
                 bar.update(1)
         else:
-            # One graph for all blocks: a chunk that neighbouring blocks share (the
-            # 1-pixel overlap of spike removal) is read and cleaned once. The scheduler's
-            # ordering finishes a chunk's dependents before starting far-away chunks, so
-            # memory stays near (threads × one chunk's working set).
+            # Streaming: one graph for all blocks, so a chunk that neighbouring blocks
+            # share (the 1-pixel halo of spike removal) is read and cleaned once; the
+            # scheduler's ordering works through the strips in turn. Otherwise tiles,
+            # a few at a time.
             from dask.callbacks import Callback
 
             class _Ticks(Callback):
@@ -343,8 +366,10 @@ def write_result(
                         bar.update(1)
 
             n = max(1, concurrency or os.cpu_count() or 1)
+            batch = len(tasks) if streaming else n
             with _Ticks():
-                dask.compute(*tasks, num_workers=n)
+                for i in range(0, len(tasks), max(batch, 1)):
+                    dask.compute(*tasks[i:i + batch], num_workers=n)
     finally:
         bar.close()
     if complete:

@@ -220,8 +220,9 @@ def test_process_panel_runs_in_background(make_napari_viewer, qtbot, tmp_path):
     timer.start(5)
     worker = panel.run()
     assert worker is not None
-    with qtbot.waitSignal(worker.finished, timeout=60_000):
-        pass
+    # the worker starts inside run(): wait on the button its "finished" handler
+    # re-enables (a signal wait set up after the start could miss a quick finish)
+    qtbot.waitUntil(panel.run_button.isEnabled, timeout=60_000)
     timer.stop()
     assert panel.last_output == out and is_result_store(out), panel.status.text()
     assert any(ticks)  # the event loop kept running while the job worked
@@ -237,9 +238,8 @@ def test_process_panel_reports_errors(make_napari_viewer, qtbot, tmp_path):
     (tmp_path / "taken" / "keep.txt").write_text("x")
     panel.output.setText(str(tmp_path / "taken"))
     panel.overwrite.setChecked(True)
-    worker = panel.run()
-    with qtbot.waitSignal(worker.finished, timeout=60_000):
-        pass
+    assert panel.run() is not None
+    qtbot.waitUntil(panel.run_button.isEnabled, timeout=60_000)  # finished (see above)
     assert "not a pmap result store" in panel.status.text()
     assert (tmp_path / "taken" / "keep.txt").exists()
 
