@@ -424,7 +424,10 @@ def process(
     if spectral_dim(cube) == "wavelength" and not any(n == "to_energy" for n, _ in pipe.steps):
         warnings.warn("pipeline has no to_energy step: fitting on the wavelength axis",
                       PmapNotice, stacklevel=2)
-    result, processed = build_result(cube, pipe)
+    from ._progress import TqdmProgress
+
+    with TqdmProgress("whole-map checks", enabled=progress):  # hot channels, saturation…
+        result, processed = build_result(cube, pipe)
     path = write_result(result, out, overwrite=overwrite, resume=resume, progress=progress,
                         input_paths=(in_path,), concurrency=threads, client=client,
                         complete=pipe.regions is None, memory_limit=mem,
