@@ -47,6 +47,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import xarray as xr
 
 from .cube import rechunk_cube, spectral_dim, validate_cube
@@ -338,6 +339,13 @@ CHUNK_MEMORY_FACTOR = 20
 BASE_MEMORY_BYTES = 350 * 2**20
 
 
+def _chunk_bytes(cube: xr.DataArray) -> int:
+    """Bytes of the cube's largest chunk."""
+    if cube.chunks is None:
+        return int(cube.nbytes)
+    return int(cube.dtype.itemsize * np.prod([max(c) for c in cube.chunks]))
+
+
 def _row_bytes(cube: xr.DataArray) -> int:
     """Bytes of one row of chunks of the cube once processed (float32 or wider)."""
     per_value = max(cube.dtype.itemsize, 4)
@@ -430,8 +438,9 @@ def process(
         result, processed = build_result(cube, pipe)
     path = write_result(result, out, overwrite=overwrite, resume=resume, progress=progress,
                         input_paths=(in_path,), concurrency=threads, client=client,
-                        complete=pipe.regions is None, memory_limit=mem,
-                        row_bytes=_row_bytes(cube))
+                        complete=pipe.regions is None, row_bytes=_row_bytes(cube),
+                        spare_bytes=int(mem - BASE_MEMORY_BYTES
+                                        - CHUNK_MEMORY_FACTOR * _chunk_bytes(cube) * threads))
     if pipe.regions is not None:
         add_regions(path, processed, pipe.regions)
         mark_complete(path)

@@ -151,9 +151,10 @@ def _spatial_blocks(ds: xr.Dataset) -> list[tuple[slice, slice]]:
             for i in range(len(ys)) for j in range(len(xs))]
 
 
-#: Largest share of the memory limit that one row of processed chunks may take before
-#: the writer switches from streaming strips to bounded batches of tiles.
-HELD_ROW_FRACTION = 0.25
+#: Rows of processed chunks that streaming keeps in memory at its peak (measured with
+#: scripts/bench_scale.py: about 2.2 rows of masked chunks); streaming is chosen only
+#: when that many rows fit in the memory left beside the chunks being worked on.
+HELD_ROWS = 2.5
 
 #: Target size of one written block of result maps (bytes). Maps are small next to
 #: the cube (a few numbers per pixel), so one write block spans several compute
@@ -283,7 +284,7 @@ def write_result(
     concurrency: int | None = None,
     client=None,
     complete: bool = True,
-    memory_limit: int | None = None,
+    spare_bytes: int | None = None,
     row_bytes: int | None = None,
 ) -> Path:
     """Write a lazy result Dataset to Zarr block by block, resumable, then mark it complete.
@@ -297,12 +298,12 @@ def write_result(
     ``concurrency`` is the number of threads; ``client`` is a dask.distributed Client
     to run the blocks on a cluster.
 
-    Streaming in one graph keeps about one row of processed chunks in memory (a chunk's
-    lower neighbours wait for the next strip). When that row (``row_bytes``, the
-    processed cube's bytes per row of chunks) exceeds ``HELD_ROW_FRACTION`` of
-    ``memory_limit`` (bytes), as on very wide maps, blocks are square tiles computed
-    ``concurrency`` at a time instead: memory stays bounded and chunks on tile borders
-    are read more than once.
+    Streaming in one graph keeps a few rows of processed chunks in memory (a chunk's
+    lower neighbours wait for the next strip). When ``HELD_ROWS`` × ``row_bytes`` (the
+    processed cube's bytes per row of chunks) exceeds ``spare_bytes`` (the memory
+    limit less the chunks being worked on), as on wide maps or under a tight limit,
+    blocks are square tiles computed ``concurrency`` at a time instead: memory stays
+    bounded and chunks on tile borders are read more than once.
     """
     p = Path(path)
     fresh = not (resume and p.exists())
@@ -316,8 +317,8 @@ def write_result(
         v.encoding.pop("chunks", None)
         v.encoding.pop("preferred_chunks", None)
     spatial = [k for k, v in ds.data_vars.items() if "y" in v.dims and "x" in v.dims]
-    streaming = (client is not None or row_bytes is None or memory_limit is None
-                 or row_bytes <= HELD_ROW_FRACTION * memory_limit)
+    streaming = (client is not None or row_bytes is None or spare_bytes is None
+                 or HELD_ROWS * row_bytes <= spare_bytes)
     ds = _grow_write_blocks(ds, spatial, strips=streaming)
     others = [k for k in ds.data_vars if k not in spatial]
     pdir = progress_dir(p)

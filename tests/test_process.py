@@ -144,19 +144,39 @@ def test_results_do_not_depend_on_memory_limit_or_chunks(demo, tmp_path, monkeyp
         np.testing.assert_allclose(a[v].values, b[v].values, rtol=1e-5, equal_nan=True)
 
 
+def _record_modes(monkeypatch, results):
+    """Spy on the writer's mode: True for streaming strips, False for tiles."""
+    modes, grow = [], results._grow_write_blocks
+
+    def spy(ds, spatial, *, strips=True):
+        modes.append(strips)
+        return grow(ds, spatial, strips=strips)
+
+    monkeypatch.setattr(results, "_grow_write_blocks", spy)
+    return modes
+
+
+# Small compute chunks (several blocks on the small demo cube) under a generous limit:
+# the writer streams unless HELD_ROWS is made huge, which forces bounded tiles.
+_SMALL_CHUNKS = "[output]\nchunk_mib = 0.25\n"
+
+
 def test_streaming_strips_and_bounded_tiles_write_the_same_maps(demo, tmp_path, monkeypatch):
     # Ground truth is the run itself: the writer's two modes (one graph of full-width
-    # strips; tiles a few at a time, chosen when a row of chunks is too big for the
+    # strips; tiles a few at a time, chosen when rows of chunks are too big for the
     # memory limit) must give identical maps, spike removal's neighbours included.
     import pmap.results as results
 
     monkeypatch.setattr(results, "WRITE_BLOCK_BYTES", 1)
-    pipe = """[[steps]]\nstep = "remove_spikes"\n[[steps]]\nstep = "to_energy"\n[descriptors]\n[fit]\npeaks = 1\n"""
+    modes = _record_modes(monkeypatch, results)
+    pipe = ("""[[steps]]\nstep = "remove_spikes"\n[[steps]]\nstep = "to_energy"\n"""
+            """[descriptors]\n[fit]\npeaks = 1\n""" + _SMALL_CHUNKS)
     a = pmap.process(demo["cube"], tmp_path / "s.zarr", pipeline=pipe, progress=False,
-                     memory_limit="8MB").compute()
-    monkeypatch.setattr(results, "HELD_ROW_FRACTION", 0.0)  # every row "too big": tiles
+                     memory_limit="2GB").compute()
+    monkeypatch.setattr(results, "HELD_ROWS", 1e12)  # every row "too big": tiles
     b = pmap.process(demo["cube"], tmp_path / "t.zarr", pipeline=pipe, progress=False,
-                     memory_limit="8MB").compute()
+                     memory_limit="2GB").compute()
+    assert modes == [True, False]
     assert b.attrs["pmap_complete"]
     for v in ("peak_energy", "peak_area", "chi2_red", "integrated_intensity", "fit_status"):
         np.testing.assert_array_equal(a[v].values, b[v].values)
@@ -200,13 +220,19 @@ def test_cli_process_writes_store_and_figures(demo, tmp_path):
     assert again.returncode == 2 and "--overwrite" in again.stderr
 
 
-def test_interrupted_then_resumed_process_equals_uninterrupted(demo, tmp_path, monkeypatch):
+@pytest.mark.parametrize("mode", ["streaming", "tiles"])
+def test_interrupted_then_resumed_process_equals_uninterrupted(demo, tmp_path, monkeypatch,
+                                                               mode):
     import pmap.results as results
 
     monkeypatch.setattr(results, "WRITE_BLOCK_BYTES", 1)  # several blocks on a small cube
-    pipe = """[[steps]]\nstep = "remove_spikes"\n[[steps]]\nstep = "to_energy"\n[descriptors]\n[fit]\npeaks = 1\n"""
+    if mode == "tiles":
+        monkeypatch.setattr(results, "HELD_ROWS", 1e12)
+    modes = _record_modes(monkeypatch, results)
+    pipe = ("""[[steps]]\nstep = "remove_spikes"\n[[steps]]\nstep = "to_energy"\n"""
+            """[descriptors]\n[fit]\npeaks = 1\n""" + _SMALL_CHUNKS)
     ref = pmap.process(demo["cube"], tmp_path / "ref.zarr", pipeline=pipe, progress=False,
-                       memory_limit="8MB").compute()
+                       memory_limit="2GB").compute()
     real, calls = results._mark_done, {"n": 0}
 
     def killed(*a, **k):
@@ -218,12 +244,13 @@ def test_interrupted_then_resumed_process_equals_uninterrupted(demo, tmp_path, m
     monkeypatch.setattr(results, "_mark_done", killed)
     out = tmp_path / "int.zarr"
     with pytest.raises(KeyboardInterrupt):
-        pmap.process(demo["cube"], out, pipeline=pipe, progress=False, memory_limit="8MB")
+        pmap.process(demo["cube"], out, pipeline=pipe, progress=False, memory_limit="2GB")
     monkeypatch.setattr(results, "_mark_done", real)
     assert xr.open_zarr(out).attrs["pmap_complete"] is False
     with pytest.raises(OutputExistsError):  # neither resume nor overwrite: refused
-        pmap.process(demo["cube"], out, pipeline=pipe, progress=False, memory_limit="8MB")
-    res = pmap.process(demo["cube"], out, pipeline=pipe, progress=False, memory_limit="8MB",
+        pmap.process(demo["cube"], out, pipeline=pipe, progress=False, memory_limit="2GB")
+    res = pmap.process(demo["cube"], out, pipeline=pipe, progress=False, memory_limit="2GB",
                        resume=True).compute()
+    assert set(modes) == {mode == "streaming"}
     for v in ("peak_energy", "peak_area", "chi2_red", "integrated_intensity"):
         np.testing.assert_array_equal(res[v].values, ref[v].values)
