@@ -247,14 +247,14 @@ def _block_pieces(maps: dict, blocks: list[tuple[slice, slice]]) -> dict:
 
     lazy = {k: v for k, v in maps.items() if dask.is_dask_collection(v.data)}
     pieces: dict = {_block_name(ys, xs): {} for ys, xs in blocks}
-    starts = [(ys.start, xs.start, _block_name(ys, xs)) for ys, xs in blocks]
+    by_start = {(ys.start, xs.start): _block_name(ys, xs) for ys, xs in blocks}
+    y_starts = np.unique([ys.start for ys, _ in blocks])  # the blocks form a grid
+    x_starts = np.unique([xs.start for _, xs in blocks])
 
     def owner(y0, x0):
-        best = None
-        for ys0, xs0, name in starts:
-            if ys0 <= y0 and xs0 <= x0 and (best is None or (ys0, xs0) >= best[:2]):
-                best = (ys0, xs0, name)
-        return best[2]
+        iy = np.searchsorted(y_starts, y0, side="right") - 1
+        ix = np.searchsorted(x_starts, x0, side="right") - 1
+        return by_start[(int(y_starts[iy]), int(x_starts[ix]))]
 
     for k, v in maps.items():
         ay, ax = v.dims.index("y"), v.dims.index("x")
