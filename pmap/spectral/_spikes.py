@@ -240,9 +240,9 @@ def remove_spikes(
     neighbours at i); the local s.d. is 1.4826·MAD/√2 of the first difference over 21
     channels around i, so it follows shot noise. Spikes are replaced by that neighbour median. Where fewer than
     ``min_neighbours`` neighbours exist, (2) compares with the median of ±3 channels and the
-    spike is replaced by linear interpolation across the flagged channels. Chunks are read
-    with a 1-pixel spatial halo copied from the neighbouring chunks (each chunk read once). Cost: two medians per
-    spectrum plus work proportional to the (few) candidates.
+    spike is replaced by linear interpolation across the flagged channels. Each chunk gets a
+    1-pixel spatial halo copied from its neighbours (:mod:`pmap.spectral._halo`). Cost: one
+    compiled pass per spectrum (two medians) plus work proportional to the candidates.
 
     References
     ----------
