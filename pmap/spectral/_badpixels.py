@@ -12,8 +12,8 @@ from scipy import ndimage
 
 from ..errors import StepError
 from ..steps import materialize, register_step
-from ._common import check_cube, finish, float_dtype, robust_sigma_of_diff
-from ._robust import diff_scale
+from ._common import check_cube, finish, float_dtype
+from ._robust import diff_noise_sd, robust_sigma_of_diff
 
 __all__ = ["mask_bad_pixels", "hot_channels"]
 
@@ -81,8 +81,7 @@ def _hot_votes_rows(flat, threshold, votes):  # pragma: no cover - compiled
     for i in range(m):
         for j in range(n):
             x[j] = flat[i, j]
-        _, mad = diff_scale(x, 0, n, d, buf)
-        sigma = 1.4826 * mad / np.sqrt(2.0)
+        sigma = diff_noise_sd(x, 0, n, d, buf)
         if not (np.isfinite(sigma) and sigma > 0):
             continue
         limit = threshold * sigma

@@ -37,7 +37,8 @@ from .._version import __version__
 from ..errors import InputFileError, StepError
 from ..steps import register_step
 from ._airvac import air_to_vacuum
-from ._common import check_cube, finish, load_spectrum, robust_sigma_of_diff
+from ._common import check_cube, finish, load_spectrum
+from ._robust import robust_sigma_of_diff
 
 __all__ = [
     "reference_lines",

@@ -223,18 +223,3 @@ def region_slice(cube: xr.DataArray, region: Mapping[str, Any]) -> xr.DataArray:
             f"{float(cube.x.max()):g}, y spans {float(cube.y.min()):g}–{float(cube.y.max()):g})"
         )
     return sub
-
-
-def robust_sigma_of_diff(x: np.ndarray) -> np.ndarray:
-    """Per-spectrum white-noise s.d. from the MAD of the first difference (…, n) → (…).
-
-    σ = 1.4826·MAD(∇x)/√2 (common practice); falls back to the scaled mean absolute
-    deviation where the MAD is zero (quantised data).
-    """
-    d = np.diff(x, axis=-1)
-    med = np.median(d, axis=-1, keepdims=True)
-    dev = np.abs(d - med)
-    mad = np.median(dev, axis=-1)
-    mean_ad = np.mean(dev, axis=-1) * (0.6745 / 0.7979)
-    mad = np.where(mad > 0, mad, mean_ad)
-    return 1.4826 * mad / np.sqrt(2.0)

@@ -9,7 +9,8 @@ import xarray as xr
 
 from ..errors import StepError
 from ..steps import materialize, register_step
-from ._common import check_cube, finish, float_dtype, robust_sigma_of_diff
+from ._common import check_cube, finish, float_dtype
+from ._robust import robust_sigma_of_diff
 
 __all__ = ["pca_denoise", "choose_n_components", "PCA_RULES"]
 

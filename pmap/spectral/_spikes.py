@@ -13,7 +13,7 @@ from ..errors import StepError
 from ..steps import register_step
 from ._common import check_cube, finish, float_dtype
 from ._halo import map_with_halo
-from ._robust import diff_scale, median_of, nan_median_mad
+from ._robust import MAD_DIFF_TO_SD, diff_noise_sd, diff_scale, median_of, nan_median_mad
 
 __all__ = ["remove_spikes", "spike_candidates"]
 
@@ -35,7 +35,7 @@ def spike_candidates(x: np.ndarray, threshold: float = 6.0) -> tuple[np.ndarray,
     flat = np.ascontiguousarray(x.reshape(-1, x.shape[-1]), dtype=np.float64)
     wide, mad = _candidates_rows(flat, float(threshold))
     shape = x.shape[:-1]
-    return wide.reshape(x.shape), (1.4826 * mad / np.sqrt(2.0)).reshape(shape + (1,))
+    return wide.reshape(x.shape), (MAD_DIFF_TO_SD * mad).reshape(shape + (1,))
 
 
 @numba.njit(cache=True, nogil=True)
@@ -89,8 +89,7 @@ def _local_sigma(x, n, c, d, buf):  # pragma: no cover - compiled
     2·_LOCAL_HALF + 1 channels (follows shot noise, which grows with signal)."""
     w = min(2 * _LOCAL_HALF + 1, n)
     start = min(max(c - _LOCAL_HALF, 0), n - w)
-    _, mad = diff_scale(x, start, start + w, d, buf)
-    return 1.4826 * mad / np.sqrt(2.0)
+    return diff_noise_sd(x, start, start + w, d, buf)
 
 
 @numba.njit(cache=True, nogil=True)
