@@ -337,23 +337,20 @@ def parse_memory(text: str | int | float | None) -> int:
 #: scripts/bench_scale.py (peak RSS ≈ base + 14–20 × chunk × threads on the demo pipeline).
 CHUNK_MEMORY_FACTOR = 20
 BASE_MEMORY_BYTES = 350 * 2**20
+#: Rows of processed chunks that streaming the result keeps in memory at its peak
+#: (measured with scripts/bench_scale.py: about 2.2 rows of masked chunks).
+HELD_ROWS = 2.5
 
 
-def _chunk_bytes(cube: xr.DataArray) -> int:
-    """Bytes of the cube's largest chunk."""
-    if cube.chunks is None:
-        return int(cube.nbytes)
-    return int(cube.dtype.itemsize * np.prod([max(c) for c in cube.chunks]))
-
-
-def _row_bytes(cube: xr.DataArray) -> int:
-    """Bytes of one row of chunks of the cube once processed (float32 or wider)."""
-    per_value = max(cube.dtype.itemsize, 4)
-    if cube.chunks is None:
-        return int(cube.size * per_value)
-    sizes = dict(zip(cube.dims, cube.chunks, strict=True))
-    row = cube.size // cube.sizes["y"] * max(sizes["y"])
-    return int(row * per_value)
+def _streaming_fits(cube: xr.DataArray, mem: int, threads: int) -> bool:
+    """Whether HELD_ROWS rows of processed chunks fit in ``mem`` bytes beside the base
+    and the chunks being worked on (else the writer uses bounded tiles)."""
+    per_value = max(cube.dtype.itemsize, 4)  # processed data are float32 or wider
+    chunk_y = max(cube.chunks[cube.get_axis_num("y")]) if cube.chunks else cube.sizes["y"]
+    row = cube.size // cube.sizes["y"] * chunk_y * per_value
+    chunk = np.prod([max(c) for c in cube.chunks]) if cube.chunks else cube.size
+    working = BASE_MEMORY_BYTES + CHUNK_MEMORY_FACTOR * chunk * cube.dtype.itemsize * threads
+    return bool(HELD_ROWS * row <= mem - working)
 
 
 def process(
@@ -438,9 +435,8 @@ def process(
         result, processed = build_result(cube, pipe)
     path = write_result(result, out, overwrite=overwrite, resume=resume, progress=progress,
                         input_paths=(in_path,), concurrency=threads, client=client,
-                        complete=pipe.regions is None, row_bytes=_row_bytes(cube),
-                        spare_bytes=int(mem - BASE_MEMORY_BYTES
-                                        - CHUNK_MEMORY_FACTOR * _chunk_bytes(cube) * threads))
+                        complete=pipe.regions is None,
+                        streaming=_streaming_fits(cube, mem, threads))
     if pipe.regions is not None:
         add_regions(path, processed, pipe.regions)
         mark_complete(path)

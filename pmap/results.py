@@ -151,11 +151,6 @@ def _spatial_blocks(ds: xr.Dataset) -> list[tuple[slice, slice]]:
             for i in range(len(ys)) for j in range(len(xs))]
 
 
-#: Rows of processed chunks that streaming keeps in memory at its peak (measured with
-#: scripts/bench_scale.py: about 2.2 rows of masked chunks); streaming is chosen only
-#: when that many rows fit in the memory left beside the chunks being worked on.
-HELD_ROWS = 2.5
-
 #: Target size of one written block of result maps (bytes). Maps are small next to
 #: the cube (a few numbers per pixel), so one write block spans several compute
 #: chunks: fewer, larger Zarr writes and fewer scheduler round trips.
@@ -178,20 +173,14 @@ def _grow_write_blocks(ds: xr.Dataset, spatial: list[str], *, strips: bool = Tru
     k = max(1, int(WRITE_BLOCK_BYTES // max(per_px * cy * cx, 1)))
     if k == 1:
         return ds
-    if not strips or cx >= nx:
-        side = max(1, int(np.sqrt(k)))
-        if cx >= nx:  # chunks are whole rows: stack more rows
-            new = {"y": min(ny, cy * k), "x": nx}
-        else:
-            new = {"y": min(ny, cy * side), "x": min(nx, cx * max(1, k // side))}
-        return ds.chunk(new)
     nbx = -(-nx // cx)
-    # full-width strips of chunk rows: the blocks are then written in raster order and
-    # a chunk's spatial neighbours (spike removal) are needed only by the next strip
-    if k >= nbx:
+    if cx >= nx or (strips and k >= nbx):  # strips of whole chunk rows
         new = {"y": min(ny, cy * (k // nbx)), "x": nx}
-    else:
+    elif strips:  # part of one chunk row (a very wide map)
         new = {"y": cy, "x": min(nx, cx * k)}
+    else:  # square-ish tiles
+        side = max(1, int(np.sqrt(k)))
+        new = {"y": min(ny, cy * side), "x": min(nx, cx * max(1, k // side))}
     return ds.chunk(new)
 
 
@@ -284,8 +273,7 @@ def write_result(
     concurrency: int | None = None,
     client=None,
     complete: bool = True,
-    spare_bytes: int | None = None,
-    row_bytes: int | None = None,
+    streaming: bool = True,
 ) -> Path:
     """Write a lazy result Dataset to Zarr block by block, resumable, then mark it complete.
 
@@ -298,12 +286,12 @@ def write_result(
     ``concurrency`` is the number of threads; ``client`` is a dask.distributed Client
     to run the blocks on a cluster.
 
-    Streaming in one graph keeps a few rows of processed chunks in memory (a chunk's
-    lower neighbours wait for the next strip). When ``HELD_ROWS`` × ``row_bytes`` (the
-    processed cube's bytes per row of chunks) exceeds ``spare_bytes`` (the memory
-    limit less the chunks being worked on), as on wide maps or under a tight limit,
-    blocks are square tiles computed ``concurrency`` at a time instead: memory stays
-    bounded and chunks on tile borders are read more than once.
+    ``streaming`` (the default) writes full-width strips from one graph, which keeps a
+    few rows of processed chunks in memory (a chunk's lower neighbours wait for the
+    next strip); ``streaming=False`` (wide maps or a tight memory limit, decided by
+    :func:`pmap.pipeline.process`) writes square tiles, ``concurrency`` at a time:
+    memory stays bounded and chunks on tile borders are read more than once. A
+    ``client`` always gets every block at once.
     """
     p = Path(path)
     fresh = not (resume and p.exists())
@@ -317,8 +305,7 @@ def write_result(
         v.encoding.pop("chunks", None)
         v.encoding.pop("preferred_chunks", None)
     spatial = [k for k, v in ds.data_vars.items() if "y" in v.dims and "x" in v.dims]
-    streaming = (client is not None or row_bytes is None or spare_bytes is None
-                 or HELD_ROWS * row_bytes <= spare_bytes)
+    streaming = streaming or client is not None
     ds = _grow_write_blocks(ds, spatial, strips=streaming)
     others = [k for k in ds.data_vars if k not in spatial]
     pdir = progress_dir(p)

@@ -12,6 +12,7 @@ import pytest
 import xarray as xr
 
 import pmap
+from pmap import pipeline
 from pmap.errors import OutputExistsError, PmapNotice
 from pmap.pipeline import load_pipeline
 from pmap.synthetic import write_demo_cube
@@ -173,7 +174,7 @@ def test_streaming_strips_and_bounded_tiles_write_the_same_maps(demo, tmp_path, 
             """[descriptors]\n[fit]\npeaks = 1\n""" + _SMALL_CHUNKS)
     a = pmap.process(demo["cube"], tmp_path / "s.zarr", pipeline=pipe, progress=False,
                      memory_limit="2GB").compute()
-    monkeypatch.setattr(results, "HELD_ROWS", 1e12)  # every row "too big": tiles
+    monkeypatch.setattr(pipeline, "HELD_ROWS", 1e12)  # every row "too big": tiles
     b = pmap.process(demo["cube"], tmp_path / "t.zarr", pipeline=pipe, progress=False,
                      memory_limit="2GB").compute()
     assert modes == [True, False]
@@ -227,7 +228,7 @@ def test_interrupted_then_resumed_process_equals_uninterrupted(demo, tmp_path, m
 
     monkeypatch.setattr(results, "WRITE_BLOCK_BYTES", 1)  # several blocks on a small cube
     if mode == "tiles":
-        monkeypatch.setattr(results, "HELD_ROWS", 1e12)
+        monkeypatch.setattr(pipeline, "HELD_ROWS", 1e12)
     modes = _record_modes(monkeypatch, results)
     pipe = ("""[[steps]]\nstep = "remove_spikes"\n[[steps]]\nstep = "to_energy"\n"""
             """[descriptors]\n[fit]\npeaks = 1\n""" + _SMALL_CHUNKS)
