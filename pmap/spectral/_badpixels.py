@@ -63,8 +63,6 @@ def _block_hot_votes(
         y0, x0 = (loc[-3][0], loc[-2][0]) if loc else (0, 0)
         block = block[..., (-y0) % stride :: stride, (-x0) % stride :: stride, :]
     flat = block.reshape(-1, n)
-    if flat.dtype not in (np.float32, np.float64):
-        flat = flat.astype(np.float64)
     votes = np.zeros(n, dtype=np.float64)
     if n >= 3 and flat.shape[0]:
         _hot_votes_rows(np.ascontiguousarray(flat), float(threshold), votes)
@@ -106,10 +104,7 @@ def _mask_core(
     With ``masked``, return x (floating) with every coded value set to NaN instead.
     """
     n = x.shape[-1]
-    flat = x.reshape(-1, n)
-    if flat.dtype not in (np.float32, np.float64):
-        flat = flat.astype(np.float64)
-    flat = np.ascontiguousarray(flat)
+    flat = np.ascontiguousarray(x.reshape(-1, n))  # floating: the step casts first
     code = np.zeros(flat.shape, dtype=np.uint8)
     out = np.empty(flat.shape, dtype=flat.dtype) if masked else flat[:0]
     level = np.nan if sat_level is None else float(sat_level)

@@ -192,8 +192,6 @@ def _clean_block(
     """
     shape = block.shape
     b = block.reshape((-1,) + shape[-3:])
-    if b.dtype not in (np.float32, np.float64):
-        b = b.astype(np.float64)
     out = np.empty((b.shape[0], shape[-3] - 2, shape[-2] - 2, shape[-1]), dtype=out_dtype)
     _clean_kernel(b, float(threshold), int(min_neighbours), out)
     return out.reshape(shape[:-3] + out.shape[1:])
