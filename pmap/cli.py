@@ -53,6 +53,68 @@ def _read_options(args: argparse.Namespace) -> dict:
     return opts
 
 
+def _add_medium_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--medium", choices=("air", "vacuum"),
+                   help="medium of the wavelength axis (overrides the file's attr; without "
+                   "it or a stated medium in the file or sidecar, air is assumed, with a note)")
+
+
+def _apply_medium(opts: dict, medium: str | None) -> dict:
+    """Put ``--medium`` into the read options (it sets the cube's ``wavelength_medium``)."""
+    if medium is None:
+        return opts
+    given = opts.get("wavelength_medium")
+    if given is not None and str(given).lower() != medium:
+        raise PmapError(f"--medium {medium} contradicts -O wavelength_medium={given}")
+    opts["wavelength_medium"] = medium
+    return opts
+
+
+def _note_medium(message: str | None) -> None:
+    if message:
+        warnings.warn(message, PmapNotice, stacklevel=2)
+
+
+def _medium_note_for_cube(path: Path, read_options: dict) -> str | None:
+    """The assumed-medium note for a cube file (reads a small sample of spectra)."""
+    from .io import open_cube
+    from .spectral._airvac import assumed_medium_notice
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cube = open_cube(path, **read_options)
+    return assumed_medium_notice(cube)
+
+
+def _medium_note_for_result(ds, src: Path, read_options: dict) -> str | None:
+    """The assumed-medium note for a processed input, from the result's provenance.
+
+    The median peak comes from the result's peak (or maximum) energy map; without
+    one, from a sample of the input's spectra.
+    """
+    import numpy as np
+
+    from .conventions import HC_EV_NM
+    from .provenance import get_provenance
+    from .spectral._airvac import medium_message
+
+    inp = get_provenance(ds.attrs).get("input", {})
+    if inp.get("wavelength_medium_source") != "assumed":
+        return None
+    for name in ("peak_energy", "max_energy"):
+        if name not in ds:
+            continue
+        v = ds[name].isel(peak=0) if "peak" in ds[name].dims else ds[name]
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            med = float(np.nanmedian(np.asarray(v.values, dtype=float)))
+        units = v.attrs.get("units")
+        if np.isfinite(med) and med > 0 and units in ("eV", "nm"):
+            peak_nm = HC_EV_NM / med if units == "eV" else med
+            return medium_message(str(inp.get("wavelength_medium", "air")), peak_nm)
+    return _medium_note_for_cube(src, read_options)
+
+
 def _add_read_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--format", help="input format if the extension does not tell "
                    "(zarr, netcdf, npy, tiff, text)")
@@ -73,10 +135,11 @@ def cmd_info(args: argparse.Namespace) -> int:
 def cmd_convert(args: argparse.Namespace) -> int:
     from .io import convert
 
-    opts = _read_options(args)
+    opts = _apply_medium(_read_options(args), args.medium)
     out = convert(args.src, args.dst, overwrite=args.overwrite, fmt=args.to,
                   src_fmt=opts.pop("fmt", None), **opts)
     print(f"wrote {out}")
+    _note_medium(_medium_note_for_cube(Path(out), {}))
     return 0
 
 
@@ -144,6 +207,7 @@ def cmd_process(args: argparse.Namespace) -> int:
     out_dir = Path(args.output)
     outputs = ([out_dir / (p.name.split(".")[0] + "_result.zarr") for p in inputs] if many
                else [out_dir])
+    read_options = _apply_medium(_read_options(args), args.medium)
     client = _make_client(args)
     summaries = []
     try:
@@ -154,9 +218,10 @@ def cmd_process(args: argparse.Namespace) -> int:
                          peaks=args.peaks, model=args.model, regions=regions,
                          components=args.components, overwrite=args.overwrite,
                          resume=args.resume, progress=not args.quiet,
-                         read_options=_read_options(args), memory_limit=args.memory_limit,
+                         read_options=dict(read_options), memory_limit=args.memory_limit,
                          client=client)
             print(f"result store: {out}")
+            _note_medium(_medium_note_for_result(ds, src, read_options))
             if pipe.output.get("figures", True) and not args.no_figures:
                 from .report import write_figures
 
@@ -291,6 +356,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("dst")
     p.add_argument("--to", help="output format (zarr or netcdf; default from extension)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output")
+    _add_medium_option(p)
     _add_read_options(p)
     p.set_defaults(func=cmd_convert)
 
@@ -316,6 +382,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--print-config", action="store_true",
                    help="print the default pipeline TOML and exit")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    _add_medium_option(p)
     _add_read_options(p)
     p.set_defaults(func=cmd_process)
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import os
 import warnings
 from collections.abc import Mapping
@@ -11,9 +12,11 @@ from typing import Any
 import xarray as xr
 import zarr
 
+from ..conventions import CUBE_NAME
 from ..cube import DEFAULT_CHUNK_MIB
 from ..errors import FormatError
-from ._common import check_input, detect_format, finish_cube
+from ..provenance import PROVENANCE_ATTR, get_provenance
+from ._common import check_input, detect_format, finish_cube, read_sidecar
 from ._readers import read_netcdf, read_npy, read_tiff, read_zarr
 from ._text import text_to_zarr
 from ._write import output_format, save_cube
@@ -88,7 +91,59 @@ def open_cube(
         raw = _read_text(p, axis_options)
     else:
         raise FormatError(f"unknown format {kind!r}; supported: zarr, netcdf, npy, tiff, text")
-    return finish_cube(raw, p, kind, chunks=chunks, target_chunk_mib=target_chunk_mib)
+    source = _medium_source(raw, p, kind, axis_options)
+    cube = finish_cube(raw, p, kind, chunks=chunks, target_chunk_mib=target_chunk_mib)
+    if "wavelength" in cube.dims:
+        cube.attrs = with_medium(cube.attrs, source)
+    return cube
+
+
+def _record_medium(store: Path, source: str) -> None:
+    """Add the medium's source to a Zarr cube written from text (wavelength axis only)."""
+    group = zarr.open_group(str(store), mode="r+")
+    array = group[CUBE_NAME]
+    if "wavelength" not in group:
+        return
+    array.attrs.update(with_medium(dict(array.attrs), source))
+    if group.metadata.zarr_format == 2:
+        zarr.consolidate_metadata(str(store))
+
+
+#: Where a cube's wavelength medium came from (attr ``wavelength_medium_source``).
+_MEDIUM_SOURCES = ("data", "sidecar", "option", "assumed")
+
+
+def _medium_source(raw: Any, path: Path, kind: str, options: Mapping[str, Any]) -> str:
+    """Whether the wavelength medium was stated (data, sidecar, option) or will be assumed."""
+    if options.get("wavelength_medium") is not None:
+        return "option"
+    if kind == "text":  # the text reader fills in the default: only an option states it
+        return "assumed"
+    if kind in ("npy", "tiff"):
+        if read_sidecar(path, options.get("sidecar")).get("wavelength_medium") is not None:
+            return "sidecar"
+        return "assumed"
+    if raw.attrs.get("wavelength_medium") is None:
+        return "assumed"
+    stored = raw.attrs.get("wavelength_medium_source")
+    return stored if stored in _MEDIUM_SOURCES else "data"
+
+
+def with_medium(attrs: dict, source: str) -> dict:
+    """Attrs with ``wavelength_medium_source`` set and the medium in the provenance input.
+
+    The provenance record's ``input`` gains ``wavelength_medium`` and
+    ``wavelength_medium_source``, so result stores keep whether the medium was
+    stated after the axis has become energy.
+    """
+    out = dict(attrs)
+    out["wavelength_medium_source"] = source
+    record = get_provenance(out)
+    if record.get("input"):
+        record["input"]["wavelength_medium"] = out.get("wavelength_medium", "air")
+        record["input"]["wavelength_medium_source"] = source
+        out[PROVENANCE_ATTR] = json.dumps(record)
+    return out
 
 
 def convert(
@@ -129,8 +184,11 @@ def convert(
     p = check_input(src)
     out = Path(dst).expanduser()
     if (src_fmt or detect_format(p)) == "text" and output_format(out, fmt) == "zarr":
-        return Path(
+        written = Path(
             text_to_zarr(p, out, overwrite=overwrite, zarr_format=zarr_format, **read_options)
         )
+        source = "option" if read_options.get("wavelength_medium") is not None else "assumed"
+        _record_medium(written, source)
+        return written
     cube = open_cube(p, fmt=src_fmt, **read_options)
     return save_cube(cube, out, fmt=fmt, overwrite=overwrite, zarr_format=zarr_format)

@@ -63,6 +63,10 @@ def _text_info(path, fmt: str, value_range: bool, options: dict[str, Any]) -> di
         "metadata": {},
         "attrs": {},
     }
+    if spec.spectral_dim == "wavelength":
+        stated = options.get("wavelength_medium")
+        info["medium"] = {"medium": str(stated).lower() if stated else "air",
+                          "source": "option" if stated else "assumed"}
     return info
 
 
@@ -88,8 +92,9 @@ def cube_info(
         ``dtype``, ``spectral_dim``, ``spectral`` / ``y`` / ``x`` (min, max, n,
         step, units; positions in µm), ``pixel_size_um``, ``extent_um``
         (y, x), ``chunks``, ``stored_chunks``, ``value_min``, ``value_max``,
-        ``units``, ``metadata`` (known acquisition attrs), ``attrs`` (the rest),
-        ``provenance`` (decoded record).
+        ``units``, ``medium`` (wavelength axes only: ``{"medium": "air"|"vacuum",
+        "source": "data"|"sidecar"|"option"|"assumed"}``), ``metadata`` (known
+        acquisition attrs), ``attrs`` (the rest), ``provenance`` (decoded record).
     """
     p = check_input(path)
     fmt = detect_format(p)
@@ -119,6 +124,9 @@ def cube_info(
         attrs = {
             k: v for k, v in cube.attrs.items() if k not in (PROVENANCE_ATTR, "units", "long_name")
         }
+        if sdim == "wavelength":
+            info["medium"] = {"medium": attrs.pop("wavelength_medium", "air"),
+                              "source": attrs.pop("wavelength_medium_source", "assumed")}
         info["metadata"] = {k: attrs.pop(k) for k in list(attrs) if k in METADATA_ATTRS}
         info["attrs"] = attrs
         info["provenance"] = get_provenance(cube.attrs)
@@ -138,6 +146,19 @@ def _human_bytes(n: float) -> str:
             return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
         n /= 1024
     return f"{n} B"
+
+
+_MEDIUM_SOURCE_TEXT = {
+    "data": "stated in the file",
+    "sidecar": "stated in the sidecar",
+    "option": "stated by an option",
+    "assumed": "ASSUMED, not stated; give -O wavelength_medium=air|vacuum",
+}
+
+
+def _medium_text(medium: dict[str, str]) -> str:
+    src = medium.get("source", "assumed")
+    return f"{medium.get('medium', 'air')} wavelengths ({_MEDIUM_SOURCE_TEXT.get(src, src)})"
 
 
 def format_cube_info(info: dict[str, Any]) -> str:
@@ -172,6 +193,8 @@ def format_cube_info(info: dict[str, Any]) -> str:
         lines.append(
             "  stored chunks " + ", ".join(f"{k}={v}" for k, v in info["stored_chunks"].items())
         )
+    if info.get("medium"):
+        lines.append(f"  medium        {_medium_text(info['medium'])}")
     if info.get("rows") is not None:
         lines.append(f"  rows          {info['rows']}")
     if info.get("value_min") is not None:
