@@ -22,6 +22,9 @@ the result-producing stages::
     reference_energy_ev = 1.60        # -> peak_shift (eV, positive = blue shift)
     exciton_binding_ev = 0.0          # -> bandgap_estimate (eV), with its caveat
     material_gap = "direct"           # "indirect": the PL peak is phonon-assisted, not the gap
+    # exciton_binding_err_ev, stokes_shift_err_ev: 1σ (eV) -> bandgap_estimate_err with the
+    #   fit's peak_energy_err, in quadrature; band_to_band_temperature_K = 300: band-to-band
+    #   emission, the maximum's offset ≈ kT/2 above the gap is subtracted (not with E_b > 0)
 
     [components]              # NMF/PCA decomposition (optional)
     method = "nmf"
@@ -52,6 +55,7 @@ import xarray as xr
 
 from .cube import rechunk_cube, spectral_dim, validate_cube
 from .errors import PmapNotice, StepError
+from .noise import get_noise_model
 from .provenance import get_provenance
 from .results import (
     assemble_result,
@@ -104,7 +108,8 @@ keep_cube = "auto"
 
 _TOP_KEYS = {"pipeline", "steps", "descriptors", "fit", "properties", "components", "regions",
              "output"}
-_PROPERTY_KEYS = {"reference_energy_ev", "exciton_binding_ev", "material_gap", "stokes_shift_ev"}
+_PROPERTY_KEYS = {"reference_energy_ev", "exciton_binding_ev", "material_gap", "stokes_shift_ev",
+                  "exciton_binding_err_ev", "stokes_shift_err_ev", "band_to_band_temperature_K"}
 _OUTPUT_KEYS = {"figures", "keep_cube", "chunk_mib"}
 _KEEP_CUBE_AUTO_BYTES = 512 * 2**20
 
@@ -216,6 +221,10 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
 
 
 def _build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr.DataArray]:
+    named = any(n == "attach_noise_model" for n, _ in pipeline.steps)
+    if not named and cube.attrs.get("units") == "counts" and get_noise_model(cube) is None:
+        # raw counts: the noise model starts here and follows every step (pmap.noise)
+        cube = _run_step("attach_noise_model", cube, {})
     for name, params in pipeline.steps:
         out = _run_step(name, cube, params)
         if not isinstance(out, xr.DataArray):
@@ -255,10 +264,14 @@ def _derived_properties(fit: xr.Dataset, props: dict) -> xr.Dataset:
     pe = fit["peak_energy"]
     if "reference_energy_ev" in props:
         out["peak_shift"] = peak_shift(pe, float(props["reference_energy_ev"]))
-    gap_keys = {"exciton_binding_ev", "material_gap", "stokes_shift_ev"}
+    gap_keys = _PROPERTY_KEYS - {"reference_energy_ev"}
     if gap_keys & set(props):
         kw = {k: props[k] for k in gap_keys if k in props}
-        out["bandgap_estimate"] = bandgap_from_peak(pe, **kw)
+        if "peak_energy_err" in fit:  # -> bandgap_estimate_err (eV), errors in quadrature
+            gap, err = bandgap_from_peak(pe, peak_energy_err=fit["peak_energy_err"], **kw)
+            out["bandgap_estimate"], out["bandgap_estimate_err"] = gap, err
+        else:
+            out["bandgap_estimate"] = bandgap_from_peak(pe, **kw)
     return out
 
 
