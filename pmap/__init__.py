@@ -53,6 +53,7 @@ _LAZY = {
     "remove_baseline": "pmap.spectral",
     "smooth": "pmap.spectral",
     "pca_denoise": "pmap.spectral",
+    "attach_noise_model": "pmap.spectral",
     # fitting
     "fit_peaks": "pmap.fitting",
     "spectral_descriptors": "pmap.fitting",

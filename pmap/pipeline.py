@@ -55,6 +55,7 @@ import xarray as xr
 
 from .cube import rechunk_cube, spectral_dim, validate_cube
 from .errors import PmapNotice, StepError
+from .noise import get_noise_model
 from .provenance import get_provenance
 from .results import (
     assemble_result,
@@ -220,6 +221,10 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
 
 
 def _build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr.DataArray]:
+    named = any(n == "attach_noise_model" for n, _ in pipeline.steps)
+    if not named and cube.attrs.get("units") == "counts" and get_noise_model(cube) is None:
+        # raw counts: the noise model starts here and follows every step (pmap.noise)
+        cube = _run_step("attach_noise_model", cube, {})
     for name, params in pipeline.steps:
         out = _run_step(name, cube, params)
         if not isinstance(out, xr.DataArray):

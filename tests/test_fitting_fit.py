@@ -30,7 +30,7 @@ def _cube(data, units="counts", e=E):
         np.asarray(data, dtype=np.float32),
         energy_ev=e,
         units=units,
-        attrs={"gain_e_per_count": 1.0, "read_noise_counts": 0.0},
+        attrs={"gain_e_per_count": 1.0, "read_noise_counts": 0.0, "dark_level_counts": 0.0},
     )
 
 
@@ -116,7 +116,9 @@ def test_residual_noise_mode_scales_errors():
     res = fit_peaks(_cube(data.reshape(40, 50, -1), units="arbitrary")).compute().isel(peak=0)
     pull = (res.peak_energy.values - 1.5) / res.peak_energy_err.values
     assert np.std(pull) == pytest.approx(1.0, abs=0.15)
-    assert "chi2_red" in res.attrs["uncertainty_method"]
+    assert "residual variance" in res.attrs["uncertainty_method"]
+    # no noise model: the χ² column is named for what it is, a residual variance
+    assert "chi2_red" not in res and res.residual_variance.attrs["units"] == "(arbitrary)^2"
 
 
 def test_no_signal_and_nan_pixels():

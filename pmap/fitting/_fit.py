@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import warnings
 from dataclasses import dataclass
 
 import dask.array as da
@@ -12,11 +11,13 @@ import xarray as xr
 
 from ..conventions import HC_EV_NM, integrated_unit
 from ..cube import spectral_dim, validate_cube
-from ..errors import PmapNotice, StepError
+from ..errors import StepError
+from ..noise import get_noise_model, noise_coords
 from ..provenance import with_step
+from ..spectral._axis import channel_edges
 from ..steps import materialize, register_step
 from . import _kernels as K
-from ._common import apply_per_spectrum, fwhm_at_half, smooth3
+from ._common import fwhm_at_half, smooth3
 from ._lineshapes import (
     FWHM_TO_SIGMA,
     _voigt0,
@@ -90,6 +91,7 @@ class _Spec:
     x: np.ndarray
     xref: float
     init: str
+    xe: np.ndarray  # channel edges (n + 1): the model is averaged over each channel
 
     @property
     def nfull(self) -> int:
@@ -245,6 +247,7 @@ def _build_spec(x, *, model, peaks, background, bounds, fixed, shared, init) -> 
         x,
         float(0.5 * (x[0] + x[-1])),
         init_mode,
+        channel_edges(x),
     )
 
 
@@ -286,14 +289,25 @@ def _finish_start(P0, spec):
     return np.clip(P0, spec.lo, spec.hi)
 
 
-def _run(Y, spec, P0, var_mode, gain, rn2, max_iter, rows=None, stol=None):
-    """Fit rows ``rows`` of Y (all by default) from starting values P0 (len(rows), n_full)."""
+_UNIT_NOISE = (0, 1.0, 0.0, 1.0)  # (var_mode, a, b, floor): unit weights
+_ONE = np.ones((1, 1))
+_ZERO = np.zeros((1, 1))
+
+
+def _run(Y, spec, P0, nz, max_iter, rows=None, stol=None, VS=_ONE, VP=_ZERO):
+    """Fit rows ``rows`` of Y (all by default) from starting values P0 (len(rows), n_full).
+
+    ``nz`` = (var_mode, a, b, floor) and VS, VP (rows × channels, either may be
+    length 1): the noise law of :mod:`pmap.noise` (see ``K.lm_batch``).
+    """
     if rows is None:
         rows = np.arange(Y.shape[0])
+    var_mode, a, b, floor = nz
     return K.lm_batch(
         Y,
         np.asarray(rows, dtype=np.int64),
         spec.x,
+        spec.xe,
         spec.xref,
         np.ascontiguousarray(P0, dtype=np.float64),
         spec.lo,
@@ -304,8 +318,11 @@ def _run(Y, spec, P0, var_mode, gain, rn2, max_iter, rows=None, stol=None):
         spec.K,
         spec.nbg,
         var_mode,
-        gain,
-        rn2,
+        np.ascontiguousarray(VS, dtype=np.float64),
+        np.ascontiguousarray(VP, dtype=np.float64),
+        float(a),
+        float(b),
+        float(floor),
         max_iter,
         _FTOL,
         _XTOL,
@@ -313,8 +330,11 @@ def _run(Y, spec, P0, var_mode, gain, rn2, max_iter, rows=None, stol=None):
     )
 
 
-def _template(mean, spec, var_mode, gain, rn2):
-    """Fit the mean spectrum with K peaks (greedy: add each peak at the largest residual)."""
+def _template(mean, spec):
+    """Fit the mean spectrum with K peaks (greedy: add each peak at the largest residual).
+
+    Unit weights: the template only seeds the per-pixel starting values.
+    """
     x = spec.x
     Y = np.ascontiguousarray(mean[None, :], dtype=np.float64)
     _, _, _, _, (b, e_max, height, fw) = _quick_desc(Y, x)
@@ -364,7 +384,7 @@ def _template(mean, spec, var_mode, gain, rn2):
         if given is not None and np.all(np.isfinite(given)):
             p[: k * spec.npp] = list(given)
         P0 = np.clip(np.asarray(p, dtype=float)[None, :], sub.lo, sub.hi)
-        res = _run(Y, sub, P0, var_mode, gain, rn2, 200)
+        res = _run(Y, sub, P0, _UNIT_NOISE, 200)
         prev = res[0][0]
         if not np.all(np.isfinite(prev)):
             prev = P0[0]
@@ -415,23 +435,31 @@ def _height(model, fw, area, shape):
         return area * _voigt0(fg * FWHM_TO_SIGMA, 0.5 * fl)
 
 
-def _fit_rows(Y, mean, spec, var_mode, gain, rn2, max_iter, min_snr):
-    """Fit every row of Y (m, n), float32 or float64; returns (m, n_out) packed outputs."""
+def _fit_rows(Y, mean, spec, nz, max_iter, min_snr, VS=_ONE, VP=_ZERO):
+    """Fit every row of Y (m, n), float32 or float64; returns (m, n_out) packed outputs.
+
+    ``nz``, VS, VP: the noise law (see :func:`_run`).
+    """
     m = Y.shape[0]
     out = np.full((m, _PEAK_FIELDS * spec.K + _N_TAIL), np.nan)
     finite, b, height, noise, start = _quick_desc(Y, spec.x)
-    if var_mode == 1:
-        noise = np.maximum(noise, np.sqrt(np.maximum(b, 0.0) / gain + rn2))
+    if nz[0] == 1:  # the noise law's σ at the base level, mid-axis, as a floor
+        var_mode, a, bb, floor = nz
+        mid = Y.shape[1] // 2
+        sc = VS[:, min(mid, VS.shape[1] - 1)]
+        pc = VP[:, min(mid, VP.shape[1] - 1)]
+        var = np.maximum(a * sc * np.maximum(b, 0.0) + sc * sc * (a * pc + bb), sc * sc * floor)
+        noise = np.maximum(noise, np.sqrt(var))
     weak = ~(height > 0) | (height < min_snr * noise)
     status = np.where(finite, np.where(weak, 3, -1), 4)
     fit_rows = np.flatnonzero(status == -1)
     if fit_rows.size:
         template = None
         if spec.K > 1 or spec.init == "mean":
-            template = _template(mean, spec, var_mode, gain, rn2)
+            template = _template(mean, spec)
         sel = tuple(v[fit_rows] for v in start)
         P0 = _starts(Y, fit_rows, sel, spec, template)
-        P, COV, chi2, st, niter = _run(Y, spec, P0, var_mode, gain, rn2, max_iter, fit_rows)
+        P, COV, chi2, st, niter = _run(Y, spec, P0, nz, max_iter, fit_rows, VS=VS, VP=VP)
         res = _postprocess(P, COV, chi2, st, niter, spec)
         if spec.K == 1:
             # A single line must be detected: area / σ(area) ≥ min_snr, else the fit has
@@ -519,52 +547,123 @@ def _postprocess(P, COV, chi2, st, niter, spec):
     return out
 
 
-def _noise_model(cube, noise, read_noise_counts, gain_e_per_count):
-    unit = cube.attrs.get("units", "1")
-    if noise == "auto":
-        noise = "poisson" if unit == "counts" else "residual"
-    if noise not in ("poisson", "residual"):
+def _noise_setup(cube, noise, read_noise_counts, gain_e_per_count):
+    """The fit's noise law from the cube's noise model (:mod:`pmap.noise`).
+
+    Returns (cube, nz, description, chi2_is_true): ``nz`` = (var_mode, a, b, floor).
+    A raw cube in counts without a model gets one here (stated figures, else
+    estimated from the data); a cube whose model is correlated, or that has none
+    and is not raw counts, is fitted with unit weights and χ²-scaled errors.
+    """
+    from ..spectral import attach_noise_model  # lower layer, imported on use
+
+    if noise not in ("auto", "poisson", "residual"):
         raise StepError(f"noise must be 'auto', 'poisson' or 'residual', got {noise!r}")
+    unit = cube.attrs.get("units", "1")
+    model = get_noise_model(cube)
+    if noise != "residual" and model is None and unit == "counts":
+        cube = attach_noise_model(
+            cube, gain_e_per_count=gain_e_per_count, read_noise_counts=read_noise_counts
+        )
+        model = get_noise_model(cube)
+    why = None
     if noise == "residual":
+        why = "unit weights requested (noise='residual')"
+    elif model is None:
+        why = (
+            f"the cube (in {unit}) carries no noise model; attach one to the raw counts with "
+            "pmap.attach_noise_model before any scaling step"
+        )
+    elif model.correlated:
+        why = "the noise is correlated between channels (" + "; ".join(model.notes) + ")"
+    elif not model.valid and gain_e_per_count is None:
+        why = f"the noise model is {model.source}"
+    if why is not None:
+        if noise == "poisson":
+            raise StepError(f"noise='poisson' is not possible: {why}")
         return (
-            0,
-            1.0,
-            0.0,
+            cube,
+            _UNIT_NOISE,
             (
-                "unit weights; 1-sigma errors from the covariance scaled by chi2_red "
-                "(noise estimated from the residual); chi2_red is the residual variance "
-                f"in ({unit})^2"
+                f"unit weights; 1-sigma errors from the covariance scaled by the residual "
+                f"variance (no noise model: {why}); residual_variance is in ({unit})^2"
             ),
+            False,
         )
-    if unit != "counts":
-        raise StepError(f"noise='poisson' needs a cube in counts, this one is in {unit!r}")
-    gain = gain_e_per_count if gain_e_per_count is not None else cube.attrs.get("gain_e_per_count")
-    if gain is None:
-        warnings.warn(
-            "no detector gain given: assuming 1 electron per count for the Poisson weights",
-            PmapNotice,
-            stacklevel=3,
-        )
-        gain = 1.0
-    rn = (
-        read_noise_counts
-        if read_noise_counts is not None
-        else cube.attrs.get("read_noise_counts", 0.0)
-    )
-    gain, rn = float(gain), float(rn)
-    if not gain > 0 or not rn >= 0:
-        raise StepError(f"gain must be > 0 and read noise >= 0, got {gain}, {rn}")
+    a, b, floor = model.var_per_count, model.var_offset_counts2, model.floor_counts2
+    if gain_e_per_count is not None:
+        a = 1.0 / float(gain_e_per_count)
+    if read_noise_counts is not None:
+        rn = float(read_noise_counts)
+        b = rn * rn - a * float(model.dark_level_counts or 0.0)
+        floor = a * a + rn * rn
+    if not a >= 0 or not np.isfinite(b) or not floor > 0:
+        raise StepError(f"invalid noise law: a = {a}, b = {b}, floor = {floor}")
     return (
-        1,
-        gain,
-        rn * rn,
+        cube,
+        (1, float(a), float(b), float(floor)),
         (
-            f"weighted least squares, variance = max(model, 0)/gain + read_noise^2 "
-            f"(gain {gain:g} e/count, read noise {rn:g} counts); absolute 1-sigma errors "
-            "from the unscaled covariance; weights from the fitted model (not the data), "
-            "refreshed at every accepted Levenberg-Marquardt step (iteratively reweighted)"
+            "weighted least squares with the cube's noise model: variance = s*a*model + "
+            f"s^2*(a*p + b) per channel ({model.describe()}; s, p: the scale and pedestal "
+            "coordinates); weights from the fitted model, refreshed at every accepted "
+            "Levenberg-Marquardt step (the Poisson maximum-likelihood score equations); "
+            "absolute 1-sigma errors from the unscaled covariance; chi2_red is the true "
+            "reduced chi-square"
         ),
+        True,
     )
+
+
+def _rows_of(arr, lead_shape):
+    """A noise coordinate's block as rows (1 or prod(lead_shape), n_k) for ``K.lm_batch``."""
+    arr = np.asarray(arr, dtype=np.float64)
+    if all(d == 1 for d in arr.shape[:-1]):
+        return arr.reshape(1, arr.shape[-1])
+    return np.broadcast_to(arr, (*lead_shape, arr.shape[-1])).reshape(-1, arr.shape[-1])
+
+
+def _apply_fit(cube, func, n_out, nz, mean=None):
+    """Lazily apply ``func(Y, mean_vec, VS, VP)`` to every spectrum (rows of each chunk).
+
+    The noise coordinates (scale, pedestal) go along as extra inputs with a core
+    dim of length n_channels or 1, broadcast over the spatial dims by dask.
+    """
+    sdim = spectral_dim(cube)
+    n_ch = cube.sizes[sdim]
+    s, p = noise_coords(cube) if nz[0] else (xr.DataArray(1.0), xr.DataArray(0.0))
+
+    def core(v, name):
+        v = v.rename({sdim: name}) if sdim in v.dims else v.expand_dims({name: 1})
+        return v.astype(np.float64)
+
+    s_in, p_in = core(s, "_nz_s"), core(p, "_nz_p")
+    has_mean = mean is not None
+
+    def block(y, vs, vp, *ex):
+        shp = y.shape[:-1]
+        dt = np.float32 if y.dtype == np.float32 else np.float64
+        rows = np.ascontiguousarray(y.reshape(-1, y.shape[-1]), dtype=dt)
+        if rows.shape[0] == 0:
+            return np.empty((*shp, n_out))
+        mvec = np.asarray(ex[0], dtype=np.float64).reshape(-1, n_ch)[0] if has_mean else None
+        return func(rows, mvec, _rows_of(vs, shp), _rows_of(vp, shp)).reshape(*shp, n_out)
+
+    extra = [mean] if has_mean else []
+    out = xr.apply_ufunc(
+        block,
+        cube,
+        s_in,
+        p_in,
+        *extra,
+        input_core_dims=[[sdim], ["_nz_s"], ["_nz_p"]] + [[sdim]] * len(extra),
+        output_core_dims=[["fit_output"]],
+        dask="parallelized",
+        output_dtypes=[np.float64],
+        dask_gufunc_kwargs={"output_sizes": {"fit_output": n_out}},
+        keep_attrs=False,
+    )
+    out = out.transpose(*[d for d in cube.dims if d != sdim], "fit_output")
+    return out.assign_coords({d: cube[d] for d in out.dims if d in cube.coords})
 
 
 @register_step("fit_peaks")
@@ -616,11 +715,15 @@ def fit_peaks(
     max_iter : int
         Levenberg–Marquardt iterations per spectrum.
     read_noise_counts, gain_e_per_count : float, optional
-        Detector read noise (counts) and gain (e⁻/count) for Poisson weights;
-        default from the cube attrs, else 0 and 1.
+        Override the read noise (counts) and gain (e⁻/count) of the cube's noise
+        model (see :func:`pmap.attach_noise_model`).
     noise : {"auto", "poisson", "residual"}
-        "auto": Poisson + read noise weights for cubes in counts, else unit
-        weights with errors scaled by χ²_red.
+        "auto": weights from the noise model that travels with the cube
+        (:mod:`pmap.noise`; a raw cube in counts without one gets it here, from its
+        attrs or estimated from the data), absolute errors and a true χ²_red; unit
+        weights with errors scaled by the residual variance when there is no model
+        or the noise is correlated (smoothing, PCA, resampling). "poisson": require
+        the noise model (StepError otherwise). "residual": unit weights.
     energy_range_ev : (float, float), optional
         Fit only this energy window (eV).
     min_snr : float
@@ -636,10 +739,14 @@ def fit_peaks(
         (eV), ``peak_area``, ``peak_area_err``, ``peak_height``, ``peak_height_err``,
         ``peak_wavelength`` (nm, vacuum), ``peak_shape`` (+ err) with dims
         (peak, …, y, x); ``background_offset`` (+ ``background_slope``), ``fit_status``
-        (legend in attrs), ``chi2_red``, ``n_iter`` with dims (…, y, x).
+        (legend in attrs), ``chi2_red`` (dimensionless, with a noise model) or
+        ``residual_variance`` (intensity², without one), ``n_iter`` with dims (…, y, x).
 
     Notes
     -----
+    The model is averaged over each channel (edges midway between channel centres):
+    data in counts per channel, or a density derived from them, are channel
+    integrals, and a point-sampled model would report narrow lines too wide.
     Batched Levenberg–Marquardt (numba, analytic Jacobians, SIMD over channels),
     float64 inside; chunks run in parallel on dask's threads (the compiled loop
     releases the GIL), so the cube's spatial chunking is kept as given. Starting
@@ -678,30 +785,25 @@ def fit_peaks(
     n_par = spec.nfree
     if x.size <= n_par:
         raise StepError(f"{x.size} channels cannot fit {n_par} free parameters")
-    var_mode, gain, rn2, unc = _noise_model(cube, noise, read_noise_counts, gain_e_per_count)
+    cube, nz, unc, chi2_true = _noise_setup(cube, noise, read_noise_counts, gain_e_per_count)
     n_out = _PEAK_FIELDS * spec.K + _N_TAIL
+    mean = None
     if spec.K > 1 or spec.init == "mean":
         # the mean spectrum (a lazy reduction) seeds multi-peak starting values
         spatial = [d for d in cube.dims if d != "energy"]
-        mean = cube.mean(dim=spatial, skipna=True)
+        mean = cube.mean(dim=spatial, skipna=True).reset_coords(drop=True)
         mean = mean.chunk({"energy": -1}) if isinstance(mean.data, da.Array) else mean
         mean = mean.copy(data=materialize(mean.data))
 
-        def rows(Y, mean_vec):
-            return _fit_rows(Y, mean_vec, spec, var_mode, gain, rn2, int(max_iter), float(min_snr))
+    def rows(Y, mean_vec, VS, VP):
+        return _fit_rows(Y, mean_vec, spec, nz, int(max_iter), float(min_snr), VS=VS, VP=VP)
 
-        arr = apply_per_spectrum(cube, rows, n_out, mean, keep_float32=True)
-    else:
-
-        def rows(Y):
-            return _fit_rows(Y, None, spec, var_mode, gain, rn2, int(max_iter), float(min_snr))
-
-        arr = apply_per_spectrum(cube, rows, n_out, keep_float32=True)
+    arr = _apply_fit(cube, rows, n_out, nz, mean)
     params.update(peaks=int(peaks), max_iter=int(max_iter))
-    return _assemble(arr, cube, spec, unc, params)
+    return _assemble(arr, cube, spec, unc, params, chi2_true)
 
 
-def _assemble(arr, cube, spec, unc, params):
+def _assemble(arr, cube, spec, unc, params, chi2_true):
     unit = cube.attrs.get("units", "1")
     area_unit = integrated_unit(unit, "eV")
     fields = [
@@ -752,12 +854,19 @@ def _assemble(arr, cube, spec, unc, params):
     st = var(-3, "1", "fit status", legend=FIT_STATUS_LEGEND, flag_values=list(range(7)))
     st.attrs["flag_meanings"] = FIT_STATUS_LEGEND
     dv["fit_status"] = st.astype(np.int8)
-    chi2_unit = "1" if "weighted" in unc else f"({unit})^2"
-    dv["chi2_red"] = var(-2, chi2_unit, "reduced chi-square")
+    if chi2_true:
+        dv["chi2_red"] = var(
+            -2, "1", "reduced chi-square (residuals weighted by the noise model)"
+        )
+    else:
+        dv["residual_variance"] = var(
+            -2, f"({unit})^2", "residual variance per degree of freedom (no noise model)"
+        )
     dv["n_iter"] = var(-1, "1", "Levenberg-Marquardt iterations")
     coords = {k: c for k, c in arr.coords.items() if "fit_output" not in c.dims}
     coords["peak"] = ("peak", np.arange(spec.K), {"long_name": "peak index, by energy"})
     keep = {k: v for k, v in cube.attrs.items() if k not in ("units", "long_name")}
+    keep["fit_noise_weighted"] = int(chi2_true)
     attrs = with_step(keep, "fit_peaks", params)
     attrs.update(
         {

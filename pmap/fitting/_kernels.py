@@ -55,6 +55,7 @@ _KG = math.sqrt(math.pi / (4.0 * math.log(2.0)))  # area = height·fwhm·_KG (Ga
 _OL_A, _OL_B = 0.5346, 0.2166
 _LOG2E = 1.0 / math.log(2.0)
 _LN2 = math.log(2.0)
+_INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
 
 STATUS_CONVERGED, STATUS_MAXITER, STATUS_FAILED = 0, 1, 5
 # beyond ±9σ a Gaussian and its derivatives (∝ u·g, u²·g) are below 2.2e-16 of their maximum
@@ -300,20 +301,23 @@ def eval_model(model, x, xref, p, K, nbg, f, J, want_j):
 
 
 @nb.njit(cache=True, error_model="numpy", fastmath=FM)
-def _set_weights(f, y, var_mode, gain, rn2, w):
-    """Inverse variances: 1 (var_mode 0), from the model f (1) or the data y (2)."""
+def _set_weights(f, y, var_mode, nv, w):
+    """Inverse variances: 1 (var_mode 0), from the model f (1) or the data y (2).
+
+    ``nv`` = (sa, q, fl) per channel: variance = max(sa·value + q, fl) (see
+    :mod:`pmap.noise`: sa = a·s, q = s²(a·p + b), fl = s²·floor).
+    """
     if var_mode == 0:
         for i in range(w.size):
             w[i] = 1.0
         return
-    ig = 1.0 / gain
-    floor = ig * ig + rn2
+    sa, q, fl = nv
     if var_mode == 1:
         for i in range(w.size):
-            w[i] = 1.0 / max(max(f[i], 0.0) * ig + rn2, floor)
+            w[i] = 1.0 / max(sa[i] * f[i] + q[i], fl[i])
     else:
         for i in range(w.size):
-            w[i] = 1.0 / max(max(y[i], 0.0) * ig + rn2, floor)
+            w[i] = 1.0 / max(sa[i] * y[i] + q[i], fl[i])
 
 
 @nb.njit(cache=True, error_model="numpy", fastmath=FM)
@@ -362,17 +366,16 @@ def _normal_eq(Jf, y, f, w, A, g, wj):
 
 
 @nb.njit(cache=True, error_model="numpy", inline="always", fastmath=FM)
-def _bg_sums(y, w, wn, b0, jb0, model_w, ig, rn2, floor):
+def _bg_sums(y, w, wn, b0, jb0, model_w, sa, q, fl):
     """Channels (slices) where the peak is below 2.2e-16 of its maximum: offset terms only.
 
     Returns (Σ w r², Σ wn r², h33, g3) in the slots of :func:`_gauss1_pass`.
     """
     c_old = c_new = h33 = g3 = 0.0
-    wb = 1.0 / max(max(b0, 0.0) * ig + rn2, floor)
     for i in range(y.size):
         r = y[i] - b0
         wo = w[i]
-        wv = wb if model_w else wo
+        wv = 1.0 / max(sa[i] * b0 + q[i], fl[i]) if model_w else wo
         wn[i] = wv
         c_old += wo * r * r
         c_new += wv * r * r
@@ -381,33 +384,53 @@ def _bg_sums(y, w, wn, b0, jb0, model_w, ig, rn2, floor):
     return c_old, c_new, h33 * jb0 * jb0, g3 * jb0
 
 
+@nb.njit(cache=True, error_model="numpy", inline="always")
+def _tail(v):
+    """(upper-tail probability beyond |v| of a standard normal, sign of v ≥ 0)."""
+    return 0.5 * math.erfc(abs(v) * 0.7071067811865476), v >= 0.0
+
+
+@nb.njit(cache=True, error_model="numpy", inline="always")
+def _phi_diff(t_lo, pos_lo, t_hi, pos_hi):
+    """Φ(v_hi) − Φ(v_lo) from tails, without cancellation in either wing."""
+    if pos_lo:
+        return t_lo - t_hi
+    if not pos_hi:
+        return t_hi - t_lo
+    return 1.0 - t_lo - t_hi
+
+
 @nb.njit(cache=True, error_model="numpy", fastmath=FM)
-def _gauss1_pass(p, nbg, x, y, w, var_mode, gain, rn2, wn, H, gv):
+def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv):
     """One Gaussian + constant offset: costs, new weights and normal equations in one pass.
 
     Slots [centre, fwhm, area, offset] (without a background the offset column is
-    zero). Fills wn (weights at p: from the model for var_mode 1, else a copy of
-    w), H (4, 4) = Jᵀ Wn J and gv (4,) = Jᵀ Wn (y − f); returns (Σ w r², Σ wn r²):
-    the cost under the old and the new weights. The Gaussian and its derivatives
-    are evaluated only within ±9σ of the centre (beyond, they are below 2.2e-16,
-    the double-precision epsilon, times their maximum); the offset terms use every
-    channel.
+    zero). The model is the line's average over each channel (edges ``xe``): for
+    σ ≥ 2 channel widths (``dmax``, the widest) the midpoint value plus its
+    curvature term, g·[1 + Δ²(u² − 1)/(24σ²)] (error O(Δ⁴/σ⁴), below 1e-4), and
+    for narrower lines the exact integral (Φ(v_hi) − Φ(v_lo))/Δ from the normal
+    CDF at the channel edges. Fills wn (weights at p: from the model for var_mode
+    1, else a copy of w), H (4, 4) = Jᵀ Wn J and gv (4,) = Jᵀ Wn (y − f); returns
+    (Σ w r², Σ wn r²): the cost under the old and the new weights. The Gaussian and
+    its derivatives are evaluated only within ±9σ of the centre (beyond, they are
+    below 2.2e-16, the double-precision epsilon, times their maximum); the offset
+    terms use every channel.
     """
     c = p[0]
     fw = p[1]
     A = p[2]
     b0 = p[3] if nbg >= 1 else 0.0
     jb0 = 1.0 if nbg >= 1 else 0.0
-    inv_s = 1.0 / (fw * _F2S)
+    sig = fw * _F2S
+    inv_s = 1.0 / sig
     norm = inv_s / math.sqrt(2.0 * math.pi)
     inv_fw = 1.0 / fw
-    ig = 1.0 / gain
-    floor = ig * ig + rn2
+    sa, q, fl = nv
     model_w = var_mode == 1
-    i0 = np.searchsorted(x, c - _CUT_SIGMA / inv_s)
-    i1 = max(np.searchsorted(x, c + _CUT_SIGMA / inv_s, side="right"), i0)
-    lo_ = _bg_sums(y[:i0], w[:i0], wn[:i0], b0, jb0, model_w, ig, rn2, floor)
-    hi_ = _bg_sums(y[i1:], w[i1:], wn[i1:], b0, jb0, model_w, ig, rn2, floor)
+    i0 = np.searchsorted(x, c - _CUT_SIGMA * sig)
+    i1 = max(np.searchsorted(x, c + _CUT_SIGMA * sig, side="right"), i0)
+    lo_ = _bg_sums(y[:i0], w[:i0], wn[:i0], b0, jb0, model_w, sa[:i0], q[:i0], fl[:i0])
+    hi_ = _bg_sums(y[i1:], w[i1:], wn[i1:], b0, jb0, model_w, sa[i1:], q[i1:], fl[i1:])
     c_old = lo_[0] + hi_[0]
     c_new = lo_[1] + hi_[1]
     h33 = lo_[2] + hi_[2]
@@ -416,19 +439,38 @@ def _gauss1_pass(p, nbg, x, y, w, var_mode, gain, rn2, wn, H, gv):
     g0 = g1 = g2 = 0.0
     # the peak window as views, so loop indices are provably ≥ 0 (no wrap-around code)
     x, y, w, wn = x[i0:i1], y[i0:i1], w[i0:i1], wn[i0:i1]
+    sa, q, fl, xe = sa[i0:i1], q[i0:i1], fl[i0:i1], xe[i0 : i1 + 1]
+    exact = sig < 2.0 * dmax
+    v_lo = (xe[0] - c) * inv_s
+    t_lo, p_lo = _tail(v_lo)
+    ph_lo = _exp_neg(-0.5 * v_lo * v_lo) * _INV_SQRT_2PI
     for i in range(x.size):
-        u = (x[i] - c) * inv_s
-        gi = _exp_neg(-0.5 * u * u) * norm
+        if exact:
+            v_hi = (xe[i + 1] - c) * inv_s
+            t_hi, p_hi = _tail(v_hi)
+            ph_hi = _exp_neg(-0.5 * v_hi * v_hi) * _INV_SQRT_2PI
+            idw = 1.0 / (xe[i + 1] - xe[i])
+            gi = _phi_diff(t_lo, p_lo, t_hi, p_hi) * idw
+            j0 = A * idw * (ph_lo - ph_hi) * inv_s
+            j1 = A * idw * (ph_lo * v_lo - ph_hi * v_hi) * inv_fw
+            v_lo, t_lo, p_lo, ph_lo = v_hi, t_hi, p_hi, ph_hi
+        else:
+            u = (x[i] - c) * inv_s
+            uu = u * u
+            G = _exp_neg(-0.5 * uu) * norm
+            dw = (xe[i + 1] - xe[i]) * inv_s
+            h = dw * dw * (1.0 / 24.0)
+            T = 1.0 + h * (uu - 1.0)
+            gi = G * T
+            j0 = A * G * u * inv_s * (T - 2.0 * h)
+            j1 = A * G * inv_fw * ((uu - 1.0) * T - 2.0 * h * (2.0 * uu - 1.0))
         fi = A * gi + b0
         r = y[i] - fi
         wo = w[i]
-        wv = 1.0 / max(max(fi, 0.0) * ig + rn2, floor) if model_w else wo
+        wv = 1.0 / max(sa[i] * fi + q[i], fl[i]) if model_w else wo
         wn[i] = wv
         c_old += wo * r * r
         c_new += wv * r * r
-        ag = A * gi
-        j0 = ag * u * inv_s
-        j1 = ag * (u * u - 1.0) * inv_fw
         w0, w1, w2, w3 = wv * j0, wv * j1, wv * gi, wv * jb0
         h00 += w0 * j0
         h01 += w0 * j1
@@ -536,22 +578,51 @@ def _predicted_drop(A, g, d):
     return s
 
 
+# 3-point Gauss–Legendre on one channel, as an average: nodes m ± √(3/5)·Δ/2 and m
+_GL_X = math.sqrt(0.6) * 0.5
+_GL_W_SIDE, _GL_W_MID = 5.0 / 18.0, 8.0 / 18.0
+# with every FWHM ≥ this many (widest) channels, the midpoint value stands for the
+# channel average (Gaussian FWHM bias Δ²/(24σ²) < 0.25 %); narrower: Gauss–Legendre
+_NARROW_CHANNELS = 10.0
+
+
+@nb.njit(cache=True, error_model="numpy", fastmath=FM)
+def _model_avg(model, x, x3, xref, p, K, nbg, f, J, f3, J3, narrow_lim):
+    """Channel averages of the model and its Jacobian (see ``_NARROW_CHANNELS``)."""
+    npp = 3 if (model == GAUSSIAN or model == LORENTZIAN) else 4
+    narrow = False
+    for k in range(K):
+        if p[k * npp + 1] < narrow_lim:
+            narrow = True
+    if not narrow:
+        _model_cols(model, x, xref, p, K, nbg, f, J, True)
+        return
+    _model_cols(model, x3, xref, p, K, nbg, f3, J3, True)
+    n = x.size
+    for i in range(n):
+        f[i] = _GL_W_SIDE * (f3[3 * i] + f3[3 * i + 2]) + _GL_W_MID * f3[3 * i + 1]
+    for j in range(J.shape[0]):
+        for i in range(n):
+            J[j, i] = _GL_W_SIDE * (J3[j, 3 * i] + J3[j, 3 * i + 2]) + _GL_W_MID * J3[j, 3 * i + 1]
+
+
 @nb.njit(cache=True, error_model="numpy")
-def _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, gain, rn2, f, wn, A, g):
+def _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, nv, f, wn, A, g):
     """Model, costs, new weights and normal equations at p; returns (cost_old_w, cost_new_w).
 
-    ``wk`` = (x, xref, model, K, nbg, J, Jf, H, gv, wj) work items; ``fused``: the
-    single-Gaussian one-pass kernel, else model + Jacobian columns then dot products.
+    ``wk`` = (x, xref, model, K, nbg, J, Jf, H, gv, wj, xe, x3, f3, J3, dmax) work
+    items; ``fused``: the single-Gaussian one-pass kernel, else channel-averaged
+    model + Jacobian columns then dot products. ``nv`` = (sa, q, fl): the noise law.
     """
-    x, xref, model, K, nbg, J, Jf, H, gv, wj = wk
+    x, xref, model, K, nbg, J, Jf, H, gv, wj, xe, x3, f3, J3, dmax = wk
     if fused:
-        c_old, c_new = _gauss1_pass(p, nbg, x, y, w, var_mode, gain, rn2, wn, H, gv)
+        c_old, c_new = _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv)
         _collapse_normal(H, gv, free_idx, A, g)
         return c_old, c_new
-    _model_cols(model, x, xref, p, K, nbg, f, J, True)
+    _model_avg(model, x, x3, xref, p, K, nbg, f, J, f3, J3, _NARROW_CHANNELS * dmax)
     c_old = _wcost(y, f, w)
     if var_mode == 1:
-        _set_weights(f, y, var_mode, gain, rn2, wn)
+        _set_weights(f, y, var_mode, nv, wn)
         c_new = _wcost(y, f, wn)
     else:
         wn[:] = w
@@ -561,7 +632,7 @@ def _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, gain, rn2, f, wn, A
 
 
 @nb.njit(cache=True, error_model="numpy")
-def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter, ftol, xtol, stol,
+def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, nv, max_iter, ftol, xtol, stol,
              wk, vec, mats, small_vec, pn):  # fmt: skip
     """Fit one spectrum in place (p); return (status, chi2_red, n_iter); cov in mats[3].
 
@@ -583,8 +654,8 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
         p[j] = min(max(p[j], lo[j]), hi[j])
     # weights for the first evaluation: unit, or from the data (var_mode 2); with
     # var_mode 1 the evaluation replaces them by weights from the model
-    _set_weights(y, y, 2 if var_mode == 2 else 0, gain, rn2, w)
-    _, cost = _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, gain, rn2, f, wn, A, g)
+    _set_weights(y, y, 2 if var_mode == 2 else 0, nv, w)
+    _, cost = _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, nv, f, wn, A, g)
     w, wn = wn, w
     status = STATUS_MAXITER
     lam = 1e-3
@@ -615,7 +686,7 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
                 final = True
                 break
             cost_trial, cost_new = _evaluate(
-                pn, y, w, wk, fused, free_idx, ident, var_mode, gain, rn2, fn, wn, An, gn
+                pn, y, w, wk, fused, free_idx, ident, var_mode, nv, fn, wn, An, gn
             )
             if cost_trial <= cost and math.isfinite(cost_trial):
                 accepted = True
@@ -653,9 +724,14 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2, max_iter
 
 
 @nb.njit(cache=True, error_model="numpy", nogil=True)
-def lm_batch(Y, rows, x, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, var_mode, gain, rn2,
-             max_iter, ftol, xtol, stol):  # fmt: skip
+def lm_batch(Y, rows, x, xe, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, var_mode,
+             VS, VP, va, vb, vfl, max_iter, ftol, xtol, stol):  # fmt: skip
     """Batched Levenberg–Marquardt over the rows ``rows`` of Y (n_pix, n_ch), float32/64.
+
+    ``xe`` (n_ch + 1): channel edges (the model is averaged over each channel).
+    Noise law (var_mode 1 and 2, see :mod:`pmap.noise`): per row i and channel c,
+    variance = max(a·s·value + s²(a·p + b), s²·floor) with s = VS[i, c], p = VP[i, c]
+    (a row or column of length 1 broadcasts), a = ``va``, b = ``vb``, floor = ``vfl``.
 
     ``P0`` (len(rows), n_full): starting values (fixed parameters hold their value);
     ``lo``/``hi`` (n_full,): bounds. Returns (P (m, n_full), COV (m, nfree, nfree),
@@ -678,8 +754,20 @@ def lm_batch(Y, rows, x, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, var_m
     fused = model == GAUSSIAN and K == 1 and nbg <= 1
     y = np.empty(n)
     vec = np.empty((4, n))
+    dmax = 0.0
+    for c in range(n):
+        dmax = max(dmax, xe[c + 1] - xe[c])
+    x3 = np.empty(3 * n)
+    for c in range(n):
+        mid = 0.5 * (xe[c] + xe[c + 1])
+        h = (xe[c + 1] - xe[c]) * _GL_X
+        x3[3 * c], x3[3 * c + 1], x3[3 * c + 2] = mid - h, mid, mid + h
     wk = (x, xref, model, K, nbg, np.zeros((nfull, n)), np.zeros((nfree, n)),
-          np.zeros((4, 4)), np.zeros(4), np.empty(n))  # fmt: skip
+          np.zeros((4, 4)), np.zeros(4), np.empty(n), xe, x3, np.empty(3 * n),
+          np.zeros((nfull, 3 * n)), dmax)  # fmt: skip
+    sa, q, fl = np.ones(n), np.zeros(n), np.ones(n)
+    nv = (sa, q, fl)
+    s_wide, p_wide = VS.shape[1] > 1, VP.shape[1] > 1
     mats = np.zeros((4, nfree, nfree))
     small_vec = np.zeros((4, nfree))
     pn = np.empty(nfull)
@@ -688,9 +776,17 @@ def lm_batch(Y, rows, x, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, var_m
         i = rows[k]
         for c in range(n):
             y[c] = Y[i, c]
+        if var_mode != 0:
+            si, pi = min(i, VS.shape[0] - 1), min(i, VP.shape[0] - 1)
+            for c in range(n):
+                sc = VS[si, c if s_wide else 0]
+                pc = VP[pi, c if p_wide else 0]
+                sa[c] = va * sc
+                q[c] = sc * sc * (va * pc + vb)
+                fl[c] = sc * sc * vfl
         for j in range(nfull):
             p[j] = P0[k, j]
-        st, c2, it = _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, gain, rn2,
+        st, c2, it = _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, nv,
                               max_iter, ftol, xtol, stol, wk, vec, mats, small_vec,
                               pn)  # fmt: skip
         P[k] = p

@@ -25,6 +25,7 @@ from ._calibration import (
     reference_lines,
 )
 from ._corrections import correct_response, normalise_exposure, response_from_lamp, subtract_dark
+from ._noise import attach_noise_model, estimate_noise_parameters
 from ._pca import PCA_RULES, choose_n_components, pca_denoise
 from ._spikes import remove_spikes, spike_candidates
 
@@ -49,6 +50,9 @@ __all__ = [
     "WavelengthCalibration",
     "load_calibration",
     "apply_calibration",
+    # noise model
+    "attach_noise_model",
+    "estimate_noise_parameters",
     # corrections
     "subtract_dark",
     "correct_response",

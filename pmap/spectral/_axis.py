@@ -15,6 +15,7 @@ from scipy import sparse
 
 from ..conventions import HC_EV_NM, INTENSITY_UNITS
 from ..errors import StepError
+from ..noise import PEDESTAL_COORD, SCALE_COORD, noise_correlated, noise_scaled
 from ..steps import register_step
 from ._airvac import DEFAULT_AIR_METHOD, air_to_vacuum, vacuum_wavelength_nm
 from ._common import check_cube, finish, float_dtype
@@ -143,8 +144,12 @@ def _convert_axis(
         take = slice(None, None, -1)
     else:
         take = order
-    dens = (cube.astype(out_dtype) * factor).isel(wavelength=take)
-    dens = dens.drop_vars([c for c in dens.coords if "wavelength" in dens[c].dims])
+    dens = noise_scaled(cube.astype(out_dtype) * factor, cube, factor, f"to_{dim} Jacobian")
+    dens = dens.isel(wavelength=take)
+    keep = (SCALE_COORD, PEDESTAL_COORD)  # the noise model's coordinates follow the channels
+    dens = dens.drop_vars(
+        [c for c in dens.coords if "wavelength" in dens[c].dims and c not in keep]
+    )
     dens = dens.rename({"wavelength": dim})
     xs = x[order]
     if resample == "uniform":
@@ -157,6 +162,8 @@ def _convert_axis(
         if not jacobian:
             raise StepError("resample='uniform' needs jacobian=True (it conserves densities)")
         rebin = _rebin_matrix(e_sorted, new_edges)
+        dens = noise_correlated(dens, dens, f"to_{dim} uniform resampling mixes channels")
+        dens = dens.drop_vars([c for c in keep if c in dens.coords and dim in dens[c].dims])
 
         def core(v: np.ndarray) -> np.ndarray:
             flat = v.reshape(-1, v.shape[-1]).astype(np.float64)
@@ -179,6 +186,21 @@ def _convert_axis(
     attrs["units"] = unit_out
     attrs.update(attrs_extra or {})
     return finish(dens, cube, name, params, attrs=attrs)
+
+
+def _per_channel_to_density(cube: xr.DataArray, jacobian: bool) -> xr.DataArray:
+    """A cube already on an energy axis: counts per channel → per eV; densities unchanged."""
+    cube, _ = check_cube(cube)
+    unit = str(cube.attrs.get("units", "counts"))
+    if not jacobian or unit not in _PER_CHANNEL or unit in ("arbitrary", "1"):
+        return cube
+    _, unit_out = _target_unit(unit, "eV")
+    width = xr.DataArray(1.0 / np.diff(channel_edges(cube["energy"].values)), dims=("energy",))
+    out_dtype = float_dtype(cube.dtype)
+    out = noise_scaled(cube.astype(out_dtype) * width.astype(out_dtype), cube, width,
+                       "to_energy: per channel to per eV")
+    attrs = {**cube.attrs, "units": unit_out}
+    return finish(out, cube, "to_energy", {"already_energy": True}, attrs=attrs)
 
 
 @register_step("to_energy")
@@ -209,7 +231,9 @@ def to_energy(
     Returns
     -------
     xarray.DataArray
-        Cube with dim ``energy`` (eV, ascending). Units: counts per channel ("counts",
+        Cube with dim ``energy`` (eV, ascending); a cube already on an energy axis keeps
+        its axis and, if in counts per channel, is divided by the channel widths in eV
+        (so one pipeline serves both kinds of cube). Units: counts per channel ("counts",
         "counts/s", "counts/s/W") are first divided by the channel width in nm (from the
         channel edges), so the result is e.g. "counts/eV" and ∫ I dE equals the total counts;
         densities per nm ("counts/nm", "W/nm") are multiplied by |dλ/dE| only.
@@ -226,6 +250,8 @@ def to_energy(
     ----------
     Mooney & Kambhampati, J. Phys. Chem. Lett. 4, 3316 (2013).
     """
+    if isinstance(cube, xr.DataArray) and "energy" in cube.dims:
+        return _per_channel_to_density(cube, jacobian)
     return _convert_axis(
         cube,
         "energy",

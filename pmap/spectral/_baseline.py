@@ -10,6 +10,7 @@ import xarray as xr
 from scipy import signal
 
 from ..errors import StepError
+from ..noise import noise_correlated, noise_subtracted
 from ..steps import register_step
 from ._common import check_cube, finish, map_spectra
 
@@ -282,6 +283,14 @@ def remove_baseline(
     else:
         raise StepError(f"unknown baseline method {method!r}; use 'als', 'poly' or 'constant'")
     out = map_spectra(core, cube, sdim)
+    # the noise model keeps the variance of the raw counts: the subtracted baseline
+    # joins the pedestal (a per-pixel constant for "constant", else per channel)
+    if method == "constant":
+        idx = np.flatnonzero(mask)
+        base = cube.isel({sdim: idx}).astype(np.float64).mean(sdim, skipna=True)
+    else:
+        base = cube - out
+    out = noise_subtracted(out, cube, base, f"remove_baseline {method}")
     return finish(out, cube, "remove_baseline", params)
 
 
@@ -321,4 +330,5 @@ def smooth(cube: xr.DataArray, *, window: int = 5, order: int = 2) -> xr.DataArr
         sdim,
         kwargs={"window_length": window, "polyorder": order, "axis": -1},
     )
+    out = noise_correlated(out, cube, f"smooth (Savitzky-Golay, {window} channels)")
     return finish(out, cube, "smooth", {"window": window, "order": order})

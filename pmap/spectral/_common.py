@@ -14,6 +14,7 @@ import xarray as xr
 from ..conventions import CUBE_NAME, SPECTRAL_DIMS
 from ..cube import spectral_dim
 from ..errors import CubeValidationError, InputFileError, StepError
+from ..noise import NOISE_ATTR
 from ..provenance import with_step
 
 _TEXT_SUFFIXES = (".txt", ".csv", ".tsv", ".dat", ".asc", ".spe.txt")
@@ -57,6 +58,8 @@ def finish(
 ) -> xr.DataArray:
     """Name the result ``intensity`` and record the step in its provenance."""
     base = dict(cube.attrs) if attrs is None else dict(attrs)
+    if NOISE_ATTR in out.attrs:  # the step's update of the noise model (pmap.noise)
+        base[NOISE_ATTR] = out.attrs[NOISE_ATTR]
     out.attrs = with_step(base, name, dict(params), **results)
     out.name = CUBE_NAME
     return out

@@ -9,6 +9,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import StepError
+from ..noise import noise_scaled, noise_subtracted
 from ..steps import materialize, register_step
 from ._common import (
     check_cube,
@@ -64,12 +65,14 @@ def subtract_dark(
         ref = sub.mean(("y", "x"))
         ref = ref.copy(data=materialize(ref.data)) if ref.chunks is not None else ref
         out = x - ref
+        sub_val = ref
         params = {"region": {k: list(v) for k, v in region.items()}}
     else:
         d = load_spectrum(dark, what="dark")
         params = {"dark": _describe(dark)}
         if isinstance(d, float):
             out = x - dt.type(d)
+            sub_val = d
         elif "y" in d.dims and "x" in d.dims and (d.sizes["y"] > 1 or d.sizes["x"] > 1):
             if d.sizes["y"] != cube.sizes["y"] or d.sizes["x"] != cube.sizes["x"]:
                 raise StepError(
@@ -83,10 +86,13 @@ def subtract_dark(
                 raise StepError(f"dark cube must have dims (y, x, channels), got {d.dims}")
             dd = xr.DataArray(d.transpose("y", "x", dsd).data, dims=("y", "x", sdim))
             out = x - dd.astype(dt)
+            sub_val = dd
         else:
             vals = spectrum_on_axis(d, cube, sdim, what="dark spectrum", interpolate=False)
-            out = x - xr.DataArray(vals.astype(dt), dims=(sdim,))
+            sub_val = xr.DataArray(vals, dims=(sdim,))
+            out = x - sub_val.astype(dt)
     out = out.transpose(*cube.dims)
+    out = noise_subtracted(out, cube, sub_val, "subtract_dark")
     return finish(out, cube, "subtract_dark", params)
 
 
@@ -130,6 +136,7 @@ def correct_response(
         )
     dt = float_dtype(cube.dtype)
     out = cube.astype(dt) / xr.DataArray(vals.astype(dt), dims=(sdim,))
+    out = noise_scaled(out, cube, xr.DataArray(1.0 / vals, dims=(sdim,)), "correct_response")
     attrs = dict(cube.attrs)
     if units is not None:
         from ..conventions import normalise_intensity_unit
@@ -237,6 +244,7 @@ def normalise_exposure(
     per_power = per_power or excitation_power_W is not None
     dt = float_dtype(cube.dtype)
     out = cube.astype(dt)
+    fac: Any = 1.0  # out = cube · fac, for the noise model
     attrs = dict(cube.attrs)
     params: dict[str, Any] = {
         "exposure_s": exposure_s,
@@ -251,6 +259,7 @@ def normalise_exposure(
             )
         exp = _positive(exp, "exposure_s")
         out = out / dt.type(exp)
+        fac = 1.0 / exp
         attrs["exposure_s"] = exp
         unit = "counts/s"
     elif unit != "counts/s" or not per_power:
@@ -267,6 +276,7 @@ def normalise_exposure(
         if pw is not None:
             pw = _positive(pw, "excitation_power_W")
             out = out / dt.type(pw)
+            fac = fac / pw
             attrs["excitation_power_W"] = pw
         else:
             dim = next((d for d in ("excitation_power", "power") if d in cube.dims), None)
@@ -284,6 +294,8 @@ def normalise_exposure(
             if np.any(~np.isfinite(pv) | (pv <= 0)):
                 raise StepError(f"{dim} coordinate has non-positive powers")
             out = out / xr.DataArray(pv.astype(dt), dims=(dim,))
+            fac = fac / xr.DataArray(pv, dims=(dim,))
         unit = "counts/s/W"
     attrs["units"] = unit
+    out = noise_scaled(out, cube, fac, "normalise_exposure")
     return finish(out.transpose(*cube.dims), cube, "normalise_exposure", params, attrs=attrs)

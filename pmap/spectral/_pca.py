@@ -8,6 +8,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import StepError
+from ..noise import noise_correlated
 from ..steps import materialize, register_step
 from ._common import check_cube, finish, float_dtype
 from ._robust import robust_sigma_of_diff
@@ -163,6 +164,7 @@ def pca_denoise(
         kwargs={"dtype": dt},
         keep_attrs=True,
     )
+    out = noise_correlated(out, cube, "pca_denoise (projection mixes channels)")
     return finish(
         out,
         cube,
