@@ -29,7 +29,13 @@ from ._lineshapes import (
     voigt_widths,
 )
 
-__all__ = ["fit_peaks", "evaluate_fit", "model_spectrum", "FIT_STATUS_LEGEND"]
+__all__ = [
+    "fit_peaks",
+    "evaluate_fit",
+    "model_spectrum",
+    "FIT_STATUS_LEGEND",
+    "PEAK_STATUS_LEGEND",
+]
 
 FIT_STATUS_LEGEND = (
     "0=converged;1=iteration limit reached (values kept);"
@@ -37,6 +43,13 @@ FIT_STATUS_LEGEND = (
     "4=masked or NaN input (NaN);5=solver failure, non-finite or singular (NaN);"
     "6=implausible: centre, width or area at its physical limit (edge of the energy axis, "
     "width at the channel spacing or the axis span, area <= 0) (NaN)"
+)
+PEAK_STATUS_LEGEND = (
+    "0=converged;1=iteration limit reached (values kept);2=a parameter at a user-set bound "
+    "(values kept);3=not detected: area below min_snr times its 1-sigma, or too little "
+    "signal in the pixel (NaN);4=masked or NaN input (NaN);5=solver failure (NaN);"
+    "6=implausible: centre at the edge of the energy axis, width at its limit or area <= 0 "
+    "(NaN; the pixel's other peaks are kept)"
 )
 SHAPE_NAMES = {
     "voigt": ("lorentz_fraction", "Lorentzian FWHM / total FWHM (Olivero-Longbothum split)"),
@@ -63,13 +76,14 @@ _ALIASES = {
     "asymmetry": "shape",
 }
 _BACKGROUNDS = {"none": 0, "constant": 1, "linear": 2}
-_PEAK_FIELDS = 10  # energy, err, fwhm, err, area, err, height, err, shape, err
+_PEAK_FIELDS = 11  # energy, err, fwhm, err, area, err, height, err, shape, err, status
+_PS = 10  # index of the per-peak status within a peak's fields
 # relative cost / step tolerances, as MINPACK's defaults used by scipy curve_fit
 _FTOL = _XTOL = 1.49012e-8
 # stop when the next Gauss–Newton step is below this many standard errors (it is then
 # taken without another evaluation: the error left is second order in it)
 _STOL = 0.1
-_N_TAIL = 7  # offset, err, slope, err, status, chi2_red, n_iter
+_N_TAIL = 8  # offset, err, slope, err, bic, status, chi2_red, n_iter
 
 
 @dataclass
@@ -330,65 +344,96 @@ def _run(Y, spec, P0, nz, max_iter, rows=None, stol=None, VS=_ONE, VP=_ZERO):
     )
 
 
-def _template(mean, spec):
-    """Fit the mean spectrum with K peaks (greedy: add each peak at the largest residual).
+def _d2_peaks(x, y, K, fw1):
+    """Up to K (centre, fwhm, height) guesses from the minima of the smoothed second derivative.
 
-    Unit weights: the template only seeds the per-pixel starting values.
+    Overlapping lines that give one maximum still give separate minima of y''
+    (derivative spectroscopy, common practice): the spectrum is smoothed with a
+    Gaussian of σ = fw1/8 (fw1: the one-peak width), differentiated twice, and its
+    K deepest local minima are the centres; the width of each negative lobe
+    (between the zero crossings, ≈ 2σ of a Gaussian line) gives its FWHM.
+    """
+    n = x.size
+    step = float(np.median(np.diff(x)))
+    sig = max(fw1 / 8.0 / step, 0.7)
+    half = int(np.ceil(4 * sig))
+    k = np.exp(-0.5 * (np.arange(-half, half + 1) / sig) ** 2)
+    ys = np.convolve(np.pad(y, half, mode="edge"), k / k.sum(), mode="valid")
+    d2 = np.gradient(np.gradient(ys, x), x)
+    i = np.flatnonzero((d2[1:-1] < d2[:-2]) & (d2[1:-1] <= d2[2:]) & (d2[1:-1] < 0)) + 1
+    i = i[np.argsort(d2[i])][:K]
+    out = []
+    for j in np.sort(i):
+        lo = j
+        while lo > 0 and d2[lo] < 0:
+            lo -= 1
+        hi = j
+        while hi < n - 1 and d2[hi] < 0:
+            hi += 1
+        fw = max((x[hi] - x[lo]) * 1.18, 3 * step)  # lobe ≈ 2σ = FWHM/1.18
+        out.append((x[j], fw, max(ys[j], 0.0)))
+    return out
+
+
+def _template(mean, spec):
+    """Fit the mean spectrum with K peaks: the best of several starts (lowest χ²).
+
+    Starts: greedy (add each peak at the largest residual of the fit with one
+    fewer), second-derivative minima (:func:`_d2_peaks`), and the one-peak fit
+    split into K narrower peaks across its width. Unit weights: the template only
+    seeds the per-pixel starting values. Returns (parameters, height, centre of
+    the one-peak start) so that pixels can shift it to their own position.
     """
     x = spec.x
     Y = np.ascontiguousarray(mean[None, :], dtype=np.float64)
     _, _, _, _, (b, e_max, height, fw) = _quick_desc(Y, x)
-    # unconstrained single-peak spec, then grow
-    p = []
-    sub = None
-    prev = np.zeros(0)
-    for k in range(1, spec.K + 1):
-        sub = _build_spec(
-            x,
-            model=spec.model,
-            peaks=k,
-            background=list(_BACKGROUNDS)[spec.nbg],
-            bounds=None,
-            fixed=None,
-            shared=None,
-            init="auto",
-        )
-        if k == 1:
-            p = [e_max[0], fw[0], _area_from(height, fw)[0]]
-            if spec.npp == 4:
-                p.append(_SHAPE_START[spec.model])
-        else:
-            f = np.empty(x.size)
-            K.eval_model(
-                spec.code,
-                x,
-                spec.xref,
-                np.asarray(prev),
-                k - 1,
-                spec.nbg,
-                f,
-                np.zeros((x.size, len(prev))),
-                False,
-            )
-            resid = smooth3((mean - f)[None, :])[0]
-            i = int(np.argmax(resid))
-            rw = fwhm_at_half(x, resid[None, :], np.array([i]), np.array([0.5 * resid[i]]))[0]
-            w = rw if np.isfinite(rw) and rw > 0 else fw[0] / 2.0
-            w = max(w, 3 * float(np.min(np.diff(x))))
-            newp = [x[i], w, max(resid[i], 1e-12) * w * 1.0645]
-            if spec.npp == 4:
-                newp.append(_SHAPE_START[spec.model])
-            p = list(prev[: (k - 1) * spec.npp]) + newp
-        p = p[: k * spec.npp] + ([b[0], 0.0][: spec.nbg])
-        given = spec.start[: k * spec.npp] if spec.init == "given" else None
-        if given is not None and np.all(np.isfinite(given)):
-            p[: k * spec.npp] = list(given)
+    bg = [b[0], 0.0][: spec.nbg]
+    npp = spec.npp
+    shape0 = [_SHAPE_START[spec.model]] if npp == 4 else []
+
+    def sub_spec(k):
+        return _build_spec(x, model=spec.model, peaks=k, background=list(_BACKGROUNDS)[spec.nbg],
+                           bounds=None, fixed=None, shared=None, init="auto")
+
+    def fit(p, k):
+        sub = sub_spec(k)
         P0 = np.clip(np.asarray(p, dtype=float)[None, :], sub.lo, sub.hi)
-        res = _run(Y, sub, P0, _UNIT_NOISE, 200)
-        prev = res[0][0]
-        if not np.all(np.isfinite(prev)):
-            prev = P0[0]
-    return np.asarray(prev, dtype=float), float(height[0])
+        P, _, chi2, st, _ = _run(Y, sub, P0, _UNIT_NOISE, 200)
+        ok = np.all(np.isfinite(P[0])) and st[0] != K.STATUS_FAILED
+        return (P[0] if ok else P0[0]), (float(chi2[0]) if ok else np.inf)
+
+    # greedy
+    prev, _ = fit([e_max[0], fw[0], _area_from(height, fw)[0], *shape0, *bg], 1)
+    one = prev
+    for k in range(2, spec.K + 1):
+        f = np.empty(x.size)
+        K.eval_model(spec.code, x, spec.xref, np.asarray(prev), k - 1, spec.nbg, f,
+                     np.zeros((x.size, len(prev))), False)
+        resid = smooth3((mean - f)[None, :])[0]
+        i = int(np.argmax(resid))
+        rw = fwhm_at_half(x, resid[None, :], np.array([i]), np.array([0.5 * resid[i]]))[0]
+        w = rw if np.isfinite(rw) and rw > 0 else fw[0] / 2.0
+        w = max(w, 3 * float(np.min(np.diff(x))))
+        newp = [x[i], w, max(resid[i], 1e-12) * w * 1.0645, *shape0]
+        prev, _ = fit(list(prev[: (k - 1) * npp]) + newp + bg, k)
+    cands = [fit(list(prev), spec.K)] if spec.K == 1 else [(prev, None)]
+    if spec.K > 1:
+        cands[0] = fit(list(prev), spec.K)
+        fw1 = float(one[1])
+        guesses = _d2_peaks(x, mean - b[0], spec.K, fw1)
+        if len(guesses) == spec.K:
+            p = [v for c, w, h in guesses for v in (c, w, h * w * 1.0645, *shape0)]
+            cands.append(fit(p + bg, spec.K))
+        c1, a1 = float(one[0]), float(one[2])
+        offs = np.linspace(-0.35, 0.35, spec.K) * fw1
+        p = [v for o in offs for v in (c1 + o, fw1 / spec.K * 1.2, a1 / spec.K, *shape0)]
+        cands.append(fit(p + bg, spec.K))
+    best = min(cands, key=lambda c: c[1])[0]
+    if spec.init == "given":
+        given = spec.start[: spec.K * npp]
+        if np.all(np.isfinite(given)):
+            best = np.asarray(list(given) + list(best[spec.K * npp:]), dtype=float)
+    return np.asarray(best, dtype=float), float(height[0]), float(e_max[0])
 
 
 def _starts(Y, rows, desc, spec, template):
@@ -398,11 +443,14 @@ def _starts(Y, rows, desc, spec, template):
     P0 = np.zeros((m, spec.nfull))
     npp = spec.npp
     if template is not None:
-        tp, t_height = template
+        tp, t_height, t_centre = template
         scale = np.where(t_height > 0, np.maximum(height, 0.0) / t_height, 1.0)
+        # the template moved to the pixel: its centres shift with the pixel's maximum
+        shift = np.where(np.isfinite(e_max), e_max - t_centre, 0.0)
         P0[:] = tp
         for k in range(spec.K):
             P0[:, k * npp + 2] = tp[k * npp + 2] * scale
+            P0[:, k * npp] = tp[k * npp] + shift
     else:
         P0[:, 0], P0[:, 1], P0[:, 2] = e_max, fw, _area_from(height, fw)
         if npp == 4:
@@ -438,7 +486,10 @@ def _height(model, fw, area, shape):
 def _fit_rows(Y, mean, spec, nz, max_iter, min_snr, VS=_ONE, VP=_ZERO):
     """Fit every row of Y (m, n), float32 or float64; returns (m, n_out) packed outputs.
 
-    ``nz``, VS, VP: the noise law (see :func:`_run`).
+    ``nz``, VS, VP: the noise law (see :func:`_run`). With several peaks, pixels
+    whose fit did not converge cleanly (iteration limit, a peak implausible or
+    not significant) are refitted from their own second-derivative start
+    (:func:`_d2_peaks`); the lower χ² is kept.
     """
     m = Y.shape[0]
     out = np.full((m, _PEAK_FIELDS * spec.K + _N_TAIL), np.nan)
@@ -460,22 +511,79 @@ def _fit_rows(Y, mean, spec, nz, max_iter, min_snr, VS=_ONE, VP=_ZERO):
         sel = tuple(v[fit_rows] for v in start)
         P0 = _starts(Y, fit_rows, sel, spec, template)
         P, COV, chi2, st, niter = _run(Y, spec, P0, nz, max_iter, fit_rows, VS=VS, VP=VP)
-        res = _postprocess(P, COV, chi2, st, niter, spec)
-        if spec.K == 1:
-            # A single line must be detected: area / σ(area) ≥ min_snr, else the fit has
-            # latched onto noise (e.g. one noisy channel on a background) -> no signal.
-            st_fit = res[:, -3]
-            with np.errstate(invalid="ignore", divide="ignore"):
-                faint = (st_fit <= 2) & ~(res[:, 4] >= min_snr * res[:, 5])
-            res[faint, : _PEAK_FIELDS] = np.nan
-            res[faint, -3] = 3
+        res = _postprocess(P, COV, chi2, st, niter, spec, nz[0] == 1, min_snr)
+        if spec.K > 1:
+            res = _retry(Y, fit_rows, res, spec, nz, max_iter, min_snr, VS, VP, sel)
         out[fit_rows] = res
         status[fit_rows] = out[fit_rows, -3].astype(np.int64)
     out[:, -3] = status
+    for k in range(spec.K):  # pixels not fitted: every peak shares the pixel's status
+        col = k * _PEAK_FIELDS + _PS
+        out[:, col] = np.where(np.isnan(out[:, col]), status, out[:, col])
     return out
 
 
-def _postprocess(P, COV, chi2, st, niter, spec):
+def _peak_rank(o, K_):
+    """(number of clean peaks, χ²) of packed output rows: the order of preference."""
+    pst = o[:, [k * _PEAK_FIELDS + _PS for k in range(K_)]]
+    return np.sum(pst == 0, axis=1), np.where(np.isfinite(o[:, -2]), o[:, -2], np.inf)
+
+
+def _retry(Y, rows, res, spec, nz, max_iter, min_snr, VS, VP, desc):
+    """Refit multi-peak rows that ended badly from two per-pixel starts; keep the best.
+
+    Starts: (a) the second-derivative minima of the pixel's own spectrum
+    (:func:`_d2_peaks`); (b) its one-peak start plus K − 1 peaks of zero area (a
+    pixel with fewer lines than K then ends with the extra peaks dropped rather
+    than one line split into insignificant halves). Kept: more clean peaks first,
+    then the lower χ².
+    """
+    pst = res[:, [k * _PEAK_FIELDS + _PS for k in range(spec.K)]]
+    again = np.flatnonzero((res[:, -3] != 0) | np.any(pst != 0, axis=1))
+    if again.size == 0:
+        return res
+    b, c0, h0, fw = (v[again] for v in desc)
+    npp, nb = spec.npp, spec.K * spec.npp
+    shape0 = _SHAPE_START.get(spec.model, 0.0)
+    starts = [np.full((again.size, spec.nfull), np.nan) for _ in range(2)]
+    for r, i in enumerate(again):
+        y = np.asarray(Y[rows[i]], dtype=np.float64)
+        g = _d2_peaks(spec.x, y - b[r], spec.K, float(fw[r]))
+        if len(g) == spec.K:
+            starts[0][r, :nb] = [v for c, w, h in g for v in (c, w, h * w * 1.0645, shape0)[:npp]]
+        one = [c0[r], fw[r], _area_from(h0[r], fw[r]), shape0][:npp]
+        extra = [v for k in range(1, spec.K)
+                 for v in (c0[r] + (-1) ** k * fw[r], fw[r], 0.0, shape0)[:npp]]
+        starts[1][r, :nb] = one + extra
+    for P0 in starts:
+        if spec.nbg >= 1:
+            P0[:, nb] = b
+        if spec.nbg == 2:
+            P0[:, nb + 1] = 0.0
+        have = np.flatnonzero(np.all(np.isfinite(P0), axis=1))
+        if have.size == 0:
+            continue
+        fit = _run(Y, spec, _finish_start(P0[have], spec), nz, max_iter, rows[again[have]],
+                   VS=VS, VP=VP)
+        new = _postprocess(*fit, spec, nz[0] == 1, min_snr)
+        g_new, c_new = _peak_rank(new, spec.K)
+        g_old, c_old = _peak_rank(res[again[have]], spec.K)
+        better = (g_new > g_old) | ((g_new == g_old) & (c_new < c_old))
+        res[again[have][better]] = new[better]
+    return res
+
+
+def _postprocess(P, COV, chi2, st, niter, spec, weighted=True, min_snr=5.0):
+    """Pack the fitted parameters, errors and statuses into output rows.
+
+    Each peak gets its own status (``PEAK_STATUS_LEGEND``): a peak at a physical
+    limit (centre at the axis edge, width at its limit, area ≤ 0) is implausible
+    (6) and a peak whose area is below ``min_snr`` × its 1σ is not detected (3);
+    such a peak is NaN while the pixel's other peaks keep their values. The pixel
+    status is 6 (or 3) only when no peak is left. ``bic`` = χ² + k ln n
+    (weighted) or n ln(RSS/n) + k ln n (unit weights), k free parameters,
+    n channels (Schwarz 1978).
+    """
     m, K_, npp = P.shape[0], spec.K, spec.npp
     if np.array_equal(spec.free_idx, np.arange(spec.nfull)):
         C = COV  # every parameter free and its own
@@ -495,15 +603,24 @@ def _postprocess(P, COV, chi2, st, niter, spec):
     at_hi = np.abs(P - spec.hi) <= tol
     free = spec.free_idx >= 0
     hit = (at_lo | at_hi) & free
-    phys = np.any(hit & (spec.bound_flag == 6), axis=1)
     user = np.any(hit & (spec.bound_flag == 2), axis=1)
-    cen = P[:, [j for j, kd in enumerate(spec.kind) if kd == "center"]]
-    area = P[:, [j for j, kd in enumerate(spec.kind) if kd == "area"]]
-    bad = phys | np.any((cen < x0) | (cen > x1), axis=1) | np.any(~(area > 0), axis=1)
+    peak_of = np.asarray(spec.peak)
+    peak_bad = np.zeros((m, K_), dtype=bool)
+    peak_faint = np.zeros((m, K_), dtype=bool)
+    for k in range(K_):
+        cols = peak_of == k
+        phys = np.any(hit[:, cols] & (spec.bound_flag[cols] == 6), axis=1)
+        c, ar = P[:, k * npp], P[:, k * npp + 2]
+        peak_bad[:, k] = phys | (c < x0) | (c > x1) | ~(ar > 0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            peak_faint[:, k] = ~peak_bad[:, k] & ~(ar >= min_snr * err[:, k * npp + 2])
+    failed = ~np.all(np.isfinite(P), axis=1) | (status == 5)
+    none_left = np.all(peak_bad | peak_faint, axis=1)
     ok = status >= 0
-    status = np.where(ok & (status != 5) & bad, 6, status)
+    status = np.where(ok & none_left & np.any(peak_bad, axis=1), 6, status)
+    status = np.where(ok & none_left & ~np.any(peak_bad, axis=1), 3, status)
     status = np.where(ok & (status <= 1) & user, 2, status)
-    status = np.where(~np.all(np.isfinite(P), axis=1), 5, status)
+    status = np.where(failed, 5, status)
     out = np.full((m, _PEAK_FIELDS * K_ + _N_TAIL), np.nan)
     # derived: height and its uncertainty by finite differences in (fwhm, area, shape)
     for k in range(K_):
@@ -517,7 +634,7 @@ def _postprocess(P, COV, chi2, st, niter, spec):
             q[d - 1] = q[d - 1] + step
             grads.append((_height(spec.model, *q) - h) / step)
         G = np.stack(grads, axis=1)
-        sub = C[:, o + 1 : o + npp, o + 1 : o + npp]
+        sub = np.nan_to_num(C[:, o + 1 : o + npp, o + 1 : o + npp])  # held-fixed ones: 0
         h_err = np.sqrt(np.maximum(np.einsum("mi,mij,mj->m", G, sub, G), 0.0))
         base = k * _PEAK_FIELDS
         out[:, base + 0], out[:, base + 1] = P[:, o], err[:, o]
@@ -526,7 +643,12 @@ def _postprocess(P, COV, chi2, st, niter, spec):
         out[:, base + 6], out[:, base + 7] = h, h_err
         if npp == 4:
             out[:, base + 8], out[:, base + 9] = P[:, o + 3], err[:, o + 3]
-    # sort peaks by ascending energy in every pixel
+        pst = np.where(peak_bad[:, k], 6, np.where(peak_faint[:, k], 3, status))
+        pst = np.where(np.isin(status, (3, 4, 5, 6)) | (status < 0), status, pst)
+        drop = np.isin(pst, (3, 4, 5, 6))
+        out[drop, base : base + _PS] = np.nan
+        out[:, base + _PS] = pst
+    # sort peaks by ascending energy in every pixel (dropped peaks last)
     if K_ > 1:
         blocks = out[:, : K_ * _PEAK_FIELDS].reshape(m, K_, _PEAK_FIELDS)
         order = np.argsort(np.where(np.isfinite(blocks[:, :, 0]), blocks[:, :, 0], np.inf), axis=1)
@@ -538,11 +660,21 @@ def _postprocess(P, COV, chi2, st, niter, spec):
         out[:, t], out[:, t + 1] = P[:, ob], err[:, ob]
     if spec.nbg == 2:
         out[:, t + 2], out[:, t + 3] = P[:, ob + 1], err[:, ob + 1]
+    n, k_free = spec.x.size, spec.nfree
+    dof = max(n - k_free, 1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        fit_term = chi2 * dof if weighted else n * np.log(chi2 * dof / n)
+    out[:, -4] = fit_term + k_free * np.log(n)
     out[:, -3] = status
     out[:, -2] = chi2
     out[:, -1] = niter
     nan_rows = np.isin(status, (3, 4, 5, 6)) | (status < 0)
-    out[nan_rows, :-3] = np.nan
+    out[nan_rows, : t + 4] = np.where(
+        np.isin(np.arange(t + 4) % _PEAK_FIELDS, [_PS]) & (np.arange(t + 4) < t),
+        out[nan_rows, : t + 4],
+        np.nan,
+    )
+    out[nan_rows, -4] = np.nan
     out[nan_rows, -2] = np.nan
     return out
 
@@ -739,7 +871,9 @@ def fit_peaks(
         (eV), ``peak_area``, ``peak_area_err``, ``peak_height``, ``peak_height_err``,
         ``peak_wavelength`` (nm, vacuum), ``peak_shape`` (+ err) with dims
         (peak, …, y, x); ``background_offset`` (+ ``background_slope``), ``fit_status``
-        (legend in attrs), ``chi2_red`` (dimensionless, with a noise model) or
+        (legend in attrs), ``peak_status`` (peak, …, y, x: each peak's own status, so a
+        spurious component does not discard the good one), ``bic`` (Schwarz's
+        criterion, to see where K peaks are warranted), ``chi2_red`` (dimensionless, with a noise model) or
         ``residual_variance`` (intensity², without one), ``n_iter`` with dims (…, y, x).
 
     Notes
@@ -854,6 +988,16 @@ def _assemble(arr, cube, spec, unc, params, chi2_true):
     st = var(-3, "1", "fit status", legend=FIT_STATUS_LEGEND, flag_values=list(range(7)))
     st.attrs["flag_meanings"] = FIT_STATUS_LEGEND
     dv["fit_status"] = st.astype(np.int8)
+    pst = var([k * _PEAK_FIELDS + _PS for k in range(spec.K)], "1", "fit status of each peak",
+              legend=PEAK_STATUS_LEGEND, flag_values=list(range(7)))
+    pst.attrs["flag_meanings"] = PEAK_STATUS_LEGEND
+    dv["peak_status"] = pst.astype(np.int8)
+    dv["bic"] = var(
+        -4,
+        "1",
+        "Bayesian information criterion of the fit (lower is better; compare runs with "
+        "different numbers of peaks pixel by pixel)",
+    )
     if chi2_true:
         dv["chi2_red"] = var(
             -2, "1", "reduced chi-square (residuals weighted by the noise model)"

@@ -567,6 +567,42 @@ def _spd_inverse(A, scale, L, e, d, cov):
 
 
 @nb.njit(cache=True, error_model="numpy")
+def _cov_inactive(A, p, lo, hi, free_idx, scale, L, e, d, cov, work):
+    """Covariance with parameters at a bound, or without any leverage, held fixed.
+
+    A free parameter at a bound (or whose column of Jᵀ W J is ~0, e.g. the centre of
+    a peak whose area went to 0) carries no Gaussian uncertainty and would make
+    Jᵀ W J singular; it is held fixed (standard practice for bounded least squares),
+    its variance set NaN and its covariances 0, so the others stay defined.
+    """
+    nf = A.shape[0]
+    for a in range(nf):
+        for b in range(nf):
+            work[a, b] = A[a, b]
+    act = np.zeros(nf, dtype=np.bool_)
+    for j in range(free_idx.size):
+        fj = free_idx[j]
+        if fj >= 0 and (p[j] <= lo[j] or p[j] >= hi[j]):
+            act[fj] = True
+    for a in range(nf):
+        if not (A[a, a] > 0.0):  # an exactly zero column (e.g. a peak of zero area)
+            act[a] = True
+    for a in range(nf):
+        if act[a]:
+            for b in range(nf):
+                work[a, b] = 0.0
+                work[b, a] = 0.0
+            work[a, a] = 1.0
+    _spd_inverse(work, scale, L, e, d, cov)
+    for a in range(nf):
+        if act[a]:
+            for b in range(nf):
+                cov[a, b] = 0.0
+                cov[b, a] = 0.0
+            cov[a, a] = np.nan
+
+
+@nb.njit(cache=True, error_model="numpy")
 def _predicted_drop(A, g, d):
     """Cost decrease the quadratic model predicts for step d: 2 d·g − d·A·d."""
     s = 0.0
@@ -714,7 +750,7 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, nv, max_iter, ftol,
             status = STATUS_CONVERGED
             break
     chi2 = cost / dof
-    _spd_inverse(A, chi2 if var_mode == 0 else 1.0, L, e, d, cov)
+    _cov_inactive(A, p, lo, hi, free_idx, chi2 if var_mode == 0 else 1.0, L, e, d, cov, An)
     for j in range(nfull):
         if not math.isfinite(p[j]):
             status = STATUS_FAILED
