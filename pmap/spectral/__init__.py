@@ -16,6 +16,7 @@ from ._axis import channel_edges, to_energy, to_raman_shift, to_wavenumber
 from ._badpixels import hot_channels, mask_bad_pixels
 from ._baseline import als_baseline, remove_baseline, smooth
 from ._calibration import (
+    CalibrationExtrapolationWarning,
     WavelengthCalibration,
     apply_calibration,
     available_line_lists,
@@ -50,6 +51,7 @@ __all__ = [
     "WavelengthCalibration",
     "load_calibration",
     "apply_calibration",
+    "CalibrationExtrapolationWarning",
     # noise model
     "attach_noise_model",
     "estimate_noise_parameters",
