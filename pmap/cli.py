@@ -184,6 +184,17 @@ def _make_client(args: argparse.Namespace):
     return Client(cluster)
 
 
+def _print_fit_summary(ds) -> None:
+    """The fit summary of a result on stderr, and its warning if any."""
+    from .results import fit_summary
+
+    lines, warning = fit_summary(ds)
+    for line in lines:
+        print(f"pmap: {line}", file=sys.stderr)
+    if warning:
+        print(f"pmap: warning: {warning}", file=sys.stderr)
+
+
 def cmd_process(args: argparse.Namespace) -> int:
     from .pipeline import DEFAULT_PIPELINE_TOML, load_pipeline, process
 
@@ -221,6 +232,7 @@ def cmd_process(args: argparse.Namespace) -> int:
                          read_options=dict(read_options), memory_limit=args.memory_limit,
                          client=client)
             print(f"result store: {out}")
+            _print_fit_summary(ds)
             _note_medium(_medium_note_for_result(ds, src, read_options))
             if pipe.output.get("figures", True) and not args.no_figures:
                 from .report import write_figures
@@ -264,6 +276,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         pipe.components = {"method": "nmf", "n_components": args.components}
     ds = process(cube_path, result_path, pipeline=pipe, overwrite=True,
                  progress=not args.quiet)
+    _print_fit_summary(ds)
     figs = write_figures(ds, _figures_dir(result_path))
     figs.append(_demo_spike_figure(cube_path, paths["truth"], _figures_dir(result_path)))
     print(f"result:      {result_path}")

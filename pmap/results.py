@@ -6,7 +6,9 @@ viewer, later steps and users rely on):
 
 - ``peak_energy``, ``peak_energy_err``, ``peak_fwhm``, ``peak_fwhm_err`` (eV),
   ``peak_height``, ``peak_area``: dims (peak, y, x), peaks ascending in energy;
-- ``fit_status`` (int, legend in attrs), ``chi2_red``: (y, x);
+- ``fit_status`` (int, legend in attrs), ``chi2_red`` (dimensionless, with a noise
+  model; ``residual_variance`` without one), ``bic``: (y, x); ``peak_status``
+  (peak, y, x);
 - ``max_energy``, ``centroid_energy`` (eV), ``integrated_intensity``: (y, x);
 - ``region`` (y, x), ``component_spectrum``, ``component_abundance`` and region
   statistics when decomposition ran;
@@ -38,6 +40,7 @@ __all__ = [
     "prepare_output",
     "mark_complete",
     "progress_dir",
+    "fit_summary",
 ]
 
 RESULT_FORMAT_VERSION = 1
@@ -383,3 +386,66 @@ def open_result(path: str | Path, *, require_complete: bool = True) -> xr.Datase
         raise FormatError(f"{p} is incomplete (the run that wrote it did not finish); "
                           "rerun with --resume or --overwrite")
     return ds
+
+
+#: likely cause and remedy of each non-converged fit status (for :func:`fit_summary`)
+_STATUS_CAUSES = {
+    1: "the iteration limit: raise [fit] max_iter, or fit fewer peaks / a simpler model",
+    2: "user-set bounds: widen [fit] bounds",
+    5: "solver failures: check the input for NaN or infinite values and the model choice",
+    6: "implausible fits (centre at the edge of the energy window, width at its limit or "
+       "area <= 0): more peaks than the data support, or the line outside "
+       "[fit] energy_range_ev (compare the bic map between runs with different peaks)",
+}
+_STATUS_WORDS = {0: "converged", 1: "iteration limit", 2: "at a user bound", 3: "no signal",
+                 4: "masked/NaN", 5: "solver failure", 6: "implausible"}
+
+
+def fit_summary(ds: xr.Dataset, *, min_converged: float = 0.8) -> tuple[list[str], str | None]:
+    """What the fit did, for the end of a run: (summary lines, warning or None).
+
+    Counts of every ``fit_status`` (pixels and %), dropped peaks per peak index
+    (``peak_status``), the median reduced χ² (or that there is no noise model),
+    and a warning naming the likely cause when fewer than ``min_converged`` of
+    the pixels with signal (status other than 3 and 4) converged, or when the
+    median χ²_red is far from 1. Reads only the small status and χ² maps.
+    """
+    if "fit_status" not in ds:
+        return [], None
+    st = np.asarray(ds["fit_status"].values).ravel().astype(np.int64)
+    n = st.size
+    counts = np.bincount(np.clip(st, 0, 6), minlength=7)
+    parts = [f"{_STATUS_WORDS[k]} {counts[k]} ({100.0 * counts[k] / max(n, 1):.1f} %)"
+             for k in range(7) if counts[k]]
+    lines = [f"fit: {n} pixels: " + ", ".join(parts)]
+    if "peak_status" in ds and ds.sizes.get("peak", 1) > 1:
+        pst = np.asarray(ds["peak_status"].values).reshape(ds.sizes["peak"], -1)
+        fitted = np.isin(st, (0, 1, 2))
+        drops = [int(np.sum(np.isin(pst[k], (3, 6)) & fitted)) for k in range(pst.shape[0])]
+        lines.append("fit: peaks dropped where the pixel converged (not detected or "
+                     "implausible), by peak (ascending energy): "
+                     + ", ".join(f"#{k} {d}" for k, d in enumerate(drops)))
+    warning = None
+    med = None
+    if "chi2_red" in ds:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            med = float(np.nanmedian(np.asarray(ds["chi2_red"].values)))
+        lines.append(f"fit: median reduced chi-square {med:.3g} (1 when the model and the "
+                     "noise model describe the data)")
+    elif "residual_variance" in ds:
+        lines.append("fit: no noise model: errors are scaled by each pixel's residual "
+                     "(see the attr uncertainty_method)")
+    signal = int(np.sum(~np.isin(st, (3, 4))))
+    conv = int(counts[0])
+    if signal and conv / signal < min_converged:
+        bad = {k: int(counts[k]) for k in (1, 2, 5, 6) if counts[k]}
+        worst = max(bad, key=bad.get) if bad else None
+        cause = _STATUS_CAUSES.get(worst, "unknown")
+        warning = (f"only {100.0 * conv / signal:.0f} % of the {signal} pixels with signal "
+                   f"converged; most of the rest hit {cause}")
+    elif med is not None and np.isfinite(med) and not 0.8 <= med <= 1.25:
+        warning = (f"median reduced chi-square is {med:.3g}, not ~1: the line model or the "
+                   "noise model does not describe the data, so the error bars are off by "
+                   f"about a factor {np.sqrt(med):.2g}")
+    return lines, warning

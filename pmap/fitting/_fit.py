@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import warnings
 from dataclasses import dataclass
 
 import dask.array as da
@@ -11,7 +12,7 @@ import xarray as xr
 
 from ..conventions import HC_EV_NM, integrated_unit
 from ..cube import spectral_dim, validate_cube
-from ..errors import StepError
+from ..errors import PmapNotice, StepError
 from ..noise import get_noise_model, noise_coords
 from ..provenance import with_step
 from ..spectral._axis import channel_edges
@@ -713,6 +714,13 @@ def _noise_setup(cube, noise, read_noise_counts, gain_e_per_count):
     if why is not None:
         if noise == "poisson":
             raise StepError(f"noise='poisson' is not possible: {why}")
+        if noise == "auto" and str(unit).startswith("counts"):
+            warnings.warn(
+                f"fit_peaks: {why}; errors are scaled by each pixel's residual and the fit "
+                "reports residual_variance, not chi2_red",
+                PmapNotice,
+                stacklevel=3,
+            )
         return (
             cube,
             _UNIT_NOISE,

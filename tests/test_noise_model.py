@@ -1,0 +1,162 @@
+"""The noise model that travels with the cube (pmap.noise, pmap.spectral._noise).
+
+Detector model in these tests (common practice for CCD/CMOS spectrometers; photon
+transfer, Janesick, *Photon Transfer*, SPIE Press 2007): counts = Poisson(g·μ)/g +
+Normal(0, r) + dark, with gain g (e⁻/count), read noise r and dark level (bias).
+Expected values come from that model and from Monte Carlo over many independent
+realisations, never from pmap's own formulas.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import dask
+import numpy as np
+import pytest
+import xarray as xr
+
+import pmap
+import pmap.spectral
+from pmap.errors import PmapNotice, StepError
+from pmap.noise import PEDESTAL_COORD, SCALE_COORD, get_noise_model, noise_coords
+
+LAM = np.linspace(700.0, 800.0, 256)
+
+
+def _detector(mu_e, gain, read, dark, rng):
+    """Raw counts for expected photoelectrons ``mu_e``."""
+    return rng.poisson(mu_e) / gain + rng.normal(0.0, read, np.shape(mu_e)) + dark
+
+
+def _cube(counts, attrs=None):
+    return pmap.make_cube(
+        np.asarray(counts, dtype=np.float32), wavelength_nm=LAM, units="counts",
+        attrs={"wavelength_medium": "vacuum", **(attrs or {})},
+    )
+
+
+def _line_e(amplitude=3000.0, bg=40.0):
+    return bg + amplitude * np.exp(-0.5 * ((LAM - 750.0) / 8.0) ** 2)
+
+
+@pytest.mark.parametrize("gain, read, dark", [(1.0, 3.0, 100.0), (2.5, 4.0, 500.0),
+                                              (0.5, 8.0, 0.0)])
+def test_estimated_gain_matches_the_detector(gain, read, dark):
+    # 1600 spectra with a line whose brightness varies by 4x across the map, so that
+    # levels span a range (the photon-transfer slope 1/g is then identifiable)
+    rng = np.random.default_rng(int(gain * 10))
+    scale = rng.uniform(0.25, 1.0, (40, 40, 1))
+    raw = _detector(_line_e()[None, None] * scale, gain, read, dark, rng)
+    est = pmap.spectral.estimate_noise_parameters(raw.reshape(-1, LAM.size))
+    # 3 standard errors of the estimate, and at most 5 % (error bars then within 2.5 %)
+    tol = max(3 * est["a_err"], 0.0)
+    assert abs(est["a"] - 1.0 / gain) <= min(tol, 0.05 / gain) + 1e-12, est
+    # the intercept b = r² − dark/g, within 3 s.e.
+    assert abs(est["b"] - (read**2 - dark / gain)) <= 3 * est["b_err"] + 0.02 * abs(
+        read**2 - dark / gain
+    ), est
+
+
+def test_stated_attrs_give_the_law_without_reading_data():
+    def forbid(*a, **k):
+        raise AssertionError("computed while building the graph")
+
+    cube = _cube(np.ones((4, 5, LAM.size)) * 120, {"gain_e_per_count": 2.0,
+                                                     "read_noise_counts": 5.0,
+                                                     "dark_level_counts": 100.0})
+    with dask.config.set(scheduler=forbid):
+        out = pmap.attach_noise_model(cube)
+    m = get_noise_model(out)
+    assert m.var_per_count == pytest.approx(0.5)
+    assert m.var_offset_counts2 == pytest.approx(25.0 - 100.0 / 2.0)
+    assert not m.correlated
+
+
+def test_variance_follows_every_step_monte_carlo():
+    # n = 6000 independent realisations of one spectrum (one per pixel) through dark
+    # subtraction, exposure, a response curve and the wavelength → energy Jacobian:
+    # the per-channel variance across pixels must equal the model's prediction from the
+    # expected value, s·a·m + s²(a·p + b), within 3 s.e. (s.e. of a variance ratio
+    # ≈ sqrt(2/(n−1)), normal theory) on average over channels, and per channel within 5 s.e.
+    gain, read, dark, t = 2.0, 4.0, 300.0, 0.5
+    rng = np.random.default_rng(7)
+    mu_e = _line_e(2000.0, 30.0)
+    raw = _detector(np.broadcast_to(mu_e, (60, 100, LAM.size)), gain, read, dark, rng)
+    cube = _cube(raw, {"gain_e_per_count": gain, "read_noise_counts": read,
+                       "dark_level_counts": dark, "exposure_s": t})
+    resp = xr.DataArray(np.linspace(0.5, 1.5, LAM.size), dims=("wavelength",),
+                        coords={"wavelength": LAM})
+    c = pmap.attach_noise_model(cube)
+    c = pmap.subtract_dark(c, dark=dark)
+    c = pmap.normalise_exposure(c)
+    c = pmap.correct_response(c, response=resp)
+    c = pmap.to_energy(c)
+    vals = c.values.reshape(-1, c.sizes["energy"]).astype(np.float64)
+    emp_var = vals.var(axis=0, ddof=1)
+    m = vals.mean(axis=0)  # expected value, to within its own tiny s.e.
+    model = get_noise_model(c)
+    s, p = noise_coords(c)
+    s = np.broadcast_to(np.asarray(s.values, dtype=float), m.shape)
+    p = float(np.asarray(p.values).ravel()[0])
+    pred = s * model.var_per_count * m + s**2 * (model.var_per_count * p
+                                                 + model.var_offset_counts2)
+    ratio = emp_var / pred
+    n = vals.shape[0]
+    se = np.sqrt(2.0 / (n - 1))
+    assert abs(ratio.mean() - 1.0) <= 3 * se / np.sqrt(ratio.size) * 3  # channels ~independent
+    assert np.all(np.abs(ratio - 1.0) <= 5 * se)
+    assert SCALE_COORD in c.coords and PEDESTAL_COORD in c.coords
+    assert c.attrs["units"] == "counts/s/eV"
+
+
+def test_constant_baseline_keeps_raw_variance():
+    # subtracting a per-pixel constant keeps the raw variance (the pedestal records it)
+    rng = np.random.default_rng(3)
+    raw = _detector(np.broadcast_to(_line_e(500.0, 20.0), (50, 80, LAM.size)), 1.0, 3.0, 100.0,
+                    rng)
+    cube = _cube(raw, {"gain_e_per_count": 1.0, "read_noise_counts": 3.0,
+                       "dark_level_counts": 100.0})
+    c = pmap.remove_baseline(pmap.attach_noise_model(cube), method="constant", window="edges")
+    vals = c.values.reshape(-1, LAM.size).astype(np.float64)
+    model = get_noise_model(c)
+    _, p = noise_coords(c)
+    p = np.asarray(p.values, dtype=float).reshape(-1)
+    m = vals.mean(axis=0)
+    pred = model.var_per_count * (m + p.mean()) + model.var_offset_counts2
+    ratio = vals.var(axis=0, ddof=1) / pred
+    # the subtracted constant is itself a little noisy (mean of 26 edge channels): its
+    # variance, ~var/52, is common to all channels of a pixel and adds ~2 %
+    assert abs(np.median(ratio) - 1.0) < 0.05
+
+
+@pytest.mark.parametrize("step", ["smooth", "pca", "uniform"])
+def test_channel_mixing_marks_the_noise_correlated(step):
+    rng = np.random.default_rng(1)
+    raw = _detector(np.broadcast_to(_line_e(800.0), (8, 10, LAM.size)), 1.0, 3.0, 100.0, rng)
+    cube = pmap.attach_noise_model(_cube(raw, {"gain_e_per_count": 1.0,
+                                               "read_noise_counts": 3.0,
+                                               "dark_level_counts": 100.0}))
+    if step == "smooth":
+        c = pmap.to_energy(pmap.smooth(cube, window=7))
+    elif step == "pca":
+        c = pmap.to_energy(pmap.pca_denoise(cube, n_components=3))
+    else:
+        c = pmap.to_energy(cube, resample="uniform")
+    assert get_noise_model(c).correlated
+    with pytest.raises(StepError, match="correlated"):
+        pmap.fit_peaks(c, noise="poisson")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PmapNotice)
+        res = pmap.fit_peaks(c)
+    # no Poisson claim: the χ² column is a residual variance, errors scaled by it
+    assert "chi2_red" not in res and "residual_variance" in res
+    assert "correlated" in res.attrs["uncertainty_method"]
+
+
+def test_fit_without_model_says_so():
+    cube = pmap.make_cube(np.ones((2, 3, 50), dtype=np.float32) + np.arange(50),
+                          energy_ev=np.linspace(1.5, 2.0, 50), units="counts/eV")
+    with pytest.warns(PmapNotice, match="no noise model"):
+        res = pmap.fit_peaks(cube)
+    assert "residual_variance" in res
