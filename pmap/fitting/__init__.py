@@ -6,7 +6,14 @@ without fitting; the line-shape functions are the exact definitions the fits use
 """
 
 from ._descriptors import spectral_descriptors
-from ._fit import FIT_STATUS_LEGEND, evaluate_fit, fit_peaks, model_spectrum
+from ._fit import (
+    FIT_STATUS_LEGEND,
+    PEAK_STATUS_LEGEND,
+    evaluate_fit,
+    fit_peaks,
+    model_spectrum,
+)
+from ._instrument import intrinsic_widths, measure_instrument_fwhm
 from ._lineshapes import (
     gaussian,
     lorentzian,
@@ -17,7 +24,7 @@ from ._lineshapes import (
     voigt_fwhm,
     voigt_widths,
 )
-from ._physics import bandgap_from_peak, peak_shift
+from ._physics import band_to_band_offset_ev, bandgap_from_peak, peak_shift
 
 __all__ = [
     "fit_peaks",
@@ -25,6 +32,10 @@ __all__ = [
     "evaluate_fit",
     "model_spectrum",
     "FIT_STATUS_LEGEND",
+    "PEAK_STATUS_LEGEND",
+    "measure_instrument_fwhm",
+    "intrinsic_widths",
+    "band_to_band_offset_ev",
     "gaussian",
     "lorentzian",
     "voigt",

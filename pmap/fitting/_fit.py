@@ -19,6 +19,8 @@ from ..spectral._axis import channel_edges
 from ..steps import materialize, register_step
 from . import _kernels as K
 from ._common import fwhm_at_half, smooth3
+from ._instrument import MODELS as _INSTRUMENT_MODELS
+from ._instrument import deconvolve_peak, instrument_fwhm_ev, measure_instrument_fwhm
 from ._lineshapes import (
     FWHM_TO_SIGMA,
     _voigt0,
@@ -77,7 +79,8 @@ _ALIASES = {
     "asymmetry": "shape",
 }
 _BACKGROUNDS = {"none": 0, "constant": 1, "linear": 2}
-_PEAK_FIELDS = 11  # energy, err, fwhm, err, area, err, height, err, shape, err, status
+# energy, err, fwhm, err, area, err, height, err, shape, err, status, apparent fwhm, err
+_PEAK_FIELDS = 13
 _PS = 10  # index of the per-peak status within a peak's fields
 # relative cost / step tolerances, as MINPACK's defaults used by scipy curve_fit
 _FTOL = _XTOL = 1.49012e-8
@@ -107,6 +110,7 @@ class _Spec:
     xref: float
     init: str
     xe: np.ndarray  # channel edges (n + 1): the model is averaged over each channel
+    instrument: dict | None = None  # Gaussian instrument FWHM: {"fwhm_ev": …} or {"fwhm_nm": …}
 
     @property
     def nfull(self) -> int:
@@ -644,6 +648,16 @@ def _postprocess(P, COV, chi2, st, niter, spec, weighted=True, min_snr=5.0):
         out[:, base + 6], out[:, base + 7] = h, h_err
         if npp == 4:
             out[:, base + 8], out[:, base + 9] = P[:, o + 3], err[:, o + 3]
+        out[:, base + 11], out[:, base + 12] = P[:, o + 1], err[:, o + 1]
+        if spec.instrument is not None:  # the intrinsic line under the instrument function
+            fi = instrument_fwhm_ev(P[:, o], **spec.instrument)
+            j = [o + 1, o + 3] if npp == 4 else [o + 1]
+            fw_i, fw_e, sh_i, sh_e = deconvolve_peak(
+                spec.model, P[:, o + 1], err[:, o + 1], P[:, o + 3] if npp == 4 else None,
+                C[:, j][:, :, j], fi)
+            out[:, base + 2], out[:, base + 3] = fw_i, fw_e
+            if npp == 4:
+                out[:, base + 8], out[:, base + 9] = sh_i, sh_e
         pst = np.where(peak_bad[:, k], 6, np.where(peak_faint[:, k], 3, status))
         pst = np.where(np.isin(status, (3, 4, 5, 6)) | (status < 0), status, pst)
         drop = np.isin(pst, (3, 4, 5, 6))
@@ -823,6 +837,9 @@ def fit_peaks(
     noise: str = "auto",
     energy_range_ev=None,
     min_snr: float = 5.0,
+    instrument_fwhm_ev: float | None = None,
+    instrument_fwhm_nm: float | None = None,
+    instrument_lamp=None,
 ) -> xr.Dataset:
     """Fit a sum of peaks plus background to every spectrum of an energy cube (lazy).
 
@@ -871,6 +888,15 @@ def fit_peaks(
         ``min_snr`` × noise are not fitted (status 3, NaN); with one peak, a fitted
         area below ``min_snr`` × its 1σ uncertainty also gives status 3 (the fit
         latched onto noise).
+    instrument_fwhm_ev, instrument_fwhm_nm : float, optional
+        FWHM of a Gaussian instrument function, in eV or in nm (then E²/hc × it at
+        each peak's energy). The model is the line convolved with it (exact for
+        "gaussian" and "voigt", the models it applies to): ``peak_fwhm`` (and the
+        Voigt ``lorentz_fraction``) are the intrinsic line's, NaN where the line is
+        not wider than the instrument; ``peak_fwhm_apparent`` is the fitted width.
+    instrument_lamp : DataArray or path, optional
+        Measure the instrument FWHM (nm) from the strongest line of this lamp
+        spectrum instead (:func:`pmap.fitting.measure_instrument_fwhm`).
 
     Returns
     -------
@@ -902,6 +928,9 @@ def fit_peaks(
     (see attr ``uncertainty_method``). Cost per spectrum ~ passes × channels × peaks.
     """
     params = {k: v for k, v in locals().items() if k != "cube"}  # the options, for provenance
+    if instrument_lamp is not None:
+        params["instrument_lamp"] = str(instrument_lamp) if not isinstance(
+            instrument_lamp, xr.DataArray) else "DataArray"
     cube = validate_cube(cube, chunks=_spatial_chunks(cube))
     if spectral_dim(cube) != "energy":
         raise StepError(
@@ -924,6 +953,25 @@ def fit_peaks(
         shared=shared,
         init=init,
     )
+    given = [v for v in (instrument_fwhm_ev, instrument_fwhm_nm, instrument_lamp) if v is not None]
+    if len(given) > 1:
+        raise StepError("give one of instrument_fwhm_ev, instrument_fwhm_nm, instrument_lamp")
+    if given:
+        if model not in _INSTRUMENT_MODELS:
+            raise StepError(
+                f"an instrument function is convolved exactly for the models "
+                f"{', '.join(_INSTRUMENT_MODELS)}; a {model} line seen through a Gaussian "
+                "instrument is a Voigt profile: use model='voigt'"
+            )
+        if instrument_lamp is not None:
+            measured = measure_instrument_fwhm(instrument_lamp)
+            instrument_fwhm_nm = measured["fwhm_nm"]
+            params["instrument_measured"] = measured
+        key, val = (("fwhm_ev", instrument_fwhm_ev) if instrument_fwhm_ev is not None
+                    else ("fwhm_nm", instrument_fwhm_nm))
+        if not (np.isfinite(float(val)) and float(val) > 0):
+            raise StepError(f"instrument FWHM must be positive, got {val!r}")
+        spec.instrument = {key: float(val)}
     n_par = spec.nfree
     if x.size <= n_par:
         raise StepError(f"{x.size} channels cannot fit {n_par} free parameters")
@@ -980,6 +1028,16 @@ def _assemble(arr, cube, spec, unc, params, chi2_true):
             sname, sdesc = SHAPE_NAMES[spec.model]
             long = f"peak {sname}: {sdesc}" + (" (1-sigma uncertainty)" if "err" in name else "")
         dv[name] = var([k * _PEAK_FIELDS + i for k in range(spec.K)], u, long)
+    if spec.instrument is not None:
+        (key, val), = spec.instrument.items()
+        what = f"{val:g} {'eV' if key == 'fwhm_ev' else 'nm'}"
+        for i, suffix, long in ((11, "", "apparent FWHM (line convolved with the instrument)"),
+                                (12, "_err", "1-sigma uncertainty of the apparent FWHM")):
+            dv[f"peak_fwhm_apparent{suffix}"] = var(
+                [k * _PEAK_FIELDS + i for k in range(spec.K)], "eV", long)
+        dv["peak_fwhm"].attrs["long_name"] = (
+            f"intrinsic peak FWHM (Gaussian instrument function of FWHM {what} "
+            "deconvolved; NaN where not wider than the instrument)")
     dv["peak_wavelength"] = xr.Variable(
         dv["peak_energy"].dims,
         HC_EV_NM / dv["peak_energy"].data,
@@ -1045,6 +1103,9 @@ def _assemble(arr, cube, spec, unc, params, chi2_true):
     )
     if spec.npp == 4:
         attrs["fit_shape_parameter"] = SHAPE_NAMES[spec.model][0]
+    if spec.instrument is not None:
+        (key, val), = spec.instrument.items()
+        attrs[f"fit_instrument_{key}"] = val
     return xr.Dataset(dv, coords=coords, attrs=attrs)
 
 

@@ -401,7 +401,7 @@ def _phi_diff(t_lo, pos_lo, t_hi, pos_hi):
 
 
 @nb.njit(cache=True, error_model="numpy", fastmath=FM)
-def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv):
+def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv, gb):
     """One Gaussian + constant offset: costs, new weights and normal equations in one pass.
 
     Slots [centre, fwhm, area, offset] (without a background the offset column is
@@ -414,7 +414,9 @@ def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv):
     (Σ w r², Σ wn r²): the cost under the old and the new weights. The Gaussian and
     its derivatives are evaluated only within ±9σ of the centre (beyond, they are
     below 2.2e-16, the double-precision epsilon, times their maximum); the offset
-    terms use every channel.
+    terms use every channel. ``gb`` (3, n): work rows for the model and its two
+    derivatives over the window (filled first, then summed in a second loop, so that
+    both loops vectorise).
     """
     c = p[0]
     fw = p[1]
@@ -440,30 +442,34 @@ def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv):
     # the peak window as views, so loop indices are provably ≥ 0 (no wrap-around code)
     x, y, w, wn = x[i0:i1], y[i0:i1], w[i0:i1], wn[i0:i1]
     sa, q, fl, xe = sa[i0:i1], q[i0:i1], fl[i0:i1], xe[i0 : i1 + 1]
-    exact = sig < 2.0 * dmax
-    v_lo = (xe[0] - c) * inv_s
-    t_lo, p_lo = _tail(v_lo)
-    ph_lo = _exp_neg(-0.5 * v_lo * v_lo) * _INV_SQRT_2PI
-    for i in range(x.size):
-        if exact:
+    nw = x.size
+    g_, d0, d1 = gb[0, :nw], gb[1, :nw], gb[2, :nw]
+    if sig < 2.0 * dmax:  # exact channel integrals (edges shared by neighbours)
+        v_lo = (xe[0] - c) * inv_s
+        t_lo, p_lo = _tail(v_lo)
+        ph_lo = _exp_neg(-0.5 * v_lo * v_lo) * _INV_SQRT_2PI
+        for i in range(nw):
             v_hi = (xe[i + 1] - c) * inv_s
             t_hi, p_hi = _tail(v_hi)
             ph_hi = _exp_neg(-0.5 * v_hi * v_hi) * _INV_SQRT_2PI
             idw = 1.0 / (xe[i + 1] - xe[i])
-            gi = _phi_diff(t_lo, p_lo, t_hi, p_hi) * idw
-            j0 = A * idw * (ph_lo - ph_hi) * inv_s
-            j1 = A * idw * (ph_lo * v_lo - ph_hi * v_hi) * inv_fw
+            g_[i] = _phi_diff(t_lo, p_lo, t_hi, p_hi) * idw
+            d0[i] = A * idw * (ph_lo - ph_hi) * inv_s
+            d1[i] = A * idw * (ph_lo * v_lo - ph_hi * v_hi) * inv_fw
             v_lo, t_lo, p_lo, ph_lo = v_hi, t_hi, p_hi, ph_hi
-        else:
+    else:  # midpoint value plus its curvature term
+        for i in range(nw):
             u = (x[i] - c) * inv_s
             uu = u * u
             G = _exp_neg(-0.5 * uu) * norm
             dw = (xe[i + 1] - xe[i]) * inv_s
             h = dw * dw * (1.0 / 24.0)
             T = 1.0 + h * (uu - 1.0)
-            gi = G * T
-            j0 = A * G * u * inv_s * (T - 2.0 * h)
-            j1 = A * G * inv_fw * ((uu - 1.0) * T - 2.0 * h * (2.0 * uu - 1.0))
+            g_[i] = G * T
+            d0[i] = A * G * u * inv_s * (T - 2.0 * h)
+            d1[i] = A * G * inv_fw * ((uu - 1.0) * T - 2.0 * h * (2.0 * uu - 1.0))
+    for i in range(nw):
+        gi, j0, j1 = g_[i], d0[i], d1[i]
         fi = A * gi + b0
         r = y[i] - fi
         wo = w[i]
@@ -646,13 +652,13 @@ def _model_avg(model, x, x3, xref, p, K, nbg, f, J, f3, J3, narrow_lim):
 def _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, nv, f, wn, A, g):
     """Model, costs, new weights and normal equations at p; returns (cost_old_w, cost_new_w).
 
-    ``wk`` = (x, xref, model, K, nbg, J, Jf, H, gv, wj, xe, x3, f3, J3, dmax) work
+    ``wk`` = (x, xref, model, K, nbg, J, Jf, H, gv, wj, xe, x3, f3, J3, dmax, gb) work
     items; ``fused``: the single-Gaussian one-pass kernel, else channel-averaged
     model + Jacobian columns then dot products. ``nv`` = (sa, q, fl): the noise law.
     """
-    x, xref, model, K, nbg, J, Jf, H, gv, wj, xe, x3, f3, J3, dmax = wk
+    x, xref, model, K, nbg, J, Jf, H, gv, wj, xe, x3, f3, J3, dmax, gb = wk
     if fused:
-        c_old, c_new = _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv)
+        c_old, c_new = _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv, gb)
         _collapse_normal(H, gv, free_idx, A, g)
         return c_old, c_new
     _model_avg(model, x, x3, xref, p, K, nbg, f, J, f3, J3, _NARROW_CHANNELS * dmax)
@@ -800,7 +806,7 @@ def lm_batch(Y, rows, x, xe, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, v
         x3[3 * c], x3[3 * c + 1], x3[3 * c + 2] = mid - h, mid, mid + h
     wk = (x, xref, model, K, nbg, np.zeros((nfull, n)), np.zeros((nfree, n)),
           np.zeros((4, 4)), np.zeros(4), np.empty(n), xe, x3, np.empty(3 * n),
-          np.zeros((nfull, 3 * n)), dmax)  # fmt: skip
+          np.zeros((nfull, 3 * n)), dmax, np.empty((3, n)))  # fmt: skip
     sa, q, fl = np.ones(n), np.zeros(n), np.ones(n)
     nv = (sa, q, fl)
     s_wide, p_wide = VS.shape[1] > 1, VP.shape[1] > 1
