@@ -26,6 +26,7 @@ from ._calibration import (
     reference_lines,
 )
 from ._corrections import correct_response, normalise_exposure, response_from_lamp, subtract_dark
+from ._detect import detect_signal
 from ._noise import attach_noise_model, estimate_noise_parameters
 from ._pca import PCA_RULES, choose_n_components, pca_denoise
 from ._spikes import remove_spikes, spike_candidates
@@ -55,6 +56,7 @@ __all__ = [
     # noise model
     "attach_noise_model",
     "estimate_noise_parameters",
+    "detect_signal",
     # corrections
     "subtract_dark",
     "correct_response",
