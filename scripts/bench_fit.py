@@ -88,7 +88,7 @@ def main(argv=None):
     cube = pmap.make_cube(
         y.reshape(ny, -1, n_ch),
         energy_ev=e,
-        attrs={"gain_e_per_count": 1.0, "read_noise_counts": 0.0},
+        attrs={"gain_e_per_count": 1.0, "read_noise_counts": 0.0, "dark_level_counts": 0.0},
         chunks={"y": 10, "x": -1},
     )
     # warm-up (JIT load from cache / compile) on a small cube, not timed
