@@ -20,7 +20,8 @@ from .errors import PmapError, PmapNotice
 
 __all__ = ["main", "build_parser"]
 
-EXIT_USER_ERROR = 2
+EXIT_USER_ERROR = 2  # usage and data errors
+EXIT_INTERNAL_ERROR = 1  # a bug in pmap
 EXIT_INTERRUPTED = 130
 
 
@@ -210,6 +211,8 @@ def cmd_process(args: argparse.Namespace) -> int:
             regions = int(regions)
         except ValueError:
             raise PmapError(f"--regions takes a number or 'auto', got {regions!r}") from None
+        if regions < 1:
+            raise PmapError(f"--regions takes 'auto' or a number >= 1, got {regions}")
     inputs = _expand_inputs(args.cube)
     for p in inputs:
         if not p.exists():
@@ -219,6 +222,12 @@ def cmd_process(args: argparse.Namespace) -> int:
     outputs = ([out_dir / (p.name.split(".")[0] + "_result.zarr") for p in inputs] if many
                else [out_dir])
     read_options = _apply_medium(_read_options(args), args.medium)
+    if args.memory_limit is not None:
+        from .pipeline import MIN_MEMORY_BYTES, parse_memory
+
+        if parse_memory(args.memory_limit) < MIN_MEMORY_BYTES:
+            raise PmapError(f"--memory-limit {args.memory_limit} is below the "
+                            f"{MIN_MEMORY_BYTES // 2**20} MiB pmap needs to run at all")
     client = _make_client(args)
     summaries = []
     try:
@@ -450,7 +459,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except BrokenPipeError:  # output piped into `head` and closed early
         sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silence the flush at exit
         return 0
-    except (PmapError, OSError, ValueError, KeyError) as exc:
+    except (PmapError, OSError) as exc:  # bad input, a missing or unreadable file
         if debug:
             traceback.print_exc()
         msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
@@ -458,3 +467,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             msg = f"{type(exc).__name__}: {msg}"
         print(f"pmap: error: {msg}", file=sys.stderr)
         return EXIT_USER_ERROR
+    except Exception as exc:  # anything else is a bug in pmap, not the user's mistake
+        if debug:
+            traceback.print_exc()
+        msg = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+        print(f"pmap: internal error: {type(exc).__name__}: {msg} (a bug in pmap; rerun with "
+              "--debug for the traceback and please report it)", file=sys.stderr)
+        return EXIT_INTERNAL_ERROR

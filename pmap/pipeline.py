@@ -170,7 +170,7 @@ def load_pipeline(source: str | Path | None = None) -> Pipeline:
             raise StepError(f"pipeline {origin}: [[steps]] entry {i + 1} has no 'step' name")
         params = dict(entry)
         name = params.pop("step")
-        get_step(name)  # raises StepError for unknown names
+        _check_keys(origin, f"[[steps]] {name!r}", get_step(name).func, params)
         steps.append((name, params))
     props = raw.get("properties")
     if props is not None:
@@ -180,6 +180,15 @@ def load_pipeline(source: str | Path | None = None) -> Pipeline:
                             f"known: {sorted(_PROPERTY_KEYS)}")
         if "fit" not in raw:
             raise StepError(f"pipeline {origin}: [properties] needs a [fit] table")
+    from .decomposition import decompose, segment
+    from .fitting import fit_peaks, spectral_descriptors
+
+    for table, func in (("descriptors", spectral_descriptors), ("fit", fit_peaks),
+                        ("components", decompose), ("regions", segment)):
+        if isinstance(raw.get(table), dict):
+            _check_keys(origin, f"[{table}]", func, raw[table])
+    if isinstance(raw.get("regions"), dict):
+        _check_regions(raw["regions"].get("n_regions", "auto"))
     output = {"figures": True, "keep_cube": "auto"}
     output.update(raw.get("output", {}))
     bad = set(output) - _OUTPUT_KEYS
@@ -195,6 +204,59 @@ def load_pipeline(source: str | Path | None = None) -> Pipeline:
         output=output,
         source=origin,
     )
+
+
+def _check_keys(origin: str, where: str, func: Any, params: dict) -> None:
+    """Refuse keys that ``func`` does not take, with a "did you mean" suggestion."""
+    import difflib
+    import inspect
+
+    sig = inspect.signature(func)
+    if any(p.kind is p.VAR_KEYWORD for p in sig.parameters.values()):
+        return
+    known = [n for i, (n, p) in enumerate(sig.parameters.items())
+             if i > 0 and p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD)]
+    for key in params:
+        if key not in known:
+            close = difflib.get_close_matches(str(key), known, n=1)
+            hint = f"; did you mean {close[0]!r}?" if close else f"; known: {', '.join(known)}"
+            raise StepError(f"pipeline {origin}: unknown key {key!r} in {where}{hint}")
+
+
+def _check_regions(n: Any) -> None:
+    """``n_regions`` must be "auto" or an integer ≥ 1 (checked before any output exists)."""
+    if n == "auto":
+        return
+    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
+        raise StepError(f"the number of regions must be 'auto' or an integer >= 1, got {n!r}")
+
+
+#: Smallest memory limit the command line accepts: the interpreter, numpy, numba and
+#: dask alone hold about BASE_MEMORY_BYTES before the first chunk (the API takes any
+#: limit, which tests use to force tiny chunks).
+MIN_MEMORY_BYTES = 256 * 2**20
+
+
+def _refuse_empty(cube: xr.DataArray) -> None:
+    """StepError when the cube holds no finite value (checked before any output exists).
+
+    A few chunks spread over the map are read first; only when they are all empty is
+    the whole cube scanned, so a normal cube costs a few chunk reads.
+    """
+    import dask.array as da
+
+    data = cube.data
+    if isinstance(data, da.Array):
+        grid = [len(c) for c in data.chunks]
+        n = int(np.prod(grid))
+        for k in np.unique(np.linspace(0, n - 1, min(4, n)).round().astype(int)):
+            if np.isfinite(np.asarray(data.blocks[np.unravel_index(k, grid)])).any():
+                return
+        has = bool(da.isfinite(data).any().compute())
+    else:
+        has = bool(np.isfinite(np.asarray(data)).any())
+    if not has:
+        raise StepError("the cube holds no finite values (all NaN or empty): nothing to process")
 
 
 def _run_step(name: str, cube: xr.DataArray, params: dict) -> Any:
@@ -414,6 +476,7 @@ def process(
     if components is not None:
         pipe.components = {**(pipe.components or {}), "n_components": int(components)}
     if regions is not None:
+        _check_regions(regions)
         pipe.regions = {**(pipe.regions or {}), "n_regions": regions}
     out = Path(out)
     if resume and out.exists() and is_result_store(out):
@@ -437,6 +500,7 @@ def process(
         in_path = Path(source)
         # chunks chosen at open time, aligned with the stored chunks (no re-reads)
         cube = open_cube(in_path, target_chunk_mib=chunk_mib, **(read_options or {}))
+    _refuse_empty(cube)
     if not (resume and out.exists()):
         prepare_output(out, overwrite=overwrite, input_paths=(in_path,))
     if spectral_dim(cube) == "wavelength" and not any(n == "to_energy" for n, _ in pipe.steps):

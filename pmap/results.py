@@ -101,6 +101,15 @@ def is_result_store(path: str | Path) -> bool:
         return False
 
 
+def _is_complete(path: Path) -> bool:
+    try:
+        import zarr
+
+        return bool(zarr.open_group(str(path), mode="r").attrs.get("pmap_complete", False))
+    except Exception:  # unreadable metadata: not a complete result
+        return False
+
+
 def prepare_output(path: str | Path, *, overwrite: bool, input_paths: tuple = ()) -> Path:
     """Check that a result can be written to ``path``; remove an old result if overwrite.
 
@@ -113,6 +122,10 @@ def prepare_output(path: str | Path, *, overwrite: bool, input_paths: tuple = ()
             raise OutputExistsError(f"output {p} is the input file; choose another output path")
     if p.exists():
         if not overwrite:
+            if is_result_store(p) and not _is_complete(p):
+                raise OutputExistsError(
+                    f"{p} is an incomplete result (an interrupted run): use --resume to "
+                    "continue it or --overwrite to start again")
             raise OutputExistsError(f"{p} exists; pass --overwrite (overwrite=True) to replace it")
         if not is_result_store(p):
             raise OutputExistsError(
