@@ -451,6 +451,10 @@ def main(argv: Sequence[str] | None = None) -> int:
                   file=sys.stderr, end="")
 
     warnings.showwarning = _notice
+    # numerical warnings of the libraries (empty slices, NaN comparisons) are handled
+    # where they matter; on the terminal they would only confuse
+    for mod in ("numpy", "dask", "xarray", "scipy", "zarr", "numcodecs"):
+        warnings.filterwarnings("ignore", category=RuntimeWarning, module=rf"{mod}(\.|$)")
     try:
         return int(func(args) or 0)
     except KeyboardInterrupt:
