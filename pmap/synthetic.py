@@ -104,8 +104,13 @@ from .conventions import HC_EV_NM
 from .cube import validate_cube
 from .errors import InputFileError, StepError
 from .provenance import with_step
+from .scenes import SCENES, Scene, make_scene, scene_names
 
 __all__ = [
+    "SCENES",
+    "Scene",
+    "make_scene",
+    "scene_names",
     "DEMO_SIZES",
     "NOISE_BLOCK",
     "PEAK_NAMES",

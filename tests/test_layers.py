@@ -14,6 +14,7 @@ LAYERS = {
     "errors": 0, "conventions": 0, "airvac": 0, "_version": 0, "provenance": 0, "steps": 0, "cube": 0,
     "_progress": 0, "noise": 0,
     "io": 1, "synthetic": 1,
+    "scenes": 1,
     "spectral": 2,
     "fitting": 3, "decomposition": 3,
     "results": 4,
