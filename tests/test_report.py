@@ -134,7 +134,9 @@ def test_plot_labels_legend_names(tmp_path, tiny_demo):
     _, info, _ = png_info(report.plot_labels(truth["region"], tmp_path / "r.png"))
     present = sorted(int(v) for v in np.unique(truth["region"].values))
     assert info["codes"] == present
-    names = dict(zip([-1, 0, 1, 2], truth["region"].attrs["flag_meanings"].split()))
+    # CF flag_meanings tokens, drawn with blanks for underscores
+    tokens = truth["region"].attrs["flag_meanings"].split()
+    names = dict(zip([-1, 0, 1, 2], [t.replace("_", " ") for t in tokens]))
     assert info["names"] == [names[c] for c in present]
     lab = xr.DataArray(np.array([[0, 1], [1, 2]]), dims=("y", "x"), name="cluster")
     _, info2, _ = png_info(report.plot_labels(lab, tmp_path / "c.png", names=["a", "b", "c"]))

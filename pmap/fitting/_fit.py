@@ -47,6 +47,10 @@ FIT_STATUS_LEGEND = (
     "6=implausible: centre, width or area at its physical limit (edge of the energy axis, "
     "width at the channel spacing or the axis span, area <= 0) (NaN)"
 )
+#: CF ``flag_meanings`` tokens of the status codes 0–6 (both status variables)
+STATUS_FLAG_MEANINGS = (
+    "converged iteration_limit user_bound no_signal masked_or_nan solver_failure implausible"
+)
 PEAK_STATUS_LEGEND = (
     "0=converged;1=iteration limit reached (values kept);2=a parameter at a user-set bound "
     "(values kept);3=not detected: area below min_snr times its 1-sigma, or too little "
@@ -1051,12 +1055,13 @@ def _assemble(arr, cube, spec, unc, params, chi2_true):
         su, ref = f"{unit}/eV", {"reference_energy_ev": spec.xref}
         dv["background_slope"] = var(t + 2, su, "background slope", **ref)
         dv["background_slope_err"] = var(t + 3, su, "1-sigma uncertainty", **ref)
-    st = var(-3, "1", "fit status", legend=FIT_STATUS_LEGEND, flag_values=list(range(7)))
-    st.attrs["flag_meanings"] = FIT_STATUS_LEGEND
+    # CF flags: flag_values of the variable's own type, flag_meanings as blank-separated
+    # tokens (CF-1.10 §3.5); the prose is in "legend"
+    flags = {"flag_values": np.arange(7, dtype=np.int8), "flag_meanings": STATUS_FLAG_MEANINGS}
+    st = var(-3, "1", "fit status", legend=FIT_STATUS_LEGEND, **flags)
     dv["fit_status"] = st.astype(np.int8)
     pst = var([k * _PEAK_FIELDS + _PS for k in range(spec.K)], "1", "fit status of each peak",
-              legend=PEAK_STATUS_LEGEND, flag_values=list(range(7)))
-    pst.attrs["flag_meanings"] = PEAK_STATUS_LEGEND
+              legend=PEAK_STATUS_LEGEND, **flags)
     dv["peak_status"] = pst.astype(np.int8)
     dv["bic"] = var(
         -4,
