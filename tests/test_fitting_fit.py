@@ -126,11 +126,13 @@ def test_no_signal_and_nan_pixels():
     data = rng.poisson(gaussian(E, 1.5, 0.05, 20.0) + 10.0, size=(2, 3, E.size)).astype(float)
     data[0, 0] = rng.poisson(10.0, E.size)  # noise only
     data[0, 1] = 0.0  # empty
-    data[0, 2, 5] = np.nan  # masked channel
+    data[0, 2, :120] = np.nan  # most channels masked: nothing left to fit
+    data[1, 0, [5, 80, 81]] = np.nan  # a few masked channels: left out, the pixel is fitted
     res = fit_peaks(_cube(data)).compute()
     st = res.fit_status.values
     assert st[0, 0] == 3 and st[0, 1] == 3 and st[0, 2] == 4
     assert np.all(st[1] == 0)
+    assert abs(float(res.peak_energy.values[0, 1, 0]) - 1.5) < 0.005
     assert np.all(np.isnan(res.peak_energy.values[0, 0]))
     assert "0=converged" in res.fit_status.attrs["legend"]
 

@@ -274,6 +274,23 @@ def _build_spec(x, *, model, peaks, background, bounds, fixed, shared, init) -> 
     )
 
 
+def _filled(Y):
+    """Y with masked (non-finite) channels filled by linear interpolation along each row,
+    and the number of finite channels per row (descriptors and starting values only:
+    the fit itself gives masked channels zero weight)."""
+    ok = np.isfinite(Y)
+    n_ok = ok.sum(axis=1)
+    bad_rows = np.flatnonzero((n_ok < Y.shape[1]) & (n_ok >= 2))
+    if bad_rows.size == 0:
+        return Y, n_ok
+    F = np.array(Y, dtype=np.float64, copy=True)
+    idx = np.arange(Y.shape[1])
+    for r in bad_rows:
+        g = ok[r]
+        F[r, ~g] = np.interp(idx[~g], idx[g], F[r, g])
+    return F, n_ok
+
+
 def _quick_desc(Y, x):
     """Per-row descriptors (one compiled pass, see ``describe_rows``).
 
@@ -394,7 +411,8 @@ def _template(mean, spec):
     the one-peak start) so that pixels can shift it to their own position.
     """
     x = spec.x
-    Y = np.ascontiguousarray(mean[None, :], dtype=np.float64)
+    Y = np.ascontiguousarray(_filled(np.asarray(mean, dtype=np.float64)[None, :])[0])
+    mean = Y[0]
     _, _, _, _, (b, e_max, height, fw) = _quick_desc(Y, x)
     bg = [b[0], 0.0][: spec.nbg]
     npp = spec.npp
@@ -502,7 +520,11 @@ def _fit_rows(Y, mean, spec, nz, max_iter, min_snr, VS=_ONE, VP=_ZERO):
     """
     m = Y.shape[0]
     out = np.full((m, _PEAK_FIELDS * spec.K + _N_TAIL), np.nan)
-    finite, b, height, noise, start = _quick_desc(Y, spec.x)
+    Yf, n_ok = _filled(Y)
+    finite, b, height, noise, start = _quick_desc(Yf, spec.x)
+    # masked channels (bad-pixel masking) are left out of the fit; a spectrum with too
+    # few channels left is "masked or NaN input"
+    finite &= n_ok >= max(spec.nfree + 3, Y.shape[1] // 2)
     if nz[0] == 1:  # the noise law's σ at the base level, mid-axis, as a floor
         var_mode, a, bb, floor = nz
         mid = Y.shape[1] // 2
@@ -556,7 +578,7 @@ def _retry(Y, rows, res, spec, nz, max_iter, min_snr, VS, VP, desc):
     shape0 = _SHAPE_START.get(spec.model, 0.0)
     starts = [np.full((again.size, spec.nfull), np.nan) for _ in range(2)]
     for r, i in enumerate(again):
-        y = np.asarray(Y[rows[i]], dtype=np.float64)
+        y = _filled(np.asarray(Y[rows[i]], dtype=np.float64)[None, :])[0][0]
         g = _d2_peaks(spec.x, y - b[r], spec.K, float(fw[r]))
         if len(g) == spec.K:
             starts[0][r, :nb] = [v for c, w, h in g for v in (c, w, h * w * 1.0645, shape0)[:npp]]

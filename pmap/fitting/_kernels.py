@@ -307,11 +307,11 @@ def _set_weights(f, y, var_mode, nv, w):
     ``nv`` = (sa, q, fl) per channel: variance = max(sa·value + q, fl) (see
     :mod:`pmap.noise`: sa = a·s, q = s²(a·p + b), fl = s²·floor).
     """
-    if var_mode == 0:
-        for i in range(w.size):
-            w[i] = 1.0
-        return
     sa, q, fl = nv
+    if var_mode == 0:  # unit weights; 0 where the variance is infinite (masked channel)
+        for i in range(w.size):
+            w[i] = 1.0 if fl[i] < np.inf else 0.0
+        return
     if var_mode == 1:
         for i in range(w.size):
             w[i] = 1.0 / max(sa[i] * f[i] + q[i], fl[i])
@@ -688,7 +688,12 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, nv, max_iter, ftol,
     n = y.size
     nfull = p.size
     nfree = small_vec.shape[1]
-    dof = max(n - nfree, 1)
+    fl = nv[2]
+    n_used = 0
+    for i in range(n):
+        if fl[i] < np.inf:
+            n_used += 1
+    dof = max(n_used - nfree, 1)
     f, fn, w, wn = vec[0], vec[1], vec[2], vec[3]
     A, An, L, cov = mats[0], mats[1], mats[2], mats[3]
     g, gn, d, e = small_vec[0], small_vec[1], small_vec[2], small_vec[3]
@@ -816,8 +821,6 @@ def lm_batch(Y, rows, x, xe, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, v
     p = np.empty(nfull)
     for k in range(m):
         i = rows[k]
-        for c in range(n):
-            y[c] = Y[i, c]
         if var_mode != 0:
             si, pi = min(i, VS.shape[0] - 1), min(i, VP.shape[0] - 1)
             for c in range(n):
@@ -826,6 +829,15 @@ def lm_batch(Y, rows, x, xe, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, v
                 sa[c] = va * sc
                 q[c] = sc * sc * (va * pc + vb)
                 fl[c] = sc * sc * vfl
+        for c in range(n):  # a masked (NaN) channel: infinite variance, weight 0
+            v = Y[i, c]
+            if math.isfinite(v):
+                y[c] = v
+                if var_mode == 0:
+                    fl[c] = 1.0
+            else:
+                y[c] = 0.0
+                fl[c] = np.inf
         for j in range(nfull):
             p[j] = P0[k, j]
         st, c2, it = _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, nv,
