@@ -65,3 +65,16 @@ def test_option_changes_the_threshold():
     assert a.attrs["threshold_sigma"] < b.attrs["threshold_sigma"]
     with pytest.raises(pmap.errors.StepError):
         pmap.spectral.detect_signal(cube, false_alarm=2.0)
+
+
+@pytest.mark.parametrize("name", __import__("pmap.scenes", fromlist=["scene_names"]).scene_names())
+def test_emitting_pixels_of_every_scene_are_found(name):
+    # the scene bank's truth says which pixels emit; spikes removed and bad values
+    # masked first, as in the default pipeline
+    from pmap.scenes import make_scene
+
+    sc = make_scene(name)
+    c = pmap.remove_spikes(pmap.mask_bad_pixels(pmap.attach_noise_model(sc.cube)))
+    det = pmap.spectral.detect_signal(c).compute()
+    emit = sc.truth["signal"].values & (sc.truth["bad_pixel"].values == 0)
+    assert float(det.signal.values[emit].mean()) >= 0.95

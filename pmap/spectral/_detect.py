@@ -134,7 +134,12 @@ def detect_signal(
         S = np.broadcast_to(np.asarray(sv, dtype=np.float64), v.shape).reshape(-1, n)
         P = np.broadcast_to(np.asarray(pv, dtype=np.float64), v.shape).reshape(-1, n)
         raw = Y / S + P
-        ok = np.all(np.isfinite(raw), axis=1)
+        fin = np.isfinite(raw)
+        n_ok = fin.sum(axis=1)
+        ok = n_ok >= max(8, n // 2)
+        for r in np.flatnonzero(ok & (n_ok < n)):  # masked channels: bridged linearly
+            g = fin[r]
+            raw[r, ~g] = np.interp(np.flatnonzero(~g), np.flatnonzero(g), raw[r, g])
         out = np.full(Y.shape[0], np.nan)
         if np.any(ok):
             if a > 0:
