@@ -72,6 +72,10 @@ def assemble_result(
         for c in ("y", "x"):
             if c in ds.coords and c in coords_from.coords:
                 ds = ds.assign_coords({c: coords_from[c]})
+    ds.attrs["Conventions"] = "CF-1.10"
+    for c, ax in (("x", "X"), ("y", "Y")):  # CF axis attributes of the map coordinates
+        if c in ds.coords:
+            ds[c].attrs = {**ds[c].attrs, "axis": ax}
     return ds
 
 
