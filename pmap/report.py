@@ -18,6 +18,7 @@ from __future__ import annotations
 import json
 import math
 import re
+import warnings
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any, NamedTuple
@@ -27,7 +28,7 @@ import xarray as xr
 
 from ._version import __version__
 from .conventions import SPECTRAL_DIMS
-from .errors import StepError
+from .errors import PmapNotice, StepError
 
 __all__ = [
     "plot_map",
@@ -625,6 +626,10 @@ def write_figures(
             slices = [(v, name)]
         for sl, stem in slices:
             path = out / f"{prefix}{_safe_name(stem)}.png"
+            if sl.dtype.kind == "f" and not bool(np.isfinite(sl.values).any()):
+                warnings.warn(f"no figure of {stem}: every pixel is NaN", PmapNotice,
+                              stacklevel=2)
+                continue
             if _is_label_map(v):
                 written.append(plot_labels(sl, path, title=stem))
             else:

@@ -12,7 +12,7 @@ from PIL import Image
 from scipy import stats
 
 from pmap import report
-from pmap.errors import StepError
+from pmap.errors import PmapNotice, StepError
 from pmap.synthetic import make_demo_cube
 
 
@@ -186,3 +186,16 @@ def test_summarise_result_matches_numpy(tiny_demo):
     )
     assert row["peak_energy[band_edge] finite fraction"] == pytest.approx(finite.size / e.size)
     assert not any(k.startswith(("region", "spike_mask", "dead_pixel")) for k in row)
+
+
+def test_all_nan_map_is_skipped_with_a_note(tmp_path):
+    # a map with no finite pixel says nothing: no figure, a note instead (issue 16)
+    ds = xr.Dataset({"window_ratio": (("y", "x"), np.full((3, 4), np.nan),
+                                      {"units": "1", "long_name": "window ratio"}),
+                     "max_energy": (("y", "x"), np.linspace(1.5, 1.6, 12).reshape(3, 4),
+                                    {"units": "eV", "long_name": "energy of the maximum"})},
+                    coords={"y": ("y", np.arange(3.0), {"units": "um"}),
+                            "x": ("x", np.arange(4.0), {"units": "um"})})
+    with pytest.warns(PmapNotice, match="every pixel is NaN"):
+        paths = report.write_figures(ds, tmp_path)
+    assert [p.name for p in paths] == ["max_energy.png"]
