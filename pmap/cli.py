@@ -433,6 +433,18 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _from_storage_codec(exc: BaseException) -> bool:
+    """True when the exception was raised while decoding stored bytes (zarr, numcodecs,
+    HDF5 filters): corrupt or truncated input rather than a bug."""
+    tb = exc.__traceback__
+    mods = []
+    while tb is not None:
+        mods.append(tb.tb_frame.f_globals.get("__name__", ""))
+        tb = tb.tb_next
+    return any(m.split(".")[0] in ("numcodecs", "zarr", "h5py", "h5netcdf", "tifffile")
+               for m in mods[-6:])
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``pmap`` console script; returns the exit status."""
     parser = build_parser()
@@ -451,10 +463,9 @@ def main(argv: Sequence[str] | None = None) -> int:
                   file=sys.stderr, end="")
 
     warnings.showwarning = _notice
-    # numerical warnings of the libraries (empty slices, NaN comparisons) are handled
-    # where they matter; on the terminal they would only confuse
-    for mod in ("numpy", "dask", "xarray", "scipy", "zarr", "numcodecs"):
-        warnings.filterwarnings("ignore", category=RuntimeWarning, module=rf"{mod}(\.|$)")
+    # numerical RuntimeWarnings (empty slices of masked pixels, NaN comparisons) are
+    # handled where they matter; on the terminal they would only confuse
+    warnings.filterwarnings("ignore", category=RuntimeWarning)
     try:
         return int(func(args) or 0)
     except KeyboardInterrupt:
@@ -475,6 +486,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         if debug:
             traceback.print_exc()
         msg = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+        if _from_storage_codec(exc):  # a chunk that does not decode: the data, not pmap
+            print(f"pmap: error: a chunk of the input cannot be decoded (corrupt or truncated "
+                  f"file): {type(exc).__name__}: {msg}", file=sys.stderr)
+            return EXIT_USER_ERROR
         print(f"pmap: internal error: {type(exc).__name__}: {msg} (a bug in pmap; rerun with "
               "--debug for the traceback and please report it)", file=sys.stderr)
         return EXIT_INTERNAL_ERROR

@@ -448,14 +448,18 @@ def fit_summary(ds: xr.Dataset, *, min_converged: float = 0.8) -> tuple[list[str
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
             med = float(np.nanmedian(np.asarray(ds["chi2_red"].values)))
-        lines.append(f"fit: median reduced chi-square {med:.3g} (1 when the model and the "
-                     "noise model describe the data)")
+        if np.isfinite(med):
+            lines.append(f"fit: median reduced chi-square {med:.3g} (1 when the model and "
+                         "the noise model describe the data)")
     elif "residual_variance" in ds:
         lines.append("fit: no noise model: errors are scaled by each pixel's residual "
                      "(see the attr uncertainty_method)")
     signal = int(np.sum(~np.isin(st, (3, 4))))
     conv = int(counts[0])
-    if signal and conv / signal < min_converged:
+    if not signal:
+        warning = ("no pixel had enough signal to fit (every pixel is 'no signal' or masked): "
+                   "check the spectral window, the units and the bad-pixel masking")
+    elif conv / signal < min_converged:
         bad = {k: int(counts[k]) for k in (1, 2, 5, 6) if counts[k]}
         worst = max(bad, key=bad.get) if bad else None
         cause = _STATUS_CAUSES.get(worst, "unknown")

@@ -82,3 +82,37 @@ def test_internal_error_is_not_a_user_error(cube_path, tmp_path, capsys, monkeyp
     monkeypatch.setattr(pmap.pipeline, "process", boom)
     code, err = _run(capsys, "process", str(cube_path), "-o", str(tmp_path / "r.zarr"))
     assert code == 1 and "internal error" in err[-1] and "--debug" in err[-1]
+
+
+def _chunked_store(tmp_path):
+    rng = np.random.default_rng(1)
+    lam = np.linspace(700.0, 800.0, 32)
+    cube = pmap.make_cube((rng.random((16, 16, 32)) * 100).astype(np.float32),
+                          wavelength_nm=lam, units="counts",
+                          attrs={"wavelength_medium": "air", "gain_e_per_count": 1.0,
+                                 "read_noise_counts": 1.0, "dark_level_counts": 0.0})
+    p = tmp_path / "c.zarr"
+    pmap.save_cube(cube.chunk({"y": 8, "x": 8}), p)
+    chunks = sorted(f for f in (p / "intensity").rglob("*") if f.is_file() and f.name != "zarr.json"
+                    and not f.name.startswith("."))
+    return p, chunks
+
+
+def test_missing_chunk_is_refused_naming_the_pixels(tmp_path, capsys):
+    p, chunks = _chunked_store(tmp_path)
+    chunks[1].unlink()
+    code, err = _run(capsys, "process", str(p), "-o", str(tmp_path / "r.zarr"), "-q")
+    assert code == 2 and "1 of 4 chunks" in err[-1] and "y " in err[-1]
+    assert not (tmp_path / "r.zarr").exists()
+    # with the explicit option the rest is read and the missing pixels are counted
+    code, err = _run(capsys, "process", str(p), "-o", str(tmp_path / "r.zarr"), "-q",
+                     "--no-figures", "-O", "allow_missing_chunks=true")
+    assert code == 0 and any("missing" in ln for ln in err)
+
+
+def test_corrupt_chunk_is_a_data_error(tmp_path, capsys):
+    p, chunks = _chunked_store(tmp_path)
+    b = chunks[2].read_bytes()
+    chunks[2].write_bytes(b[: len(b) // 2])
+    code, err = _run(capsys, "process", str(p), "-o", str(tmp_path / "r.zarr"), "-q")
+    assert code == 2 and "cannot be decoded" in err[-1] and len(err) == 1

@@ -15,7 +15,7 @@ import zarr
 
 from ..conventions import SPECTRAL_DIMS
 from ..cube import choose_spatial_chunks
-from ..errors import FormatError, InputFileError
+from ..errors import FormatError, InputFileError, PmapNotice
 from ._common import (
     AXIS_OPTIONS,
     META_OPTIONS,
@@ -28,6 +28,7 @@ from ._common import (
 )
 
 STORE_OPTIONS = ("variable", *META_OPTIONS)
+ZARR_OPTIONS = (*STORE_OPTIONS, "allow_missing_chunks")
 ARRAY_OPTIONS = ("sidecar", *AXIS_OPTIONS)
 
 
@@ -54,8 +55,16 @@ def _pick_variable(ds: xr.Dataset, options: dict[str, Any], path: Path) -> xr.Da
 
 
 def read_zarr(path: Path, options: dict[str, Any]) -> xr.DataArray:
-    """Zarr v2 or v3 store, lazily (dask chunks follow the stored chunks)."""
-    check_options(options, STORE_OPTIONS, "zarr")
+    """Zarr v2 or v3 store, lazily (dask chunks follow the stored chunks).
+
+    A chunk missing from the store (a deleted file, an incomplete copy) would read as
+    the fill value (NaN): refused with InputFileError naming the pixel range, unless
+    the option ``allow_missing_chunks`` is true (then those pixels are missing, NaN,
+    and a note says how many).
+    """
+    check_options(options, ZARR_OPTIONS, "zarr")
+    allow_missing = str(options.pop("allow_missing_chunks", "false")).lower() in (
+        "1", "true", "yes")
     if path.is_file():
         raise FormatError(f"{path.name}: a Zarr store is a directory, this is a file")
     try:
@@ -74,7 +83,41 @@ def read_zarr(path: Path, options: dict[str, Any]) -> xr.DataArray:
         raise FormatError(
             f"{path.name}: not a readable Zarr store ({type(exc).__name__}: {exc})"
         ) from exc
-    return _pick_variable(ds, options, path)
+    arr = _pick_variable(ds, options, path)
+    _check_chunks_present(path, arr, allow_missing)
+    return arr
+
+
+def _check_chunks_present(path: Path, arr: xr.DataArray, allow: bool) -> None:
+    """Refuse a local Zarr store whose array lacks chunk files (see :func:`read_zarr`)."""
+    try:
+        za = zarr.open_array(str(path / str(arr.name)), mode="r")
+        n_all, n_have = int(za.nchunks), int(za.nchunks_initialized)
+    except Exception:  # not a local directory array: nothing to check here
+        return
+    if n_have >= n_all:
+        return
+    grid = [range(-(-s // c)) for s, c in zip(za.shape, za.chunks)]
+    import itertools
+
+    first = None
+    for idx in itertools.product(*grid):
+        key = za.metadata.encode_chunk_key(idx) if hasattr(za.metadata, "encode_chunk_key") \
+            else ".".join(map(str, idx))
+        if not (path / str(arr.name) / key).exists():
+            first = idx
+            break
+    where = ""
+    if first is not None:
+        ranges = [f"{d} {i * c}–{min((i + 1) * c, s)}"
+                  for d, i, c, s in zip(arr.dims, first, za.chunks, za.shape)]
+        where = f", the first at {', '.join(ranges[:-1] or ranges)}"
+    msg = (f"{path.name}: {n_all - n_have} of {n_all} chunks of {arr.name!r} are missing "
+           f"(deleted or never copied{where})")
+    if not allow:
+        raise InputFileError(msg + "; give -O allow_missing_chunks=true to read the rest with "
+                                   "those pixels missing")
+    warnings.warn(msg + ": those pixels are read as missing (NaN)", PmapNotice, stacklevel=3)
 
 
 def read_netcdf(path: Path, options: dict[str, Any]) -> xr.DataArray:

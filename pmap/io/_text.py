@@ -591,14 +591,16 @@ def text_to_zarr(
     layout = scan_text(spec, chunk_rows=chunk_rows, **options)
     skel = _skeleton(spec, layout, attrs, str(options.get("dtype", "float32")), target_chunk_mib)
     write_zarr(cube_dataset(skel), target, zarr_format=zarr_format, compute=False)
-    array = zarr.open_group(target, mode="r+")[CUBE_NAME]
-    # grids and channel values ascend, so validate_cube kept the index order
-    _fill(
-        spec,
-        layout,
-        array,
-        chunk_rows=chunk_rows,
-        tolerance=float(options.get("grid_tolerance", DEFAULT_TOLERANCE)),
-        buffer_mib=buffer_mib,
-    )
+    # every chunk is stored, all-NaN ones too (a missing chunk then means a damaged store)
+    with zarr.config.set({"array.write_empty_chunks": True}):
+        array = zarr.open_group(target, mode="r+")[CUBE_NAME]
+        # grids and channel values ascend, so validate_cube kept the index order
+        _fill(
+            spec,
+            layout,
+            array,
+            chunk_rows=chunk_rows,
+            tolerance=float(options.get("grid_tolerance", DEFAULT_TOLERANCE)),
+            buffer_mib=buffer_mib,
+        )
     return target

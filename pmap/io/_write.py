@@ -97,6 +97,7 @@ def write_zarr(ds: xr.Dataset, out: Path, *, zarr_format: int, compute: bool = T
             encoding=enc,
             consolidated=zarr_format == 2,
             compute=compute,
+            write_empty_chunks=True,  # an all-NaN chunk is stored, so a missing one is an error
         )
 
 
