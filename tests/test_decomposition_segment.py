@@ -69,7 +69,8 @@ def test_equals_sklearn_kmeans_on_same_features(toy):
     from sklearn.cluster import KMeans
 
     cube, truth, *_ = toy
-    region = segment(cube, n_regions=3, seed=4, sample_pixels=None, min_snr=None)
+    region = segment(cube, n_regions=3, method="kmeans", feature_space="shape", seed=4,
+                     sample_pixels=None, min_snr=None, min_region_px=0)
     x = np.asarray(cube.values, dtype=np.float64).reshape(-1, cube.shape[-1])
     has = np.any(x != 0, axis=1)
     feats = x[has] / np.linalg.norm(x[has], axis=1, keepdims=True)
@@ -118,12 +119,14 @@ def test_parameter_maps_with_peak_dim(toy):
 def test_masked_nan_and_no_signal_pixels_are_minus_one(toy):
     cube, truth, *_ = toy
     data = np.asarray(cube.values).copy()
-    data[5, 5, 3] = np.nan
+    data[5, 5, :] = np.nan  # a whole spectrum missing
+    data[20, 20, 3] = np.nan  # one masked channel: bridged from its neighbours
     cube2 = cube.copy(data=data)
     mask = xr.zeros_like(cube.isel(energy=0), dtype=bool).compute()
     mask[10, 10] = True
-    region = segment(cube2, n_regions=3, mask=mask).values
+    region = segment(cube2, n_regions=3, mask=mask, min_region_px=0).values
     assert region[5, 5] == -1 and region[10, 10] == -1
+    assert region[20, 20] == truth[20, 20]
     # Off-sample pixels (read noise only) fall below the SNR threshold (default 5).
     assert np.all(region[truth == -1] == -1)
     # K counts only regions among signal pixels.
@@ -157,10 +160,13 @@ def test_lazy_prediction(toy):
     cube, *_ = toy
     counter = ComputeCounter(forbid=False)
     with dask.config.set(scheduler=counter):
-        region = segment(cube, n_regions=3, sample_pixels=200)
-    assert counter.count == 1  # the pixel sample only
+        region = segment(cube, n_regions=3, sample_pixels=200, min_region_px=0)
+        cleaned = segment(cube, n_regions=3, sample_pixels=200)
+    assert counter.count == 2  # the pixel sample only, once per call
     assert isinstance(region.data, dask.array.Array)
     assert region.data.numblocks == cube.data.numblocks[:2]
+    # The island clean-up (default: islands under 3 pixels) needs the whole label map.
+    assert isinstance(cleaned.data, dask.array.Array) and cleaned.data.numblocks == (1, 1)
 
 
 def test_relabel_islands_majority_of_neighbours():
@@ -188,7 +194,7 @@ def test_min_region_px_in_segment(toy):
     region = segment(cube.copy(data=data).chunk({"y": 10}), n_regions=3, min_region_px=4)
     assert isinstance(region.data, dask.array.Array)
     assert region.values[15, 8] == 0
-    raw = segment(cube.copy(data=data), n_regions=3)
+    raw = segment(cube.copy(data=data), n_regions=3, min_region_px=0)
     assert raw.values[15, 8] == 2
 
 

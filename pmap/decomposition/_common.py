@@ -85,6 +85,68 @@ def sample_positions(
     return np.unravel_index(flat, shape)
 
 
+def block_sample_positions(
+    arr: xr.DataArray, core: str, n: int | None, seed: int, block: int = 2
+) -> tuple[np.ndarray, ...] | None:
+    """Like :func:`sample_positions`, but whole ``block`` × ``block`` squares of pixels
+    (seeded random squares of a fixed grid, without replacement), so that the sample
+    holds neighbouring pixels; about ``n`` pixels. None for "every pixel"."""
+    dims = pixel_dims(arr, core)
+    shape = tuple(arr.sizes[d] for d in dims)
+    total = int(np.prod(shape))
+    if n is None or n >= total:
+        return None
+    if int(n) < 1:
+        raise StepError(f"sample_pixels must be a positive integer or None, got {n!r}")
+    iy, ix = dims.index("y"), dims.index("x")
+    cells = list(shape)
+    cells[iy], cells[ix] = shape[iy] // block, shape[ix] // block
+    n_cells = int(np.prod(cells))
+    if n_cells == 0 or block <= 1:
+        return sample_positions(arr, core, n, seed)
+    m = min(n_cells, -(-int(n) // (block * block)))
+    rng = np.random.default_rng(seed)
+    chosen = np.unravel_index(rng.choice(n_cells, size=m, replace=False), cells)
+    idx = []
+    for dy in range(block):
+        for dx in range(block):
+            pos = [np.asarray(c).copy() for c in chosen]
+            pos[iy] = pos[iy] * block + dy
+            pos[ix] = pos[ix] * block + dx
+            idx.append(np.ravel_multi_index(pos, shape))
+    flat = np.sort(np.concatenate(idx))
+    return np.unravel_index(flat, shape)
+
+
+def neighbour_pairs(
+    arr: xr.DataArray, core: str, positions: tuple[np.ndarray, ...] | None, keep: np.ndarray
+) -> np.ndarray:
+    """(p, 2) indices into the kept rows of a sample: pixels that are 4-neighbours in
+    (y, x) (same stack position), both kept."""
+    dims = pixel_dims(arr, core)
+    shape = tuple(arr.sizes[d] for d in dims)
+    if positions is None:
+        positions = tuple(i.ravel() for i in np.indices(shape))
+    pos = [np.asarray(p)[keep] for p in positions]
+    if not len(pos[0]):
+        return np.zeros((0, 2), dtype=np.int64)
+    flat = np.ravel_multi_index(pos, shape)
+    order = np.argsort(flat)
+    sorted_flat = flat[order]
+    out = []
+    for name in ("y", "x"):
+        d = dims.index(name)
+        ok = pos[d] < shape[d] - 1
+        stride = int(np.prod(shape[d + 1 :]))
+        target = flat[ok] + stride
+        j = np.searchsorted(sorted_flat, target)
+        j = np.clip(j, 0, len(sorted_flat) - 1)
+        hit = sorted_flat[j] == target
+        src = np.flatnonzero(ok)[hit]
+        out.append(np.column_stack([src, order[j[hit]]]))
+    return np.concatenate(out).astype(np.int64) if out else np.zeros((0, 2), dtype=np.int64)
+
+
 def gather(arr: xr.DataArray, core: str, positions: tuple[np.ndarray, ...] | None) -> np.ndarray:
     """Core vectors of the chosen pixels as a float64 array (n_pixels, n_core); computes."""
     data = arr.data

@@ -15,10 +15,12 @@ import xarray as xr
 from scipy import ndimage
 
 from ..errors import StepError
+from ..noise import get_noise_model
 from ..provenance import PROVENANCE_ATTR, with_step
 from ..steps import register_step
 from ._common import (
     apply_mask,
+    block_sample_positions,
     centroid_of,
     check_pixels,
     check_spectral,
@@ -26,11 +28,26 @@ from ._common import (
     gather,
     jsonable_params,
     map_pixels,
+    neighbour_pairs,
+    pixel_dims,
     sample_positions,
 )
+from ._emission import EmissionSpace, fill_nan_channels, has_emission_peak, region_descriptions
+from ._merge import (
+    CONTINUITY,
+    MIN_DIFFERENCE,
+    SEPARATION,
+    VALLEY_RATIO,
+    MergeData,
+    merge_history,
+    mixed_groups,
+    pair_score,
+)
 
-FEATURE_SPACES = ("shape", "shape+intensity", "abundance", "parameters")
-CLUSTER_METHODS = ("kmeans", "gmm")
+FEATURE_SPACES = ("emission", "shape", "shape+intensity", "abundance", "parameters")
+CLUSTER_METHODS = ("merge", "kmeans", "gmm")
+#: Over-clusters cut before merging (method "merge").
+N_OVER_CLUSTERS = 16
 #: Fit sets larger than this use MiniBatchKMeans instead of KMeans.
 MINIBATCH_ABOVE = 100_000
 #: Pixels used for each silhouette score.
@@ -55,7 +72,12 @@ def _noise_of_sum(x: np.ndarray) -> np.ndarray:
 
 
 def _signal_rows(x: np.ndarray, min_snr: float | None) -> tuple[np.ndarray, np.ndarray]:
-    """(rows with finite, non-zero spectra whose sum exceeds min_snr × its noise, NaN-free rows)."""
+    """(rows with finite, non-zero spectra whose sum exceeds min_snr × its noise, NaN-free rows).
+
+    Masked channels (NaN) are filled from their neighbours first; a row with no finite
+    value has no signal.
+    """
+    x = fill_nan_channels(x)
     ok = finite_rows(x)
     xs = np.where(ok[:, None], x, 0.0)
     signal = ok & np.any(xs != 0, axis=1)
@@ -78,37 +100,93 @@ def _cube_features(
     return feats, signal, centroid_of(xs, axis)
 
 
+def _emission_features(
+    x: np.ndarray, *, space: EmissionSpace | None, axis: np.ndarray, min_snr: float | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    signal, xs = _signal_rows(x, min_snr)
+    m = space.features(xs[:1]).shape[1] if space is not None else 1
+    feats = np.zeros((len(xs), m))
+    if space is not None and signal.any():
+        feats[signal] = space.features(xs[signal])
+    return feats, signal, centroid_of(xs, axis)
+
+
 def _signal_core(x: np.ndarray, *, min_snr: float | None) -> np.ndarray:
     return _signal_rows(x, min_snr)[0]
 
 
-def signal_mask(cube: xr.DataArray, *, min_snr: float | None = 5.0) -> xr.DataArray:
+def _fill_core(x: np.ndarray) -> np.ndarray:
+    return fill_nan_channels(x)
+
+
+def _usable_noise_model(cube: xr.DataArray) -> bool:
+    model = get_noise_model(cube)
+    return model is not None and model.valid and not model.correlated
+
+
+def _detected(arr: xr.DataArray, core: str, false_alarm: float):
+    """(signal map or None, rule text): :func:`pmap.spectral.detect_signal` on the cube with
+    masked channels filled, when the cube carries a usable noise model."""
+    if not _usable_noise_model(arr):
+        return None, None
+    from ..spectral import detect_signal
+
+    filled = xr.apply_ufunc(
+        lambda b: fill_nan_channels(b.reshape(-1, b.shape[-1])).reshape(b.shape),
+        arr,
+        input_core_dims=[[core]],
+        output_core_dims=[[core]],
+        dask="parallelized",
+        output_dtypes=[np.float64],
+        keep_attrs=True,
+    )
+    for name in ("noise_scale", "noise_pedestal_counts"):
+        if name in arr.coords and name not in filled.coords:
+            filled = filled.assign_coords({name: arr.coords[name]})
+    det = detect_signal(filled, false_alarm=false_alarm)
+    sig = det["signal"]
+    rule = (
+        f"emission detected (pmap.spectral.detect_signal, false-alarm probability "
+        f"<= {false_alarm:g} per pixel, threshold {det.attrs['threshold_sigma']:.2f} sigma)"
+    )
+    return sig.transpose(*[d for d in arr.dims if d != core]), rule
+
+
+def signal_mask(
+    cube: xr.DataArray, *, false_alarm: float = 1e-3, min_snr: float | None = 5.0
+) -> xr.DataArray:
     """Boolean map (*stack, y, x), True where a pixel has signal (lazy for dask cubes).
 
     Parameters
     ----------
     cube : xarray.DataArray
-        Cube (*stack, y, x, S), ideally dark- or baseline-subtracted: a constant
-        offset counts as signal.
+        Cube (*stack, y, x, S). Masked channels (NaN) are filled from their neighbours.
+    false_alarm : float
+        With a usable noise model on the cube (``pmap.attach_noise_model``; every cube
+        in :func:`pmap.process` has one): the emission test
+        :func:`pmap.spectral.detect_signal` at this false-alarm probability per pixel.
     min_snr : float or None
-        A pixel has signal when its spectrum is finite, not all zero and (unless
-        None) its channel sum exceeds ``min_snr`` times the noise of that sum,
-        σ·√n_channels with σ = (√π/2)·mean|Δx| from the first differences.
+        Without a noise model: a pixel has signal when its spectrum is finite, not all
+        zero and (unless None) its channel sum exceeds ``min_snr`` times the noise of
+        that sum, σ·√n_channels with σ = (√π/2)·mean|Δx| from the first differences
+        (ideally on dark- or baseline-subtracted data: a constant offset counts as signal).
 
     Returns
     -------
-    xarray.DataArray of bool. Pass ``mask=~signal_mask(cube)`` to
-    :func:`segment` to apply the same rule to abundance or parameter features.
+    xarray.DataArray of bool; attr ``rule`` says which test was used. Pass
+    ``mask=~signal_mask(cube)`` to :func:`segment` to apply the same rule to abundance
+    or parameter features.
     """
     arr, core = check_spectral(cube)
-    out = map_pixels(
-        _signal_core, arr, core, out_core=None, dtype=bool, kwargs={"min_snr": min_snr}
-    )
-    out.attrs = {
-        "long_name": "pixel has signal",
-        "units": "1",
-        "rule": f"channel sum > {min_snr} x noise of the sum" if min_snr else "finite, not 0",
-    }
+    det, rule = _detected(arr, core, false_alarm)
+    if det is not None:
+        out = det.copy()
+    else:
+        out = map_pixels(
+            _signal_core, arr, core, out_core=None, dtype=bool, kwargs={"min_snr": min_snr}
+        )
+        rule = f"channel sum > {min_snr} x noise of the sum" if min_snr else "finite, not 0"
+    out.attrs = {"long_name": "pixel has signal", "units": "1", "rule": rule}
     return out.rename("signal")
 
 
@@ -143,7 +221,8 @@ def _predict(
     feats, signal, _ = transform(x, **tkw)
     out = np.full(len(x), -1, dtype=np.int32)
     if signal.any():
-        out[signal] = relabel[model.predict((feats[signal] - mu) / sd)]
+        p = model.predict((feats[signal] - mu) / sd)
+        out[signal] = np.where(p >= 0, relabel[np.clip(p, 0, None)], -1)
     return out
 
 
@@ -209,11 +288,15 @@ def _abundance_array(features: Any) -> tuple[xr.DataArray, np.ndarray | None, bo
 
 def _feature_space(features, space, *, variables, min_snr, order_by):
     """Return (array, core dim, transform, kwargs, property description)."""
-    if space in ("shape", "shape+intensity"):
+    if space in ("emission", "shape", "shape+intensity"):
         arr, core = check_spectral(features, "features")
         if order_by not in (None, "centroid"):
             raise StepError(f"order_by for spectra must be 'centroid', got {order_by!r}")
         units = arr[core].attrs.get("units", "")
+        if space == "emission":
+            kw = {"space": None, "axis": np.asarray(arr[core].values, dtype=float),
+                  "min_snr": min_snr}
+            return arr, core, _emission_features, kw, (f"spectral centroid ({core})", units)
         kw = {
             "axis": np.asarray(arr[core].values, dtype=float),
             "with_intensity": space == "shape+intensity",
@@ -254,6 +337,8 @@ def _feature_space(features, space, *, variables, min_snr, order_by):
 def _standardise(feats: np.ndarray, space: str, intensity_weight: float):
     """Per-feature (mean, scale): z-scores, except unit-norm spectra which stay as they are."""
     m = feats.shape[1]
+    if space == "emission":  # scaled when the space was fitted
+        return np.zeros(m), np.ones(m)
     if space in ("shape", "shape+intensity"):
         mu, sd = np.zeros(m), np.ones(m)
         if space == "shape+intensity":
@@ -314,6 +399,134 @@ def _choose_k(z: np.ndarray, method: str, ks: list[int], seed: int, cov: str | N
         best = ks[int(np.nanargmin(arr))]
         rule = "smallest Bayesian information criterion (Schwarz, Ann. Stat. 6, 461 (1978))"
     return models, scores, rule, best
+
+
+class _Nearest:
+    """Nearest-centroid labels: each kept over-cluster centroid carries its region
+    (−1: a continuum without an emission peak, i.e. no emission)."""
+
+    def __init__(self, centroids: np.ndarray, region_of: np.ndarray):
+        self.centroids = np.asarray(centroids, dtype=np.float64)
+        self.region_of = np.asarray(region_of, dtype=np.int64)
+        self.c2 = np.einsum("ij,ij->i", self.centroids, self.centroids)
+
+    def predict(self, z: np.ndarray) -> np.ndarray:
+        d = self.c2[None, :] - 2.0 * (z @ self.centroids.T)
+        return self.region_of[np.argmin(d, axis=1)]
+
+
+def _fit_merge(
+    data: MergeData,
+    spectra: np.ndarray | None,
+    *,
+    n_regions: int | str,
+    ks: list[int],
+    seed: int,
+    min_pixels: int,
+):
+    """Over-cluster, set continua aside, merge (see :mod:`._merge`), let small groups
+    join their least separated neighbour, drop mixed-pixel groups; choose K.
+
+    Returns (predictor, k, merge scores, notes, natural K).
+    """
+    from sklearn.cluster import KMeans, MiniBatchKMeans
+
+    z = data.feats
+    separation = data.separation
+    kmax = max(ks)
+    n0 = int(min(max(N_OVER_CLUSTERS, 2 * kmax), max(2, len(z) // 20), len(z)))
+    if len(z) > MINIBATCH_ABOVE:
+        km = MiniBatchKMeans(n_clusters=n0, random_state=seed, batch_size=4096, n_init=3).fit(z)
+        lab = km.predict(z)
+    else:
+        km = KMeans(n_clusters=n0, random_state=seed, n_init=2).fit(z)
+        lab = km.labels_
+    piece_sizes = np.bincount(lab, minlength=n0)
+    base = spectra if spectra is not None else z
+    piece_means = np.zeros((n0, base.shape[1]))
+    np.add.at(piece_means, lab, base)
+    piece_means /= np.maximum(piece_sizes, 1)[:, None]
+    # Over-clusters whose mean spectrum has no peak inside the window are no emission.
+    continuum = np.zeros(n0, dtype=bool)
+    if spectra is not None:
+        continuum = np.array([piece_sizes[j] > 0 and not has_emission_peak(piece_means[j])
+                              for j in range(n0)])
+        if continuum[piece_sizes > 0].all():
+            continuum[:] = False
+    emit = np.flatnonzero(~continuum & (piece_sizes > 0))
+    states = merge_history(data, lab, emit)
+    bg = -1
+    cont_members = [int(j) for j in np.flatnonzero(continuum)]
+
+    def finalize(st):
+        groups = {g: list(members) for g, members in st.groups.items()}
+        notes = {}
+        rows = {g: np.isin(lab, members) for g, members in groups.items()}
+        while len(groups) > 1:
+            sizes = {g: int(rows[g].sum()) for g in groups}
+            small = [g for g in groups if sizes[g] < min_pixels]
+            if not small:
+                break
+            g = min(small, key=lambda k: (sizes[k], k))
+            ra = np.flatnonzero(rows[g])
+            scores = {h: pair_score(data, ra, np.flatnonzero(rows[h]))[0]
+                      for h in groups if h != g}
+            h = min(scores, key=scores.get)
+            notes[f"group {g}"] = f"{sizes[g]} fitted pixels (< {min_pixels}): joined group {h}"
+            groups[h] = groups[h] + groups.pop(g)
+            rows[h] = rows[h] | rows.pop(g)
+        with_bg = dict(groups)
+        if cont_members:
+            with_bg[bg] = cont_members
+        mixed = mixed_groups(piece_means, piece_sizes, with_bg, keep={bg})
+        for g, why in mixed.items():
+            notes[f"group {g}"] = why
+        kept = [g for g in sorted(groups) if g not in mixed] or [max(groups, key=lambda k: rows[k].sum())]
+        return groups, kept, notes
+
+    natural = 0
+    while natural + 1 < len(states) and states[natural + 1].score < separation:
+        natural += 1
+    done = {natural: finalize(states[natural])}
+    k_natural = len(done[natural][1])
+    want = None if n_regions == "auto" else int(n_regions)
+    lo, hi = (min(ks), max(ks)) if want is None else (want, want)
+    pick, step = natural, (1 if k_natural > hi else -1 if k_natural < lo else 0)
+    while step and 0 <= pick + step < len(states):
+        pick += step
+        done[pick] = finalize(states[pick])
+        n = len(done[pick][1])
+        if (step > 0 and n <= hi) or (step < 0 and n >= lo):
+            break
+    groups, kept, notes = done[pick]
+    centroids, region_of = [], []
+    for r, g in enumerate(kept):
+        for member in groups[g]:
+            centroids.append(km.cluster_centers_[member])
+            region_of.append(r)
+    for member in cont_members:
+        centroids.append(km.cluster_centers_[member])
+        region_of.append(-1)
+    if cont_members:
+        share = float(np.isin(lab, cont_members).mean()) * 100
+        notes["continuum"] = (
+            f"{len(cont_members)} of {n0} clusters ({share:.1f} % of the fitted pixels) have no "
+            "emission peak inside the window: no emission"
+        )
+    scores = [float(s.score) for s in states[1:]]
+    return _Nearest(np.array(centroids), np.array(region_of)), len(kept), scores, notes, k_natural
+
+
+def _sample_pos(arr: xr.DataArray, core: str, positions) -> np.ndarray:
+    """(n, 2) y and x of the sampled pixels, each scaled to [0, 1]."""
+    dims = pixel_dims(arr, core)
+    if positions is None:
+        positions = tuple(i.ravel() for i in np.indices([arr.sizes[d] for d in dims]))
+    out = []
+    for name in ("y", "x"):
+        idx = np.asarray(positions[dims.index(name)], dtype=float)
+        out.append(idx / max(arr.sizes[name] - 1, 1))
+    return np.column_stack(out)
 
 
 # ---------------------------------------------------------------- spatial clean-up
@@ -399,65 +612,91 @@ def segment(
     features: xr.DataArray | xr.Dataset,
     *,
     n_regions: int | str = "auto",
-    method: str = "kmeans",
-    feature_space: str = "shape",
-    min_region_px: int = 0,
+    method: str = "merge",
+    feature_space: str = "emission",
+    min_region_px: int = 3,
     seed: int = 0,
     sample_pixels: int | None = 20000,
-    k_range: Sequence[int] = range(2, 9),
+    k_range: Sequence[int] = range(1, 9),
     variables: Sequence[str] | None = None,
+    false_alarm: float = 1e-3,
     min_snr: float | None = 5.0,
     order_by: str | None = None,
-    intensity_weight: float = 1.0,
+    intensity_weight: float | None = None,
     covariance_type: str | None = None,
+    separation: float = SEPARATION,
+    valley_ratio: float = VALLEY_RATIO,
+    continuity: float = CONTINUITY,
+    min_difference: float = MIN_DIFFERENCE,
+    min_region_fraction: float = 0.005,
     mask: xr.DataArray | None = None,
 ) -> xr.DataArray:
-    """Label every pixel with a region by clustering per-pixel features.
+    """Label every pixel with a region (emission type) by clustering per-pixel features.
 
     Parameters
     ----------
     features : xarray.DataArray or xarray.Dataset
-        A cube (*stack, y, x, S) for ``"shape"`` / ``"shape+intensity"``; the
-        Dataset from :func:`pmap.decompose` (or its abundance DataArray with a
+        A cube (*stack, y, x, S) for ``"emission"``, ``"shape"``, ``"shape+intensity"``;
+        the Dataset from :func:`pmap.decompose` (or its abundance DataArray with a
         ``component`` dim) for ``"abundance"``; a Dataset of maps (y, x) or
         (peak, y, x) for ``"parameters"``.
     n_regions : int or "auto"
-        Number of regions K, or "auto" to choose it from ``k_range`` (k-means:
-        largest silhouette on a sample; GMM: smallest BIC).
-    method : {"kmeans", "gmm"}
-        k-means (MiniBatchKMeans above 100 000 fitted pixels) or a Gaussian mixture.
-    feature_space : {"shape", "shape+intensity", "abundance", "parameters"}
-        Spectra divided by their Euclidean norm (shape alone); the same plus
-        log10 of the integrated intensity; NMF abundances; parameter maps.
-        Abundances and parameters are standardised (z-scores on the fitted
-        sample); the log-intensity is standardised and weighted so that its
-        variance equals ``intensity_weight``² times the summed variance of the
-        shape features.
+        Number of regions K, or "auto" (see ``method``).
+    method : {"merge", "kmeans", "gmm"}
+        ``"merge"`` (default): k-means cut into 16 (or 2 × max(k_range)) clusters,
+        then clusters merged while they are one population — no density valley
+        between them on their discriminant axis, or a separation explained by a
+        smooth (quadratic) spatial trend — and clusters of mixed pixels (mean on the
+        segment between two larger ones) or of fewer than ``min_region_fraction`` of
+        the fitted pixels dropped (their pixels join the nearest cluster); see
+        :mod:`pmap.decomposition._merge`. "auto" stops where every pair left is
+        separated (clipped to ``k_range``); a given K merges on, or stops earlier,
+        until K regions remain. ``"kmeans"``: k-means with K clusters ("auto": largest
+        silhouette); ``"gmm"``: a Gaussian mixture ("auto": smallest BIC).
+    feature_space : {"emission", "shape", "shape+intensity", "abundance", "parameters"}
+        ``"emission"`` (default): unit-area spectra, noise-whitened, on their leading
+        principal components, plus log intensity weighted by ``intensity_weight``
+        (:mod:`pmap.decomposition._emission`). ``"shape"``: spectra divided by their
+        Euclidean norm; ``"shape+intensity"``: the same plus log10 intensity;
+        NMF abundances; parameter maps (z-scores on the fitted sample).
     min_region_px : int
-        Islands (4-connected) smaller than this take their neighbours' majority
-        label; 0 keeps the clustering as it is.
+        Clean-up: 4-connected islands smaller than this take the label most frequent
+        on their border (:func:`relabel_islands`); the default 3 removes single pixels
+        and pairs; 0 keeps the clustering as it is.
     seed : int
         Seed of the pixel sample and of the clustering.
     sample_pixels : int or None
         Pixels drawn at random (seeded) to fit the clustering; None uses every pixel.
     k_range : sequence of int
-        Candidates for ``n_regions="auto"``.
+        Candidates for ``n_regions="auto"`` (k-means and GMM use those ≥ 2).
     variables : sequence of str, optional
         Maps to use with ``"parameters"`` (default: every variable with y and x dims).
+    false_alarm : float
+        Spectral features on a cube with a usable noise model: a pixel has signal when
+        :func:`pmap.spectral.detect_signal` finds emission at this false-alarm
+        probability per pixel; others are −1.
     min_snr : float or None
-        Spectra (shape spaces): a pixel has signal when its integrated intensity
-        exceeds ``min_snr`` times its noise (see :func:`signal_mask`); None: only
-        NaN, all-zero and masked pixels are "no signal". Other feature spaces:
-        NaN and masked pixels (and all-zero NMF abundances); pass
-        ``mask=~signal_mask(cube)`` for the same rule.
+        Without a noise model: a pixel has signal when its integrated intensity exceeds
+        ``min_snr`` times its noise (see :func:`signal_mask`); None: only NaN, all-zero
+        and masked pixels are "no signal". Other feature spaces: NaN and masked pixels
+        (and all-zero NMF abundances); pass ``mask=~signal_mask(cube)`` for the same rule.
     order_by : str, optional
         Property whose per-region mean sets the region numbers (ascending):
         spectra and NMF abundances use the spectral centroid ("centroid"),
         parameters a variable name (default: the first of ``variables``).
-    intensity_weight : float
-        Weight of the log-intensity feature in ``"shape+intensity"``.
+    intensity_weight : float, optional
+        Weight of the log-intensity feature: ``"emission"`` (default 0.5) its
+        standardised value times this, beside shape scores of summed variance 1;
+        ``"shape+intensity"`` (default 1) its variance equals this² times the summed
+        variance of the shape features.
     covariance_type : str, optional
         GMM covariance ("full" up to 32 features, else "diag").
+    separation, valley_ratio : float
+        Merge thresholds of ``method="merge"``: membership step over residual s.d.
+        (default 3), density-valley ratio (default 0.5).
+    min_region_fraction : float
+        ``method="merge"``: a region needs at least this fraction of the fitted pixels
+        (and at least 10 of them).
     mask : xarray.DataArray of bool, optional
         True marks pixels to leave out.
 
@@ -467,7 +706,10 @@ def segment(
         ``region`` (*stack, y, x) int32: 0..K−1 ordered by ``order_by``, −1 for
         NaN, masked and no-signal pixels; lazy when the input is dask-backed.
         Attrs: method, k, rule, k_candidates, scores, legend (JSON), flag_values,
-        flag_meanings, feature_space, order_by, seed, n_fit_pixels.
+        flag_meanings, feature_space, order_by, seed, n_fit_pixels, signal_rule,
+        ``region_names`` (JSON {label: "1.63 eV band, 62 %"}: what the region emits,
+        from its mean spectrum, and its share of the sampled pixels) and
+        ``region_descriptions`` (JSON list, the names without the share).
 
     Notes
     -----
@@ -483,8 +725,12 @@ def segment(
         raise StepError(f"n_regions must be a positive integer or 'auto', got {n_regions!r}")
     if min_region_px < 0:
         raise StepError(f"min_region_px must be >= 0, got {min_region_px}")
-    if not intensity_weight > 0:
-        raise StepError(f"intensity_weight must be > 0, got {intensity_weight}")
+    if intensity_weight is None:
+        intensity_weight = 0.5 if feature_space == "emission" else 1.0
+    if not intensity_weight >= 0:
+        raise StepError(f"intensity_weight must be >= 0, got {intensity_weight}")
+    if not 0 < float(false_alarm) < 1:
+        raise StepError(f"false_alarm must be between 0 and 1, got {false_alarm}")
     params = {
         "n_regions": n_regions,
         "method": method,
@@ -494,38 +740,93 @@ def segment(
         "sample_pixels": sample_pixels,
         "k_range": list(k_range),
         "variables": list(variables) if variables else None,
+        "false_alarm": false_alarm,
         "min_snr": min_snr,
         "order_by": order_by,
         "intensity_weight": intensity_weight,
         "covariance_type": covariance_type,
+        "separation": separation,
+        "valley_ratio": valley_ratio,
+        "continuity": continuity,
+        "min_difference": min_difference,
+        "min_region_fraction": min_region_fraction,
     }
     arr, core, transform, tkw, (prop_name, prop_units) = _feature_space(
         features, feature_space, variables=variables, min_snr=min_snr, order_by=order_by
     )
+    spectral = feature_space in ("emission", "shape", "shape+intensity")
+    signal_rule = None
+    if spectral:
+        det, signal_rule = _detected(arr, core, float(false_alarm))
+        if det is not None:
+            arr = arr.where(det)
+            tkw["min_snr"] = None
+        else:
+            signal_rule = (
+                f"channel sum > {min_snr} x noise of the sum (no noise model on the cube)"
+                if min_snr else "finite, not all zero (no noise model on the cube)"
+            )
     arr = apply_mask(arr, mask)
 
-    raw = gather(arr, core, sample_positions(arr, core, sample_pixels, seed))
-    feats, signal, prop = transform(raw, **tkw)
-    feats, prop = feats[signal], prop[signal]
-    if n_regions == "auto":
-        ks = sorted({int(k) for k in k_range if 2 <= int(k) < len(feats)})
+    if method == "merge":  # squares of 2 x 2 pixels: the sample holds neighbours
+        positions = block_sample_positions(arr, core, sample_pixels, seed, block=2)
     else:
+        positions = sample_positions(arr, core, sample_pixels, seed)
+    raw = gather(arr, core, positions)
+    pos_all = _sample_pos(arr, core, positions)
+    space = None
+    if feature_space == "emission":
+        sig0, filled = _signal_rows(raw, tkw["min_snr"])
+        if sig0.sum() >= 2:
+            space = EmissionSpace.fit(filled[sig0], intensity_weight=float(intensity_weight))
+        tkw["space"] = space
+    feats, signal, prop = transform(raw, **tkw)
+    n_sampled = len(raw)
+    feats, prop, pos = feats[signal], prop[signal], pos_all[signal]
+    if method == "merge":
+        ks = sorted({int(k) for k in k_range if int(k) >= 1})
+    else:
+        ks = sorted({int(k) for k in k_range if 2 <= int(k) < len(feats)})
+    if n_regions != "auto":
         ks = [int(n_regions)]
-    if not ks or len(feats) < max(ks):
+    if not ks or len(feats) < max(max(ks), 2):
         raise StepError(
             f"only {len(feats)} sampled pixels with signal: too few to find "
             f"{ks[-1] if ks else 'any'} regions (raise sample_pixels or lower min_snr)"
         )
     mu, sd = _standardise(feats, feature_space, intensity_weight)
     z = (feats - mu) / sd
-    if n_regions == "auto":
+    merge_info: dict[str, Any] = {}
+    if method == "merge":
+        min_pixels = max(10, int(np.ceil(min_region_fraction * len(z))))
+        spectra = fill_nan_channels(raw[signal]) if spectral else None
+        data = MergeData(z, pos, neighbour_pairs(arr, core, positions, signal),
+                         separation=float(separation), valley_ratio=float(valley_ratio),
+                         continuity=float(continuity),
+                         to_spectra=None if space is None else space.unit_area_of,
+                         n_shape=0 if space is None else space.n_components,
+                         min_difference=float(min_difference))
+        model, k, scores, dropped, natural = _fit_merge(
+            data, spectra, n_regions=n_regions, ks=ks, seed=seed, min_pixels=min_pixels,
+        )
+        rule = (
+            f"k-means over-clustering merged while one population: no density valley "
+            f"(ratio > {valley_ratio}) on the discriminant axis, or a membership step "
+            f"< {separation} residual s.d. beyond a quadratic spatial trend (after Hennig, "
+            f"Adv. Data Anal. Classif. 4, 3 (2010)); mixed-pixel clusters and clusters "
+            f"under {min_pixels} fitted pixels dropped"
+            + ("" if n_regions == "auto" else f"; merged on to the K = {k} given")
+        )
+        merge_info = {"k_natural": int(natural), "dropped_clusters": json.dumps(dropped)}
+    elif n_regions == "auto":
         models, scores, rule, k = _choose_k(z, method, ks, seed, covariance_type)
         model = models[k]
     else:
         k, scores, rule = ks[0], [], "given by the user"
         model = _cluster_model(method, k, len(z), z.shape[1], seed, covariance_type).fit(z)
     lab = model.predict(z)
-    counts = np.bincount(lab, minlength=k)
+    n_continuum = int(np.sum(lab < 0))
+    counts = np.bincount(lab[lab >= 0], minlength=k)
     with np.errstate(invalid="ignore"):
         means = np.array([np.nanmean(prop[lab == j]) if counts[j] else np.nan for j in range(k)])
     order = np.argsort(np.where(np.isnan(means), np.inf, means), kind="stable")
@@ -556,6 +857,15 @@ def segment(
             f"mean {prop_name} {means[src]:.6g} {prop_units}".rstrip()
             + f"; {counts[src]} of {len(z)} fitted pixels"
         )
+    descriptions = _descriptions(
+        features, feature_space, arr, core, raw[signal], lab, order, k, prop_name, means
+    )
+    share = 100.0 / max(n_sampled, 1)
+    n_none = n_sampled - len(z) + n_continuum
+    names = {"-1": f"no emission detected, {n_none * share:.0f} %"
+             if spectral else f"no data, {n_none * share:.0f} %"}
+    for j in range(k):
+        names[str(j)] = f"{descriptions[j]}, {counts[order[j]] * share:.0f} %"
     base = (
         {PROVENANCE_ATTR: features.attrs[PROVENANCE_ATTR]}
         if PROVENANCE_ATTR in features.attrs
@@ -574,14 +884,41 @@ def segment(
             "k_candidates": ks if scores else [k],
             "scores": scores,
             "legend": json.dumps(legend),
+            "region_names": json.dumps(names),
+            "region_descriptions": json.dumps(descriptions),
             "feature_space": feature_space,
             "order_by": prop_name,
             "seed": seed,
             "n_fit_pixels": len(z),
+            "n_sampled_pixels": int(n_sampled),
+            "signal_rule": signal_rule or "finite (and not all-zero abundances)",
             "min_snr": "none" if min_snr is None else float(min_snr),
             "min_region_px": int(min_region_px),
+            "island_rule": (
+                f"4-connected islands under {int(min_region_px)} pixels take the label most "
+                "frequent on their border" if min_region_px > 1 else "none"
+            ),
+            **merge_info,
         }
     )
+    if space is not None:
+        attrs["n_shape_components"] = int(space.n_components)
     region.attrs = attrs
     region.name = "region"
     return region
+
+
+def _descriptions(features, space, arr, core, rows, lab, order, k, prop_name, means):
+    """What each region (in final order) emits: from its mean spectrum when the
+    features are spectra, else the ordering property."""
+    if space in ("emission", "shape", "shape+intensity") and len(rows):
+        x = fill_nan_channels(rows)
+        axis = np.asarray(arr[core].values, dtype=float)
+        units = arr[core].attrs.get("units", "")
+        spectra, inten = [], []
+        for j in range(k):
+            sel = lab == order[j]
+            spectra.append(x[sel].mean(axis=0) if sel.any() else np.zeros(x.shape[1]))
+            inten.append(float(np.median(x[sel].sum(axis=1))) if sel.any() else 0.0)
+        return region_descriptions(spectra, inten, axis, core, units)
+    return [f"{prop_name} {means[order[j]]:.4g}" for j in range(k)]
