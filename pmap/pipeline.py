@@ -237,6 +237,34 @@ def _check_regions(n: Any) -> None:
 MIN_MEMORY_BYTES = 256 * 2**20
 
 
+def _pipeline_hash(pipe: Pipeline) -> str:
+    """sha256 of the resolved pipeline (its tables, not where it was read from)."""
+    import hashlib
+
+    d = {k: v for k, v in pipe.as_dict().items() if k != "source"}
+    return hashlib.sha256(json.dumps(d, sort_keys=True, default=str).encode()).hexdigest()[:16]
+
+
+def _source_fingerprint(source: Any) -> str | None:
+    if isinstance(source, xr.DataArray):
+        return None
+    from .provenance import fingerprint_path
+
+    return fingerprint_path(source)
+
+
+def _check_resumable(recorded: dict, source: Any, pipe_hash: str, out: Path) -> None:
+    """Refuse to resume when the input or the pipeline differ from the interrupted run."""
+    fp = _source_fingerprint(source)
+    if fp is not None and recorded.get("input_fingerprint") not in (None, fp):
+        raise StepError(f"cannot resume {out}: the input is not the one of the interrupted run "
+                        f"(fingerprint {recorded['input_fingerprint']}, now {fp}); use "
+                        "--overwrite to start again")
+    if recorded.get("pipeline_sha256") != pipe_hash:
+        raise StepError(f"cannot resume {out}: the pipeline differs from the interrupted run's; "
+                        "use the same pipeline, or --overwrite to start again")
+
+
 def _refuse_empty(cube: xr.DataArray) -> None:
     """StepError when the cube holds no finite value (checked before any output exists).
 
@@ -479,11 +507,13 @@ def process(
         _check_regions(regions)
         pipe.regions = {**(pipe.regions or {}), "n_regions": regions}
     out = Path(out)
+    recorded = None  # the interrupted run's manifest (grid, input, pipeline)
     if resume and out.exists() and is_result_store(out):
         done = open_result(out, require_complete=False)
         if bool(done.attrs.get("pmap_complete")):
             warnings.warn(f"{out} is already complete; nothing to do", PmapNotice, stacklevel=2)
             return done
+        recorded = json.loads(done.attrs["pmap_run"]) if "pmap_run" in done.attrs else None
     mem = parse_memory(memory_limit)
     threads = (sum(client.nthreads().values()) if client is not None else (os.cpu_count() or 1))
     chunk_mib = pipe.output.get("chunk_mib")
@@ -491,6 +521,10 @@ def process(
         spare = max(mem - BASE_MEMORY_BYTES, mem / 4)
         chunk_mib = min(64.0, spare / (CHUNK_MEMORY_FACTOR * max(threads, 1)) / 2**20)
     chunk_mib = max(float(chunk_mib), 0.25)
+    pipe_hash = _pipeline_hash(pipe)
+    if recorded is not None:  # resume on the recorded grid, whatever the memory now
+        _check_resumable(recorded, source, pipe_hash, out)
+        chunk_mib = float(recorded["chunk_mib"])
     in_path = None
     if isinstance(source, xr.DataArray):
         cube = rechunk_cube(validate_cube(source), target_mib=chunk_mib)
@@ -510,10 +544,20 @@ def process(
 
     with TqdmProgress("whole-map checks", enabled=progress):  # hot channels, saturation…
         result, processed = build_result(cube, pipe)
+    streaming = (bool(recorded["streaming"]) if recorded is not None
+                 else _streaming_fits(cube, mem, threads))
+    result.attrs["pmap_run"] = json.dumps({
+        "input_fingerprint": _source_fingerprint(source),
+        "pipeline_sha256": pipe_hash,
+        "chunk_mib": chunk_mib,
+        "streaming": streaming,
+        "memory_limit_bytes": int(mem),
+        "chunks": {d: [int(c) for c in cube.chunksizes[d]] for d in ("y", "x")
+                   if cube.chunks is not None and d in cube.chunksizes},
+    })
     path = write_result(result, out, overwrite=overwrite, resume=resume, progress=progress,
                         input_paths=(in_path,), concurrency=threads, client=client,
-                        complete=pipe.regions is None,
-                        streaming=_streaming_fits(cube, mem, threads))
+                        complete=pipe.regions is None, streaming=streaming)
     if pipe.regions is not None:
         add_regions(path, processed, pipe.regions)
         mark_complete(path)
