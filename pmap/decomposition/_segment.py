@@ -644,15 +644,19 @@ def segment(
         Number of regions K, or "auto" (see ``method``).
     method : {"merge", "kmeans", "gmm"}
         ``"merge"`` (default): k-means cut into 16 (or 2 × max(k_range)) clusters,
-        then clusters merged while they are one population — no density valley
-        between them on their discriminant axis, or a separation explained by a
-        smooth (quadratic) spatial trend — and clusters of mixed pixels (mean on the
-        segment between two larger ones) or of fewer than ``min_region_fraction`` of
-        the fitted pixels dropped (their pixels join the nearest cluster); see
-        :mod:`pmap.decomposition._merge`. "auto" stops where every pair left is
-        separated (clipped to ``k_range``); a given K merges on, or stops earlier,
-        until K regions remain. ``"kmeans"``: k-means with K clusters ("auto": largest
-        silhouette); ``"gmm"``: a Gaussian mixture ("auto": smallest BIC).
+        then clusters merged while they are one population — continuous across their
+        shared border, no density valley between them on their discriminant axis, a
+        separation explained by a smooth (quartic) spatial trend, or spectra on the two
+        sides of their border within ``min_difference`` — see
+        :mod:`pmap.decomposition._merge`; clusters of fewer than ``min_region_fraction``
+        of the fitted pixels join the cluster they are least separated from; clusters
+        of mixed pixels (mean spectrum a mix of two others) and clusters whose mean
+        spectrum has no peak inside the window (stray light, laser tail: no emission,
+        −1) are not regions. "auto" stops where every pair left is separated (clipped
+        to ``k_range``); a given K merges on, or stops earlier, until K regions remain.
+        The fit sample is drawn as 2 × 2 squares so that it holds neighbours.
+        ``"kmeans"``: k-means with K clusters ("auto": largest silhouette); ``"gmm"``:
+        a Gaussian mixture ("auto": smallest BIC).
     feature_space : {"emission", "shape", "shape+intensity", "abundance", "parameters"}
         ``"emission"`` (default): unit-area spectra, noise-whitened, on their leading
         principal components, plus log intensity weighted by ``intensity_weight``
@@ -691,9 +695,11 @@ def segment(
         variance of the shape features.
     covariance_type : str, optional
         GMM covariance ("full" up to 32 features, else "diag").
-    separation, valley_ratio : float
-        Merge thresholds of ``method="merge"``: membership step over residual s.d.
-        (default 3), density-valley ratio (default 0.5).
+    separation, valley_ratio, continuity, min_difference : float
+        Merge thresholds of ``method="merge"``: membership step beyond the spatial
+        trend over the residual s.d. (6), density-valley ratio (0.8), border jump over
+        the step between neighbours inside the clusters (3), relative difference of the
+        unit-area spectra on the two sides of the border (0.1).
     min_region_fraction : float
         ``method="merge"``: a region needs at least this fraction of the fitted pixels
         (and at least 10 of them).
@@ -810,11 +816,12 @@ def segment(
             data, spectra, n_regions=n_regions, ks=ks, seed=seed, min_pixels=min_pixels,
         )
         rule = (
-            f"k-means over-clustering merged while one population: no density valley "
-            f"(ratio > {valley_ratio}) on the discriminant axis, or a membership step "
-            f"< {separation} residual s.d. beyond a quadratic spatial trend (after Hennig, "
-            f"Adv. Data Anal. Classif. 4, 3 (2010)); mixed-pixel clusters and clusters "
-            f"under {min_pixels} fitted pixels dropped"
+            f"k-means over-clustering merged while one population (after Hennig, Adv. "
+            f"Data Anal. Classif. 4, 3 (2010)): border jump < {continuity} x the step "
+            f"inside, density valley ratio > {valley_ratio}, membership step < "
+            f"{separation} residual s.d. beyond a quartic spatial trend, or border spectra "
+            f"within {min_difference:.0%}; groups under {min_pixels} fitted pixels joined "
+            f"their nearest; mixed-pixel groups and peakless continua (no emission) dropped"
             + ("" if n_regions == "auto" else f"; merged on to the K = {k} given")
         )
         merge_info = {"k_natural": int(natural), "dropped_clusters": json.dumps(dropped)}

@@ -93,6 +93,20 @@ def _spectra_stats(cube: xr.DataArray, lab: np.ndarray, k: int, ddof: int):
     return arr, sdim, mean, std, n
 
 
+def _region_names(attrs: dict, counts: np.ndarray, n_pixels: int, k: int):
+    """"<description>, <share> %" per region from the segment attrs, or None."""
+    import json
+
+    try:
+        desc = json.loads(attrs["region_descriptions"])
+    except (KeyError, TypeError, ValueError):
+        return None
+    if not isinstance(desc, list) or len(desc) != k:
+        return None
+    share = 100.0 / max(n_pixels, 1)
+    return np.array([f"{d}, {c * share:.0f} %" for d, c in zip(desc, counts)], dtype=object)
+
+
 def region_statistics(
     region: xr.DataArray,
     maps: xr.Dataset | None = None,
@@ -122,7 +136,9 @@ def region_statistics(
     xarray.Dataset
         Dim ``region``: ``region_pixel_count``, ``region_area_um2`` (µm², from the
         coordinate spacing; ``region_area_pixel2`` when y/x are pixel indices),
-        ``region_fraction`` (of the pixels with signal), ``<var>_mean`` and
+        ``region_fraction`` (of the pixels with signal), coordinate ``region_name``
+        ("1.63 eV band, 62 %": what it emits and its share of all the map's pixels,
+        when the region map comes from :func:`segment`), ``<var>_mean`` and
         ``<var>_std`` (region, *extra dims) in the map's units, and with a cube
         ``region_mean_spectrum`` / ``region_std_spectrum`` (region, S).
     """
@@ -152,6 +168,13 @@ def region_statistics(
         ("region_area_um2", "um2") if in_um else ("region_area_pixel2", "pixel2")
     )
     coords = {"region": ("region", np.arange(k), {"long_name": "region label"})}
+    names = _region_names(region.attrs, counts, lab.size, k)
+    if names is not None:
+        coords["region_name"] = (
+            "region", names,
+            {"long_name": "what the region emits (from its mean spectrum) and its share of "
+                          "the map's pixels"},
+        )
     ds = xr.Dataset(coords=coords)
     ds["region_pixel_count"] = ("region", counts, {"units": "1", "long_name": "pixels in region"})
     ds[area_name] = ("region", counts * pixel_area, {"units": area_units, "long_name": "area"})
@@ -237,7 +260,7 @@ def region_statistics(
 def region_table(stats: xr.Dataset) -> pd.DataFrame:
     """One row per region with every per-region number of :func:`region_statistics`.
 
-    Spectra are left out. Maps with extra dims give one column per entry, named
+    The first column is ``region_name`` when the statistics carry one. Spectra are left out. Maps with extra dims give one column per entry, named
     ``<var>[<dim>=<value>]``. ``DataFrame.attrs["units"]`` maps columns to units.
     """
     if not isinstance(stats, xr.Dataset) or "region" not in stats.dims:
@@ -259,6 +282,9 @@ def region_table(stats: xr.Dataset) -> pd.DataFrame:
             col = f"{name}[{key}]"
             cols[col] = stacked.values[:, i]
             units[col] = var.attrs.get("units", "")
+    if "region_name" in stats.coords:
+        cols = {"region_name": np.asarray(stats["region_name"].values, dtype=str), **cols}
+        units["region_name"] = ""
     df = pd.DataFrame(cols, index=pd.Index(stats["region"].values, name="region"))
     df.attrs["units"] = units
     return df
