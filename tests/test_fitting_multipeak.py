@@ -32,17 +32,27 @@ def _line(c, area):
     return area * v * STEP
 
 
+def _detected(mu, rng):
+    """Counts from expected photoelectrons: Poisson + dark level + Gaussian read noise."""
+    counts = rng.poisson(mu) + DARK + rng.normal(0.0, READ, mu.shape)
+    return pmap.make_cube(
+        counts.astype(np.float32), energy_ev=E, units="counts",
+        attrs={"gain_e_per_count": 1.0, "read_noise_counts": READ, "dark_level_counts": DARK},
+    )
+
+
 def _two_line_cube(total, frac, sep_fwhm=1.0, shape=(30, 40), seed=0):
     rng = np.random.default_rng(seed)
     c1 = 1.58 + 0.01 * rng.standard_normal(shape)
     c2 = c1 + sep_fwhm * FWHM_V
     mu = _line(c1, total * (1 - frac)) + _line(c2, total * frac) + 20.0
-    counts = rng.poisson(mu) + DARK + rng.normal(0.0, READ, mu.shape)
-    cube = pmap.make_cube(
-        counts.astype(np.float32), energy_ev=E, units="counts",
-        attrs={"gain_e_per_count": 1.0, "read_noise_counts": READ, "dark_level_counts": DARK},
-    )
-    return cube, c1, c2
+    return _detected(mu, rng), c1, c2
+
+
+def _one_line_cube(shape, seed):
+    rng = np.random.default_rng(seed)
+    c1 = 1.60 + 0.005 * rng.standard_normal(shape)
+    return _detected(_line(c1, 3e4) + 20.0, rng), c1
 
 
 def _fit(cube, peaks):
@@ -78,14 +88,7 @@ def test_two_voigt_lines_one_fwhm_apart(total, frac):
 def test_spurious_component_keeps_the_good_peak():
     # one real line fitted with two peaks: the second has nothing to fit. It must not
     # discard the real one (the pixel stays usable, the spurious peak alone is dropped).
-    rng = np.random.default_rng(4)
-    c1 = 1.60 + 0.005 * rng.standard_normal((20, 20))
-    mu = _line(c1, 3e4) + 20.0
-    counts = rng.poisson(mu) + DARK + rng.normal(0.0, READ, mu.shape)
-    cube = pmap.make_cube(
-        counts.astype(np.float32), energy_ev=E, units="counts",
-        attrs={"gain_e_per_count": 1.0, "read_noise_counts": READ, "dark_level_counts": DARK},
-    )
+    cube, c1 = _one_line_cube((20, 20), seed=4)
     r = _fit(cube, 2)
     pst = r.peak_status.values  # (peak, y, x)
     real = np.abs(r.peak_energy.values - c1[None]) < 0.003
@@ -103,14 +106,7 @@ def test_bic_says_where_two_peaks_are_warranted():
     cube2, _, _ = _two_line_cube(6e4, 0.3, shape=(15, 20), seed=3)
     b1, b2 = _fit(cube2, 1).bic.values, _fit(cube2, 2).bic.values
     assert np.mean(b2 < b1) >= 0.95
-    rng = np.random.default_rng(5)
-    c1 = 1.60 + 0.005 * rng.standard_normal((15, 20))
-    mu = _line(c1, 3e4) + 20.0
-    counts = rng.poisson(mu) + DARK + rng.normal(0.0, READ, mu.shape)
-    cube1 = pmap.make_cube(
-        counts.astype(np.float32), energy_ev=E, units="counts",
-        attrs={"gain_e_per_count": 1.0, "read_noise_counts": READ, "dark_level_counts": DARK},
-    )
+    cube1, _ = _one_line_cube((15, 20), seed=5)
     one, two = _fit(cube1, 1), _fit(cube1, 2)
     # where the two-peak fit ended with both peaks, its extra parameters must not pay
     # for themselves in most pixels (BIC penalty 4 ln n ≈ 24 against Δχ² ~ χ²_4)

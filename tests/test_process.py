@@ -17,6 +17,9 @@ from pmap.errors import OutputExistsError, PmapNotice
 from pmap.pipeline import load_pipeline
 from pmap.synthetic import write_demo_cube
 
+sys.path.insert(0, os.path.dirname(__file__))
+from _interrupt import interrupted  # noqa: E402
+
 CONTRACT_PEAK = ["peak_energy", "peak_energy_err", "peak_fwhm", "peak_fwhm_err", "peak_height",
                  "peak_area"]
 CONTRACT_MAP = ["fit_status", "chi2_red", "max_energy", "centroid_energy", "integrated_intensity"]
@@ -234,19 +237,9 @@ def test_interrupted_then_resumed_process_equals_uninterrupted(demo, tmp_path, m
             """[descriptors]\n[fit]\npeaks = 1\n""" + _SMALL_CHUNKS)
     ref = pmap.process(demo["cube"], tmp_path / "ref.zarr", pipeline=pipe, progress=False,
                        memory_limit="2GB").compute()
-    real, calls = results._mark_done, {"n": 0}
-
-    def killed(*a, **k):
-        calls["n"] += 1
-        if calls["n"] > 2:
-            raise KeyboardInterrupt  # as if Ctrl-C arrived after two blocks
-        return real(*a, **k)
-
-    monkeypatch.setattr(results, "_mark_done", killed)
     out = tmp_path / "int.zarr"
-    with pytest.raises(KeyboardInterrupt):
-        pmap.process(demo["cube"], out, pipeline=pipe, progress=False, memory_limit="2GB")
-    monkeypatch.setattr(results, "_mark_done", real)
+    interrupted(monkeypatch, lambda: pmap.process(demo["cube"], out, pipeline=pipe,
+                                                  progress=False, memory_limit="2GB"))
     assert xr.open_zarr(out).attrs["pmap_complete"] is False
     with pytest.raises(OutputExistsError):  # neither resume nor overwrite: refused
         pmap.process(demo["cube"], out, pipeline=pipe, progress=False, memory_limit="2GB")

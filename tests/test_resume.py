@@ -4,6 +4,8 @@
 from __future__ import annotations
 
 import shutil
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -12,6 +14,9 @@ import pmap
 import pmap.results as results
 from pmap.errors import StepError
 from pmap.synthetic import write_demo_cube
+
+sys.path.insert(0, str(Path(__file__).parent))
+from _interrupt import interrupted  # noqa: E402
 
 PIPE = """[[steps]]\nstep = "remove_spikes"\n[[steps]]\nstep = "to_energy"\n[fit]\npeaks = 1\n"""
 
@@ -23,18 +28,8 @@ def demo(tmp_path_factory):
 
 
 def _interrupt(monkeypatch, cube, out, memory_limit, pipe=PIPE):
-    real, calls = results._mark_done, {"n": 0}
-
-    def killed(*a, **k):
-        calls["n"] += 1
-        if calls["n"] > 2:
-            raise KeyboardInterrupt  # as if Ctrl-C arrived after two blocks
-        return real(*a, **k)
-
-    monkeypatch.setattr(results, "_mark_done", killed)
-    with pytest.raises(KeyboardInterrupt):
-        pmap.process(cube, out, pipeline=pipe, progress=False, memory_limit=memory_limit)
-    monkeypatch.setattr(results, "_mark_done", real)
+    interrupted(monkeypatch, lambda: pmap.process(cube, out, pipeline=pipe, progress=False,
+                                                  memory_limit=memory_limit))
 
 
 def test_resume_with_another_memory_limit_equals_uninterrupted(demo, tmp_path, monkeypatch):
