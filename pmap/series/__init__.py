@@ -1,0 +1,10 @@
+"""Series of maps along a stack dim (temperature, excitation power): per-pixel laws.
+
+Layer 3 (beside fitting/): works on result maps, imports only layers 0–2.
+"""
+
+from ._fit import POWER_CLASS_CAVEAT, POWER_CLASS_LEGEND, STATUS_LEGEND, fit_law
+from ._laws import K_B_EV, LAWS
+
+__all__ = ["fit_law", "LAWS", "K_B_EV", "STATUS_LEGEND", "POWER_CLASS_LEGEND",
+           "POWER_CLASS_CAVEAT"]
