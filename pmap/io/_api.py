@@ -9,12 +9,13 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import xarray as xr
 import zarr
 
 from ..conventions import CUBE_NAME
 from ..cube import DEFAULT_CHUNK_MIB
-from ..errors import FormatError
+from ..errors import FormatError, InputFileError, OutputExistsError
 from ..provenance import PROVENANCE_ATTR, get_provenance
 from ._common import check_input, detect_format, finish_cube, read_sidecar
 from ._readers import read_netcdf, read_npy, read_tiff, read_zarr
@@ -190,5 +191,49 @@ def convert(
         source = "option" if read_options.get("wavelength_medium") is not None else "assumed"
         _record_medium(written, source)
         return written
+    if p.is_dir() and output_format(out, fmt) == "netcdf" and _is_result(p):
+        return _result_to_netcdf(p, out, overwrite=overwrite)
     cube = open_cube(p, fmt=src_fmt, **read_options)
     return save_cube(cube, out, fmt=fmt, overwrite=overwrite, zarr_format=zarr_format)
+
+
+def _is_result(path: Path) -> bool:
+    """A pmap result store (every map, not a cube): its attrs carry ``pmap_result``."""
+    try:
+        return "pmap_result" in zarr.open_group(str(path), mode="r").attrs
+    except Exception:  # not a readable Zarr group: let open_cube say what is wrong
+        return False
+
+
+def _netcdf_attr(v: Any) -> Any:
+    """An attribute value NetCDF can store: booleans as 0/1, containers as JSON text."""
+    if isinstance(v, (bool, np.bool_)):
+        return int(v)
+    if isinstance(v, (dict, list, tuple)) and not (
+        isinstance(v, (list, tuple)) and all(isinstance(e, (int, float)) and
+                                             not isinstance(e, bool) for e in v)
+    ):
+        return json.dumps(v)
+    if v is None:
+        return ""
+    return v
+
+
+def _result_to_netcdf(src: Path, out: Path, *, overwrite: bool) -> Path:
+    """Every map of a result store into one NetCDF4 file (lazily, chunk by chunk)."""
+    if out.exists() and not overwrite:
+        raise OutputExistsError(f"{out} exists; pass --overwrite to replace it")
+    ds = xr.open_zarr(str(src), consolidated=None)
+    if not bool(ds.attrs.get("pmap_complete", False)):
+        raise InputFileError(f"{src} is an incomplete result (an interrupted run); resume it "
+                             "first")
+    ds.attrs = {k: _netcdf_attr(v) for k, v in ds.attrs.items()}
+    for var in ds.variables.values():
+        var.attrs = {k: _netcdf_attr(v) for k, v in var.attrs.items()}
+        if "flag_values" in var.attrs:  # CF: flag values of the variable's own type
+            var.attrs["flag_values"] = np.asarray(var.attrs["flag_values"], dtype=var.dtype)
+        var.encoding = {}
+    tmp = out.with_name(out.name + ".partial")
+    ds.to_netcdf(tmp, engine="h5netcdf")
+    os.replace(tmp, out)  # written whole or not at all
+    return out
