@@ -354,6 +354,52 @@ def cmd_view(args: argparse.Namespace) -> int:
     return view(args.path)
 
 
+def cmd_series(args: argparse.Namespace) -> int:
+    import time
+
+    import numpy as np
+
+    from ._progress import TqdmProgress
+    from .results import RESULT_FORMAT_VERSION, mark_complete, open_result, prepare_output
+    from .series import STATUS_LEGEND, fit_law
+
+    src = Path(args.result)
+    ds = open_result(src)
+    out = fit_law(ds, law=args.law, quantity=args.quantity, dim=args.dim,
+                  max_iter=args.max_iter)
+    dst = prepare_output(args.output, overwrite=args.overwrite, input_paths=(src,))
+    out.attrs["pmap_result"] = RESULT_FORMAT_VERSION
+    out.attrs["pmap_complete"] = False
+    law = args.law
+    n_series = int(np.prod([out.sizes[d] for d in out[f"{law}_status"].dims]))
+    t0 = time.perf_counter()
+    with TqdmProgress(f"{law} fit", enabled=not args.quiet, unit="chunk"):
+        out.to_zarr(str(dst), mode="w")
+    wall = time.perf_counter() - t0
+    mark_complete(dst)
+    res = open_result(dst)
+    status = res[f"{law}_status"].values.ravel()
+    ok = status == 0
+    print(f"wrote {dst}: {law} ({out.attrs['series_reference']}) on "
+          f"{out.attrs['series_quantity']} along {out.attrs['series_dim']}, "
+          f"{n_series} series in {wall:.1f} s")
+    for code, word in STATUS_LEGEND.items():
+        n = int((status == code).sum())
+        if n:
+            print(f"  {word}: {n} ({100 * n / status.size:.1f} %)")
+    if ok.any():
+        for name in [v for v in res.data_vars if v.startswith(law + "_") and not v.endswith(
+                ("_err", "_status", "_class", "_chi2_red"))]:
+            val = res[name].values.ravel()[ok]
+            err = res[f"{name}_err"].values.ravel()[ok]
+            print(f"  {name}: median {np.median(val):.6g} {res[name].attrs.get('units', '')} "
+                  f"(median 1-sigma {np.median(err):.3g})")
+        print(f"  {law}_chi2_red: median {np.nanmedian(res[f'{law}_chi2_red'].values.ravel()[ok]):.3g}")
+    if "power_law_class" in res:
+        print(f"  power_law_class: {res['power_law_class'].attrs['caveat']}")
+    return 0
+
+
 # ---------------------------------------------------------------- parser
 def build_parser() -> argparse.ArgumentParser:
     """The argparse parser of the ``pmap`` command."""
@@ -430,6 +476,19 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("view", help="open a cube or result in the napari viewer")
     p.add_argument("path", nargs="?")
     p.set_defaults(func=cmd_view)
+
+    p = sub.add_parser("series", help="fit a published law per pixel along a stack dim "
+                       "(temperature, excitation power) of a result store")
+    p.add_argument("result", help="result store whose maps carry a stack dim")
+    p.add_argument("--law", required=True,
+                   choices=["varshni", "bose_einstein", "linewidth", "arrhenius", "power_law"])
+    p.add_argument("-o", "--output", required=True, help="output store (SERIES.zarr)")
+    p.add_argument("--quantity", help="map to fit (default: the law's usual one)")
+    p.add_argument("--dim", help="stack dim (default: the law's, else the only one)")
+    p.add_argument("--max-iter", type=int, default=200, help="Levenberg-Marquardt iterations")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output store")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_series)
     return parser
 
 

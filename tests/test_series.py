@@ -209,3 +209,38 @@ def test_bad_law_quantity_dim():
         fit_law(ds.rename(temperature="excitation_power").assign_coords(
             excitation_power=("excitation_power", np.arange(1.0, 7), {"units": "mW"})),
             law="power_law", quantity="peak_energy")
+
+
+def _write_result(ds, path):
+    ds = ds.copy()
+    ds.attrs.update(pmap_result=1, pmap_complete=True)
+    ds.to_zarr(str(path), mode="w", consolidated=False)
+    return path
+
+
+def test_cli_series_writes_store(tmp_path, rng, capsys):
+    from pmap.cli import main
+    from pmap.results import open_result
+
+    t = np.linspace(10, 300, 15)
+    e0, alpha, beta, _ = GAAS
+    ds = _series_ds("temperature", t, e0 - alpha * t**2 / (t + beta), 0.3e-3, rng,
+                    shape=(6, 8), chunks=4)
+    src = _write_result(ds, tmp_path / "res.zarr")
+    dst = tmp_path / "series.zarr"
+    assert main(["series", str(src), "--law", "varshni", "-o", str(dst), "-q"]) == 0
+    printed = capsys.readouterr().out
+    assert "varshni_e0: median 1.51" in printed and "48 series" in printed
+    out = open_result(dst)
+    assert out["varshni_e0"].dims == ("peak", "y", "x")
+    assert (out["varshni_status"] == 0).all()
+    assert "series" in out.attrs["pmap_provenance"]
+    # an existing output is refused without --overwrite; bad input is one line, exit 2
+    assert main(["series", str(src), "--law", "varshni", "-o", str(dst), "-q"]) == 2
+    assert main(["series", str(src), "--law", "varshni", "-o", str(dst), "-q",
+                 "--overwrite"]) == 0
+    capsys.readouterr()
+    few = _write_result(_small(np.arange(1.0, 5)), tmp_path / "few.zarr")
+    assert main(["series", str(few), "--law", "varshni", "-o", str(tmp_path / "x.zarr")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "at least 5" in err[0]
