@@ -5,6 +5,7 @@ scikit-learn is imported inside the functions only.
 
 from __future__ import annotations
 
+import json
 import warnings
 from collections.abc import Iterable
 from typing import Any
@@ -13,7 +14,7 @@ import numpy as np
 import xarray as xr
 
 from ..cube import METADATA_ATTRS
-from ..errors import PmapWarning, StepError
+from ..errors import PmapNotice, PmapWarning, StepError
 from ..provenance import PROVENANCE_ATTR, with_step
 from ..steps import register_step
 from ._common import (
@@ -27,6 +28,7 @@ from ._common import (
     peak_positions,
     sample_positions,
 )
+from ._components import align_rows, peak_offsets, sharp_edges, shifting_pairs
 from ._nnls import nnls_rows
 
 METHODS = ("nmf", "pca")
@@ -178,11 +180,62 @@ def _pca_scores(x: np.ndarray, *, mean: np.ndarray, spectra: np.ndarray) -> np.n
     return out
 
 
-def _nmf_abundance(x: np.ndarray, *, spectra: np.ndarray) -> np.ndarray:
+def _nmf_abundance(x: np.ndarray, *, spectra: np.ndarray, reference: float | None = None):
     out = np.full((len(x), len(spectra)), np.nan)
     ok = finite_rows(x)
-    out[ok] = nnls_rows(np.clip(x[ok], 0.0, None), spectra)
+    rows = x[ok]
+    if reference is not None and len(rows):
+        rows = align_rows(rows, reference=reference)[0]
+    out[ok] = nnls_rows(np.clip(rows, 0.0, None), spectra)
     return out
+
+
+def _aligned_pca_scores(x: np.ndarray, *, mean, spectra, reference: float) -> np.ndarray:
+    out = np.full((len(x), len(spectra)), np.nan)
+    ok = finite_rows(x)
+    if ok.any():
+        out[ok] = (align_rows(x[ok], reference=reference)[0] - mean) @ spectra.T
+    return out
+
+
+def _shift_core(x: np.ndarray, *, axis: np.ndarray, reference: float) -> np.ndarray:
+    out = np.full(len(x), np.nan)
+    ok = finite_rows(x)
+    if ok.any():
+        ch = np.arange(len(axis), dtype=float)
+        out[ok] = np.interp(peak_offsets(x[ok]), ch, axis) - np.interp(reference, ch, axis)
+    return out
+
+
+def _diagnose(spectra, w, sample, axis, attrs, sdim, aligned=False):
+    """Sharp-edge flags, shifting-line pairs and the notice text (None when all is well)."""
+    flag, slope, data_slope, inst = sharp_edges(spectra, sample, axis, attrs, sdim)
+    pairs = shifting_pairs(spectra, w, sample, axis)
+    parts = []
+    if flag.any():
+        ks = ", ".join(str(int(k)) for k in np.flatnonzero(flag))
+        ref = "the instrument resolution or " if any(v is not None for v in inst) else ""
+        parts.append(
+            f"component(s) {ks} have edges sharper than {ref}any line in the data (steepest "
+            f"relative slope {np.nanmax(slope[flag]):.3g} vs {data_slope:.3g} per axis unit in "
+            f"the brightest spectra): a line cut into pieces, not an emission spectrum"
+        )
+    for p in pairs:
+        a, b = p["components"]
+        parts.append(
+            f"components {a} and {b} look like one line shifting continuously across the map "
+            f"({p['intermediate_share']:.0%} of their pixels are intermediate mixes, the "
+            f"centroid follows the mix with r = {p['centroid_correlation']:.2f}, over "
+            f"{p['span']:.3g} axis units): their abundance maps show a gradient, not two phases"
+        )
+    notice = None
+    if parts:
+        notice = "NMF: " + "; ".join(parts) + (
+            ". See the peak-energy map (peak_energy, centroid_energy or max_energy) for the "
+            "shift" + ("." if aligned else ", or decompose with align='peak' (components of "
+                       "the aligned spectra, the shift as its own map).")
+        )
+    return flag, slope, data_slope, inst, pairs, notice
 
 
 def _normalise_components(
@@ -215,6 +268,7 @@ def decompose(
     incremental: bool = False,
     batch_pixels: int = 4096,
     mask: xr.DataArray | None = None,
+    align: str | None = None,
 ) -> xr.Dataset:
     """PCA or NMF of a cube: component spectra and per-pixel abundance maps.
 
@@ -246,6 +300,13 @@ def decompose(
         Rows per ``partial_fit`` call when ``incremental``.
     mask : xarray.DataArray of bool, optional
         True marks pixels to leave out (treated like NaN pixels).
+    align : {None, "peak"}
+        ``"peak"``: shift-aware decomposition. Every spectrum is first moved so that its
+        own main peak (centroid of the part above half its maximum) sits at the median
+        position of the sample's peaks (linear interpolation in channel index), so a line that shifts
+        across the map is one component; the shift is returned as ``component_shift``
+        (*stack, y, x) in S units. With several bands per pixel the strongest is
+        aligned. Not with ``incremental``.
 
     Returns
     -------
@@ -254,7 +315,13 @@ def decompose(
         (component, *stack, y, x), lazy when the cube is dask-backed, NaN for
         NaN / masked pixels; ``explained_variance`` (component); ``component_peak``
         (component) in S units; PCA adds ``mean_spectrum`` (S). Attrs record the
-        method, parameters, seed, fit set and ordering rule.
+        method, parameters, seed, fit set and ordering rule. NMF: attrs of
+        ``component_spectrum`` ``sharp_edge`` (1 per component whose edges are steeper
+        than the instrument or any line in the data allows), ``max_relative_slope``,
+        ``data_max_relative_slope``; Dataset attrs ``shifting_line_pairs`` (JSON: pairs of
+        components that are one line shifting across the map) and ``component_notice``;
+        the notice is also issued as a :class:`pmap.errors.PmapNotice`
+        (:mod:`pmap.decomposition._components`).
 
     Notes
     -----
@@ -284,7 +351,12 @@ def decompose(
         "incremental": incremental,
         "batch_pixels": batch_pixels,
         "mask": None if mask is None else "given",
+        "align": align,
     }
+    if align not in (None, "peak"):
+        raise StepError(f"align must be None or 'peak', got {align!r}")
+    if align and incremental:
+        raise StepError("align='peak' works on a pixel sample, not with incremental=True")
     arr = apply_mask(arr, mask)
     axis = np.asarray(arr[sdim].values, dtype=float)
     opts = {"seed": seed, "init": init, "solver": solver, "max_iter": max_iter}
@@ -294,6 +366,12 @@ def decompose(
         if skip_sample
         else _valid_sample(arr, sdim, sample_pixels, seed)
     )
+    reference = None
+    if align:
+        if not len(sample):
+            raise StepError("no valid pixels to align")
+        reference = float(np.median(peak_offsets(sample)))
+        sample = align_rows(sample, reference=reference)[0]
     if incremental:
         comps, mean, info = _fit_incremental(
             arr, sdim, method, n_components, batch_pixels=batch_pixels, **opts
@@ -315,6 +393,8 @@ def decompose(
         ev = np.asarray(info["explained_variance"])[order]
         ev_def = "fraction of the fitted pixels' variance explained (PCA explained_variance_ratio)"
         fn, kw = _pca_scores, {"mean": mean, "spectra": spectra}
+        if reference is not None:
+            fn, kw = _aligned_pca_scores, {**kw, "reference": reference}
     else:
         clipped = np.clip(sample, 0.0, None)
         w = nnls_rows(clipped, spectra)
@@ -332,7 +412,14 @@ def decompose(
                 "reconstruction_error_rel": float(resid),
             }
         )
-        fn, kw = _nmf_abundance, {"spectra": spectra}
+        fn, kw = _nmf_abundance, {"spectra": spectra, "reference": reference}
+        flag, slope, data_slope, _, pairs, notice = _diagnose(
+            spectra, w, clipped, axis, cube.attrs, sdim, aligned=reference is not None
+        )
+        attrs["shifting_line_pairs"] = json.dumps(pairs)
+        attrs["component_notice"] = notice or "none"
+        if notice:
+            warnings.warn(notice, PmapNotice, stacklevel=2)
     attrs["explained_variance_definition"] = ev_def
     attrs = _result_attrs(cube, "decompose", params, n_fit_pixels=attrs["n_fit_pixels"]) | attrs
     attrs["seed"] = seed
@@ -386,6 +473,33 @@ def decompose(
         },
         attrs=attrs,
     )
+    if method == "nmf":
+        ds["component_spectrum"].attrs.update(
+            {
+                "sharp_edge": [int(v) for v in flag],
+                "max_relative_slope": [float(v) for v in slope],
+                "data_max_relative_slope": float(data_slope),
+                "max_relative_slope_units": f"1/{s_units}" if s_units else "1",
+            }
+        )
+    if reference is not None:
+        shift = map_pixels(
+            _shift_core, arr, sdim, out_core=None,
+            kwargs={"axis": axis, "reference": reference},
+        )
+        ds["component_shift"] = (
+            shift.dims,
+            shift.data,
+            {
+                "units": s_units,
+                "long_name": (
+                    f"{sdim} of the pixel's main peak minus the reference "
+                    f"{float(np.interp(reference, np.arange(len(axis)), axis)):.6g} {s_units}"
+                ),
+            },
+        )
+        ds.attrs["align"] = "peak"
+        ds.attrs["align_reference"] = float(np.interp(reference, np.arange(len(axis)), axis))
     if mean is not None:
         ds["mean_spectrum"] = (
             (sdim,),
