@@ -244,3 +244,31 @@ def test_cli_series_writes_store(tmp_path, rng, capsys):
     assert main(["series", str(few), "--law", "varshni", "-o", str(tmp_path / "x.zarr")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "at least 5" in err[0]
+
+
+def test_process_stack_cube_then_series(tmp_path):
+    """End to end: a temperature stack cube → pmap.process → fit_law (Varshni, GaAs)."""
+    from pmap.pipeline import process
+
+    rng = np.random.default_rng(7)
+    t = np.array([20.0, 60, 100, 140, 180, 220, 260, 300])
+    e0, alpha, beta, _ = GAAS
+    e_true = e0 - alpha * t**2 / (t + beta)
+    energy = np.linspace(1.35, 1.60, 250)
+    spec = 2000 * np.exp(-0.5 * ((energy[None] - e_true[:, None]) / 0.008) ** 2) + 20
+    data = rng.poisson(np.broadcast_to(spec[:, None, None, :], (8, 6, 7, 250))).astype(float)
+    cube = xr.DataArray(
+        data, dims=("temperature", "y", "x", "energy"), name="intensity",
+        coords={"temperature": ("temperature", t, {"units": "K"}),
+                "energy": ("energy", energy, {"units": "eV"}),
+                "y": ("y", np.arange(6.0), {"units": "um"}),
+                "x": ("x", np.arange(7.0), {"units": "um"})},
+        attrs={"units": "counts", "gain_e_per_count": 1.0, "read_noise_counts": 0.0,
+               "dark_level_counts": 0.0})
+    res = process(cube, tmp_path / "r.zarr", progress=False, peaks=1)
+    assert "temperature" in res["peak_energy"].dims
+    out = fit_law(res, law="varshni").compute()
+    assert out["varshni_e0"].dims == ("peak", "y", "x")
+    assert (out["varshni_status"] == 0).all()
+    pull = _pulls(out["varshni_e0"], out["varshni_e0_err"], e0)
+    assert pull.size == 42 and abs(pull.mean()) < 3 / np.sqrt(42)
