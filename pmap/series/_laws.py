@@ -49,16 +49,17 @@ def _linear_grid_start(x, y, w, grid, basis, to_params):
     best = np.full(n_pix, np.inf)
     out = None
     w2 = w * w
+    w2y = w2 * y
+    yy = np.sum(w2y * y, axis=1)
     for theta in grid:
         b = basis(x, theta)  # (n, m)
-        a = np.einsum("pn,ni,nj->pij", w2, b, b)
-        rhs = np.einsum("pn,ni,pn->pi", w2, b, y)
-        a += np.eye(b.shape[1]) * 1e-300
-        try:
-            coef = np.linalg.solve(a, rhs[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            coef = np.array([np.linalg.lstsq(ai, ri, rcond=None)[0] for ai, ri in zip(a, rhs)])
-        chi2 = np.sum(w2 * (y - coef @ b.T) ** 2, axis=1)
+        m = b.shape[1]
+        outer = (b[:, :, None] * b[:, None, :]).reshape(len(x), m * m)
+        a = (w2 @ outer).reshape(n_pix, m, m)  # BᵀWB per pixel, one matmul
+        rhs = w2y @ b
+        a += np.eye(m) * (1e-12 * np.einsum("pii->p", a)[:, None, None] + 1e-300)
+        coef = np.linalg.solve(a, rhs[..., None])[..., 0]
+        chi2 = yy - np.einsum("pi,pi->p", coef, rhs)  # at the LS solution
         params, ok = to_params(coef, theta)
         chi2 = np.where(ok & np.isfinite(chi2), chi2, np.inf)
         if out is None:
