@@ -7,8 +7,13 @@ object-oriented API (:class:`matplotlib.figure.Figure`, rendered by Agg), so
 importing :mod:`pmap.report` is light and no pyplot state or GUI backend is
 touched.
 
-Maps are drawn with y increasing upwards (``origin="lower"``), axes in µm,
-equal aspect, NaN in a neutral grey and a scale bar of a round length.
+The visual language (titles with units, colour maps, the region palette,
+the NaN colour, y up with the origin lower left) comes from
+:mod:`pmap._style`, which the napari viewer uses too. Maps are drawn with y
+increasing upwards (``origin="lower"``), axes in µm, equal aspect, NaN,
+masked and no-signal pixels in one neutral grey (said so under the map),
+integer and status maps with discrete colours, a scale bar of a round
+length, and the clipping of robust colour limits stated on the colour bar.
 Each PNG carries a ``Description`` text chunk (JSON: variable, units, colour
 limits, scale-bar length) and ``Software`` = ``pmap <version>``.
 """
@@ -26,6 +31,7 @@ from typing import Any, NamedTuple
 import numpy as np
 import xarray as xr
 
+from . import _style
 from ._version import __version__
 from .conventions import SPECTRAL_DIMS
 from .errors import PmapNotice, StepError
@@ -41,7 +47,7 @@ __all__ = [
 ]
 
 DPI = 120
-NAN_COLOUR = "0.62"
+NAN_COLOUR = _style.NAN_COLOUR
 #: write_figures draws one map per slice of a 3-D variable only up to this many slices.
 MAX_SLICES = 32
 _UNIT_TEXT = {"um": "µm", "1": "", "": "", "pixel": "pixel", "counts": "counts"}
@@ -51,16 +57,28 @@ _UNIT_TEXT = {"um": "µm", "1": "", "": "", "pixel": "pixel", "counts": "counts"
 
 
 def _unit_text(units: Any) -> str:
-    if units is None:
-        return ""
-    return _UNIT_TEXT.get(str(units), str(units))
+    return _style.unit_text(units)
 
 
 def _label(da: xr.DataArray | xr.Variable, fallback: str = "") -> str:
-    """``long_name (units)`` of a variable, units omitted when dimensionless."""
-    name = da.attrs.get("long_name") or getattr(da, "name", None) or fallback
-    unit = _unit_text(da.attrs.get("units"))
-    return f"{name} ({unit})" if unit else str(name)
+    """``Human name (units)`` of a variable (:func:`pmap._style.map_title`)."""
+    name = getattr(da, "name", None)
+    if name is None:
+        name = da.attrs.get("long_name") or fallback
+    return _style.map_title(str(name), attrs=da.attrs)
+
+
+def _title(da: xr.DataArray, stem: str | None = None) -> str:
+    """Figure title of a map or a slice of one: human name, units, slice."""
+    name = str(da.name or stem or "")
+    dim = index = None
+    for d in ("peak", "component"):
+        if d in da.coords and da[d].ndim == 0:
+            dim, index = d, da[d].values.item()
+            for cname, c in da.coords.items():
+                if cname != d and c.ndim == 0 and c.dtype.kind in "OUS" and d in cname:
+                    index = f"{index} ({c.values.item()})"
+    return _style.map_title(name, attrs=da.attrs, dim=dim, index=index)
 
 
 def nice_scale_length(width: float) -> float:
@@ -121,10 +139,11 @@ def _robust_limits(values: np.ndarray, robust: bool) -> tuple[float, float] | No
     return lo, hi
 
 
-def _new_figure(nrows_over_ncols: float, *, width_in: float = 6.4):
+def _new_figure(nrows_over_ncols: float, *, width_in: float = 6.4, side_in: float = 1.9):
+    """A figure whose height fits a map of that aspect beside ``side_in`` of colour bar."""
     from matplotlib.figure import Figure
 
-    height = min(max(width_in * nrows_over_ncols * 0.85 + 1.0, 2.8), 9.0)
+    height = min(max((width_in - side_in) * nrows_over_ncols + 1.3, 2.8), 9.0)
     return Figure(figsize=(width_in, height), layout="constrained")
 
 
@@ -136,6 +155,23 @@ def _save(fig, path: str | Path, info: Mapping[str, Any]) -> Path:
     return p
 
 
+def _render(fig) -> None:
+    """Lay out and draw ``fig`` on an Agg canvas at :data:`DPI`, as :func:`_save` will."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    fig.set_dpi(DPI)
+    FigureCanvasAgg(fig).draw()
+
+
+def _axes_px(ax) -> list[float]:
+    """Axes box in PNG pixels (x0, y0, x1, y1), y from the top of the image, as saved."""
+    fig = ax.figure
+    _render(fig)
+    x0, y0, x1, y1 = ax.get_window_extent().extents
+    h = fig.bbox.height
+    return [float(x0), float(h - y1), float(x1), float(h - y0)]
+
+
 def _safe_name(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(text)).strip("_") or "figure"
 
@@ -144,6 +180,8 @@ class _MapArtists(NamedTuple):
     image: Any
     colorbar: Any
     scale_bar_um: float | None
+    levels: list[int] | None = None
+    n_nan: int = 0
 
 
 def _draw_scale_bar(ax, x_ext, y_ext) -> float:
@@ -183,11 +221,27 @@ def _draw_scale_bar(ax, x_ext, y_ext) -> float:
     return length
 
 
-def _draw_map(
-    ax, da: xr.DataArray, *, cmap=None, robust=True, scale_bar=True, norm=None, vlim=None
-) -> _MapArtists:
-    """Draw a (y, x) map on ``ax``: image, colour bar, scale bar. Returns the artists."""
+def _colormap(cmap):
     import matplotlib as mpl
+
+    if isinstance(cmap, mpl.colors.Colormap):
+        return cmap.with_extremes(bad=NAN_COLOUR)
+    if cmap in mpl.colormaps:
+        return mpl.colormaps[cmap].with_extremes(bad=NAN_COLOUR)
+    raise StepError(f"unknown colormap {cmap!r} (use a matplotlib colormap name)")
+
+
+def _draw_map(
+    ax, da: xr.DataArray, *, cmap=None, robust=True, scale_bar=True, norm=None, vlim=None,
+    discrete: bool = True,
+) -> _MapArtists:
+    """Draw a (y, x) map on ``ax``: image, colour bar, scale bar, NaN note. Returns the artists.
+
+    Integer maps (:func:`pmap._style.discrete_levels`) get one colour per value
+    and a colour bar ticked at the values; continuous maps with robust limits
+    say on the colour bar how many pixels lie beyond them.
+    """
+    from matplotlib.colors import BoundaryNorm, ListedColormap
 
     yv, yunit = _axis_values(da, "y")
     xv, xunit = _axis_values(da, "x")
@@ -197,17 +251,33 @@ def _draw_map(
     if xv.size > 1 and xv[1] < xv[0]:
         values, xv = values[:, ::-1], xv[::-1]
     x_ext, y_ext = _extent(xv), _extent(yv)
-    if isinstance(cmap, mpl.colors.Colormap):
-        cm = cmap.with_extremes(bad=NAN_COLOUR)
-    elif (cmap or "viridis") in mpl.colormaps:
-        cm = mpl.colormaps[cmap or "viridis"].with_extremes(bad=NAN_COLOUR)
+    name = str(da.name or "")
+    levels = _style.discrete_levels(values, da.attrs) if (discrete and norm is None) else None
+    clip_note = ""
+    kw: dict[str, Any] = {}
+    if levels is not None:
+        base = _colormap(cmap or _style.colormap_for(name))
+        n = len(levels)
+        cm = ListedColormap([base(0.5 if n == 1 else i / (n - 1)) for i in range(n)])
+        cm = cm.with_extremes(bad=NAN_COLOUR)
+        index = np.full(values.shape, np.nan)
+        for i, lv in enumerate(levels):
+            index[values == lv] = i
+        values = index
+        kw["norm"] = BoundaryNorm(np.arange(n + 1) - 0.5, n)
     else:
-        raise StepError(f"unknown colormap {cmap!r} (use a matplotlib colormap name)")
-    kw: dict[str, Any] = {"norm": norm} if norm is not None else {}
-    if norm is None:
-        lim = vlim if vlim is not None else _robust_limits(values, robust)
-        if lim is not None:
-            kw.update(vmin=lim[0], vmax=lim[1])
+        cm = _colormap(cmap or _style.colormap_for(name))
+        if norm is not None:
+            kw["norm"] = norm
+        else:
+            lim = vlim if vlim is not None else _robust_limits(values, robust)
+            if lim is not None:
+                kw.update(vmin=lim[0], vmax=lim[1])
+                below = int(np.sum(values < lim[0]))
+                above = int(np.sum(values > lim[1]))
+                if below or above:
+                    how = "2–98 % limits" if (robust and vlim is None) else "limits"
+                    clip_note = f"\n{how}; clipped: {below} px below, {above} above"
     im = ax.imshow(
         np.ma.masked_invalid(values),
         origin="lower",
@@ -221,13 +291,28 @@ def _draw_map(
     ax.set_xlabel(f"x ({_unit_text(xunit)})")
     ax.set_ylabel(f"y ({_unit_text(yunit)})")
     cb = None
-    if norm is None:
-        cb = ax.figure.colorbar(im, ax=ax, shrink=0.9, extend="both" if robust else "neither")
+    if levels is not None:
+        cb = ax.figure.colorbar(im, ax=ax, shrink=0.9, ticks=np.arange(len(levels)))
+        names = _style.flag_names(da.attrs) or {}
+        cb.ax.set_yticklabels([names.get(lv, str(lv)) for lv in levels], fontsize=8)
         cb.set_label(_label(da, "value"))
+    elif norm is None:
+        extend = "neither"
+        if "vmin" in kw:
+            lo_c, hi_c = np.nanmin(values) < kw["vmin"], np.nanmax(values) > kw["vmax"]
+            extend = {(True, True): "both", (True, False): "min", (False, True): "max"}.get(
+                (bool(lo_c), bool(hi_c)), "neither")
+        cb = ax.figure.colorbar(im, ax=ax, shrink=0.9, extend=extend)
+        cb.set_label(_label(da, "value") + clip_note, fontsize=8.5 if clip_note else None)
+    n_nan = int(np.sum(~np.isfinite(values)))
+    note = _style.ORIENTATION_NOTE
+    if n_nan:
+        note += f" · {_style.NAN_TEXT}: {n_nan} px"
+    ax.figure.supxlabel(note, fontsize=7.5, color="0.3")
     length = None
     if scale_bar and xunit == "um" and x_ext[1] > x_ext[0]:
         length = _draw_scale_bar(ax, x_ext, y_ext)
-    return _MapArtists(im, cb, length)
+    return _MapArtists(im, cb, length, levels, n_nan)
 
 
 # --------------------------------------------------------------------------- public
@@ -252,9 +337,12 @@ def plot_map(
     path : str or Path
         Output PNG file (parent folders are created).
     title : str, optional
-        Figure title; default the variable name.
+        Figure title; default the human name with units
+        (:func:`pmap._style.map_title`).
     cmap : str, optional
-        matplotlib colormap name (default "viridis"); NaN is drawn grey.
+        matplotlib colormap name (default :func:`pmap._style.colormap_for`
+        the variable); NaN is drawn in :data:`pmap._style.NAN_COLOUR`.
+        Integer-valued maps get one colour per value and a discrete colour bar.
     robust : bool
         Colour limits at the 2nd and 98th percentiles of the finite values
         (else min and max).
@@ -270,15 +358,24 @@ def plot_map(
     fig = _new_figure(da.sizes["y"] / da.sizes["x"])
     ax = fig.add_subplot()
     art = _draw_map(ax, da, cmap=cmap, robust=robust, scale_bar=scale_bar)
-    ax.set_title(title if title is not None else str(da.name or ""))
+    ax.set_title(title if title is not None else _title(da))
     return _save(
         fig,
         path,
         {
             "variable": str(da.name),
+            "title": ax.get_title(),
             "units": da.attrs.get("units"),
+            "cmap": art.image.get_cmap().name,
             "clim": [float(v) for v in art.image.get_clim()],
             "colorbar_label": art.colorbar.ax.get_ylabel(),
+            "discrete_levels": art.levels,
+            "colorbar_ticklabels": [t.get_text() for t in art.colorbar.ax.get_yticklabels()]
+            if art.levels is not None else None,
+            "n_no_value": art.n_nan,
+            "origin": "lower",
+            "extent": [float(v) for v in art.image.get_extent()],
+            "axes_px": _axes_px(ax),
             "scale_bar_um": art.scale_bar_um,
         },
     )
@@ -293,8 +390,9 @@ def plot_histogram(
 ) -> Path:
     """Save a histogram of a map's finite values, with median and robust spread.
 
-    The histogram spans the 0.5–99.5 percentile range (values outside are
-    counted in the note). The robust spread is σ_MAD = 1.4826 × median absolute
+    The histogram spans the 0.5–99.5 percentile range; the statistics stand
+    beside the bars (not over them) and say how many values lie outside that
+    range and are not drawn. The robust spread is σ_MAD = 1.4826 × median absolute
     deviation (equal to σ for normally distributed values).
 
     Parameters
@@ -319,43 +417,51 @@ def plot_histogram(
         raise StepError(f"bins must be a positive integer, got {bins}")
     values = np.asarray(da.values, dtype=float).ravel()
     finite = values[np.isfinite(values)]
-    fig = _new_figure(0.6)
-    ax = fig.add_subplot()
+    fig = _new_figure(0.6, width_in=7.2)
+    ax, side = fig.subplots(1, 2, width_ratios=[3.2, 1.0])
+    side.set_axis_off()
     unit = _unit_text(da.attrs.get("units"))
     info: dict[str, Any] = {
         "variable": str(da.name),
         "units": da.attrs.get("units"),
         "n": int(finite.size),
+        "n_no_value": int(values.size - finite.size),
     }
     if finite.size:
         lo, hi = np.percentile(finite, [0.5, 99.5])
         if hi <= lo:
             lo, hi = lo - (abs(lo) * 1e-3 or 1.0), hi + (abs(hi) * 1e-3 or 1.0)
-        ax.hist(finite, bins=bins, range=(lo, hi), color="tab:blue", alpha=0.85)
+        ax.hist(finite, bins=bins, range=(lo, hi), color=_style.CATEGORY_PALETTE[0])
         med = float(np.median(finite))
         sig = float(1.4826 * np.median(np.abs(finite - med)))
-        outside = int(np.sum((finite < lo) | (finite > hi)))
+        below, above = int(np.sum(finite < lo)), int(np.sum(finite > hi))
         ax.axvline(med, color="black", linestyle="--", linewidth=1)
-        note = f"median = {med:.5g} {unit}\nσ_MAD = {sig:.3g} {unit}\nN = {finite.size}" + (
-            f" ({outside} outside)" if outside else ""
-        )
-        ax.text(
-            0.98,
-            0.96,
-            note,
-            transform=ax.transAxes,
-            ha="right",
-            va="top",
-            fontsize=9,
-            bbox={"facecolor": "white", "alpha": 0.8, "edgecolor": "0.7"},
-        )
-        info.update(median=med, sigma_mad=sig)
+        lines = [
+            f"median = {med:.5g} {unit}".rstrip() + "\n(dashed line)",
+            f"σ_MAD = {sig:.3g} {unit}".rstrip() + "\n(1.4826 × median\nabsolute deviation)",
+            f"N = {finite.size} pixels\nwith a value",
+        ]
+        if below or above:
+            lines.append(
+                f"{below + above} not drawn:\n{below} below, {above} above\nthe 0.5–99.5th\n"
+                "percentile range\nof the axis"
+            )
+        if values.size > finite.size:
+            lines.append(f"{values.size - finite.size} pixels\nwithout a value\n(NaN, no signal)")
+        side.text(0.0, 1.0, "\n\n".join(lines), transform=side.transAxes, ha="left", va="top",
+                  fontsize=8.5)
+        info.update(median=med, sigma_mad=sig, outside_below=below, outside_above=above,
+                    range=[float(lo), float(hi)])
     else:
         ax.text(0.5, 0.5, "no finite values", transform=ax.transAxes, ha="center")
     ax.set_xlabel(_label(da, "value"))
     ax.set_ylabel("pixels")
     info["xlabel"] = ax.get_xlabel()
-    ax.set_title(title if title is not None else str(da.name or ""))
+    ax.set_title(title if title is not None else "Histogram: " + _title(da))
+    _render(fig)
+    info["stats_bbox_px"] = [float(v) for v in side.texts[0].get_window_extent().extents] \
+        if side.texts else None
+    info["axes_bbox_px"] = [float(v) for v in ax.get_window_extent().extents]
     return _save(fig, path, info)
 
 
@@ -402,8 +508,16 @@ def plot_spectra(
     reference: xr.DataArray | None = None,
     reference_label: str = "raw",
     title: str | None = None,
+    colours: Sequence[str] | None = None,
+    labels: Sequence[str] | None = None,
 ) -> Path:
-    """Save a few spectra, optionally over a reference (e.g. raw under cleaned).
+    """Save a few spectra, optionally against a reference (e.g. raw against cleaned).
+
+    With a ``reference`` the figure has three panels sharing the spectral
+    axis: (a) the whole range, reference dashed and spectra solid, each pixel
+    in its own colour; (b) a zoom on the emission, the intensity axis scaled
+    to the spectra (reference values beyond it are cut); (c) the residual
+    reference − spectrum, i.e. what the step removed.
 
     Parameters
     ----------
@@ -416,55 +530,106 @@ def plot_spectra(
         (iy, ix) index pairs for a cube (default: centre and two quarter
         points), or indices along the first dim for (n, S) spectra.
     reference : xarray.DataArray, optional
-        Same-shaped cube or spectra drawn underneath as thin grey lines.
+        Same-shaped cube or spectra, e.g. the raw data under cleaned ones.
     reference_label : str
         Legend label of the reference.
     title : str, optional
         Figure title.
+    colours, labels : sequence of str, optional
+        Colour and legend label of each spectrum (default: the categorical
+        palette of :mod:`pmap._style` and the pixel positions).
 
     Returns
     -------
     Path
         The PNG written.
     """
+    from matplotlib.lines import Line2D
+
     if not isinstance(cube_or_spectra, xr.DataArray):
         raise StepError("spectra must be an xarray DataArray (a cube or (n, S) spectra)")
     sdim, spectra = _spectra_list(cube_or_spectra, pixels)
     refs = _spectra_list(reference, pixels)[1] if reference is not None else []
-    fig = _new_figure(0.55)
-    ax = fig.add_subplot()
-    for i, (lab, s) in enumerate(spectra):
-        colour = f"C{i % 10}"
-        if refs:
-            r = refs[i][1]
-            ax.plot(
-                r[sdim].values,
-                r.values,
-                color="0.55",
-                linewidth=0.8,
-                label=reference_label if i == 0 else None,
-            )
-        ax.plot(s[sdim].values, s.values, color=colour, linewidth=1.1, label=lab)
-    ax.set_xlabel(_label(cube_or_spectra[sdim], sdim))
-    ax.set_ylabel(_label(cube_or_spectra, "intensity"))
-    ax.legend(fontsize=8, loc="best")
-    ax.set_title(title if title is not None else "")
-    return _save(
-        fig,
-        path,
-        {
-            "variable": str(cube_or_spectra.name),
-            "n_spectra": len(spectra),
-            "units": cube_or_spectra.attrs.get("units"),
-            "xlabel": ax.get_xlabel(),
-            "ylabel": ax.get_ylabel(),
-        },
+    cols = list(colours) if colours is not None else [
+        _style.category_colour(i) for i in range(len(spectra))]
+    labs = list(labels) if labels is not None else [lab for lab, _ in spectra]
+    if len(cols) < len(spectra) or len(labs) < len(spectra):
+        raise StepError(f"need one colour and one label per spectrum ({len(spectra)})")
+    xlabel = _label(cube_or_spectra[sdim], sdim)
+    ylabel = _label(cube_or_spectra, "intensity")
+    info: dict[str, Any] = {
+        "variable": str(cube_or_spectra.name),
+        "n_spectra": len(spectra),
+        "units": cube_or_spectra.attrs.get("units"),
+        "colours": cols[: len(spectra)],
+        "labels": labs[: len(spectra)],
+    }
+    if not refs:
+        fig = _new_figure(0.55, side_in=0.0)
+        ax = fig.add_subplot()
+        for i, (_, sp) in enumerate(spectra):
+            ax.plot(sp[sdim].values, sp.values, color=cols[i], linewidth=1.2, label=labs[i])
+        ax.set_xlabel(xlabel)
+        ax.set_ylabel(ylabel)
+        ax.legend(fontsize=8, loc="best")
+        ax.set_title(title if title is not None else "")
+        info.update(xlabel=ax.get_xlabel(), ylabel=ax.get_ylabel(),
+                    legend=[t.get_text() for t in ax.get_legend().get_texts()])
+        return _save(fig, path, info)
+
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(7.2, 8.0), layout="constrained")
+    ax_full, ax_zoom, ax_res = fig.subplots(3, 1, sharex=True, height_ratios=[1.0, 1.3, 0.8])
+    lo_z, hi_z = np.inf, -np.inf
+    for i, (_, sp) in enumerate(spectra):
+        r = refs[i][1]
+        xv, sv, rv = sp[sdim].values, np.asarray(sp.values, float), np.asarray(r.values, float)
+        for ax in (ax_full, ax_zoom):
+            ax.plot(xv, rv, color=cols[i], linewidth=0.9, linestyle="--", alpha=0.9)
+            ax.plot(xv, sv, color=cols[i], linewidth=1.3)
+        ax_res.plot(xv, rv - sv, color=cols[i], linewidth=1.0)
+        if np.isfinite(sv).any():
+            lo_z, hi_z = min(lo_z, np.nanmin(sv)), max(hi_z, np.nanmax(sv))
+    if np.isfinite(lo_z) and hi_z > lo_z:
+        pad = 0.08 * (hi_z - lo_z)
+        ax_zoom.set_ylim(lo_z - pad, hi_z + pad)
+    handles = [Line2D([], [], color=cols[i], linewidth=2, label=labs[i])
+               for i in range(len(spectra))]
+    handles += [Line2D([], [], color="0.2", linestyle="--", label=reference_label),
+                Line2D([], [], color="0.2", linestyle="-", label="cleaned")]
+    ax_full.legend(handles=handles, fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0),
+                   frameon=False)
+    ax_full.set_title("(a) whole range", fontsize=9, loc="left")
+    ax_zoom.set_title("(b) zoom on the emission (intensity axis fitted to the cleaned spectra; "
+                      "taller raw values cut)", fontsize=9, loc="left")
+    ax_res.set_title(f"(c) removed: {reference_label} − cleaned", fontsize=9, loc="left")
+    ax_full.set_ylabel(ylabel)
+    ax_zoom.set_ylabel(ylabel)
+    ax_res.set_ylabel(_style.unit_text(cube_or_spectra.attrs.get("units")) or "difference")
+    ax_res.axhline(0, color="0.5", linewidth=0.6)
+    ax_res.set_xlabel(xlabel)
+    fig.suptitle(title if title is not None else "")
+    info.update(
+        xlabel=xlabel, ylabel=ylabel,
+        legend=[h.get_label() for h in handles],
+        zoom_ylim=[float(v) for v in ax_zoom.get_ylim()],
+        full_ylim=[float(v) for v in ax_full.get_ylim()],
+        panels=["whole range", "zoom", "residual"],
     )
+    return _save(fig, path, info)
 
 
 def _label_names(da: xr.DataArray, codes: np.ndarray, names) -> dict[int, str]:
     if names is not None:
         return {int(k): str(v) for k, v in dict(names).items()}
+    raw = da.attrs.get("region_names")
+    if raw:
+        try:
+            got = json.loads(raw) if isinstance(raw, str) else dict(raw)
+            return {int(k): str(v) for k, v in got.items()}
+        except (ValueError, TypeError):
+            pass
     fv, fm = da.attrs.get("flag_values"), da.attrs.get("flag_meanings")
     if fv is not None and fm is not None:  # CF flag convention
         return {int(k): str(v).replace("_", " ")
@@ -501,7 +666,6 @@ def plot_labels(
     Path
         The PNG written.
     """
-    import matplotlib as mpl
     from matplotlib.colors import BoundaryNorm, ListedColormap
     from matplotlib.patches import Patch
 
@@ -520,20 +684,29 @@ def plot_labels(
     label_names = _label_names(da, codes, names)
     if codes.size == 0:
         codes = np.array([0])
-    base = mpl.colormaps["tab10" if codes.size <= 10 else "tab20"]
-    cmap = ListedColormap([base(i % base.N) for i in range(codes.size)])
+    flags = _style.discrete_levels(fvals, da.attrs) if "flag_values" in da.attrs else None
+    if str(da.name) == "region" or flags is None:
+        # regions (and plain labels) by code: the same colour in every figure and the viewer
+        colours = [_style.region_colour(c) for c in codes]
+    else:
+        # status maps: by position in flag_values, stable whatever codes occur
+        colours = [_style.category_colour(flags.index(c)) if c in flags else _style.NAN_COLOUR
+                   for c in codes]
+    cmap = ListedColormap(colours)
     # map codes to 0..n-1 so that each gets one colour
     index = np.full(fvals.shape, np.nan)
     for i, c in enumerate(codes):
         index[fvals == c] = i
     norm = BoundaryNorm(np.arange(codes.size + 1) - 0.5, codes.size)
-    fig = _new_figure(da.sizes["y"] / da.sizes["x"])
+    longest = max((len(label_names.get(int(c), str(int(c)))) for c in codes), default=4)
+    side = min(1.0 + 0.07 * (longest + 5), 4.2)
+    fig = _new_figure(da.sizes["y"] / da.sizes["x"], width_in=4.6 + side, side_in=side)
     ax = fig.add_subplot()
     mapped = da.copy(data=index)
-    art = _draw_map(ax, mapped, cmap=cmap, scale_bar=scale_bar, norm=norm)
+    art = _draw_map(ax, mapped, cmap=cmap, scale_bar=scale_bar, norm=norm, discrete=False)
     handles = [
         Patch(
-            facecolor=cmap(i),
+            facecolor=colours[i],
             edgecolor="0.3",
             label=f"{label_names.get(int(c), str(int(c)))} ({int(c)})",
         )
@@ -548,12 +721,17 @@ def plot_labels(
         title=_label(da, "label"),
         title_fontsize=8,
     )
-    ax.set_title(title if title is not None else str(da.name or ""))
+    ax.set_title(title if title is not None else _title(da))
     return _save(
         fig,
         path,
         {
             "variable": str(da.name),
+            "title": ax.get_title(),
+            "colours": colours,
+            "legend": [h.get_label() for h in handles],
+            "extent": [float(v) for v in art.image.get_extent()],
+            "axes_px": _axes_px(ax),
             "codes": codes.tolist(),
             "names": [label_names.get(int(c), str(int(c))) for c in codes],
             "scale_bar_um": art.scale_bar_um,
@@ -605,6 +783,7 @@ def write_figures(
     if missing:
         raise StepError(f"variables {missing} are not in the dataset ({list(ds.data_vars)})")
     written: list[Path] = []
+    no_value = _no_value_mask(ds)
     for name in names:
         v = ds[name]
         extra = [d for d in v.dims if d not in ("y", "x") and v.sizes[d] > 1]
@@ -631,9 +810,11 @@ def write_figures(
                               stacklevel=2)
                 continue
             if _is_label_map(v):
-                written.append(plot_labels(sl, path, title=stem))
+                written.append(plot_labels(sl, path))
             else:
-                written.append(plot_map(sl, path, title=stem))
+                if no_value is not None and sl.dtype.kind == "f" and name != "background_offset":
+                    sl = sl.where(~no_value)
+                written.append(plot_map(sl, path))
     if "peak_energy" in ds.data_vars and (variables is None or "peak_energy" in names):
         pe = ds["peak_energy"]
         extra = [d for d in pe.dims if d not in ("y", "x") and pe.sizes[d] > 1]
@@ -643,7 +824,6 @@ def write_figures(
                     plot_histogram(
                         pe.isel({extra[0]: i}),
                         out / f"{prefix}{_safe_name(f'peak_energy_{lab}_histogram')}.png",
-                        title=f"peak_energy {lab}",
                     )
                 )
         else:
@@ -651,6 +831,25 @@ def write_figures(
     if variables is None:
         written.extend(_spectra_figures(ds, out, prefix))
     return written
+
+
+def _no_value_mask(ds: xr.Dataset) -> xr.DataArray | None:
+    """Pixels without a value in a result: fit status 'no signal' or 'masked', or region −1.
+
+    One rule for every map drawn by :func:`write_figures`: such pixels are
+    grey (:data:`pmap._style.NAN_COLOUR`), whatever a step stored there
+    (NaN, or 0 for component amplitudes).
+    """
+    mask = None
+    if "fit_status" in ds.variables:
+        fs = ds["fit_status"]
+        names = _style.flag_names(fs.attrs) or {}
+        codes = [c for c, t in names.items() if t in ("no signal", "masked or nan")]
+        if codes and {"y", "x"} <= set(fs.dims) and fs.ndim == 2:
+            mask = fs.isin(codes)
+    if mask is None and "region" in ds.variables and ds["region"].ndim == 2:
+        mask = ds["region"] < 0
+    return mask.load() if mask is not None else None
 
 
 def _spectra_figures(ds: xr.Dataset, out: Path, prefix: str) -> list[Path]:
@@ -663,9 +862,17 @@ def _spectra_figures(ds: xr.Dataset, out: Path, prefix: str) -> list[Path]:
     if "region_mean_spectrum" in ds.data_vars:
         m = ds["region_mean_spectrum"].load()
         rdim = next(d for d in m.dims if d.startswith("region"))
+        codes = (np.asarray(m[rdim].values).astype(int) if rdim in m.coords
+                 else np.arange(m.sizes[rdim]))
+        names = _label_names(ds["region"], codes, None) if "region" in ds.variables else {}
+        if "region_name" in m.coords and m["region_name"].dims == (rdim,):
+            names = {int(c): str(t) for c, t in zip(codes, m["region_name"].values)}
         m = m.rename({rdim: "region"}).assign_coords(region=np.arange(m.sizes[rdim]))
-        written.append(plot_spectra(m, out / f"{prefix}region_mean_spectra.png",
-                                    title="mean spectrum per region"))
+        written.append(plot_spectra(
+            m, out / f"{prefix}region_mean_spectra.png",
+            title="Mean spectrum per region (colours as in the region map)",
+            colours=[_style.region_colour(c) for c in codes],
+            labels=[f"{names.get(int(c), f'region {int(c)}')} ({int(c)})" for c in codes]))
     return written
 
 

@@ -11,7 +11,7 @@ import xarray as xr
 from PIL import Image
 from scipy import stats
 
-from pmap import report
+from pmap import _style, report
 from pmap.errors import PmapNotice, StepError
 from pmap.synthetic import make_demo_cube
 
@@ -52,7 +52,7 @@ def test_plot_map_writes_png_with_units(tmp_path):
     assert path.exists() and path.stat().st_size > 5_000
     size, info, pixels = png_info(path)
     assert size[0] > 300 and size[1] > 200
-    assert "(eV)" in info["colorbar_label"] and "peak energy" in info["colorbar_label"]
+    assert info["colorbar_label"].startswith("Peak energy (eV)")
     assert pixels.std() > 10  # not a blank image
 
 
@@ -88,7 +88,9 @@ def test_scale_bar_drawn_on_map(tmp_path):
     bars = [p for p in ax.patches if p.get_gid() == "scale_bar"]
     assert len(bars) == 1 and bars[0].get_width() == pytest.approx(10.0)
     assert any(t.get_text() == "10 µm" for t in ax.texts)
-    assert art.image.cmap.get_bad()[:3] == pytest.approx((0.62, 0.62, 0.62))  # NaN grey
+    from matplotlib.colors import to_rgb
+
+    assert art.image.cmap.get_bad()[:3] == pytest.approx(to_rgb(_style.NAN_COLOUR))  # NaN grey
     assert ax.get_aspect() == 1.0
     # no scale bar for maps in pixel units
     ax2 = Figure().add_subplot()
