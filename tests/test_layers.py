@@ -15,7 +15,7 @@ LAYERS = {
     "_progress": 0, "noise": 0, "_style": 0,
     "io": 1, "synthetic": 1,
     "scenes": 1,
-    "spectral": 2,
+    "spectral": 2, "stack": 2,
     "fitting": 3, "decomposition": 3, "series": 3,
     "results": 4,
     "pipeline": 5,
