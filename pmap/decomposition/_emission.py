@@ -101,7 +101,8 @@ class EmissionSpace:
         # for the mean of a chi^2_1: robust to the curvature of lines in a few pixels).
         if s.shape[1] >= 3:
             d2 = s[:, :-2] - 2 * s[:, 1:-1] + s[:, 2:]
-            var = np.median(d2 * d2, axis=0) / 0.4549 / 6.0
+            few = d2[:: max(1, len(d2) // 5000)]  # at most ~5000 rows for the channel noise
+            var = np.median(few * few, axis=0) / 0.4549 / 6.0
             var = np.concatenate([[var[0]], var, [var[-1]]])
         else:
             var = np.ones(s.shape[1])
@@ -123,8 +124,17 @@ class EmissionSpace:
         mean = w[fit_rows].mean(axis=0)
         wc = w[fit_rows] - mean
         m = min(20, wc.shape[1], max(len(wc) - 1, 1))
-        _, sv, vt = np.linalg.svd(wc, full_matrices=False)
-        ev = sv[:m] ** 2 / max(len(wc) - 1, 1)
+        # Principal axes from the channel covariance (C x C): cheaper than an SVD of the
+        # sample when it has more rows than channels.
+        from scipy.linalg import eigh
+
+        few = wc[:: max(1, len(wc) // 10000)]  # at most ~10000 rows for the covariance
+        cov = (few.T @ few) / max(len(few) - 1, 1)
+        c = cov.shape[0]
+        evals, evecs = eigh(cov, subset_by_index=[c - m, c - 1])  # the m largest only
+        top = np.argsort(evals)[::-1]
+        ev = np.clip(evals[top], 0.0, None)
+        vt = evecs[:, top].T
         floor_ev = 1.0  # white noise in units of its own s.d.
         keep = int(np.sum(ev > COMPONENT_SNR * floor_ev))
         keep = int(np.clip(keep, min(2, len(ev)), MAX_COMPONENTS))

@@ -48,8 +48,8 @@ TREND_ORDER = 4
 MIXTURE_TOLERANCE = 0.1
 
 
-def fisher_projection(za: np.ndarray, zb: np.ndarray, ridge: float = 1e-3):
-    """Project two clusters on Fisher's discriminant axis, scaled to unit pooled s.d."""
+def fisher_direction(za: np.ndarray, zb: np.ndarray, ridge: float = 1e-3) -> np.ndarray:
+    """Fisher's discriminant axis of two clusters, scaled to unit pooled s.d."""
     na, nb = len(za), len(zb)
     m = za.shape[1]
     ca = np.cov(za.T, bias=True).reshape(m, m) if na > 1 else np.zeros((m, m))
@@ -60,8 +60,21 @@ def fisher_projection(za: np.ndarray, zb: np.ndarray, ridge: float = 1e-3):
     d = zb.mean(axis=0) - za.mean(axis=0)
     w = np.linalg.solve(sw, d)
     norm = np.sqrt(max(float(w @ sw @ w), 1e-300))
-    w = w / norm
+    return w / norm
+
+
+def fisher_projection(za: np.ndarray, zb: np.ndarray, ridge: float = 1e-3):
+    """Project two clusters on Fisher's discriminant axis, scaled to unit pooled s.d."""
+    w = fisher_direction(za, zb, ridge)
     return za @ w, zb @ w
+
+
+#: Rows of each cluster used by the trend fit and the density valley.
+MAX_ROWS = 3000
+
+
+def _thin(n: int) -> slice:
+    return slice(None, None, max(1, -(-n // MAX_ROWS)))
 
 
 def trend_design(pos: np.ndarray, order: int = 2) -> np.ndarray:
@@ -128,22 +141,28 @@ def pair_score(data: MergeData, ra: np.ndarray, rb: np.ndarray):
     """(score, δ/σ, valley ratio, border jump ratio or NaN) of two clusters given by
     their row indices; score < ``data.separation`` means one emission type."""
     za, zb = data.feats[ra], data.feats[rb]
-    ta, tb = fisher_projection(za, zb)
-    t = np.concatenate([ta, tb])
-    ind = np.concatenate([np.zeros(len(ta)), np.ones(len(tb))])
+    w = fisher_direction(za, zb)
+    ta, tb = za @ w, zb @ w
+    # The trend fit and the density use at most MAX_ROWS rows of each cluster (evenly
+    # spaced in the sample's order, so the choice is reproducible).
+    sa, sb = _thin(len(ra)), _thin(len(rb))
+    t = np.concatenate([ta[sa], tb[sb]])
+    ind = np.concatenate([np.zeros(len(ta[sa])), np.ones(len(tb[sb]))])
     design = np.column_stack(
-        [trend_design(np.concatenate([data.pos[ra], data.pos[rb]]), data.order), ind]
+        [trend_design(np.concatenate([data.pos[ra[sa]], data.pos[rb[sb]]]), data.order), ind]
     )
-    coef, *_ = np.linalg.lstsq(design, t, rcond=None)
+    gram = design.T @ design
+    gram += 1e-10 * np.trace(gram) / len(gram) * np.eye(len(gram))
+    coef = np.linalg.solve(gram, design.T @ t)  # normal equations: a (p x p) solve, p <= 16
     res = t - design @ coef
     dof = max(len(t) - design.shape[1], 1)
     sd = np.sqrt(max(float(res @ res) / dof, 1e-300))
     sep = abs(float(coef[-1])) / sd
     scores = [sep]
-    r = valley(ta, tb)
+    r = valley(ta[sa], tb[sb])
     if r > data.valley_ratio and data.valley_ratio < 1:
         scores.append(data.separation * (1.0 - r) / (1.0 - data.valley_ratio))
-    jump, diff = border_jump(data, ra, rb, t)
+    jump, diff = border_jump(data, ra, rb, np.concatenate([ta, tb]))
     if np.isfinite(jump):
         scores.append(data.separation * jump / data.continuity)
     if np.isfinite(diff) and data.min_difference > 0:
