@@ -346,7 +346,24 @@ def cmd_steps(args: argparse.Namespace) -> int:
     return 0
 
 
+def _no_display_reason() -> str | None:
+    """Why Qt cannot open a window here (Linux/BSD without X11 or Wayland), or None."""
+    if not sys.platform.startswith(("linux", "freebsd", "openbsd", "netbsd")):
+        return None
+    if os.environ.get("QT_QPA_PLATFORM"):  # the user chose a platform (offscreen, vnc, ...)
+        return None
+    if os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY"):
+        return None
+    return "no display (DISPLAY and WAYLAND_DISPLAY are unset)"
+
+
 def cmd_view(args: argparse.Namespace) -> int:
+    reason = _no_display_reason()
+    if reason:
+        raise PmapError(
+            f"pmap view needs a graphical display: {reason}; run it in a desktop session "
+            f"(or ssh -X), or write PNG figures with: pmap report {args.path}"
+        )
     try:
         from .napari_plugin import view
     except ImportError as exc:
@@ -397,6 +414,34 @@ def cmd_series(args: argparse.Namespace) -> int:
         print(f"  {law}_chi2_red: median {np.nanmedian(res[f'{law}_chi2_red'].values.ravel()[ok]):.3g}")
     if "power_law_class" in res:
         print(f"  power_law_class: {res['power_law_class'].attrs['caveat']}")
+    return 0
+
+
+def cmd_stack(args: argparse.Namespace) -> int:
+    from ._progress import TqdmProgress
+    from .io import open_cube, save_cube
+    from .stack import stack_cubes
+
+    paths = _expand_inputs(args.maps)
+    opts = _read_options(args)
+    values = None
+    if args.values:
+        try:
+            values = [float(v) for v in args.values.split(",")]
+        except ValueError:
+            raise PmapError(f"--values needs numbers separated by commas, got {args.values!r}") \
+                from None
+    cubes = [open_cube(p, **opts) for p in paths]
+    with TqdmProgress("integrated images", enabled=not args.quiet and not args.no_register):
+        cube = stack_cubes(cubes, along=args.along, values=values, units=args.units,
+                           register=not args.no_register, names=[p.name for p in paths])
+    units = cube[args.along].attrs.get("units", "")
+    for (dy, dx), v in zip(cube.attrs["stack_shifts_px"], cube[args.along].values):
+        print(f"  {args.along} = {v:g} {units}: shift dy = {dy:+.2f} px, dx = {dx:+.2f} px")
+    print(f"  common area: {cube.sizes['y']} x {cube.sizes['x']} px")
+    with TqdmProgress("writing", enabled=not args.quiet):
+        out = save_cube(cube, args.output, overwrite=args.overwrite)
+    print(f"wrote {out}: {len(paths)} maps along {args.along}")
     return 0
 
 
@@ -489,6 +534,22 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--overwrite", action="store_true", help="replace an existing output store")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_series)
+
+    p = sub.add_parser("stack", help="stack single maps into one cube along a dim "
+                       "(temperature, excitation power, ...), registered to the first")
+    p.add_argument("maps", nargs="+", help="map files (any format pmap reads)")
+    p.add_argument("--along", required=True, help="the new dim: temperature, excitation_power, ...")
+    p.add_argument("-o", "--output", required=True, help="output cube (STACK.zarr)")
+    p.add_argument("--values", help="its value for each map, comma-separated (default: each "
+                   "map's metadata, e.g. temperature_K, excitation_power_W)")
+    p.add_argument("--units", help="units of the values (needed for dims other than "
+                   "temperature [K], excitation_power [W], time [s], ...)")
+    p.add_argument("--no-register", action="store_true",
+                   help="no sub-pixel registration (maps only cropped to the common size)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    _add_read_options(p)
+    p.set_defaults(func=cmd_stack)
     return parser
 
 

@@ -140,3 +140,29 @@ def test_values_units_and_refusals():
     other = _cube(ref, peak=1.5).assign_coords(energy=np.linspace(1.2, 1.6, 40))
     with pytest.raises(StepError, match="spectral axis"):
         stack_cubes([a, other], along="temperature", values=[1, 2])
+
+
+def test_cli_stack(tmp_path, capsys):
+    from pmap.cli import main
+    from pmap.io import open_cube, save_cube
+
+    ref = _scene()
+    paths = []
+    for i, (t, s) in enumerate([(10.0, (0, 0)), (100.0, (0.6, -1.2))]):
+        p = tmp_path / f"m{i}.zarr"
+        save_cube(_cube(ndimage.shift(ref, s, order=3, mode="constant"), temperature=t), p)
+        paths.append(str(p))
+    dst = tmp_path / "stack.zarr"
+    assert main(["stack", *paths, "--along", "temperature", "-o", str(dst), "-q"]) == 0
+    printed = capsys.readouterr().out
+    assert "temperature = 100 K: shift dy = +0.60 px, dx = -1.20 px" in printed
+    cube = open_cube(dst)
+    assert cube.dims == ("temperature", "y", "x", "energy")
+    assert cube["temperature"].values.tolist() == [10.0, 100.0]
+    # refusals: one line on stderr, exit 2
+    assert main(["stack", *paths, "--along", "excitation_power", "-o",
+                 str(tmp_path / "x.zarr"), "-q"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "excitation_power_W" in err[0]
+    assert main(["stack", *paths, "--along", "temperature", "--values", "1,a", "-o",
+                 str(tmp_path / "y.zarr"), "-q"]) == 2
