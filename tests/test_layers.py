@@ -16,7 +16,7 @@ LAYERS = {
     "io": 1, "synthetic": 1,
     "scenes": 1,
     "spectral": 2, "stack": 2,
-    "fitting": 3, "decomposition": 3, "series": 3,
+    "fitting": 3, "decomposition": 3, "series": 3, "planck": 3,
     "results": 4,
     "pipeline": 5,
     "cli": 6, "report": 6, "napari_plugin": 6, "__main__": 6, "__init__": 6,
