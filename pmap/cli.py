@@ -239,7 +239,7 @@ def cmd_process(args: argparse.Namespace) -> int:
                          components=args.components, overwrite=args.overwrite,
                          resume=args.resume, progress=not args.quiet,
                          read_options=dict(read_options), memory_limit=args.memory_limit,
-                         client=client)
+                         client=client, planck=True if args.planck else None)
             print(f"result store: {out}")
             _print_fit_summary(ds)
             _note_medium(_medium_note_for_result(ds, src, read_options))
@@ -483,6 +483,9 @@ def build_parser() -> argparse.ArgumentParser:
                    "asymmetric")
     p.add_argument("--regions", help="cluster pixels into K regions, or 'auto'")
     p.add_argument("--components", type=int, help="NMF components to extract")
+    p.add_argument("--planck", action="store_true", help="absolute PL: fit the generalized "
+                   "Planck law (qfls, carrier_temperature, implied_voc; needs a cube in "
+                   "photons s-1 m-2 eV-1; options in the [planck] table)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing result store")
     p.add_argument("--resume", action="store_true",
                    help="continue an interrupted run, recomputing only unfinished blocks")

@@ -52,6 +52,8 @@ INTENSITY_UNITS = (
     "counts/s/W/eV", "counts/nm", "W/nm", "W/eV", "photons/s",
     # densities per wavenumber (pmap.spectral.to_wavenumber / to_raman_shift)
     "counts/cm-1", "counts/s/cm-1", "counts/s/W/cm-1", "W/cm-1",
+    # absolute photon flux per unit energy (absolute PL, pmap.planck)
+    "photons/s/m2/eV",
 )
 _INTENSITY_ALIASES = {
     "count": "counts", "counts": "counts", "cts": "counts", "adu": "counts", "dn": "counts",
@@ -63,6 +65,8 @@ _INTENSITY_ALIASES = {
     "counts/nm": "counts/nm", "w/nm": "W/nm", "w/ev": "W/eV", "photons/s": "photons/s",
     "counts/cm-1": "counts/cm-1", "counts/s/cm-1": "counts/s/cm-1",
     "counts/s/w/cm-1": "counts/s/W/cm-1", "w/cm-1": "W/cm-1",
+    "photons/s/m2/ev": "photons/s/m2/eV", "photons s-1 m-2 ev-1": "photons/s/m2/eV",
+    "photons/(s m2 ev)": "photons/s/m2/eV", "photons s^-1 m^-2 ev^-1": "photons/s/m2/eV",
 }
 
 

@@ -107,7 +107,7 @@ keep_cube = "auto"
 """
 
 _TOP_KEYS = {"pipeline", "steps", "descriptors", "fit", "properties", "components", "regions",
-             "output"}
+             "planck", "output"}
 _PROPERTY_KEYS = {"reference_energy_ev", "exciton_binding_ev", "material_gap", "stokes_shift_ev",
                   "exciton_binding_err_ev", "stokes_shift_err_ev", "band_to_band_temperature_K"}
 _OUTPUT_KEYS = {"figures", "keep_cube", "chunk_mib"}
@@ -124,6 +124,7 @@ class Pipeline:
     properties: dict | None = None
     components: dict | None = None
     regions: dict | None = None
+    planck: dict | None = None
     output: dict = field(default_factory=lambda: {"figures": True, "keep_cube": "auto"})
     source: str = "<default>"
 
@@ -136,6 +137,7 @@ class Pipeline:
             "properties": self.properties,
             "components": self.components,
             "regions": self.regions,
+            "planck": self.planck,
             "output": self.output,
             "source": self.source,
         }
@@ -187,6 +189,10 @@ def load_pipeline(source: str | Path | None = None) -> Pipeline:
                         ("components", decompose), ("regions", segment)):
         if isinstance(raw.get(table), dict):
             _check_keys(origin, f"[{table}]", func, raw[table])
+    if isinstance(raw.get("planck"), dict):
+        from .planck import fit_planck
+
+        _check_keys(origin, "[planck]", fit_planck, raw["planck"])
     if isinstance(raw.get("regions"), dict):
         _check_regions(raw["regions"].get("n_regions", "auto"))
     output = {"figures": True, "keep_cube": "auto"}
@@ -201,6 +207,7 @@ def load_pipeline(source: str | Path | None = None) -> Pipeline:
         properties=props,
         components=raw.get("components"),
         regions=raw.get("regions"),
+        planck=raw.get("planck"),
         output=output,
         source=origin,
     )
@@ -334,6 +341,11 @@ def _build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, x
         if step == "fit_peaks" and pipeline.properties:
             parts.append(_derived_properties(part, pipeline.properties))
             prov["steps"].append({"step": "properties", "params": pipeline.properties})
+    if pipeline.planck is not None:  # absolute PL: generalized Planck law (pmap.planck)
+        from .planck import fit_planck
+
+        parts.append(fit_planck(cube, **dict(pipeline.planck)))
+        prov["steps"].append({"step": "planck", "params": pipeline.planck})
     keep = pipeline.output.get("keep_cube", "auto")
     if keep == "auto":
         keep = cube.nbytes <= _KEEP_CUBE_AUTO_BYTES
@@ -471,6 +483,7 @@ def process(
     read_options: dict | None = None,
     memory_limit: str | int | None = None,
     client=None,
+    planck: bool | dict | None = None,
 ) -> xr.Dataset:
     """Run a pipeline on a cube (path or DataArray) and write a result store.
 
@@ -483,6 +496,8 @@ def process(
     pipeline : Pipeline, TOML path, or None for the default pipeline.
     peaks, model : override ``[fit] peaks`` and ``[fit] model``.
     regions, components : add ``[regions] n_regions`` / ``[components] n_components``.
+    planck : add the ``[planck]`` stage (True, or a dict of :func:`pmap.planck.fit_planck`
+        options): qfls (eV), carrier_temperature (K), implied_voc (V) of a calibrated cube.
     resume : continue an interrupted run, recomputing only unfinished blocks.
     memory_limit : bytes or a size like "1GB"; sets chunk size and blocks in flight
         (default half the available memory).
@@ -501,6 +516,8 @@ def process(
             pipe.fit["peaks"] = int(peaks)
         if model is not None:
             pipe.fit["model"] = model
+    if planck:  # add the [planck] stage (absolute PL), with its options if a dict
+        pipe.planck = {**(pipe.planck or {}), **(planck if isinstance(planck, dict) else {})}
     if components is not None:
         pipe.components = {**(pipe.components or {}), "n_components": int(components)}
     if regions is not None:

@@ -123,7 +123,9 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
         raise StepError(f"absorptivity must be > 0, got {absorptivity}")
     e_all = np.asarray(cube["energy"].values, float)
     if energy_range_ev is None:
-        mean = cube.mean([d for d in cube.dims if d != "energy"]).values
+        from .steps import materialize  # one pass, shared with the pipeline's checks
+
+        mean = np.asarray(materialize(cube.mean([d for d in cube.dims if d != "energy"]).data))
         lo, hi = float(e_all[int(np.nanargmax(mean))]) + 3 * K_B_EV * 300.0, float(e_all[-1])
     else:
         lo, hi = (float(v) for v in energy_range_ev)

@@ -66,3 +66,30 @@ def test_unweighted_and_refusals(rng):
         fit_planck(cube.rename(energy="wavelength"))
     with pytest.raises(StepError, match="at least 4"):
         fit_planck(cube, energy_range_ev=(1.70, 1.71))
+
+
+def test_planck_stage_in_process(tmp_path, rng):
+    """``[planck]`` / ``pmap process --planck``: the maps land in the result store."""
+    from pmap.cli import main
+    from pmap.io import save_cube
+    from pmap.pipeline import load_pipeline, process
+    from pmap.results import open_result
+
+    cube, _ = _cube(1.05, 300.0, rng, shape=(6, 8), relative_noise=True)
+    cube = cube.assign_coords(y=("y", np.arange(6.0), {"units": "um"}),
+                              x=("x", np.arange(8.0), {"units": "um"}))
+    toml = '[descriptors]\n[planck]\nenergy_range_ev = [1.58, 1.75]\n[output]\nfigures = false\n'
+    res = process(cube, tmp_path / "r.zarr", pipeline=load_pipeline(toml), progress=False)
+    assert {"qfls", "qfls_err", "carrier_temperature", "implied_voc"} <= set(res.data_vars)
+    res = open_result(tmp_path / "r.zarr")
+    assert np.all(np.abs(res["qfls"] - 1.05) < 4 * res["qfls_err"])  # n = 48: 4σ
+    with pytest.raises(StepError, match="did you mean|energy_range"):
+        load_pipeline("[planck]\nenergy_range = [1, 2]\n")
+    src = tmp_path / "c.zarr"
+    save_cube(cube, src)
+    assert main(["process", str(src), "-o", str(tmp_path / "p.zarr"), "--planck", "-q",
+                 "--no-figures"]) == 0
+    assert "implied_voc" in open_result(tmp_path / "p.zarr")
+    save_cube(cube.assign_attrs(units="counts"), tmp_path / "k.zarr")
+    assert main(["process", str(tmp_path / "k.zarr"), "-o", str(tmp_path / "q.zarr"),
+                 "--planck", "-q", "--no-figures"]) == 2
