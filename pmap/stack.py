@@ -175,6 +175,13 @@ def stack_cubes(cubes: Sequence[xr.DataArray], *, along: str, values: Sequence[f
     if hi_y - lo_y < 2 or hi_x - lo_x < 2:
         raise StepError("the maps have no common area after registration")
     ny, nx = hi_y - lo_y, hi_x - lo_x
+    moved = any(d[0] % 1 or d[1] % 1 for d in shifts)
+    if moved and cubes[0].attrs.get("units") == "counts" and get_noise_model(cubes[0]) is None:
+        # interpolation mixes pixels: the noise model must be known before, and then it
+        # is marked correlated so that fits fall back to residual-scaled errors
+        from .spectral import attach_noise_model
+
+        cubes = [attach_noise_model(c) for c in cubes]
     parts = []
     for c, (dy, dx) in zip(cubes, shifts):
         arr = c.data if isinstance(c.data, dsa.Array) else dsa.from_array(c.data)
@@ -206,7 +213,6 @@ def stack_cubes(cubes: Sequence[xr.DataArray], *, along: str, values: Sequence[f
     attrs["stack_shifts_px"] = shift_list
     out = xr.DataArray(data, dims=(along, "y", "x", spec), coords=coords, name=c0.name,
                        attrs=attrs)
-    moved = any(abs(d[0] % 1) > 0 or abs(d[1] % 1) > 0 for d in shifts)
     if moved and get_noise_model(c0) is not None:
         out = noise_correlated(out, c0, "stack: sub-pixel registration (bilinear)")
     extra = () if along in STACK_DIMS else (along,)

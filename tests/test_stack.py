@@ -166,3 +166,19 @@ def test_cli_stack(tmp_path, capsys):
     assert len(err) == 1 and "excitation_power_W" in err[0]
     assert main(["stack", *paths, "--along", "temperature", "--values", "1,a", "-o",
                  str(tmp_path / "y.zarr"), "-q"]) == 2
+
+
+def test_subpixel_registration_marks_noise_correlated():
+    """Bilinear interpolation mixes pixels: the noise model (from the stated detector
+    figures) travels with the stack, marked correlated, so fits do not claim Poisson errors."""
+    from pmap.noise import get_noise_model
+
+    ref = _scene()
+    cubes = [_cube(ref, temperature=10.0), _cube(ndimage.shift(ref, (0.5, 0.3)), temperature=20.0)]
+    for c in cubes:
+        c.attrs.update(gain_e_per_count=1.0, read_noise_counts=2.0, dark_level_counts=0.0)
+    out = stack_cubes(cubes, along="temperature")
+    model = get_noise_model(out)
+    assert model is not None and model.correlated
+    plain = stack_cubes(cubes, along="temperature", register=False)
+    assert get_noise_model(plain) is None or not get_noise_model(plain).correlated
