@@ -35,10 +35,10 @@ def fill_nan_channels(x: np.ndarray) -> np.ndarray:
     masked everywhere) are filled together.
     """
     x = np.asarray(x, dtype=np.float64)
-    bad = ~np.isfinite(x)
-    rows = np.flatnonzero(bad.any(axis=1))
+    rows = np.flatnonzero(~np.isfinite(x.sum(axis=1)))  # one pass; NaN/inf propagate
     if rows.size == 0:
         return x
+    bad = ~np.isfinite(x)
     out = x.copy()
     n = x.shape[1]
     ch = np.arange(n)
@@ -152,8 +152,11 @@ class EmissionSpace:
 
     def shape_and_intensity(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(shape scores (n, k), standardised log intensity (n,)) of finite rows."""
-        s, area = unit_area(x, self.floor)
-        z = ((s * self.inv_noise) - self.mean) @ self.comps.T / self.scale
+        area = x.sum(axis=1)
+        area = np.maximum(np.maximum(area, 0.5 * np.abs(x).sum(axis=1)), self.floor)
+        # ((x / area) * inv_noise - mean) @ comps.T / scale, folded into one product
+        proj = (self.comps * self.inv_noise).T / self.scale
+        z = (x @ proj) / area[:, None] - (self.mean @ self.comps.T) / self.scale
         return z, (np.log(area) - self.li_mu) / self.li_sd
 
     def unit_area_of(self, z: np.ndarray) -> np.ndarray:

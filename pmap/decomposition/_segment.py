@@ -79,7 +79,7 @@ def _signal_rows(x: np.ndarray, min_snr: float | None) -> tuple[np.ndarray, np.n
     """
     x = fill_nan_channels(x)
     ok = finite_rows(x)
-    xs = np.where(ok[:, None], x, 0.0)
+    xs = x if ok.all() else np.where(ok[:, None], x, 0.0)
     signal = ok & np.any(xs != 0, axis=1)
     if min_snr is not None:
         total = xs.sum(axis=1)
@@ -101,14 +101,19 @@ def _cube_features(
 
 
 def _emission_features(
-    x: np.ndarray, *, space: EmissionSpace | None, axis: np.ndarray, min_snr: float | None
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    x: np.ndarray,
+    *,
+    space: EmissionSpace | None,
+    axis: np.ndarray,
+    min_snr: float | None,
+    with_property: bool = True,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
     signal, xs = _signal_rows(x, min_snr)
-    m = space.features(xs[:1]).shape[1] if space is not None else 1
+    m = (space.n_components + (space.weight > 0)) if space is not None else 1
     feats = np.zeros((len(xs), m))
     if space is not None and signal.any():
         feats[signal] = space.features(xs[signal])
-    return feats, signal, centroid_of(xs, axis)
+    return feats, signal, (centroid_of(xs, axis) if with_property else None)
 
 
 def _signal_core(x: np.ndarray, *, min_snr: float | None) -> np.ndarray:
@@ -218,7 +223,10 @@ def _predict(
     model,
     relabel: np.ndarray,
 ) -> np.ndarray:
-    feats, signal, _ = transform(x, **tkw)
+    if transform is _emission_features:
+        feats, signal, _ = transform(x, **tkw, with_property=False)
+    else:
+        feats, signal, _ = transform(x, **tkw)
     out = np.full(len(x), -1, dtype=np.int32)
     if signal.any():
         p = model.predict((feats[signal] - mu) / sd)
@@ -443,9 +451,11 @@ def _fit_merge(
         lab = km.labels_
     piece_sizes = np.bincount(lab, minlength=n0)
     base = spectra if spectra is not None else z
-    piece_means = np.zeros((n0, base.shape[1]))
-    np.add.at(piece_means, lab, base)
-    piece_means /= np.maximum(piece_sizes, 1)[:, None]
+    from scipy import sparse
+
+    onehot = sparse.csr_matrix((np.ones(len(lab)), (lab, np.arange(len(lab)))),
+                               shape=(n0, len(lab)))
+    piece_means = np.asarray(onehot @ base) / np.maximum(piece_sizes, 1)[:, None]
     # Over-clusters whose mean spectrum has no peak inside the window are no emission.
     continuum = np.zeros(n0, dtype=bool)
     if spectra is not None:
