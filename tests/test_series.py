@@ -125,7 +125,7 @@ def test_arrhenius_activation_energy(rng):
     assert (out["arrhenius_status"] == 0).all()
     assert out["arrhenius_ea"].attrs["units"] == "eV"
     assert out["arrhenius_i0"].attrs["units"] == "counts eV"
-    for name, true in (("i0", i0), ("ea", ea)):
+    for name, true in (("i0", i0), ("c", c), ("ea", ea)):
         _check_pulls(_pulls(out[f"arrhenius_{name}"], out[f"arrhenius_{name}_err"], true), 2000)
 
 
@@ -272,3 +272,18 @@ def test_process_stack_cube_then_series(tmp_path):
     assert (out["varshni_status"] == 0).all()
     pull = _pulls(out["varshni_e0"], out["varshni_e0_err"], e0)
     assert pull.size == 42 and abs(pull.mean()) < 3 / np.sqrt(42)
+
+
+def test_dropped_peaks_are_missing_points(rng):
+    """A point whose peak_status is not 0 (the fit dropped that component) is not used."""
+    t = np.linspace(10, 300, 12)
+    e0, alpha, beta, _ = GAAS
+    ds = _series_ds("temperature", t, e0 - alpha * t**2 / (t + beta), 1e-4, rng,
+                    shape=(2, 2)).compute()
+    status = xr.zeros_like(ds["peak_energy"], dtype=np.int8)
+    ds["peak_energy"][5, 0, 0, 0] = 9.0  # a wild value, flagged implausible by the fit
+    status[5, 0, 0, 0] = 6
+    ds["peak_status"] = status
+    out = fit_law(ds, law="varshni")
+    assert int(out["varshni_status"][0, 0, 0]) == 0
+    assert abs(float(out["varshni_e0"][0, 0, 0]) - e0) < 5 * float(out["varshni_e0_err"][0, 0, 0])
