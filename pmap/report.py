@@ -630,10 +630,9 @@ def _label_names(da: xr.DataArray, codes: np.ndarray, names) -> dict[int, str]:
             return {int(k): str(v) for k, v in got.items()}
         except (ValueError, TypeError):
             pass
-    fv, fm = da.attrs.get("flag_values"), da.attrs.get("flag_meanings")
-    if fv is not None and fm is not None:  # CF flag convention
-        return {int(k): str(v).replace("_", " ")
-                for k, v in zip(np.atleast_1d(fv), str(fm).split())}
+    flags = _style.flag_names(da.attrs)  # CF flag convention
+    if flags:
+        return flags
     return {int(c): str(int(c)) for c in codes}
 
 

@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
+from pmap import _style
 from pmap.napari_plugin._reader import napari_get_reader
 from pmap.results import is_result_store
 
@@ -72,7 +73,7 @@ def test_reader_layers_scale_units_regions(store):
     layers = napari_get_reader(str(store))(str(store))
     by_name = {kw["name"]: (data, kw, kind) for data, kw, kind in layers}
     ds = xr.open_zarr(store)
-    data, kw, kind = by_name["peak energy [eV] (peak 0)"]
+    data, kw, kind = by_name["Peak energy (eV) — peak 0"]
     assert kind == "image" and kw["visible"]
     assert kw["scale"] == pytest.approx((0.5, 0.5))  # demo pixel pitch, µm
     assert kw["translate"] == pytest.approx((float(ds.y[0]), float(ds.x[0])))
@@ -82,10 +83,12 @@ def test_reader_layers_scale_units_regions(store):
     lo, hi = kw["contrast_limits"]
     e = ds.peak_energy.values[np.isfinite(ds.peak_energy.values)]
     assert (lo, hi) == pytest.approx(tuple(np.percentile(e, [1, 99])))
-    assert by_name["FWHM [eV] (peak 0)"][1]["colormap"] != "gray"
-    lab, kwl, kindl = by_name["regions"]
+    assert by_name["Peak FWHM (eV) — peak 0"][1]["colormap"] != "gray"
+    lab, kwl, kindl = by_name["Regions"]
     assert kindl == "labels"
-    np.testing.assert_array_equal(lab, ds["region"].values + 1)  # -1 (no signal) -> 0, transparent
+    np.testing.assert_array_equal(lab, ds["region"].values + 2)  # -1 (no signal) -> 1, grey
+    assert kwl["metadata"]["pmap"]["label_offset"] == 2
+    assert kwl["colormap"][1] == _style.NAN_COLOUR
     # the processed cube is not a map layer; the raw input is a cube layer on its own
     assert not any("spectra" in n for n in by_name)
     [(cdata, ckw, ckind)] = napari_get_reader(str(store.parent / "demo.zarr"))(
@@ -101,10 +104,10 @@ def test_click_shows_spectrum_fit_and_raw(make_napari_viewer, store):
 
     viewer = make_napari_viewer()
     viewer.open(str(store), plugin="pmap")
-    layer = _layer(viewer, "peak energy [eV] (peak 0)")
+    layer = _layer(viewer, "Peak energy (eV) — peak 0")
     assert tuple(layer.scale) == pytest.approx((0.5, 0.5))
     assert str(layer.units[-1]) == "micrometer"
-    assert _layer(viewer, "regions").__class__.__name__ == "Labels"
+    assert _layer(viewer, "Regions").__class__.__name__ == "Labels"
     panel = SpectrumPanel(viewer)
     ds = xr.open_zarr(store)
     iy, ix = 9, 15
@@ -189,11 +192,11 @@ def test_region_panel_table_histogram_highlight(make_napari_viewer, store):
     col = [panel.table.horizontalHeaderItem(j).text() for j in range(panel.table.columnCount())]
     counts = [int(panel.table.item(r, col.index("pixels")).text()) for r in range(k)]
     assert counts == [int((region == r).sum()) for r in range(k)]
-    assert panel.property.currentText() == "peak energy [eV] (peak 0)"
+    assert panel.property.currentText() == "Peak energy (eV) — peak 0"
     panel.table.selectRow(1)
-    labels = _layer(viewer, "regions")
+    labels = _layer(viewer, "Regions")
     assert panel.selected == 1
-    assert labels.visible and labels.show_selected_label and labels.selected_label == 2
+    assert labels.visible and labels.show_selected_label and labels.selected_label == 3
     total = sum(int(np.asarray(a.get_data().values).sum()) for a in panel.hist_lines.values())
     finite = np.isfinite(ds.peak_energy.isel(peak=0).values) & (region >= 0)
     assert total <= finite.sum() and total >= 0.98 * finite.sum()  # 0.5-99.5 % bin range
@@ -227,7 +230,7 @@ def test_process_panel_runs_in_background(make_napari_viewer, qtbot, tmp_path):
     assert panel.last_output == out and is_result_store(out), panel.status.text()
     assert any(ticks)  # the event loop kept running while the job worked
     assert progress and progress[-1][0] == progress[-1][1]  # all counted tasks finished
-    qtbot.waitUntil(lambda: any(lyr.name.startswith("energy of maximum") for lyr in viewer.layers))
+    qtbot.waitUntil(lambda: any(lyr.name.startswith("Energy of the maximum (eV)") for lyr in viewer.layers))
     assert not _layer(viewer, "demo map: spectra [counts]").visible
 
 
@@ -295,7 +298,7 @@ def test_view_docks_panels_and_screenshot(make_napari_viewer, monkeypatch, qtbot
     viewer = made[0]
     docks = viewer.window.dock_widgets
     assert {"Spectrum at pixel (pmap)", "Regions (pmap)", "Process map (pmap)"} <= set(docks)
-    assert any(lyr.name == "peak energy [eV] (peak 0)" for lyr in viewer.layers)
+    assert any(lyr.name == "Peak energy (eV) — peak 0" for lyr in viewer.layers)
     spectrum, regions = docks["Spectrum at pixel (pmap)"], docks["Regions (pmap)"]
     spectrum.select_pixel(5, 6)
     spectrum.pin()

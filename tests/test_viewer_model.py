@@ -4,6 +4,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
+from pmap import _style
 from pmap.napari_plugin._model import (
     Grid,
     MapSource,
@@ -103,10 +104,14 @@ def test_region_histograms_match_numpy(rng):
 
 
 def test_map_labels_carry_units():
-    assert map_label("peak_energy", "eV", dim="peak", index=0) == "peak energy [eV] (peak 0)"
-    assert map_label("peak_fwhm_err", "eV", dim="peak", index=1) == "FWHM error (1σ) [eV] (peak 1)"
-    assert map_label("chi2_red", "1") == "reduced χ²"
-    assert map_label("region") == "regions"
+    # the viewer's layer names are the figures' titles (pmap._style.map_title)
+    assert map_label("peak_energy", "eV", dim="peak", index=0) == "Peak energy (eV) — peak 0"
+    assert map_label("peak_fwhm_err", "eV", dim="peak", index=1) == \
+        "Peak FWHM 1σ uncertainty (eV) — peak 1"
+    assert map_label("chi2_red", "1") == "Reduced χ²"
+    assert map_label("region") == "Regions"
+    assert map_label("peak_energy", "eV", dim="peak", index=0) == _style.map_title(
+        "peak_energy", attrs={"units": "eV"}, dim="peak", index=0)
 
 
 def test_grid_units_and_cube_layer(rng):

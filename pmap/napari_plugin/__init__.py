@@ -22,7 +22,7 @@ from typing import Any
 
 from ..errors import InputFileError
 
-__all__ = ["view", "open_viewer", "PANELS"]
+__all__ = ["view", "open_viewer", "orient_y_up", "PANELS"]
 
 #: Display names of the dock panels (as in the manifest), in docking order.
 PANELS = ("Spectrum at pixel", "Regions", "Process map")
@@ -60,11 +60,24 @@ def open_viewer(
         viewer.open(str(path), plugin="pmap")
     bar = viewer.canvas.overlays.scale_bar if hasattr(viewer, "canvas") else viewer.scale_bar
     bar.visible = True
+    orient_y_up(viewer)
     viewer.layers.selection.active = next(
         (lyr for lyr in reversed(viewer.layers) if lyr.visible), None
     )
     viewer.reset_view()
     return viewer
+
+
+def orient_y_up(viewer: Any) -> None:
+    """Show y increasing upwards, origin lower left, as in pmap's figures (:mod:`pmap._style`).
+
+    napari draws the first row at the top by default; turning the camera's
+    vertical axis up flips the display only: world coordinates (y, x in µm),
+    pixel look-up and the panels are unchanged.
+    """
+    scene = getattr(viewer, "scene", None)
+    camera = scene.camera if scene is not None and hasattr(scene, "camera") else viewer.camera
+    camera.orientation2d = ("up", "right")
 
 
 def view(path: str | Path | None = None) -> int:

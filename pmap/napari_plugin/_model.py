@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from .. import _style
 from ..conventions import SPECTRAL_DIMS, nm_to_ev
 from ..errors import FormatError, InputFileError, StepError
 from ..provenance import get_provenance
@@ -50,62 +51,11 @@ __all__ = [
 #: Key of the dict that pmap puts in ``layer.metadata`` (path, variable, kind, …).
 META_KEY = "pmap"
 
-#: Readable names of result variables (units are added from the attrs).
-_LABELS = {
-    "peak_energy": "peak energy",
-    "peak_fwhm": "FWHM",
-    "peak_height": "peak height",
-    "peak_area": "peak area",
-    "peak_wavelength": "peak wavelength",
-    "peak_shape": "peak shape",
-    "background_offset": "background",
-    "background_slope": "background slope",
-    "fit_status": "fit status",
-    "chi2_red": "reduced χ²",
-    "n_iter": "fit iterations",
-    "max_energy": "energy of maximum",
-    "centroid_energy": "centroid energy",
-    "integrated_intensity": "integrated intensity",
-    "fwhm_interp": "FWHM (interpolated)",
-    "window_ratio": "window ratio",
-    "component_abundance": "abundance",
-    "region": "regions",
-}
-
-#: Colormap by kind of quantity (napari colormap names).
-_CMAPS = (
-    (("_err",), "cividis"),
-    (("energy", "wavelength", "centroid"), "turbo"),
-    (("fwhm", "width"), "viridis"),
-    (("chi2", "n_iter", "ratio", "shape"), "inferno"),
-    (("height", "area", "intensity", "background", "abundance"), "magma"),
-)
-
 #: Variables shown first (on top) when a store opens, best first.
 _PRIMARY = ("peak_energy", "max_energy", "centroid_energy", "integrated_intensity")
 
-#: Colours of regions 0, 1, 2, … (bright on a dark background; the map and the plots share them).
-REGION_COLOURS = (
-    "#4e9cff",
-    "#ffa94d",
-    "#63d471",
-    "#ff6b6b",
-    "#c792ea",
-    "#ffd43b",
-    "#4dd0e1",
-    "#f783ac",
-    "#a9e34b",
-    "#ced4da",
-)
-#: Colours of the fit status codes (0 = converged is transparent; see FIT_STATUS_LEGEND).
-_STATUS_COLOURS = {
-    1: "#ffd43b",
-    2: "#ffa94d",
-    3: "#868e96",
-    4: "#495057",
-    5: "#ff6b6b",
-    6: "#f06595",
-}
+#: Colours of regions 0, 1, 2, … (the palette of :mod:`pmap._style`, as in the figures).
+REGION_COLOURS = _style.CATEGORY_PALETTE
 
 #: Dims that are split into one layer per entry.
 _SPLIT_DIMS = ("peak", "component")
@@ -258,24 +208,17 @@ def _unit_text(units: Any) -> str:
     return u.replace("um", "µm") if u in ("um", "um2") else u
 
 
-def map_label(name: str, units: Any = None, *, dim: str | None = None, index: Any = None) -> str:
-    """Layer name of a result map, e.g. ``"peak energy [eV] (peak 0)"``."""
-    base = name.removesuffix("_err")
-    label = _LABELS.get(base, base.replace("_", " "))
-    if name.endswith("_err"):
-        label = f"{label} error (1σ)"
-    u = _unit_text(units)
-    text = f"{label} [{u}]" if u else label
-    if dim is not None:
-        text += f" ({dim} {index})"
-    return text
+def map_label(name: str, units: Any = None, *, dim: str | None = None, index: Any = None,
+              attrs: Mapping | None = None) -> str:
+    """Layer name of a result map, the figure's title: ``"Peak energy (eV) — peak 0"``.
+
+    See :func:`pmap._style.map_title`.
+    """
+    return _style.map_title(name, units, attrs=attrs, dim=dim, index=index)
 
 
 def _colormap(name: str) -> str:
-    for keys, cmap in _CMAPS:
-        if any(k in name for k in keys):
-            return cmap
-    return "gray"
+    return _style.colormap_for(name)
 
 
 def _placement(grid: Grid, lead: Sequence[str]) -> dict:
@@ -310,9 +253,10 @@ def result_layers(ds: xr.Dataset, *, path: str | Path | None = None) -> list[tup
 
     Each map with dims (…, y, x) becomes an image layer placed in µm (scale
     and translate from the coordinates), one layer per peak or component; the
-    ``region`` map becomes a Labels layer (label = region + 1, so that "no
-    signal" (−1) is transparent) and ``fit_status`` a Labels layer (0 =
-    converged, transparent). Maps load lazily (dask) until shown. Only the
+    ``region`` map becomes a Labels layer (label = region + 2, so that "no
+    signal" (−1) is label 1, drawn in the neutral grey of the figures) and
+    ``fit_status`` a Labels layer (label = status + 1). Colours, colour maps,
+    names and orientation are those of the figures (:mod:`pmap._style`). Maps load lazily (dask) until shown. Only the
     primary map (peak energy when fitted) is visible at first.
 
     Parameters
@@ -339,22 +283,25 @@ def result_layers(ds: xr.Dataset, *, path: str | Path | None = None) -> list[tup
         units = var.attrs.get("units")
         if name in ("region", "fit_status"):
             lab = np.asarray(var.values).astype(np.int32)
-            data = lab + 1 if name == "region" else lab
+            offset = 2 if name == "region" else 1
+            data = lab + offset
             meta = {
                 **meta_base,
                 "variable": name,
-                "label_offset": 1 if name == "region" else 0,
+                "label_offset": offset,
                 "legend": var.attrs.get("legend"),
             }
             if name == "region":
-                colours = {r + 1: region_colour(r) for r in range(max(int(lab.max()) + 1, 1))}
+                colours = {r + offset: region_colour(r)
+                           for r in range(-1, max(int(lab.max()) + 1, 1))}
             else:
-                colours = dict(_STATUS_COLOURS)
+                flags = _style.discrete_levels(lab, var.attrs) or sorted(set(np.unique(lab)))
+                colours = {c + offset: _style.category_colour(i) for i, c in enumerate(flags)}
             kw = {
-                "name": map_label(name),
+                "name": map_label(name, attrs=var.attrs),
                 "metadata": {META_KEY: meta},
                 "opacity": 0.7,
-                "colormap": {0: "transparent", None: "#808080", **colours},
+                "colormap": {0: "transparent", None: _style.NAN_COLOUR, **colours},
                 "visible": False,
                 **_placement(grid, var.dims[:-2]),
             }
@@ -368,7 +315,7 @@ def result_layers(ds: xr.Dataset, *, path: str | Path | None = None) -> list[tup
             meta = {**meta_base, "variable": name, "dim": split, "index": k}
             visible = name == primary and not k
             kw = {
-                "name": map_label(name, units, dim=split, index=index),
+                "name": map_label(name, units, dim=split, index=index, attrs=var.attrs),
                 "metadata": {META_KEY: meta},
                 "colormap": _colormap(name),
                 "contrast_limits": lim,
@@ -390,8 +337,9 @@ def result_layers(ds: xr.Dataset, *, path: str | Path | None = None) -> list[tup
 
 
 def region_colour(region: int) -> str:
-    """Colour (hex) of a region number, the same on the map and in the panels' plots."""
-    return REGION_COLOURS[int(region) % len(REGION_COLOURS)]
+    """Colour (hex) of a region number, the same on the map, in the panels' plots and in
+    the figures (:func:`pmap._style.region_colour`; grey for −1, no signal)."""
+    return _style.region_colour(region)
 
 
 def _spectral_of(cube: xr.DataArray) -> str:
@@ -823,11 +771,16 @@ def region_stats_table(ds: xr.Dataset) -> tuple[list[str], list[list[str]], list
     if not stats.data_vars:
         maps = ds[[v for v in map_names(ds) if v not in ("region", "intensity")]]
         stats = region_statistics(ds["region"].load(), maps.load())
-    df = region_table(stats.load())
+    stats = stats.load()
+    if "region_name" in stats.coords:  # Zarr v3 strings load as numpy StringDType
+        names = [str(t) for t in stats["region_name"].values.tolist()]
+        stats = stats.assign_coords(
+            region_name=(stats["region_name"].dims, np.array(names, dtype=object)))
+    df = region_table(stats)
     units = df.attrs.get("units", {})
     first = ("region_pixel_count", "region_area_um2", "region_area_pixel2", "region_fraction")
     cols = [c for c in first if c in df.columns]
-    rest = [c for c in df.columns if c not in cols and "_std" not in c]
+    rest = [c for c in df.columns if c not in cols and "_std" not in c and c != "region_name"]
     # the physics first (peak energy, width, area, intensity), fit diagnostics last
     priority = ("peak_energy", "peak_fwhm", "peak_area", "peak_height", "integrated_intensity",
                 "max_energy", "centroid_energy", "bandgap", "peak_shift")
@@ -842,7 +795,7 @@ def region_stats_table(ds: xr.Dataset) -> tuple[list[str], list[list[str]], list
     titles = ["region", *(_column_title(c, units.get(c, "")) for c in cols)]
     rows, labels = [], []
     for reg, row in df.iterrows():
-        cells = [str(reg)]
+        cells = [f"{reg}: {row['region_name']}" if "region_name" in df.columns else str(reg)]
         for c in cols:
             val = row[c]
             std_col = c.replace("_mean", "_std", 1) if "_mean" in c else None
@@ -868,7 +821,8 @@ def _column_title(column: str, units: str) -> str:
     name, _, rest = column.partition("[")
     name = name.removesuffix("_mean")
     dim, _, index = rest.rstrip("]").partition("=")
-    return "mean " + map_label(name, units, dim=dim or None, index=index or None)
+    title = map_label(name, units, dim=dim or None, index=index or None)
+    return "mean " + (title[:1].lower() + title[1:] if title[1:2].islower() else title)
 
 
 # ----------------------------------------------------------------------------- processing

@@ -29,6 +29,11 @@ def show_colorbar(layer: Any) -> None:
     ):
         bar.visible = True
         bar.font_size = 9
+        # napari's colour bar has no label: the layer's name (title with units) is shown
+        # on the canvas beside it, as the figures' colour bar label
+        overlay = getattr(layer, "name_overlay", None)
+        if overlay is not None:
+            overlay.visible = True
 
 
 def world_units(viewer: Any) -> dict:
