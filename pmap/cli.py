@@ -391,7 +391,7 @@ def cmd_series(args: argparse.Namespace) -> int:
     n_series = int(np.prod([out.sizes[d] for d in out[f"{law}_status"].dims]))
     t0 = time.perf_counter()
     with TqdmProgress(f"{law} fit", enabled=not args.quiet, unit="chunk"):
-        out.to_zarr(str(dst), mode="w")
+        out.to_zarr(str(dst), mode="w", consolidated=False)  # mark_complete consolidates
     wall = time.perf_counter() - t0
     mark_complete(dst)
     res = open_result(dst)
