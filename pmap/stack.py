@@ -27,32 +27,22 @@ STACK_VALUE_UNITS = {"temperature": "K", "excitation_power": "W", "power": "W", 
                      "excitation_wavelength": "nm", "voltage": "V", "field": "T"}
 
 
-def phase_correlation_shift(ref: np.ndarray, img: np.ndarray, *,
-                            upsample: int = 50) -> tuple[float, float]:
-    """Sub-pixel shift (dy, dx) in pixels such that ``img(r) ≈ ref(r − d)``.
+def _detrend_window(img: np.ndarray) -> np.ndarray:
+    """Best-fit plane removed, then a 2-D Hann window: the wrap-around edges of a real
+    map (background, gradients) would otherwise dominate the correlation."""
+    ny, nx = img.shape
+    yy, xx = np.mgrid[0:ny, 0:nx]
+    a = np.column_stack([np.ones(img.size), yy.ravel(), xx.ravel()])
+    coef = np.linalg.lstsq(a, img.ravel(), rcond=None)[0]
+    resid = img - (a @ coef).reshape(img.shape)
+    return resid * np.outer(np.hanning(ny), np.hanning(nx))
 
-    Parameters
-    ----------
-    ref, img : ndarray (ny, nx)
-        Images of the same shape (NaN read as 0).
-    upsample : int
-        Refinement factor: the shift is found to 1/upsample pixel.
 
-    Returns
-    -------
-    (dy, dx) : floats, pixels.
-    """
-    a = np.nan_to_num(np.asarray(ref, float))
-    b = np.nan_to_num(np.asarray(img, float))
-    if a.shape != b.shape or a.ndim != 2:
-        raise StepError(f"phase correlation needs two images of one shape, got {a.shape}, {b.shape}")
-    a = a - a.mean()
-    b = b - b.mean()
+def _correlation_peak(a: np.ndarray, b: np.ndarray, upsample: int) -> tuple[float, float]:
+    """Peak of the cross-correlation of b with a, to 1/upsample px (upsampled DFT)."""
     cross = np.fft.fft2(b) * np.conj(np.fft.fft2(a))
     if not np.any(np.abs(cross) > 0):
         raise StepError("phase correlation: an integrated-intensity image is flat (no structure)")
-    # cross-power spectrum without whitening (as Guizar-Sicairos et al.): whitening lets
-    # the structureless high frequencies of smooth PL images set the peak
     ny, nx = a.shape
     if ny % 2 == 0:  # the Nyquist row/column has no sign: drop it
         cross[ny // 2, :] = 0
@@ -64,12 +54,54 @@ def phase_correlation_shift(ref: np.ndarray, img: np.ndarray, *,
     x0 = ix - nx if ix > nx // 2 else ix
     # refine: evaluate sum_k R(k) exp(2πi k·r) on a grid of step 1/upsample within ±1.5 px
     off = np.arange(-1.5 * upsample, 1.5 * upsample + 1) / upsample
-    fy, fx = np.fft.fftfreq(ny), np.fft.fftfreq(nx)
-    ey = np.exp(2j * np.pi * np.outer(y0 + off, fy))
-    ex = np.exp(2j * np.pi * np.outer(x0 + off, fx))
+    ey = np.exp(2j * np.pi * np.outer(y0 + off, np.fft.fftfreq(ny)))
+    ex = np.exp(2j * np.pi * np.outer(x0 + off, np.fft.fftfreq(nx)))
     fine = (ey @ cross @ ex.T).real
     jy, jx = np.unravel_index(np.argmax(fine), fine.shape)
     return float(y0 + off[jy]), float(x0 + off[jx])
+
+
+def phase_correlation_shift(ref: np.ndarray, img: np.ndarray, *, upsample: int = 50,
+                            max_iter: int = 8) -> tuple[float, float]:
+    """Sub-pixel shift (dy, dx) in pixels such that ``img(r) ≈ ref(r − d)``.
+
+    Cross-power spectrum of the detrended, Hann-windowed images, its inverse DFT
+    evaluated on an upsampled grid around the coarse peak (Guizar-Sicairos, Thurman &
+    Fienup 2008; not whitened: whitening lets the structureless high frequencies of
+    smooth PL images set the peak). The fixed window pulls the estimate towards zero,
+    so ``img`` is shifted back by the estimate (cubic spline) and the residual shift
+    measured again until it is below 1/upsample px.
+
+    Parameters
+    ----------
+    ref, img : ndarray (ny, nx)
+        Images of the same shape (NaN read as 0).
+    upsample : int
+        Refinement factor: each estimate is found to 1/upsample pixel.
+    max_iter : int
+        Most re-estimates of the residual shift.
+
+    Returns
+    -------
+    (dy, dx) : floats, pixels.
+    """
+    from scipy import ndimage
+
+    a = np.nan_to_num(np.asarray(ref, float))
+    b = np.nan_to_num(np.asarray(img, float))
+    if a.shape != b.shape or a.ndim != 2:
+        raise StepError(f"phase correlation needs two images of one shape, got {a.shape}, {b.shape}")
+    if a.shape[0] < 4 or a.shape[1] < 4:
+        raise StepError(f"images of {a.shape} px are too small to register")
+    wa = _detrend_window(a)
+    d = np.zeros(2)
+    for _ in range(max_iter):
+        moved = ndimage.shift(b, -d, order=3, mode="nearest") if d.any() else b
+        r = np.array(_correlation_peak(wa, _detrend_window(moved), upsample))
+        d = d + r
+        if np.all(np.abs(r) <= 1.0 / upsample):
+            break
+    return float(round(d[0], 4)), float(round(d[1], 4))
 
 
 def _stack_value(cube: xr.DataArray, along: str, units: str, i: int) -> float:
