@@ -39,6 +39,8 @@ __all__ = [
     "CATEGORY_PALETTE",
     "region_colour",
     "category_colour",
+    "status_colours",
+    "NO_VALUE_TOKENS",
     "unit_text",
     "human_name",
     "map_title",
@@ -110,6 +112,25 @@ def region_colour(code: int) -> str:
 def category_colour(index: int) -> str:
     """Hex colour of the ``index``-th category of a status or label map."""
     return CATEGORY_PALETTE[int(index) % len(CATEGORY_PALETTE)]
+
+
+#: Status tokens that mean "no value here": drawn in :data:`NAN_COLOUR`, like NaN.
+NO_VALUE_TOKENS = ("no signal", "masked or nan", "no emission", "masked")
+
+
+def status_colours(levels: list[int], attrs: Mapping | None = None) -> dict[int, str]:
+    """Colour of each code of a status (CF flag) map: no-value codes grey, the others the
+    categorical palette in flag order (so "converged" is always the first colour)."""
+    names = flag_names(attrs or {}) or {}
+    out: dict[int, str] = {}
+    i = 0
+    for code in levels:
+        if names.get(code, "") in NO_VALUE_TOKENS:
+            out[code] = NAN_COLOUR
+        else:
+            out[code] = category_colour(i)
+            i += 1
+    return out
 
 
 def unit_text(units: Any) -> str:

@@ -688,9 +688,9 @@ def plot_labels(
         # regions (and plain labels) by code: the same colour in every figure and the viewer
         colours = [_style.region_colour(c) for c in codes]
     else:
-        # status maps: by position in flag_values, stable whatever codes occur
-        colours = [_style.category_colour(flags.index(c)) if c in flags else _style.NAN_COLOUR
-                   for c in codes]
+        # status maps: by position in flag_values, stable whatever codes occur; no-value grey
+        by_code = _style.status_colours(flags, da.attrs)
+        colours = [by_code.get(int(c), _style.NAN_COLOUR) for c in codes]
     cmap = ListedColormap(colours)
     # map codes to 0..n-1 so that each gets one colour
     index = np.full(fvals.shape, np.nan)

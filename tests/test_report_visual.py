@@ -183,3 +183,21 @@ def test_perceptually_uniform_colour_maps(name, cmap):
     assert _style.colormap_for(name) == cmap
     assert all(_style.colormap_for(n) not in ("turbo", "jet", "rainbow", "hsv", "nipy_spectral")
                for n in ("peak_energy", "max_energy", "peak_wavelength", "centroid_energy"))
+
+
+def test_status_map_no_signal_is_the_nan_grey_in_figure_and_viewer(tmp_path):
+    from pmap.napari_plugin._model import result_layers
+
+    codes = np.array([[0, 0, 3, 3], [6, 0, 3, 1]], dtype=np.int8)
+    attrs = {"units": "1", "long_name": "fit status", "flag_values": "[0, 1, 3, 6]",
+             "flag_meanings": "converged iteration_limit no_signal implausible"}
+    da = xr.DataArray(codes, dims=("y", "x"), coords=_coords(2, 4), name="fit_status",
+                      attrs=attrs)
+    info, _ = _png(report.plot_labels(da, tmp_path / "s.png"))
+    fig = dict(zip(info["codes"], info["colours"]))
+    assert fig[3] == _style.NAN_COLOUR
+    assert fig[0] == _style.CATEGORY_PALETTE[0] and len({fig[0], fig[1], fig[6]}) == 3
+    [(data, kw, kind)] = result_layers(xr.Dataset({"fit_status": da}))
+    off = kw["metadata"]["pmap"]["label_offset"]
+    assert kind == "labels"
+    assert {c: kw["colormap"][c + off] for c in (0, 1, 3, 6)} == fig

@@ -296,7 +296,8 @@ def result_layers(ds: xr.Dataset, *, path: str | Path | None = None) -> list[tup
                            for r in range(-1, max(int(lab.max()) + 1, 1))}
             else:
                 flags = _style.discrete_levels(lab, var.attrs) or sorted(set(np.unique(lab)))
-                colours = {c + offset: _style.category_colour(i) for i, c in enumerate(flags)}
+                colours = {c + offset: col
+                           for c, col in _style.status_colours(flags, var.attrs).items()}
             kw = {
                 "name": map_label(name, attrs=var.attrs),
                 "metadata": {META_KEY: meta},
