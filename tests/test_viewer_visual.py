@@ -14,7 +14,7 @@ import xarray as xr
 from matplotlib.colors import to_rgba
 from PIL import Image
 
-from pmap import report
+from pmap import _style, report
 from pmap.napari_plugin._model import result_layers
 
 
@@ -117,3 +117,16 @@ def test_pmap_view_without_display_exits_2_with_a_message(tmp_path):
     lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
     assert len(lines) == 1, proc.stderr
     assert "needs a graphical display" in lines[0] and f"pmap report {store}" in lines[0]
+
+
+def test_no_value_pixels_are_the_figures_grey_in_the_viewer():
+    from pmap.napari_plugin._model import NO_VALUE_LAYER
+
+    ds = _result()
+    ds["peak_energy"][0, 3, 4] = np.nan
+    layers = result_layers(ds)
+    [(data, kw, kind)] = [lyr for lyr in layers if lyr[1]["name"] == NO_VALUE_LAYER]
+    assert kind == "labels" and layers[0][1]["name"] == NO_VALUE_LAYER  # under every map
+    np.testing.assert_array_equal(np.asarray(data) == 1,
+                                  ~np.isfinite(ds["peak_energy"].values[0]))
+    assert kw["colormap"][1] == _style.NAN_COLOUR

@@ -57,6 +57,9 @@ _PRIMARY = ("peak_energy", "max_energy", "centroid_energy", "integrated_intensit
 #: Colours of regions 0, 1, 2, … (the palette of :mod:`pmap._style`, as in the figures).
 REGION_COLOURS = _style.CATEGORY_PALETTE
 
+#: Name of the layer that greys the pixels without a value (NaN, masked, no signal).
+NO_VALUE_LAYER = "No value (NaN, masked or no signal): grey"
+
 #: Dims that are split into one layer per entry.
 _SPLIT_DIMS = ("peak", "component")
 
@@ -333,6 +336,20 @@ def result_layers(ds: xr.Dataset, *, path: str | Path | None = None) -> list[tup
                 )
             )
             entries.append((rank, (arr, kw, "image")))
+    if primary is not None:
+        # one rule for pixels without a value, as in the figures: a neutral grey under the
+        # maps (napari shows NaN as the dark canvas otherwise)
+        pv = ds[primary].transpose(..., "y", "x")
+        pv = pv.isel({d: 0 for d in pv.dims[:-2]})
+        nan = ~np.isfinite(np.asarray(pv.values, dtype=float))
+        kw = {
+            "name": NO_VALUE_LAYER,
+            "metadata": {META_KEY: {**meta_base, "variable": None, "kind": "no_value"}},
+            "colormap": {0: "transparent", None: "transparent", 1: _style.NAN_COLOUR},
+            "opacity": 1.0,
+            **_placement(grid, ()),
+        }
+        entries.append((-1, (nan.astype(np.int32), kw, "labels")))
     entries.sort(key=lambda e: e[0])  # stable: bottom of the layer list first
     return [e[1] for e in entries]
 
