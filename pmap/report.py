@@ -258,7 +258,8 @@ def _draw_map(
     if levels is not None:
         base = _colormap(cmap or _style.colormap_for(name))
         n = len(levels)
-        cm = ListedColormap([base(0.5 if n == 1 else i / (n - 1)) for i in range(n)])
+        cm = ListedColormap([base(0.5 if n == 1 else i / (n - 1)) for i in range(n)],
+                            name=f"{base.name} ({n} levels)")
         cm = cm.with_extremes(bad=NAN_COLOUR)
         index = np.full(values.shape, np.nan)
         for i, lv in enumerate(levels):
@@ -857,7 +858,7 @@ def _spectra_figures(ds: xr.Dataset, out: Path, prefix: str) -> list[Path]:
     if "component_spectrum" in ds.data_vars:
         written.append(plot_spectra(ds["component_spectrum"].load(),
                                     out / f"{prefix}component_spectra.png",
-                                    title="component spectra"))
+                                    title="Component spectra (each scaled to maximum 1)"))
     if "region_mean_spectrum" in ds.data_vars:
         m = ds["region_mean_spectrum"].load()
         rdim = next(d for d in m.dims if d.startswith("region"))
