@@ -86,7 +86,7 @@ _FWHM_MIN_CH, _FWHM_MAX_CH = 1.0, 12.0
 _FWHM_BIN = 1.05
 #: In a map the line-shape test is this much (s.d.) less strict than ``threshold``: the
 #: excess has already proved not to be in the neighbours.
-_MAP_SHAPE_EASE = 1.0
+_MAP_SHAPE_EASE = 1.5
 #: χ² drop that makes the offset / shift / width correction of the prediction worth applying.
 _SHIFT_CHI2 = 16.0
 #: Most candidates judged per spectrum (each judgement settles ±max_width channels).
@@ -435,19 +435,27 @@ def _smooth(p, cnt, lo, hi, a, b, lags, law, nz):  # pragma: no cover - compiled
     """Whether the prediction p (channels lo … hi) holds no narrow feature between a and b:
     the candidate statistic of :func:`_find_candidates` (curvature-corrected, so broad
     bands do not count) stays below 6 s.d. of p (the median of cnt references; ~75 tests
-    near a candidate, so noise alone almost never reaches it)."""
+    near a candidate, so noise alone almost never reaches it) plus 2 % of p's height over
+    the window's lowest value (what the curvature correction leaves of a bright band)."""
     kk = lags + 1
-    for c in range(max(a, lo + 2 * kk), min(b, hi - 2 * kk) + 1):
+    a = max(a, lo + 2 * kk)
+    b = min(b, hi - 2 * kk)
+    pmin = np.inf
+    for c in range(a - 2 * kk, b + 2 * kk + 1):
+        if p[c - lo] < pmin:
+            pmin = p[c - lo]
+    for c in range(a, b + 1):
         k = cnt[c - lo]
         if k == 0:
             return False
         pc = p[c - lo]
-        v = 1.5 * 1.5708 / k * _var_at(c, pc, law, nz)
+        sd = np.sqrt(1.5 * 1.5708 / k * _var_at(c, pc, law, nz))
+        tol = 6.0 * sd + _LINE_TOLERANCE * (pc - pmin)
         kap = ((p[c - 2 * kk - lo] + p[c + 2 * kk - lo]) - (p[c - kk - lo] + p[c + kk - lo]))
         kap /= 3.0 * kk * kk
         for d in range(1, lags + 1):
             e = pc - 0.5 * (p[c - d - lo] + p[c + d - lo]) + 0.5 * kap * d * d
-            if e > 0 and not e * e <= 36.0 * v:
+            if not e <= tol:
                 return False
     return True
 
@@ -1009,6 +1017,9 @@ def _map_kernel(b, t, min_refs, maxw, bank, ms, sds, bin_of, law, g_default, out
                         _judge_single(x, n, ca, t, maxw, bank, ms, sds, bin_of, law, nz, cnt,
                                       sres, o)
                     _retire(cand, n, ca, maxw if not done else 1, sres)
+                    if sres[5] > 0:  # later judgements see the spectrum cleaned so far
+                        for k in range(int(sres[3]), int(sres[4]) + 1):
+                            x[k] = o[k]
     return out
 
 
@@ -1072,6 +1083,9 @@ def _frames_kernel(b, t, maxw, bank, ms, sds, bin_of, law, g_default, out):
                         _judge_single(x, n, ca, t, maxw, bank, ms, sds, bin_of, law, nz, cnt,
                                       sres, o)
                     _retire(cand, n, ca, maxw if not done else 1, sres)
+                    if sres[5] > 0:  # later judgements see the spectrum cleaned so far
+                        for k in range(int(sres[3]), int(sres[4]) + 1):
+                            x[k] = o[k]
     return out
 
 
