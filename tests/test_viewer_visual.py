@@ -130,3 +130,17 @@ def test_no_value_pixels_are_the_figures_grey_in_the_viewer():
     np.testing.assert_array_equal(np.asarray(data) == 1,
                                   ~np.isfinite(ds["peak_energy"].values[0]))
     assert kw["colormap"][1] == _style.NAN_COLOUR
+
+
+@pytest.mark.viewer
+def test_viewer_colour_bar_carries_the_title_with_units(make_napari_viewer):
+    from pmap.napari_plugin._qt._common import show_colorbar
+
+    viewer = make_napari_viewer()
+    [(data, kw, _)] = [lyr for lyr in result_layers(_result()) if lyr[2] == "image"]
+    layer = viewer.add_image(np.asarray(data), **kw)
+    show_colorbar(layer)
+    assert layer.colorbar.visible
+    # napari's colour bar has no label of its own: the layer title with units stands beside it
+    assert layer.name_overlay.visible and str(layer.name_overlay.position).endswith("top_right")
+    assert layer.name == "Peak energy (eV) — peak 0"

@@ -34,6 +34,7 @@ def show_colorbar(layer: Any) -> None:
         overlay = getattr(layer, "name_overlay", None)
         if overlay is not None:
             overlay.visible = True
+            overlay.position = "top_right"
 
 
 def world_units(viewer: Any) -> dict:
