@@ -157,6 +157,51 @@ def _detected(arr: xr.DataArray, core: str, false_alarm: float):
     return sig.transpose(*[d for d in arr.dims if d != core]), rule
 
 
+def _sample_detected(arr: xr.DataArray, core: str, positions, false_alarm: float):
+    """(raw rows, signal per row) of the sampled pixels: the rows and their noise
+    coordinates gathered in one compute, then :func:`pmap.spectral.detect_signal` on
+    those rows only (the same test as on the whole map, without scanning every chunk)."""
+    import dask
+
+    from ..noise import noise_coords
+    from ..spectral import detect_signal
+
+    dims = pixel_dims(arr, core)
+    shape = tuple(arr.sizes[d] for d in dims)
+    if positions is None:
+        positions = tuple(i.ravel() for i in np.indices(shape))
+    idx = {d: xr.DataArray(np.asarray(p), dims="pixel") for d, p in zip(dims, positions)}
+    scale, ped = noise_coords(arr)
+    ped = ped.isel({d: v for d, v in idx.items() if d in ped.dims})
+    scale = scale.isel({d: v for d, v in idx.items() if d in scale.dims})
+    data = arr.data
+    rows = data.vindex[tuple(np.asarray(p) for p in positions)] if isinstance(data, da.Array) \
+        else np.asarray(data)[tuple(np.asarray(p) for p in positions)]
+    rows, ped_v, scale_v = dask.compute(rows, ped.data, scale.data)
+    rows = np.asarray(rows, dtype=np.float64).reshape(-1, arr.sizes[core])
+    n = len(rows)
+    filled = fill_nan_channels(rows)
+
+    def as_small(v, dims_v):
+        v = np.asarray(v, dtype=np.float64)
+        if "pixel" in dims_v:
+            v = np.moveaxis(v, dims_v.index("pixel"), 0)
+            rest = [d for d in dims_v if d != "pixel"]
+            return v[None], ("y", "x", *rest)
+        return v, tuple(dims_v)
+
+    pv, pdims = as_small(ped_v, list(ped.dims))
+    sv, sdims = as_small(scale_v, list(scale.dims))
+    small = xr.DataArray(
+        filled[None], dims=("y", "x", core),
+        coords={core: arr[core], "noise_pedestal_counts": (pdims, pv),
+                "noise_scale": (sdims, sv)},
+        attrs=dict(arr.attrs),
+    )
+    sig = np.asarray(detect_signal(small, false_alarm=false_alarm)["signal"].values).reshape(n)
+    return rows, sig
+
+
 def signal_mask(
     cube: xr.DataArray, *, false_alarm: float = 1e-3, min_snr: float | None = 5.0
 ) -> xr.DataArray:
@@ -772,9 +817,11 @@ def segment(
     )
     spectral = feature_space in ("emission", "shape", "shape+intensity")
     signal_rule = None
+    sample_arr = None
     if spectral:
         det, signal_rule = _detected(arr, core, float(false_alarm))
         if det is not None:
+            sample_arr = apply_mask(arr, mask)
             arr = arr.where(det)
             tkw["min_snr"] = None
         else:
@@ -788,7 +835,11 @@ def segment(
         positions = block_sample_positions(arr, core, sample_pixels, seed, block=2)
     else:
         positions = sample_positions(arr, core, sample_pixels, seed)
-    raw = gather(arr, core, positions)
+    if sample_arr is not None:  # detection on the sampled rows only (one pass less)
+        raw, sig_rows = _sample_detected(sample_arr, core, positions, float(false_alarm))
+        raw[~sig_rows] = np.nan
+    else:
+        raw = gather(arr, core, positions)
     pos_all = _sample_pos(arr, core, positions)
     space = None
     if feature_space == "emission":
