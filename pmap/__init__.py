@@ -61,6 +61,10 @@ _LAZY = {
     "decompose": "pmap.decomposition",
     "segment": "pmap.decomposition",
     "region_statistics": "pmap.decomposition",
+    # series of maps and absolute PL
+    "fit_law": "pmap.series",
+    "stack_cubes": "pmap.stack",
+    "fit_planck": "pmap.planck",
     # pipeline and results
     "process": "pmap.pipeline",
     "load_pipeline": "pmap.pipeline",
