@@ -413,6 +413,12 @@ def cmd_series(args: argparse.Namespace) -> int:
                   f"(median 1-sigma {np.median(err):.3g})")
         print(f"  {law}_chi2_red: median {np.nanmedian(res[f'{law}_chi2_red'].values.ravel()[ok]):.3g}")
     if "power_law_class" in res:
+        from .series import POWER_CLASS_LEGEND
+
+        cls = res["power_law_class"].values.ravel()
+        for code, word in POWER_CLASS_LEGEND.items():
+            if code >= 0 and (cls == code).any():
+                print(f"  power_law_class {word}: {int((cls == code).sum())}")
         print(f"  power_law_class: {res['power_law_class'].attrs['caveat']}")
     return 0
 

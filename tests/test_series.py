@@ -287,3 +287,21 @@ def test_dropped_peaks_are_missing_points(rng):
     out = fit_law(ds, law="varshni")
     assert int(out["varshni_status"][0, 0, 0]) == 0
     assert abs(float(out["varshni_e0"][0, 0, 0]) - e0) < 5 * float(out["varshni_e0_err"][0, 0, 0])
+
+
+def test_cli_series_power_law_classes(tmp_path, rng, capsys):
+    from pmap.cli import main
+
+    p = np.geomspace(1e-6, 1e-3, 8)
+    clean = 1e3 * (p / 1e-4) ** 1.5
+    sig = np.sqrt(clean) + 2
+    noisy = clean[:, None, None] + rng.normal(size=(8, 4, 5)) * sig[:, None, None]
+    ds = xr.Dataset({"integrated_intensity": (("excitation_power", "y", "x"), noisy),
+                     "integrated_intensity_err": (("excitation_power", "y", "x"),
+                                                  np.broadcast_to(sig[:, None, None], noisy.shape))},
+                    coords={"excitation_power": p})
+    src = _write_result(ds, tmp_path / "p.zarr")
+    assert main(["series", str(src), "--law", "power_law", "-o", str(tmp_path / "o.zarr"),
+                 "-q"]) == 0
+    out = capsys.readouterr().out
+    assert "1 <= k <= 2 (excitonic): 20" in out and "rules of thumb" in out
