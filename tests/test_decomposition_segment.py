@@ -191,11 +191,30 @@ def test_min_region_px_in_segment(toy):
     cube, truth, *_ = toy
     data = np.asarray(cube.values).copy()
     data[15, 8] = data[15, 25]  # one pixel of region 2's spectrum inside region 0
-    region = segment(cube.copy(data=data).chunk({"y": 10}), n_regions=3, min_region_px=4)
+    data[5, 8] = 0.5 * (data[5, 8] + data[5, 14])  # a 50/50 mix of regions 0 and 1 inside 0
+    cube2 = cube.copy(data=data).chunk({"y": 10})
+    # k-means: every island under 4 pixels takes its neighbours' label.
+    region = segment(cube2, n_regions=3, method="kmeans", min_region_px=4)
     assert isinstance(region.data, dask.array.Array)
     assert region.values[15, 8] == 0
-    raw = segment(cube.copy(data=data), n_regions=3, min_region_px=0)
+    raw = segment(cube2, n_regions=3, method="kmeans", min_region_px=0)
     assert raw.values[15, 8] == 2
+    # merge (default): a pixel clearly of another kind stays; an ambiguous one is cleaned.
+    merged = segment(cube2, n_regions=3, min_region_px=4).values
+    assert merged[15, 8] == 2
+    assert merged[5, 8] == 0
+    assert "runner-up" in segment(cube2, n_regions=3).attrs["island_rule"]
+
+
+def test_relabel_islands_only_ambiguous_ones():
+    lab = np.zeros((8, 8), dtype=np.int32)
+    lab[2, 2] = 1  # island whose runner-up is 0 (the border label): relabelled
+    lab[5, 5] = 2  # island clearly of its own kind (no runner-up): stays
+    second = np.full(lab.shape, -2, dtype=np.int32)
+    second[2, 2] = 0
+    out = relabel_islands(lab, 3, second)
+    assert out[2, 2] == 0 and out[5, 5] == 2
+    assert relabel_islands(lab, 3)[5, 5] == 0  # without runner-ups: every small island
 
 
 def test_bad_input():

@@ -48,6 +48,9 @@ FEATURE_SPACES = ("emission", "shape", "shape+intensity", "abundance", "paramete
 CLUSTER_METHODS = ("merge", "kmeans", "gmm")
 #: Over-clusters cut before merging (method "merge").
 N_OVER_CLUSTERS = 16
+#: A pixel is ambiguous between its label and another when the other label's nearest
+#: centroid is within this factor of the distance to its own (island clean-up).
+AMBIGUOUS = 1.5
 #: Fit sets larger than this use MiniBatchKMeans instead of KMeans.
 MINIBATCH_ABOVE = 100_000
 #: Pixels used for each silhouette score.
@@ -267,16 +270,24 @@ def _predict(
     sd: np.ndarray,
     model,
     relabel: np.ndarray,
+    second: bool = False,
 ) -> np.ndarray:
     if transform is _emission_features:
         feats, signal, _ = transform(x, **tkw, with_property=False)
     else:
         feats, signal, _ = transform(x, **tkw)
     out = np.full(len(x), -1, dtype=np.int32)
+    if not second:
+        if signal.any():
+            p = model.predict((feats[signal] - mu) / sd)
+            out[signal] = np.where(p >= 0, relabel[np.clip(p, 0, None)], -1)
+        return out
+    alt = np.full(len(x), -2, dtype=np.int32)
     if signal.any():
-        p = model.predict((feats[signal] - mu) / sd)
+        p, q = model.predict2((feats[signal] - mu) / sd)
         out[signal] = np.where(p >= 0, relabel[np.clip(p, 0, None)], -1)
-    return out
+        alt[signal] = np.where(q >= 0, relabel[np.clip(q, 0, None)], q)
+    return np.stack([out, alt], axis=1)
 
 
 # ---------------------------------------------------------------- building the feature space
@@ -467,6 +478,20 @@ class _Nearest:
         d = self.c2[None, :] - 2.0 * (z @ self.centroids.T)
         return self.region_of[np.argmin(d, axis=1)]
 
+    def predict2(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(label, runner-up label or −2): the runner-up is the label of the nearest
+        centroid of another label when it is within AMBIGUOUS × the distance to the
+        nearest centroid (the pixel could be either), else −2 (clearly its own)."""
+        d2 = np.maximum(self.c2[None, :] - 2.0 * (z @ self.centroids.T)
+                        + np.einsum("ij,ij->i", z, z)[:, None], 0.0)
+        best = np.argmin(d2, axis=1)
+        lab = self.region_of[best]
+        other = np.where(self.region_of[None, :] == lab[:, None], np.inf, d2)
+        alt = np.argmin(other, axis=1)
+        rows = np.arange(len(z))
+        near = other[rows, alt] <= (AMBIGUOUS**2) * d2[rows, best]
+        return lab, np.where(near, self.region_of[alt], -2)
+
 
 def _fit_merge(
     data: MergeData,
@@ -587,7 +612,9 @@ def _sample_pos(arr: xr.DataArray, core: str, positions) -> np.ndarray:
 # ---------------------------------------------------------------- spatial clean-up
 
 
-def relabel_islands(labels: np.ndarray, min_px: int) -> np.ndarray:
+def relabel_islands(
+    labels: np.ndarray, min_px: int, second: np.ndarray | None = None
+) -> np.ndarray:
     """Relabel 4-connected islands smaller than ``min_px`` pixels to their neighbours' majority.
 
     Parameters
@@ -597,6 +624,10 @@ def relabel_islands(labels: np.ndarray, min_px: int) -> np.ndarray:
     min_px : int
         Islands with fewer pixels than this take the label most frequent along their
         border (ties: the smaller label). Islands bordered only by no-signal pixels stay.
+    second : ndarray of int, shape (y, x), optional
+        Each pixel's runner-up label (−2: none close). When given, an island changes
+        only if that border label is the runner-up of at least half of its pixels: an
+        island that is clearly of its own kind stays.
 
     Returns
     -------
@@ -640,19 +671,36 @@ def relabel_islands(labels: np.ndarray, min_px: int) -> np.ndarray:
     winner = np.full(offset + 1, -2, dtype=np.int64)
     winner[pi[order][first]] = pl[order][first]
     change = small & (winner[ids] >= 0)
+    if second is not None:
+        agree = np.bincount(ids[change], weights=(np.asarray(second) == winner[ids])[change],
+                            minlength=offset + 1)
+        size = np.bincount(ids[change], minlength=offset + 1)
+        ok = np.zeros(offset + 1, dtype=bool)
+        ok[size > 0] = agree[size > 0] >= 0.5 * size[size > 0]
+        change &= ok[ids]
     out[change] = winner[ids][change]
     return out
 
 
-def _clean(region: xr.DataArray, min_px: int) -> xr.DataArray:
+def _clean(region: xr.DataArray, min_px: int, second: xr.DataArray | None = None) -> xr.DataArray:
     if isinstance(region.data, da.Array):
         region = region.chunk({"y": -1, "x": -1})
+        if second is not None:
+            second = second.chunk({"y": -1, "x": -1})
+
+    def one(a, b=None):
+        flat = a.reshape(-1, *a.shape[-2:])
+        flat_b = None if b is None else b.reshape(-1, *b.shape[-2:])
+        return np.stack([
+            relabel_islands(m, min_px, None if flat_b is None else flat_b[i])
+            for i, m in enumerate(flat)
+        ]).reshape(a.shape)
+
+    args = [region] if second is None else [region, second]
     return xr.apply_ufunc(
-        lambda a: np.stack(
-            [relabel_islands(s, min_px) for s in a.reshape(-1, *a.shape[-2:])]
-        ).reshape(a.shape),
-        region,
-        input_core_dims=[["y", "x"]],
+        one,
+        *args,
+        input_core_dims=[["y", "x"]] * len(args),
         output_core_dims=[["y", "x"]],
         dask="parallelized",
         output_dtypes=[region.dtype],
@@ -719,9 +767,12 @@ def segment(
         Euclidean norm; ``"shape+intensity"``: the same plus log10 intensity;
         NMF abundances; parameter maps (z-scores on the fitted sample).
     min_region_px : int
-        Clean-up: 4-connected islands smaller than this take the label most frequent
-        on their border (:func:`relabel_islands`); the default 3 removes single pixels
-        and pairs; 0 keeps the clustering as it is.
+        Clean-up: 4-connected islands smaller than this (default 3: single pixels and
+        pairs) take the label most frequent on their border (:func:`relabel_islands`);
+        with ``method="merge"`` only when that label is the runner-up of at least half
+        of the island's pixels (its nearest centroid within 1.5 × the distance to their
+        own): an island clearly of its own kind (a point defect) stays. 0 keeps the
+        clustering as it is.
     seed : int
         Seed of the pixel sample and of the clustering.
     sample_pixels : int or None
@@ -901,23 +952,17 @@ def segment(
     relabel = np.empty(k, dtype=np.int32)
     relabel[order] = np.arange(k, dtype=np.int32)
 
-    region = map_pixels(
-        _predict,
-        arr,
-        core,
-        out_core=None,
-        dtype=np.int32,
-        kwargs={
-            "transform": transform,
-            "tkw": tkw,
-            "mu": mu,
-            "sd": sd,
-            "model": model,
-            "relabel": relabel,
-        },
-    )
-    if min_region_px > 1:
-        region = _clean(region, int(min_region_px))
+    kwargs = {"transform": transform, "tkw": tkw, "mu": mu, "sd": sd, "model": model,
+              "relabel": relabel}
+    if method == "merge" and min_region_px > 1:
+        both = map_pixels(_predict, arr, core, out_core="choice", out_size=2, dtype=np.int32,
+                          kwargs={**kwargs, "second": True})
+        region = both.isel(choice=0, drop=True)
+        region = _clean(region, int(min_region_px), both.isel(choice=1, drop=True))
+    else:
+        region = map_pixels(_predict, arr, core, out_core=None, dtype=np.int32, kwargs=kwargs)
+        if min_region_px > 1:
+            region = _clean(region, int(min_region_px))
     legend = {"-1": "no signal, NaN or masked"}
     for j in range(k):
         src = order[j]
@@ -964,7 +1009,11 @@ def segment(
             "min_region_px": int(min_region_px),
             "island_rule": (
                 f"4-connected islands under {int(min_region_px)} pixels take the label most "
-                "frequent on their border" if min_region_px > 1 else "none"
+                "frequent on their border"
+                + (f", when that label is the runner-up (nearest centroid within "
+                   f"{AMBIGUOUS} x the distance to their own) of at least half their pixels"
+                   if method == "merge" else "")
+                if min_region_px > 1 else "none"
             ),
             **merge_info,
         }
