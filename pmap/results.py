@@ -451,6 +451,9 @@ def fit_summary(ds: xr.Dataset, *, min_converged: float = 0.8) -> tuple[list[str
         if np.isfinite(med):
             lines.append(f"fit: median reduced chi-square {med:.3g} (1 when the model and "
                          "the noise model describe the data)")
+    elif "weighted_residual_variance" in ds:
+        lines.append("fit: correlated noise or no reliable noise law: weights from the "
+                     "noise model's shape, errors scaled by each pixel's residual")
     elif "residual_variance" in ds:
         lines.append("fit: no noise model: errors are scaled by each pixel's residual "
                      "(see the attr uncertainty_method)")

@@ -525,7 +525,7 @@ def _fit_rows(Y, mean, spec, nz, max_iter, min_snr, VS=_ONE, VP=_ZERO):
     # masked channels (bad-pixel masking) are left out of the fit; a spectrum with too
     # few channels left is "masked or NaN input"
     finite &= n_ok >= max(spec.nfree + 3, Y.shape[1] // 2)
-    if nz[0] == 1:  # the noise law's σ at the base level, mid-axis, as a floor
+    if nz[0] in (1, 3):  # the noise law's σ at the base level, mid-axis, as a floor
         var_mode, a, bb, floor = nz
         mid = Y.shape[1] // 2
         sc = VS[:, min(mid, VS.shape[1] - 1)]
@@ -754,12 +754,26 @@ def _noise_setup(cube, noise, read_noise_counts, gain_e_per_count):
     if why is not None:
         if noise == "poisson":
             raise StepError(f"noise='poisson' is not possible: {why}")
-        if noise == "auto" and str(unit).startswith("counts"):
+        if noise == "auto" and str(unit).startswith("counts") and model is None:
             warnings.warn(
                 f"fit_peaks: {why}; errors are scaled by each pixel's residual and the fit "
                 "reports residual_variance, not chi2_red",
                 PmapNotice,
                 stacklevel=3,
+            )
+        if noise == "auto" and model is not None:
+            # the law's shape across channels still holds (interpolation, smoothing and
+            # PCA change its level, not which channels are brighter): weights from it,
+            # errors scaled by the residual
+            return (
+                cube,
+                (3, model.var_per_count, model.var_offset_counts2, model.floor_counts2),
+                (
+                    "weights from the noise model's per-channel variance, 1-sigma errors "
+                    f"scaled by the weighted residual ({why}); weighted_residual_variance is "
+                    "the residual variance relative to the model's (1 if the law held)"
+                ),
+                "weighted",
             )
         return (
             cube,
@@ -1091,7 +1105,12 @@ def _assemble(arr, cube, spec, unc, params, chi2_true):
         "Bayesian information criterion of the fit (lower is better; compare runs with "
         "different numbers of peaks pixel by pixel)",
     )
-    if chi2_true:
+    if chi2_true == "weighted":
+        dv["weighted_residual_variance"] = var(
+            -2, "1", "weighted residual variance per degree of freedom, relative to the noise "
+            "model's (the errors are scaled by it)"
+        )
+    elif chi2_true:
         dv["chi2_red"] = var(
             -2, "1", "reduced chi-square (residuals weighted by the noise model)"
         )
@@ -1103,7 +1122,7 @@ def _assemble(arr, cube, spec, unc, params, chi2_true):
     coords = {k: c for k, c in arr.coords.items() if "fit_output" not in c.dims}
     coords["peak"] = ("peak", np.arange(spec.K), {"long_name": "peak index, by energy"})
     keep = {k: v for k, v in cube.attrs.items() if k not in ("units", "long_name")}
-    keep["fit_noise_weighted"] = int(chi2_true)
+    keep["fit_noise_weighted"] = int(bool(chi2_true))
     attrs = with_step(keep, "fit_peaks", params)
     attrs.update(
         {

@@ -312,7 +312,7 @@ def _set_weights(f, y, var_mode, nv, w):
         for i in range(w.size):
             w[i] = 1.0 if fl[i] < np.inf else 0.0
         return
-    if var_mode == 1:
+    if var_mode == 1 or var_mode == 3:
         for i in range(w.size):
             w[i] = 1.0 / max(sa[i] * f[i] + q[i], fl[i])
     else:
@@ -428,7 +428,7 @@ def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv, gb):
     norm = inv_s / math.sqrt(2.0 * math.pi)
     inv_fw = 1.0 / fw
     sa, q, fl = nv
-    model_w = var_mode == 1
+    model_w = var_mode == 1 or var_mode == 3
     i0 = np.searchsorted(x, c - _CUT_SIGMA * sig)
     i1 = max(np.searchsorted(x, c + _CUT_SIGMA * sig, side="right"), i0)
     lo_ = _bg_sums(y[:i0], w[:i0], wn[:i0], b0, jb0, model_w, sa[:i0], q[:i0], fl[:i0])
@@ -663,7 +663,7 @@ def _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, nv, f, wn, A, g):
         return c_old, c_new
     _model_avg(model, x, x3, xref, p, K, nbg, f, J, f3, J3, _NARROW_CHANNELS * dmax)
     c_old = _wcost(y, f, w)
-    if var_mode == 1:
+    if var_mode == 1 or var_mode == 3:
         _set_weights(f, y, var_mode, nv, wn)
         c_new = _wcost(y, f, wn)
     else:
@@ -721,7 +721,7 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, nv, max_iter, ftol,
                 pn[j] = p[j] if fj < 0 else min(max(p[j] + d[fj], lo[j]), hi[j])
             # a step of stol standard errors lowers χ² by stol² (absolute weights) or by
             # stol²·χ²_red (unit weights, errors scaled by χ²_red)
-            drop_tol = stol * stol * (cost / dof if var_mode == 0 else 1.0)
+            drop_tol = stol * stol * (cost / dof if var_mode == 0 or var_mode == 3 else 1.0)
             if lam <= 1e-2 and _predicted_drop(A, g, d) <= max(ftol * cost, drop_tol):
                 # an (almost) Gauss–Newton step whose predicted cost drop is below ftol
                 # (the test after evaluating it would stop) or that moves the
@@ -761,7 +761,8 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, nv, max_iter, ftol,
             status = STATUS_CONVERGED
             break
     chi2 = cost / dof
-    _cov_inactive(A, p, lo, hi, free_idx, chi2 if var_mode == 0 else 1.0, L, e, d, cov, An)
+    scaled = var_mode == 0 or var_mode == 3  # errors scaled by the residual
+    _cov_inactive(A, p, lo, hi, free_idx, chi2 if scaled else 1.0, L, e, d, cov, An)
     for j in range(nfull):
         if not math.isfinite(p[j]):
             status = STATUS_FAILED
@@ -776,7 +777,10 @@ def lm_batch(Y, rows, x, xe, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, v
     """Batched Levenberg–Marquardt over the rows ``rows`` of Y (n_pix, n_ch), float32/64.
 
     ``xe`` (n_ch + 1): channel edges (the model is averaged over each channel).
-    Noise law (var_mode 1 and 2, see :mod:`pmap.noise`): per row i and channel c,
+    var_mode: 0 unit weights, errors scaled by the residual; 1 weights from the model
+    and the noise law, absolute errors; 2 weights from the data; 3 weights from the
+    model and the noise law, errors scaled by the residual (the law's shape is right,
+    its level is not: correlated noise). Noise law (see :mod:`pmap.noise`): per row i and channel c,
     variance = max(a·s·value + s²(a·p + b), s²·floor) with s = VS[i, c], p = VP[i, c]
     (a row or column of length 1 broadcasts), a = ``va``, b = ``vb``, floor = ``vfl``.
 
