@@ -720,14 +720,16 @@ def _artefact(p, cnt, j, lo, hi, c0, rho1, law, nz):  # pragma: no cover - compi
 @numba.njit(cache=True, nogil=True, error_model="numpy")
 def _excess_z(r, p, cnt, c, lo, sf2, law, nz):  # pragma: no cover - compiled
     """Residual r[c − lo] over the prediction p in s.d. (−inf where undefined): the noise
-    of the value and of the median of cnt references (π/2k), or the flank spread sf2."""
+    of the value and of the median of k = cnt references (variance 1/k of one for k ≤ 2,
+    π/2k beyond), or the flank scatter sf2 where that is 1.5 times larger (a mere
+    fluctuation of its estimate from ~20 channels does not count)."""
     pc = p[c - lo]
     k = cnt[c - lo]
     rc = r[c - lo]
     if k == 0 or not pc == pc or not rc == rc:
         return -np.inf
-    v = _var_at(c, pc, law, nz) * (1.0 + 1.5708 / k)
-    if sf2 > v:
+    v = _var_at(c, pc, law, nz) * (1.0 + (1.0 / k if k <= 2 else 1.5708 / k))
+    if sf2 > 1.5 * v:  # the flanks scatter clearly more than the noise explains
         v = sf2
     return rc / np.sqrt(v)
 
@@ -796,22 +798,29 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
     while x1 + 1 <= min(hi, ca + h) and _excess_z(rbuf, p, cnt, x1 + 1, lo, 0.0, law,
                                                      nz) > _EXTEND_SIGMA:
         x1 += 1
-    if hi - lo >= 4:
+    if t_shape > 0 and hi - lo >= 4:  # (frames of one pixel neither move nor broaden)
         sd = sds[bin_of[ca]]
         _shift_residual(x, p, cnt, lo, hi, lo + 1, hi - 1, x0 - 1, x1 + 1,
                         np.exp(-0.5 / (sd * sd)), law, nz, rbuf, ls)
-    # spread of the residual over the flanks (what the correction leaves of shape changes)
-    m = 0
-    for c in range(lo, hi + 1):
-        if (c < ca - h or c > ca + h) and not x0 - 1 <= c <= x1 + 1:
-            r = rbuf[c - lo]
-            if r == r:
-                vbuf[m] = r
-                m += 1
+    # scatter of the residual over the flanks (what the prediction leaves of differences
+    # between the spectra, beyond the noise): the smaller of the robust s.d. of the
+    # residual and of its first differences / √2 (the latter ignores smooth leftovers,
+    # the former is the steadier when there are none)
     sf2 = 0.0
-    if m >= 5:
+    for mode in range(2):
+        m = 0
+        for c in range(lo, hi):
+            if (c < ca - h or c >= ca + h) and not x0 - 2 <= c <= x1 + 1:
+                r = rbuf[c + 1 - lo] - rbuf[c - lo] if mode else rbuf[c - lo]
+                if r == r:
+                    vbuf[m] = r
+                    m += 1
+        if m < 5:
+            sf2 = 0.0
+            break
         _, mad, _ = nan_median_mad(vbuf, m, abuf[nref:])
-        sf2 = (1.4826 * mad) ** 2
+        s2 = (1.4826 * mad) ** 2 * (0.5 if mode else 1.0)
+        sf2 = s2 if mode == 0 or s2 < sf2 else sf2
     # candidates the references explain are settled
     for c in range(lo, hi + 1):
         if cand[c] and not _excess_z(rbuf, p, cnt, c, lo, sf2, law, nz) > t:
@@ -1024,6 +1033,49 @@ def _map_kernel(b, t, min_refs, maxw, bank, ms, sds, bin_of, law, g_default, out
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
+def _frame_candidates(b, ib, f, s, x, n, t, law, nz, fsc, vbuf, z, cand):  # pragma: no cover
+    """Frame candidates of spectrum x (frame f of pixel s): channels above the median of
+    the other frames, each scaled by its ratio of sums over the spectrum, by more than t
+    s.d. (skew-corrected) - whatever the excess's shape, so a broad transient counts
+    too. Adds to cand / z; returns whether any was found."""
+    nf = b.shape[1]
+    sx = 0.0
+    for j in range(n):
+        if x[j] == x[j]:
+            sx += x[j]
+    for f2 in range(nf):
+        sr = 0.0
+        for j in range(n):
+            v = b[ib, f2, s, j]
+            if v == v and x[j] == x[j]:
+                sr += v
+        fsc[f2] = sx / sr if sr > 0 and sx > 0 else 1.0
+    found = False
+    for c in range(n):
+        if not x[c] == x[c]:
+            continue
+        m = 0
+        for f2 in range(nf):
+            v = b[ib, f2, s, c]
+            if f2 != f and v == v:
+                vbuf[m] = fsc[f2] * v
+                m += 1
+        if m == 0:
+            continue
+        pc = median_of(vbuf, m)
+        var = _var_at(c, pc, law, nz)
+        v = var * (1.0 + (1.0 / m if m <= 2 else 1.5708 / m))
+        e = x[c] - pc
+        if e > 0 and e * e > t * t * v:
+            zc = e / np.sqrt(v)
+            if zc > _skewed_threshold(c, pc, var, t, law, nz) and zc > z[c]:
+                z[c] = zc
+                cand[c] = True
+                found = True
+    return found
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def _frames_kernel(b, t, maxw, bank, ms, sds, bin_of, law, g_default, out):
     """Spike removal over a block b (B, F, S, n) of F repeated acquisitions of S spectra
     into out: each frame is judged against the scaled median of the others; a spike is an
@@ -1038,11 +1090,12 @@ def _frames_kernel(b, t, maxw, bank, ms, sds, bin_of, law, g_default, out):
     nz = np.zeros(3)
     nr = max(nf - 1, 1)
     refs = np.empty((nr, wlen))
+    fsc = np.empty(nf)
     p = np.empty(wlen)
     rbuf = np.empty(wlen)
     ls = np.empty((4, 5))
     cnt = np.zeros(wlen, dtype=np.int64)
-    vbuf = np.empty(max(nr, wlen))
+    vbuf = np.empty(max(nr, wlen, nf))
     abuf = np.empty(nr + wlen)
     sres = np.zeros(6)
     w1b = np.empty(n)
@@ -1059,7 +1112,10 @@ def _frames_kernel(b, t, maxw, bank, ms, sds, bin_of, law, g_default, out):
                     o[j] = v
                 if not stated:
                     _fit_noise(x, n, g_default, nz, w1b, w2b)
-                if not _find_candidates(x, n, t2, lags, law, nz, z, w1b, cand):
+                found = _find_candidates(x, n, t2, lags, law, nz, z, w1b, cand)
+                if _frame_candidates(b, ib, f, s, x, n, t, law, nz, fsc, vbuf, z, cand):
+                    found = True
+                if not found:
                     continue
                 for _ in range(_MAX_JUDGED):
                     ca = _next_candidate(cand, z, n)
