@@ -91,6 +91,8 @@ _MAP_SHAPE_EASE = 1.5
 _SHIFT_CHI2 = 16.0
 #: Most candidates judged per spectrum (each judgement settles ±max_width channels).
 _MAX_JUDGED = 32
+#: Spectra at least this long get one weighted refit of the noise law, shorter ones two.
+_FIT_ONE_PASS_FROM = 254
 _FWHM_TO_SD = 1.0 / (2.0 * np.sqrt(2.0 * np.log(2.0)))
 
 
@@ -252,8 +254,9 @@ def _fit_noise(x, n, g_default, nz, lvb, qb):  # pragma: no cover - compiled
     Samples are q = (x[j−1] − 2x[j] + x[j+1])²/6 against level = (x[j−1] + x[j] + x[j+1])/3:
     the two are uncorrelated for Gaussian noise, E[q | level] = level exactly for Poisson
     counts (given their sum, the three counts are multinomial), and the second difference
-    removes linear signal. A least-squares line, refitted twice weighted by 1/var² without
-    the samples above 9 × the fitted variance (spikes, the curvature of narrow lines). Where the levels span
+    removes linear signal. A least-squares line, refitted weighted by 1/var² without the
+    samples above 9 × the fitted variance (spikes, the curvature of narrow lines): once
+    for spectra of 256 channels or more, twice for shorter ones (fewer samples). Where the levels span
     too little to fix g, g is at least ``g_default`` (1 for counts: shot noise). lvb, qb:
     work (≥ n).
     """
@@ -303,7 +306,7 @@ def _fit_noise(x, n, g_default, nz, lvb, qb):  # pragma: no cover - compiled
     fl = 0.05 * sq / s0 + 1e-300
     lmin = np.inf
     lmax = -np.inf
-    for _ in range(2):
+    for _ in range(1 if m >= _FIT_ONE_PASS_FROM else 2):
         s0 = 0.0
         s1 = 0.0
         s2 = 0.0
@@ -721,15 +724,18 @@ def _artefact(p, cnt, j, lo, hi, c0, rho1, law, nz):  # pragma: no cover - compi
 def _excess_z(r, p, cnt, c, lo, sf2, law, nz):  # pragma: no cover - compiled
     """Residual r[c − lo] over the prediction p in s.d. (−inf where undefined): the noise
     of the value and of the median of k = cnt references (variance 1/k of one for k ≤ 2,
-    π/2k beyond), or the flank scatter sf2 where that is 1.5 times larger (a mere
-    fluctuation of its estimate from ~20 channels does not count)."""
+    π/2k beyond), or the flank scatter sf2 where that is larger: 1.5 times when the
+    cube states its noise law (a mere fluctuation of an estimate from ~20 channels does
+    not count), at all when the law was fitted to the spectrum (then sf2 is a second,
+    independent estimate)."""
     pc = p[c - lo]
     k = cnt[c - lo]
     rc = r[c - lo]
     if k == 0 or not pc == pc or not rc == rc:
         return -np.inf
     v = _var_at(c, pc, law, nz) * (1.0 + (1.0 / k if k <= 2 else 1.5708 / k))
-    if sf2 > 1.5 * v:  # the flanks scatter clearly more than the noise explains
+    gate = 1.5 if law[0, 0] == law[0, 0] else 1.0
+    if sf2 > gate * v:  # the flanks scatter more than the noise explains
         v = sf2
     return rc / np.sqrt(v)
 
