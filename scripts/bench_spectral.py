@@ -66,6 +66,12 @@ def main() -> None:
         "to_energy": lambda c: sp.to_energy(c),
         "to_energy_uniform": lambda c: sp.to_energy(c, resample="uniform"),
         "remove_spikes": lambda c: sp.remove_spikes(c),
+        # the same with the detector stated (the cube is Poisson counts, gain 1): the noise
+        # law is then known instead of fitted to each spectrum, as in `pmap process`
+        "remove_spikes_stated_noise": lambda c: sp.remove_spikes(
+            c.assign_attrs(units="counts", gain_e_per_count=1.0, read_noise_counts=0.0,
+                           dark_level_counts=0.0)
+        ),
         "mask_bad_pixels": lambda c: sp.mask_bad_pixels(c),
         "remove_baseline_constant": lambda c: sp.remove_baseline(
             c, method="constant", window=(700, 720)
