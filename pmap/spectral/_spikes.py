@@ -1,50 +1,62 @@
 """Cosmic-spike removal that spares real emission.
 
 A cosmic spike is narrower than the instrument function, or present in one acquisition
-only; real emission is at least as wide as the instrument function and, in a map, also
+only; real emission is at least as wide as the instrument function and, in a map, either
 explained by the neighbouring spectra or shaped like a line. Each spectrum goes through
-three stages (all in one compiled pass per spectrum, :func:`_map_kernel` /
-:func:`_frames_kernel`):
+three stages, in one compiled pass per spectrum (:func:`_map_kernel`,
+:func:`_frames_kernel`; work proportional to the candidates beyond the first):
 
-1. *Candidates* (after Whitaker & Hayes, Chemometr. Intell. Lab. Syst. 179, 82 (2018),
-   who flag channels whose first difference has a large modified z-score): a channel is a
-   candidate when it stands above the mean of the two channels k = 1, 2, 3 away
-   (second differences at lags up to half the widest spike, so a spike up to
-   ``max_width`` channels wide is caught at its middle) by more than ``threshold`` local
-   noise s.d. The noise is the detector's law var = a·μ + b when the cube states it
-   (noise model or gain/read-noise attrs, :mod:`pmap.noise`), else a per-spectrum
-   estimate from the first difference in 32-channel segments plus a shot-noise slope
-   fitted across the segments.
-2. *Not explained by other acquisitions*: the neighbouring spectra (3×3 in the map,
-   through a 1-pixel halo, :mod:`pmap.spectral._halo`) or the other frames of the same
-   pixel (a ``frame`` or ``accumulation`` dim) are each scaled to the spectrum's own
-   intensity by the ratio of their sums over flank channels away from the candidate
-   (so an intensity gradient across the map does not matter), and their median
-   predicts the spectrum. The candidate must exceed the prediction by more than
-   ``threshold`` s.d. (the larger of the noise of the prediction and the spread of the
-   prediction's residuals over the flanks, which absorbs shape changes between pixels).
-   The spike then covers every adjacent channel still 3 s.d. above the prediction (up
-   to ``max_width`` + 2 channels), and those values are replaced by the prediction.
+1. *Noise and candidates.* The noise is the detector's law var = a·μ + b when the cube
+   states it (its noise model, or gain/read-noise/dark attrs: :mod:`pmap.noise`), else
+   a law var = α + g·level fitted to the spectrum itself from its second differences
+   (:func:`_fit_noise`). After Whitaker & Hayes, Chemometr. Intell. Lab. Syst. 179, 82
+   (2018), who flag channels whose first difference has a large modified z-score, a
+   channel is a candidate when it stands above the mean of the channels k = 1, 2, 3
+   away, corrected for the background's curvature (so a bright band top does not
+   count), by more than ``threshold`` noise s.d. — second differences at lags up to
+   half the widest spike, so a spike ``max_width`` channels wide is caught at its
+   middle. Thresholds are raised for the skew of shot noise (Cornish–Fisher). With
+   frames, channels above the scaled median of the other frames are candidates too.
+   Candidates are judged from the most significant down; each judgement sees the
+   spectrum as cleaned so far.
+2. *Not explained by other acquisitions.* The 3×3 neighbours (through a 1-pixel halo,
+   :mod:`pmap.spectral._halo`), or the other frames of the pixel (a ``frame`` or
+   ``accumulation`` dim), are each scaled to the spectrum by the ratio of their sums
+   over flank channels away from the candidate (an intensity gradient across the map
+   does not matter; a reference needing a factor beyond 1/5 … 5 is left out); their
+   median predicts the spectrum. In a map the prediction is then corrected by least
+   squares for an offset and for a change of amplitude, position and width of what it
+   holds (a line that moves or broadens between pixels; :func:`_shift_residual`). The
+   candidate must exceed the prediction by more than ``threshold`` s.d. (noise of the
+   value and of the median, or the flanks' scatter where larger).
 3. *Narrower than the instrument function* (maps and single spectra; frames need not
-   pass it): any real emission is a non-negative intrinsic spectrum convolved with the
-   instrument function (a Gaussian of the stated FWHM), i.e. it lies in the convex cone
-   spanned by instrument profiles at all positions (plus a positive offset). For each
-   spike width W = 1 … ``max_width`` a test vector w_W is precomputed: the normalised
-   residual of a box of width W after its non-negative least-squares projection onto that
-   cone (scipy.optimize.nnls, profiles every 0.1 channel). By the projection theorem
-   w_W·g ≤ 0 for every g in the cone, so w_W·(x − C0) (C0: lowest 3-channel mean of the
-   window) stays at or below 0 plus noise for any real line, however bright, however wide
-   and whatever its intrinsic shape, while a spike gives a positive value (0.6–1.4 × its
-   height for widths of 1–5 channels at instrument FWHMs of 3–12 channels). A spike is
-   removed only when the largest of these statistics over the boxes covering it exceeds
-   ``threshold`` s.d. (with a tolerance of 2 % of the local contrast for instrument
-   profiles that are not exactly Gaussian). Within 1.5 FWHM of the ends of the spectral
-   axis the three-point version (lag-L curvature bound 2ρ_L·x(c) − x(c−L) − x(c+L) ≤ 0,
-   ρ_L = exp(−L²/2s²)) is used for single spectra, and the spatial test alone in maps.
+   pass it). Any real emission is a non-negative intrinsic spectrum convolved with the
+   instrument function (a Gaussian of the stated FWHM, integrated over each channel),
+   so it lies in the convex cone spanned by channel-integrated instrument profiles at
+   all positions (plus a positive offset). For each spike width W = 1 … ``max_width`` a
+   test vector w_W is precomputed: the normalised residual of a box of W channels after
+   its non-negative least-squares projection onto that cone (:func:`_box_kernels`). By
+   the projection theorem w_W·g ≤ 0 for every g in the cone: no real line, however
+   bright, wide or odd in shape, gives a positive statistic beyond noise, while a spike
+   gives 0.3–1.4 × its height (1–5 channels wide, instrument FWHM 1.3–12 channels). The
+   statistic is taken of the residual after the corrected prediction when that holds no
+   narrow line (then the residual is this pixel's own: a spike, or an emitter of its own,
+   which passes), else of the spectrum itself less a background level that no real line
+   can make too high (:func:`_window_floor`); a spike is removed when the largest over
+   the boxes covering it exceeds ``threshold`` − 1.5 (maps: the excess has already
+   proved not to be in the neighbours) or ``threshold`` (single spectra). A 2 %
+   tolerance of the local contrast covers instrument profiles that are not exactly
+   Gaussian, and the stated FWHM is used at 90 % (a stated width a little too large).
+   The spike's extent is the best box, widened while the statistic holds (a spike on an
+   emitter does not take the emitter with it).
 
-In a map a spike must pass stages 2 and 3; a single spectrum (or a pixel with fewer
-than ``min_neighbours`` valid neighbours) only stage 3, with the spike replaced by
-linear interpolation; frames only stage 2.
+Replacements: in a map, the corrected prediction plus what the pixel's own emission
+adds under the spike (its residual interpolated across the spike when significant on
+both sides); in a single spectrum (or with fewer than ``min_neighbours`` valid
+neighbours), linear interpolation across the spike; with frames, the other frames'
+scaled median. Within 1.5 FWHM of the ends of the spectral axis, where the box
+statistic has no room, single spectra use the three-point curvature bound
+2ρ_L·x(c) − x(c−L) − x(c+L) ≤ 0 (ρ_L = exp(−L²/2s²)) and maps the spatial test alone.
 """
 
 from __future__ import annotations
@@ -1259,8 +1271,10 @@ def remove_spikes(
         dim (size ≥ 2) holds repeated acquisitions: each is then judged against the
         others (a spike is in one acquisition only).
     threshold : float
-        Significance of every test in noise s.d. (candidate excess, excess over the
-        neighbours or frames, line-shape violation); default 4.5.
+        Significance in noise s.d. of the candidate and spatial (or frame) tests; the
+        line-shape test uses ``threshold`` − 1.5 in maps and ``threshold`` for single
+        spectra. Default 4.5 (spikes of 10 s.d. are found in ≥ 99 % on peak tops; noise
+        alone is replaced in ≲ 1e-5 of values).
     min_neighbours : int
         Fewest valid spatial neighbours for the spatial test (default 3; a corner has 3);
         with fewer (single spectra, 1-pixel-wide maps) the line-shape test decides alone.
@@ -1283,18 +1297,20 @@ def remove_spikes(
 
     Notes
     -----
-    Replaced values are estimates (the scaled median of the neighbours or frames, or a
-    linear interpolation); the noise model is kept as it is (the few replaced values
-    are not re-weighted) and notes this. Each chunk gets a 1-pixel spatial halo copied
-    from its neighbours (:mod:`pmap.spectral._halo`); a frame dim is made one chunk.
-    Cost: one compiled pass per spectrum (a segment noise estimate and second
-    differences at three lags) plus work proportional to the candidates.
+    Replaced values are estimates (from the neighbours or frames, or an interpolation);
+    the noise model is kept as it is (the few replaced values are noted in it, not
+    re-weighted), and the provenance records the mode, the instrument FWHM used and
+    where it came from, and where the noise law came from. Each chunk gets a 1-pixel
+    spatial halo copied from its neighbours (:mod:`pmap.spectral._halo`); a frame dim is
+    made one chunk. Cost per spectrum: a fit of its noise law (skipped when the cube
+    states it) and second differences at three lags, plus work per candidate. With
+    fewer than ~128 channels the fitted noise law is less sure (state the detector).
 
     References
     ----------
     Whitaker & Hayes, Chemometr. Intell. Lab. Syst. 179, 82 (2018) (modified z-score
     candidates); Lawson & Hanson, *Solving Least Squares Problems* (1974), NNLS (the
-    shape-test vectors).
+    shape-test vectors); Janesick, *Photon Transfer*, SPIE Press (2007) (the noise law).
     """
     cube, sdim = check_cube(cube)
     threshold = float(threshold)
