@@ -1,5 +1,8 @@
 """Segmentation of a map into regions by clustering per-pixel features.
 
+The default (``feature_space="emission"``, ``method="merge"``) labels pixels by
+emission type: features from :mod:`._emission`, the number of regions from
+:mod:`._merge`, no-signal pixels from :func:`pmap.spectral.detect_signal`.
 scikit-learn is imported inside the functions only.
 """
 
