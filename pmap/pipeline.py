@@ -84,7 +84,6 @@ step = "mask_bad_pixels"
 
 [[steps]]
 step = "remove_spikes"
-threshold = 6.0
 
 [[steps]]
 step = "remove_baseline"
