@@ -43,6 +43,7 @@ __all__ = [
     "spectral_dim",
     "choose_spatial_chunks",
     "rechunk_cube",
+    "spread_blocks",
 ]
 
 #: Acquisition metadata attrs and their meaning (units are in the names).
@@ -372,3 +373,17 @@ def make_cube(
     a.setdefault("units", units)
     xarr = xr.DataArray(arr, dims=dims, coords=coords, name=CUBE_NAME, attrs=a)
     return validate_cube(xarr, chunks=chunks)
+
+
+def spread_blocks(data: Any, max_blocks: int) -> list:
+    """At most ``max_blocks`` chunks of a dask array, spread evenly over its chunk grid.
+
+    For the cheap whole-map looks that read a sample instead of the cube (noise
+    estimate, empty-cube check, the medium notice). A numpy array is one block.
+    """
+    if not isinstance(data, da.Array):
+        return [data]
+    grid = [len(c) for c in data.chunks]
+    n = int(np.prod(grid))
+    pick = np.unique(np.linspace(0, n - 1, min(int(max_blocks), n)).round().astype(int))
+    return [data.blocks[np.unravel_index(int(k), grid)] for k in pick]

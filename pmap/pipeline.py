@@ -53,7 +53,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from .cube import rechunk_cube, spectral_dim, validate_cube
+from .cube import rechunk_cube, spectral_dim, spread_blocks, validate_cube
 from .errors import PmapNotice, StepError
 from .noise import get_noise_model
 from .provenance import get_provenance
@@ -277,19 +277,13 @@ def _refuse_empty(cube: xr.DataArray) -> None:
     A few chunks spread over the map are read first; only when they are all empty is
     the whole cube scanned, so a normal cube costs a few chunk reads.
     """
+    import dask
     import dask.array as da
 
     data = cube.data
-    if isinstance(data, da.Array):
-        grid = [len(c) for c in data.chunks]
-        n = int(np.prod(grid))
-        for k in np.unique(np.linspace(0, n - 1, min(4, n)).round().astype(int)):
-            if np.isfinite(np.asarray(data.blocks[np.unravel_index(k, grid)])).any():
-                return
-        has = bool(da.isfinite(data).any().compute())
-    else:
-        has = bool(np.isfinite(np.asarray(data)).any())
-    if not has:
+    if any(np.isfinite(np.asarray(b)).any() for b in dask.compute(*spread_blocks(data, 4))):
+        return
+    if not (isinstance(data, da.Array) and bool(da.isfinite(data).any().compute())):
         raise StepError("the cube holds no finite values (all NaN or empty): nothing to process")
 
 

@@ -14,6 +14,7 @@ from ..airvac import (
     vacuum_to_air,
 )
 from ..conventions import HC_EV_NM
+from ..cube import spread_blocks
 from ..errors import StepError
 from ..steps import register_step
 from ._common import check_cube, finish
@@ -102,13 +103,7 @@ def sample_peak_wavelength_nm(
     arr = cube.isel({d: 0 for d in cube.dims if d not in ("y", "x", "wavelength")})
     arr = arr.transpose("y", "x", "wavelength")
     data = arr.data
-    if hasattr(data, "blocks"):
-        nby, nbx = data.numblocks[0], data.numblocks[1]
-        k = max(1, min(int(max_chunks), nby * nbx))
-        flat = np.unique(np.round(np.linspace(0, nby * nbx - 1, k)).astype(int))
-        blocks = [data.blocks[int(f // nbx), int(f % nbx)] for f in flat]
-    else:
-        blocks = [data]
+    blocks = spread_blocks(data, max(1, int(max_chunks)))
     per = max(1, int(max_spectra) // len(blocks))
     side = max(1, int(np.floor(np.sqrt(per))))
     parts = []

@@ -19,10 +19,10 @@ from __future__ import annotations
 import warnings
 from typing import Any
 
-import dask.array as da
 import numpy as np
 import xarray as xr
 
+from ..cube import spread_blocks
 from ..errors import PmapNotice, StepError
 from ..noise import NoiseModel, get_noise_model, set_noise_model
 from ..provenance import with_step
@@ -164,17 +164,10 @@ def _binned_fit(lev, d2, proxy, fixed_a, d2_4):
 def _sample_rows(cube: xr.DataArray, sdim: str, max_chunks: int = _MAX_SAMPLE_CHUNKS) -> np.ndarray:
     """Whole spatial chunks spread over the map (≤ max_chunks), as rows (n, n_ch), computed;
     thinned to about ``_MAX_SAMPLE_SPECTRA`` rows by a regular stride."""
-    data = cube.transpose(..., sdim).data
-    if not isinstance(data, da.Array):
-        rows = np.asarray(data).reshape(-1, data.shape[-1])
-        return rows[:: max(1, rows.shape[0] // _MAX_SAMPLE_SPECTRA)]
-    grid = [len(c) for c in data.chunks[:-1]]
-    n_blocks = int(np.prod(grid))
-    pick = np.unique(np.linspace(0, n_blocks - 1, min(max_chunks, n_blocks)).round().astype(int))
-    blocks = [data.blocks[np.unravel_index(k, grid)] for k in pick]
     import dask
 
-    arrs = dask.compute(*blocks)
+    data = cube.transpose(..., sdim).data
+    arrs = dask.compute(*spread_blocks(data, max_chunks))
     rows = np.concatenate([np.asarray(a).reshape(-1, a.shape[-1]) for a in arrs])
     return rows[:: max(1, rows.shape[0] // _MAX_SAMPLE_SPECTRA)]
 
