@@ -723,10 +723,12 @@ def _postprocess(P, COV, chi2, st, niter, spec, weighted=True, min_snr=5.0):
 def _noise_setup(cube, noise, read_noise_counts, gain_e_per_count):
     """The fit's noise law from the cube's noise model (:mod:`pmap.noise`).
 
-    Returns (cube, nz, description, chi2_is_true): ``nz`` = (var_mode, a, b, floor).
+    Returns (cube, nz, description): ``nz`` = (var_mode, a, b, floor); var_mode 1 gives a
+    true χ², 3 a residual relative to the law's variance, 0 a plain residual variance.
     A raw cube in counts without a model gets one here (stated figures, else
-    estimated from the data); a cube whose model is correlated, or that has none
-    and is not raw counts, is fitted with unit weights and χ²-scaled errors.
+    estimated from the data); a cube whose model is correlated or unreliable is
+    weighted by the law's shape with residual-scaled errors (var_mode 3); one with
+    no model that is not raw counts gets unit weights and residual-scaled errors.
     """
     from ..spectral import attach_noise_model  # lower layer, imported on use
 
@@ -773,7 +775,6 @@ def _noise_setup(cube, noise, read_noise_counts, gain_e_per_count):
                     f"scaled by the weighted residual ({why}); weighted_residual_variance is "
                     "the residual variance relative to the model's (1 if the law held)"
                 ),
-                "weighted",
             )
         return (
             cube,
@@ -782,7 +783,6 @@ def _noise_setup(cube, noise, read_noise_counts, gain_e_per_count):
                 f"unit weights; 1-sigma errors from the covariance scaled by the residual "
                 f"variance (no noise model: {why}); residual_variance is in ({unit})^2"
             ),
-            False,
         )
     a, b, floor = model.var_per_count, model.var_offset_counts2, model.floor_counts2
     if gain_e_per_count is not None:
@@ -804,7 +804,6 @@ def _noise_setup(cube, noise, read_noise_counts, gain_e_per_count):
             "absolute 1-sigma errors from the unscaled covariance; chi2_red is the true "
             "reduced chi-square"
         ),
-        True,
     )
 
 
@@ -1015,7 +1014,7 @@ def fit_peaks(
     n_par = spec.nfree
     if x.size <= n_par:
         raise StepError(f"{x.size} channels cannot fit {n_par} free parameters")
-    cube, nz, unc, chi2_true = _noise_setup(cube, noise, read_noise_counts, gain_e_per_count)
+    cube, nz, unc = _noise_setup(cube, noise, read_noise_counts, gain_e_per_count)
     n_out = _PEAK_FIELDS * spec.K + _N_TAIL
     mean = None
     if spec.K > 1 or spec.init == "mean":
@@ -1030,10 +1029,10 @@ def fit_peaks(
 
     arr = _apply_fit(cube, rows, n_out, nz, mean)
     params.update(peaks=int(peaks), max_iter=int(max_iter))
-    return _assemble(arr, cube, spec, unc, params, chi2_true)
+    return _assemble(arr, cube, spec, unc, params, nz[0])
 
 
-def _assemble(arr, cube, spec, unc, params, chi2_true):
+def _assemble(arr, cube, spec, unc, params, var_mode):
     unit = cube.attrs.get("units", "1")
     area_unit = integrated_unit(unit, "eV")
     fields = [
@@ -1105,12 +1104,12 @@ def _assemble(arr, cube, spec, unc, params, chi2_true):
         "Bayesian information criterion of the fit (lower is better; compare runs with "
         "different numbers of peaks pixel by pixel)",
     )
-    if chi2_true == "weighted":
+    if var_mode == 3:
         dv["weighted_residual_variance"] = var(
             -2, "1", "weighted residual variance per degree of freedom, relative to the noise "
             "model's (the errors are scaled by it)"
         )
-    elif chi2_true:
+    elif var_mode == 1:
         dv["chi2_red"] = var(
             -2, "1", "reduced chi-square (residuals weighted by the noise model)"
         )
@@ -1122,7 +1121,7 @@ def _assemble(arr, cube, spec, unc, params, chi2_true):
     coords = {k: c for k, c in arr.coords.items() if "fit_output" not in c.dims}
     coords["peak"] = ("peak", np.arange(spec.K), {"long_name": "peak index, by energy"})
     keep = {k: v for k, v in cube.attrs.items() if k not in ("units", "long_name")}
-    keep["fit_noise_weighted"] = int(bool(chi2_true))
+    keep["fit_noise_weighted"] = int(var_mode in (1, 3))
     attrs = with_step(keep, "fit_peaks", params)
     attrs.update(
         {
