@@ -1,6 +1,6 @@
-"""The ``pmap`` command: info, convert, process, report, demo, steps, view.
+"""The ``plcube`` command (also ``python -m pmap``): info, convert, process, report, demo, steps, view.
 
-User errors print one line on stderr (``pmap: error: ...``) and exit with
+User errors print one line on stderr (``plcube: error: ...``) and exit with
 status 2, without a traceback; ``--debug`` shows the traceback. No subcommand
 ever modifies an input file.
 """
@@ -15,7 +15,7 @@ import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from ._version import __version__
+from ._version import COMMAND, __version__
 from .errors import PmapError, PmapNotice
 
 __all__ = ["main", "build_parser"]
@@ -191,9 +191,9 @@ def _print_fit_summary(ds) -> None:
 
     lines, warning = fit_summary(ds)
     for line in lines:
-        print(f"pmap: {line}", file=sys.stderr)
+        print(f"{COMMAND}: {line}", file=sys.stderr)
     if warning:
-        print(f"pmap: warning: {warning}", file=sys.stderr)
+        print(f"{COMMAND}: warning: {warning}", file=sys.stderr)
 
 
 def cmd_process(args: argparse.Namespace) -> int:
@@ -361,8 +361,8 @@ def cmd_view(args: argparse.Namespace) -> int:
     reason = _no_display_reason()
     if reason:
         raise PmapError(
-            f"pmap view needs a graphical display: {reason}; run it in a desktop session "
-            f"(or ssh -X), or write PNG figures with: pmap report {args.path}"
+            f"{COMMAND} view needs a graphical display: {reason}; run it in a desktop session "
+            f"(or ssh -X), or write PNG figures with: {COMMAND} report {args.path}"
         )
     try:
         from .napari_plugin import view
@@ -453,13 +453,13 @@ def cmd_stack(args: argparse.Namespace) -> int:
 
 # ---------------------------------------------------------------- parser
 def build_parser() -> argparse.ArgumentParser:
-    """The argparse parser of the ``pmap`` command."""
+    """The argparse parser of the ``plcube`` command."""
     parser = argparse.ArgumentParser(
-        prog="pmap",
+        prog=COMMAND,
         description="Hyperspectral photoluminescence map processor: calibrated spectra, "
         "per-pixel fits, regions, figures.",
     )
-    parser.add_argument("--version", action="version", version=f"pmap {__version__}")
+    parser.add_argument("--version", action="version", version=f"{COMMAND} (pmap) {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
@@ -520,7 +520,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("report", help="(re)draw the figures and region table of a result store")
-    p.add_argument("result", help="result store written by pmap process")
+    p.add_argument("result", help="result store written by plcube process")
     p.add_argument("-o", "--out", help="folder for the figures (default RESULT_figures/)")
     p.set_defaults(func=cmd_report)
 
@@ -575,7 +575,7 @@ def _from_storage_codec(exc: BaseException) -> bool:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of the ``pmap`` console script; returns the exit status."""
+    """Entry point of the ``plcube`` console script; returns the exit status."""
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "func", None):
@@ -586,7 +586,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     def _notice(message, category, filename, lineno, file=None, line=None):
         if issubclass(category, PmapNotice):
-            print(f"pmap: note: {message}", file=sys.stderr)
+            print(f"{COMMAND}: note: {message}", file=sys.stderr)
         else:
             print(warnings.formatwarning(message, category, filename, lineno, line),
                   file=sys.stderr, end="")
@@ -598,7 +598,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return int(func(args) or 0)
     except KeyboardInterrupt:
-        print("pmap: interrupted", file=sys.stderr)
+        print(f"{COMMAND}: interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
     except BrokenPipeError:  # output piped into `head` and closed early
         sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silence the flush at exit
@@ -609,16 +609,16 @@ def main(argv: Sequence[str] | None = None) -> int:
         msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         if not isinstance(exc, PmapError):
             msg = f"{type(exc).__name__}: {msg}"
-        print(f"pmap: error: {msg}", file=sys.stderr)
+        print(f"{COMMAND}: error: {msg}", file=sys.stderr)
         return EXIT_USER_ERROR
     except Exception as exc:  # anything else is a bug in pmap, not the user's mistake
         if debug:
             traceback.print_exc()
         msg = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
         if _from_storage_codec(exc):  # a chunk that does not decode: the data, not pmap
-            print(f"pmap: error: a chunk of the input cannot be decoded (corrupt or truncated "
+            print(f"{COMMAND}: error: a chunk of the input cannot be decoded (corrupt or truncated "
                   f"file): {type(exc).__name__}: {msg}", file=sys.stderr)
             return EXIT_USER_ERROR
-        print(f"pmap: internal error: {type(exc).__name__}: {msg} (a bug in pmap; rerun with "
+        print(f"{COMMAND}: internal error: {type(exc).__name__}: {msg} (a bug in pmap; rerun with "
               "--debug for the traceback and please report it)", file=sys.stderr)
         return EXIT_INTERNAL_ERROR

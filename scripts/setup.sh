@@ -1,5 +1,5 @@
 #!/usr/bin/env bash
-# Set up a virtual environment in .venv with pmap and all its extras.
+# Set up a virtual environment in .venv with plcube (the pmap package) and all its extras.
 #   scripts/setup.sh          # pmap[all]
 #   scripts/setup.sh --test   # also the system packages the viewer tests need (Xvfb, Mesa, Qt's X libs)
 set -euo pipefail
@@ -38,8 +38,11 @@ fi
 
 stamp=.venv/.pmap-installed
 if [[ ! -f $stamp || pyproject.toml -nt $stamp ]]; then
-    echo "setup: installing pmap with all extras into .venv (first time: a few minutes)" >&2
+    echo "setup: installing plcube (import pmap) with all extras into .venv (first time: a few minutes)" >&2
     log=.venv/pip-install.log
+    # the distribution was called "pmap" before 0.2: drop it so its console script and
+    # napari manifest do not linger beside plcube's
+    .venv/bin/python -m pip uninstall -q -y pmap >/dev/null 2>&1 || true
     if ! { .venv/bin/python -m pip install -q --upgrade pip && \
            .venv/bin/python -m pip install -q -e ".[all]"; } >"$log" 2>&1; then
         tail -n 30 "$log" >&2

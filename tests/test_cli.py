@@ -24,7 +24,7 @@ def test_help(sub, capsys):
     with pytest.raises(SystemExit) as exc:
         main([sub, "--help"])
     assert exc.value.code == 0
-    assert "usage: pmap " + sub in capsys.readouterr().out
+    assert "usage: plcube " + sub in capsys.readouterr().out
 
 
 def test_no_command_prints_help(capsys):
@@ -44,7 +44,7 @@ def test_print_config_and_steps(capsys):
 def _one_line_error(res):
     assert res.returncode == 2, res.stderr
     lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
-    errs = [ln for ln in lines if ln.startswith("pmap: error:")]
+    errs = [ln for ln in lines if ln.startswith("plcube: error:")]
     assert len(errs) == 1, res.stderr
     assert "Traceback" not in res.stderr
     return errs[0]

@@ -197,7 +197,7 @@ def test_conflicting_medium_options_are_one_line_error(tmp_path):
     assert res.returncode == 2
     assert "Traceback" not in res.stderr
     assert [ln for ln in res.stderr.splitlines() if ln.strip()] == [
-        "pmap: error: --medium air contradicts -O wavelength_medium=vacuum"]
+        "plcube: error: --medium air contradicts -O wavelength_medium=vacuum"]
 
 
 DESCRIPTORS_ONLY = """

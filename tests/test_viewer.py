@@ -55,9 +55,9 @@ def _panel(make_napari_viewer, kind, store=None):
 
     viewer = make_napari_viewer()
     if store is None:
-        viewer.open_sample("pmap", "demo")
+        viewer.open_sample("plcube", "demo")
     else:
-        viewer.open(str(store), plugin="pmap")
+        viewer.open(str(store), plugin="plcube")
     return viewer, getattr(_qt, kind)(viewer)
 
 
@@ -103,7 +103,7 @@ def test_click_shows_spectrum_fit_and_raw(make_napari_viewer, store):
     from pmap.napari_plugin._qt import SpectrumPanel
 
     viewer = make_napari_viewer()
-    viewer.open(str(store), plugin="pmap")
+    viewer.open(str(store), plugin="plcube")
     layer = _layer(viewer, "Peak energy (eV) — peak 0")
     assert tuple(layer.scale) == pytest.approx((0.5, 0.5))
     assert str(layer.units[-1]) == "micrometer"
@@ -250,7 +250,7 @@ def test_process_panel_reports_errors(make_napari_viewer, qtbot, tmp_path):
 def test_manifest_validates():
     exe = Path(sys.executable).with_name("npe2")
     out = subprocess.run(
-        [str(exe), "validate", "pmap", "--imports"], capture_output=True, text=True
+        [str(exe), "validate", "plcube", "--imports"], capture_output=True, text=True
     )
     assert out.returncode == 0, out.stdout + out.stderr
 
@@ -260,13 +260,13 @@ def test_every_manifest_widget_and_sample_opens(make_napari_viewer):
     import npe2
 
     viewer = make_napari_viewer()
-    manifest = npe2.PluginManager.instance().get_manifest("pmap")
+    manifest = npe2.PluginManager.instance().get_manifest("plcube")
     names = [w.display_name for w in manifest.contributions.widgets]
     assert names == ["Spectrum at pixel", "Regions", "Process map"]
     for name in names:
-        dock, widget = viewer.window.add_plugin_dock_widget("pmap", name)
+        dock, widget = viewer.window.add_plugin_dock_widget("plcube", name)
         assert widget.isVisible() or dock is not None
-    viewer.open_sample("pmap", "demo")
+    viewer.open_sample("plcube", "demo")
     layer = viewer.layers[-1]
     assert layer.data.shape == (256, 48, 64)  # channels, y, x
     assert tuple(layer.scale[1:]) == pytest.approx((0.5, 0.5))
@@ -294,12 +294,12 @@ def test_view_docks_panels_and_screenshot(make_napari_viewer, monkeypatch, qtbot
 
     monkeypatch.setattr(napari, "Viewer", viewer_factory)
     monkeypatch.setattr(napari, "run", lambda *a, **k: None)
-    assert plugin.view(store) == 0  # what `pmap view STORE` runs
+    assert plugin.view(store) == 0  # what `plcube view STORE` runs
     viewer = made[0]
     docks = viewer.window.dock_widgets
-    assert {"Spectrum at pixel (pmap)", "Regions (pmap)", "Process map (pmap)"} <= set(docks)
+    assert {"Spectrum at pixel (plcube)", "Regions (plcube)", "Process map (plcube)"} <= set(docks)
     assert any(lyr.name == "Peak energy (eV) — peak 0" for lyr in viewer.layers)
-    spectrum, regions = docks["Spectrum at pixel (pmap)"], docks["Regions (pmap)"]
+    spectrum, regions = docks["Spectrum at pixel (plcube)"], docks["Regions (plcube)"]
     spectrum.select_pixel(5, 6)
     spectrum.pin()
     spectrum.select_pixel(11, 18)

@@ -116,7 +116,7 @@ def test_pmap_view_without_display_exits_2_with_a_message(tmp_path):
     assert proc.returncode == 2, proc.stderr
     lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
     assert len(lines) == 1, proc.stderr
-    assert "needs a graphical display" in lines[0] and f"pmap report {store}" in lines[0]
+    assert "needs a graphical display" in lines[0] and f"plcube report {store}" in lines[0]
 
 
 def test_no_value_pixels_are_the_figures_grey_in_the_viewer():

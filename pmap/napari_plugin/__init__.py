@@ -20,6 +20,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
+from .._version import DIST_NAME
 from ..errors import InputFileError
 
 __all__ = ["view", "open_viewer", "orient_y_up", "PANELS"]
@@ -55,9 +56,9 @@ def open_viewer(
     # spectrum on top; below it the processing and (in front) the regions, as tabs
     order = sorted(panels, key=lambda n: {"Regions": 2, "Process map": 1}.get(n, 0))
     for i, name in enumerate(order):
-        viewer.window.add_plugin_dock_widget("pmap", name, tabify=i >= 2)
+        viewer.window.add_plugin_dock_widget(DIST_NAME, name, tabify=i >= 2)
     if path is not None:
-        viewer.open(str(path), plugin="pmap")
+        viewer.open(str(path), plugin=DIST_NAME)
     bar = viewer.canvas.overlays.scale_bar if hasattr(viewer, "canvas") else viewer.scale_bar
     bar.visible = True
     orient_y_up(viewer)
@@ -83,7 +84,7 @@ def orient_y_up(viewer: Any) -> None:
 def view(path: str | Path | None = None) -> int:
     """Open the pmap viewer with ``path`` loaded and the panels docked; return 0 when closed.
 
-    Used by ``pmap view PATH``. Runs the Qt event loop (``napari.run()``).
+    Used by ``plcube view PATH``. Runs the Qt event loop (``napari.run()``).
     """
     import napari
 

@@ -21,6 +21,7 @@ from qtpy.QtWidgets import (
     QWidget,
 )
 
+from ..._version import DIST_NAME
 from .._model import run_process
 from ._common import SourceList, layer_meta
 
@@ -78,7 +79,7 @@ class ProcessPanel(QWidget):
         self.components.setToolTip("NMF components to extract (none: skip)")
         self.pipeline = QLineEdit()
         self.pipeline.setPlaceholderText("default pipeline")
-        self.pipeline.setToolTip("pipeline TOML file (pmap process --print-config gives one)")
+        self.pipeline.setToolTip("pipeline TOML file (plcube process --print-config gives one)")
         self.output = QLineEdit()
         self.output.setToolTip("result store to write (NAME.zarr)")
         self.overwrite = QCheckBox("replace an existing result")
@@ -198,7 +199,7 @@ class ProcessPanel(QWidget):
                 self.viewer.layers.remove(layer)  # an earlier result at the same path
             elif meta and meta.get("kind") == "cube":
                 layer.visible = False
-        self.viewer.open(str(path), plugin="pmap")
+        self.viewer.open(str(path), plugin=DIST_NAME)
         self.bar.setRange(0, 1)
         self.bar.setValue(1)
         self.bar.setFormat("done")
