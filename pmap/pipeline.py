@@ -37,7 +37,7 @@ the result-producing stages::
     figures = true
     keep_cube = "auto"        # store the processed cube beside the maps (true/false/"auto")
 
-``pmap process --print-config`` prints the default pipeline as a starting point.
+``plcube process --print-config`` prints the default pipeline as a starting point.
 """
 
 from __future__ import annotations
@@ -500,7 +500,7 @@ def process(
     -------
     xarray.Dataset
         The written result, reopened lazily from the store. Figures are made
-        by the edges (``pmap process`` or :func:`pmap.report.write_figures`).
+        by the edges (``plcube process`` or :func:`pmap.report.write_figures`).
     """
     pipe = pipeline if isinstance(pipeline, Pipeline) else load_pipeline(pipeline)
     if peaks is not None or model is not None:

@@ -1,4 +1,4 @@
-"""How honest are the DEFAULT ``pmap process`` error bars on cubes pmap did not make? (issue 11)
+"""How honest are the DEFAULT ``plcube process`` error bars on cubes pmap did not make? (issue 11)
 
 Runs the cases of ``tests/test_noise_honesty.py`` (cubes, truth and Cramér–Rao bounds from
 ``tests/_independent_cubes.py``, numpy/scipy only) and prints one row per case: pull s.d.
@@ -45,7 +45,7 @@ def run_pmap(cube: xr.DataArray, via: str, work: Path) -> tuple[xr.Dataset, list
              "-q"], capture_output=True, text=True, cwd=work,
         )
         if proc.returncode != 0:
-            raise RuntimeError(f"`pmap process` exited {proc.returncode}: {proc.stderr.strip()}")
+            raise RuntimeError(f"`plcube process` exited {proc.returncode}: {proc.stderr.strip()}")
         notes = [ln for ln in proc.stderr.splitlines() if "Warning" in ln or "Notice" in ln]
     else:
         from pmap.pipeline import process

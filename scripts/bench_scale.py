@@ -1,4 +1,4 @@
-"""Benchmark: end-to-end `pmap process` on a cube larger than the memory limit it sets.
+"""Benchmark: end-to-end `plcube process` on a cube larger than the memory limit it sets.
 
 Generates the synthetic demo cube at a chosen size (written tile by tile to Zarr),
 then, each in a fresh process so that peak memory is its own:
@@ -74,7 +74,7 @@ def main() -> None:
     ap.add_argument("--workdir", default=None, help="folder for the cube (default: a temp dir)")
     ap.add_argument("--keep", action="store_true", help="keep the generated files")
     ap.add_argument("--regions", action="store_true",
-                    help="also NMF (3 components) and 3 regions, as `pmap demo` does")
+                    help="also NMF (3 components) and 3 regions, as `plcube demo` does")
     args = ap.parse_args()
 
     from pmap.synthetic import write_demo_cube

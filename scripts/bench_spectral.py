@@ -67,7 +67,7 @@ def main() -> None:
         "to_energy_uniform": lambda c: sp.to_energy(c, resample="uniform"),
         "remove_spikes": lambda c: sp.remove_spikes(c),
         # the same with the detector stated (the cube is Poisson counts, gain 1): the noise
-        # law is then known instead of fitted to each spectrum, as in `pmap process`
+        # law is then known instead of fitted to each spectrum, as in `plcube process`
         "remove_spikes_stated_noise": lambda c: sp.remove_spikes(
             c.assign_attrs(units="counts", gain_e_per_count=1.0, read_noise_counts=0.0,
                            dark_level_counts=0.0)

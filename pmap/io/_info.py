@@ -162,7 +162,7 @@ def _medium_text(medium: dict[str, str]) -> str:
 
 
 def format_cube_info(info: dict[str, Any]) -> str:
-    """Human-readable text of a :func:`cube_info` dict (for ``pmap info``)."""
+    """Human-readable text of a :func:`cube_info` dict (for ``plcube info``)."""
     lines = [
         f"{info['path']}",
         f"  format        {info['format']}"
