@@ -753,6 +753,45 @@ def _excess_z(r, p, cnt, c, lo, sf2, law, nz):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
+def _robust_ratio(x, ref, off, lo, hi, g0, g1, a, law, nz, wb):  # pragma: no cover - compiled
+    """Ratio of sums x/ref over channels lo … hi outside g0 … g1 (ref indexed from
+    ``off``), started from the median of the channel ratios (over the channels where
+    ref stands 3 s.d. above zero; ``a``, the plain ratio of sums, when under 5 do) and
+    refined twice leaving out the channels where x and a·ref differ by more than 4 s.d.
+    of their difference: a spike in either spectrum (repeated acquisitions of one pixel
+    differ only by noise and an overall factor) must not bias the factor with which the
+    other predicts it. ``wb``: work (≥ hi − lo + 1)."""
+    m = 0
+    for c in range(lo, hi + 1):
+        if g0 <= c <= g1:
+            continue
+        v = ref[c - off]
+        if v == v and x[c] == x[c] and v * v > 9.0 * _var_at(c, v, law, nz):
+            wb[m] = x[c] / v
+            m += 1
+    if m >= 5:
+        a = median_of(wb, m)
+    for _ in range(2):
+        sx = 0.0
+        sr = 0.0
+        for c in range(lo, hi + 1):
+            if g0 <= c <= g1:
+                continue
+            v = ref[c - off]
+            if not (v == v and x[c] == x[c]):
+                continue
+            d = x[c] - a * v
+            var = _var_at(c, x[c], law, nz) + a * a * _var_at(c, v, law, nz)
+            if d * d <= 16.0 * var:
+                sx += x[c]
+                sr += v
+        if not (sr > 0 and sx > 0):
+            return a
+        a = sx / sr
+    return a
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, sds, bin_of,
            law, nz, p, cnt, vbuf, abuf, rbuf, ls, sres, cand, out):  # pragma: no cover
     """Judge the candidate ``ca`` of spectrum x against the reference spectra
@@ -790,6 +829,9 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
             abuf[k] = np.nan
         elif nfl >= 4 and sx > 3.0 * np.sqrt(vs):
             a = sx / sr if sr > 0 else np.inf
+            if t_shape <= 0 and a == a and a < np.inf:  # frames: a spike in either spectrum
+                a = _robust_ratio(x, refs[k], lo, lo, hi, ca - h, ca + h, a, law, nz,
+                                  abuf[nref:])
             abuf[k] = a if 0.2 <= a <= 5.0 else np.nan
         else:
             abuf[k] = 1.0
@@ -1051,11 +1093,11 @@ def _map_kernel(b, t, min_refs, maxw, bank, ms, sds, bin_of, law, g_default, out
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _frame_candidates(b, ib, f, s, x, n, t, law, nz, fsc, vbuf, z, cand):  # pragma: no cover
+def _frame_candidates(b, ib, f, s, x, n, t, law, nz, fsc, vbuf, z, cand, wb):  # pragma: no cover
     """Frame candidates of spectrum x (frame f of pixel s): channels above the median of
     the other frames, each scaled by its ratio of sums over the spectrum, by more than t
     s.d. (skew-corrected) - whatever the excess's shape, so a broad transient counts
-    too. Adds to cand / z; returns whether any was found."""
+    too. Adds to cand / z; returns whether any was found. ``wb``: work (≥ n)."""
     nf = b.shape[1]
     sx = 0.0
     for j in range(n):
@@ -1068,6 +1110,9 @@ def _frame_candidates(b, ib, f, s, x, n, t, law, nz, fsc, vbuf, z, cand):  # pra
             if v == v and x[j] == x[j]:
                 sr += v
         fsc[f2] = sx / sr if sr > 0 and sx > 0 else 1.0
+        if f2 != f and sr > 0 and sx > 0:
+            fsc[f2] = _robust_ratio(x, b[ib, f2, s], 0, 0, n - 1, -1, -1, fsc[f2], law, nz,
+                                    wb)
     found = False
     for c in range(n):
         if not x[c] == x[c]:
@@ -1131,7 +1176,7 @@ def _frames_kernel(b, t, maxw, bank, ms, sds, bin_of, law, g_default, out):
                 if not stated:
                     _fit_noise(x, n, g_default, nz, w1b, w2b)
                 found = _find_candidates(x, n, t2, lags, law, nz, z, w1b, cand)
-                if _frame_candidates(b, ib, f, s, x, n, t, law, nz, fsc, vbuf, z, cand):
+                if _frame_candidates(b, ib, f, s, x, n, t, law, nz, fsc, vbuf, z, cand, w2b):
                     found = True
                 if not found:
                     continue
