@@ -326,6 +326,12 @@ def cmd_report(args: argparse.Namespace) -> int:
     store = Path(args.result)
     ds = open_result(store)
     out = Path(args.out) if args.out else _figures_dir(store)
+    if ds.attrs.get("series_law"):  # a series store (plcube series): its own figures
+        from .report_series import write_series_figures
+
+        figs = write_series_figures(ds, out)
+        print(f"figures ({len(figs)}): {out}")
+        return 0
     figs = write_figures(ds, out)
     print(f"figures ({len(figs)}): {out}")
     region_vars = [v for v in ds.data_vars if "region_id" in ds[v].dims]
@@ -420,6 +426,11 @@ def cmd_series(args: argparse.Namespace) -> int:
             if code >= 0 and (cls == code).any():
                 print(f"  power_law_class {word}: {int((cls == code).sum())}")
         print(f"  power_law_class: {res['power_law_class'].attrs['caveat']}")
+    if not args.no_figures:
+        from .report_series import write_series_figures
+
+        figs = write_series_figures(res, _figures_dir(dst))
+        print(f"figures ({len(figs)}): {_figures_dir(dst)}")
     return 0
 
 
@@ -520,7 +531,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("report", help="(re)draw the figures and region table of a result store")
-    p.add_argument("result", help="result store written by plcube process")
+    p.add_argument("result", help="result store written by plcube process (or plcube series)")
     p.add_argument("-o", "--out", help="folder for the figures (default RESULT_figures/)")
     p.set_defaults(func=cmd_report)
 
@@ -540,6 +551,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quantity", help="map to fit (default: the law's usual one)")
     p.add_argument("--dim", help="stack dim (default: the law's, else the only one)")
     p.add_argument("--max-iter", type=int, default=200, help="Levenberg-Marquardt iterations")
+    p.add_argument("--no-figures", action="store_true", help="do not write PNG figures "
+                   "(default: parameter maps and per-region series in SERIES_figures/)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output store")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_series)
