@@ -12,11 +12,18 @@ from ._laws import LAWS, Law
 #: fit status legend (the codes follow the result store's ``fit_status``)
 STATUS_LEGEND = {0: "converged", 1: "iteration limit", 4: "too few valid points (masked/NaN)",
                  5: "solver failure", 6: "implausible (parameter outside its physical domain)"}
+#: CF ``flag_values``/``flag_meanings`` of the status codes (code 4, too few points, is
+#: the "masked or NaN" state of the result store's ``fit_status``: no value, drawn grey)
+STATUS_FLAG_VALUES = (0, 1, 4, 5, 6)
+STATUS_FLAG_MEANINGS = "converged iteration_limit masked_or_nan solver_failure implausible"
 
 #: power-law classes (Schmidt, Lischka & Zulehner 1992); rules of thumb only
 POWER_CLASS_LEGEND = {-1: "no fit", 0: "k < 1 (free-to-bound, donor-acceptor pair)",
                       1: "1 <= k <= 2 (excitonic)", 2: "k > 2 (superlinear: check saturation "
                       "of competing channels or stimulated emission)"}
+#: CF flags of ``power_law_class`` (−1, no converged fit, is left out: drawn as no value)
+POWER_CLASS_FLAG_VALUES = (0, 1, 2)
+POWER_CLASS_FLAG_MEANINGS = "k_below_1 k_1_to_2 k_above_2"
 POWER_CLASS_CAVEAT = ("rules of thumb (Schmidt, Lischka & Zulehner, Phys. Rev. B 45, 8989 (1992)): "
                       "the exponent depends on the excitation range and on competing channels; "
                       "it does not identify a transition by itself")
@@ -207,7 +214,8 @@ def _check_stack(x: np.ndarray, dim: str, law: Law) -> None:
 
 
 def fit_law(data, *, law: str, quantity: str | None = None, dim: str | None = None,
-            err: xr.DataArray | None = None, max_iter: int = 200) -> xr.Dataset:
+            err: xr.DataArray | None = None, max_iter: int = 200,
+            keep_data: bool = True) -> xr.Dataset:
     """Fit a published law per pixel along a stack dimension.
 
     Parameters
@@ -229,12 +237,16 @@ def fit_law(data, *, law: str, quantity: str | None = None, dim: str | None = No
         Without any, the fit is unweighted and errors are scaled by √χ²_red.
     max_iter : int
         Levenberg–Marquardt iteration limit.
+    keep_data : bool
+        Also return the fitted points: the quantity (and ``{quantity}_err``) with its
+        stack dim, and the result's ``region`` map when it has one (for figures and
+        the viewer).
 
     Returns
     -------
     xarray.Dataset
         ``{law}_{param}`` and ``{law}_{param}_err`` (units in attrs), ``{law}_chi2_red``
-        (units "1"), ``{law}_status`` (legend in attrs), on the dims other than the stack
+        (units "1"), ``{law}_status`` (CF flags and legend in attrs), on the dims other than the stack
         dim; ``power_law_class`` for the power law. Lazy (dask) when the input is.
     """
     if law not in LAWS:
@@ -285,14 +297,26 @@ def fit_law(data, *, law: str, quantity: str | None = None, dim: str | None = No
         + ("" if weighted else " (unweighted: residual variance, no uncertainties given)"))
     st = out.isel(_law_out=2 * k + 1).fillna(4).astype(np.int8)
     ds[f"{law}_status"] = st.assign_attrs(
-        units="1", legend=str(STATUS_LEGEND).replace("'", '"'))
+        units="1", long_name=f"{law} fit status", legend=str(STATUS_LEGEND).replace("'", '"'),
+        flag_values=np.array(STATUS_FLAG_VALUES, np.int8), flag_meanings=STATUS_FLAG_MEANINGS)
     if law == "power_law":
         kk = ds["power_law_k"]
         cls = xr.where(kk < 1, 0, xr.where(kk <= 2, 1, 2))
         cls = xr.where((st == 0) & np.isfinite(kk), cls, -1).astype(np.int8)
         ds["power_law_class"] = cls.assign_attrs(
-            units="1", legend=str(POWER_CLASS_LEGEND).replace("'", '"'), caveat=POWER_CLASS_CAVEAT)
+            units="1", long_name="power-law exponent class (rules of thumb)",
+            legend=str(POWER_CLASS_LEGEND).replace("'", '"'), caveat=POWER_CLASS_CAVEAT,
+            flag_values=np.array(POWER_CLASS_FLAG_VALUES, np.int8),
+            flag_meanings=POWER_CLASS_FLAG_MEANINGS)
     ds = ds.drop_vars([c for c in ds.coords if dim in ds[c].dims or c == dim], errors="ignore")
+    if keep_data:  # the fitted points travel with the law: figures and viewer need no source
+        ds[quantity] = values.assign_attrs(values.attrs)
+        if weighted:
+            ds[f"{quantity}_err"] = err.assign_attrs(err.attrs)
+        if isinstance(data, xr.Dataset) and "region" in data.data_vars \
+                and dim not in data["region"].dims \
+                and set(data["region"].dims) <= set(values.dims):
+            ds["region"] = data["region"]
     attrs = dict(data.attrs) if isinstance(data, xr.Dataset) else {}
     attrs = {a: v for a, v in attrs.items() if a not in ("pmap_complete",)}
     params = {"law": law, "quantity": quantity, "dim": dim, "max_iter": max_iter}
@@ -307,3 +331,42 @@ def fit_law(data, *, law: str, quantity: str | None = None, dim: str | None = No
         attrs["reference_power_W"] = ref
     ds.attrs = attrs
     return ds
+
+
+def evaluate_law(law: str, x, params, *, reference_power_w: float | None = None) -> np.ndarray:
+    """The law at stack values ``x`` for reported parameters (as stored by :func:`fit_law`).
+
+    Parameters
+    ----------
+    law : str
+        A name of :data:`LAWS`.
+    x : array_like (n,)
+        Stack values in the law's units (K, or W for the power law).
+    params : array_like (k,) or (N, k)
+        Parameters in the order of ``LAWS[law].params`` and their stored units.
+    reference_power_w : float, optional
+        The power law's reference power (store attr ``reference_power_W``), W.
+
+    Returns
+    -------
+    ndarray (n,) or (N, n)
+        The quantity, in the units of the fitted quantity.
+    """
+    if law not in LAWS:
+        raise StepError(f"unknown law {law!r}; choose one of {sorted(LAWS)}")
+    lw = LAWS[law]
+    p = np.array(params, dtype=float, ndmin=1)
+    one = p.ndim == 1
+    p = np.atleast_2d(p).copy()
+    if p.shape[1] != lw.n_params:
+        raise StepError(f"law {law!r} takes {lw.n_params} parameters, got {p.shape[1]}")
+    with np.errstate(all="ignore"):
+        for i in lw.log_params:
+            p[:, i] = np.log(p[:, i])
+        xs = np.asarray(x, dtype=float)
+        if lw.name == "power_law":
+            if reference_power_w is None:
+                raise StepError("the power law needs its reference power (reference_power_W)")
+            xs = xs / float(reference_power_w)
+        out = lw.model(xs, p)
+    return out[0] if one else out
