@@ -20,11 +20,12 @@ limits, scale-bar length) and ``Software`` = ``pmap <version>``.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import re
 import warnings
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any, NamedTuple
 
@@ -44,9 +45,16 @@ __all__ = [
     "write_figures",
     "summarise_result",
     "nice_scale_length",
+    "figure_output",
+    "parse_size_cm",
+    "plot_small_multiples",
 ]
 
 DPI = 120
+#: Output settings of every figure written: dots per inch and, when set, the figure
+#: size in inches (:func:`figure_output`); otherwise each figure picks its own size.
+_OUTPUT: dict[str, Any] = {"dpi": DPI, "size_in": None}
+CM_PER_INCH = 2.54
 NAN_COLOUR = _style.NAN_COLOUR
 #: write_figures draws one map per slice of a 3-D variable only up to this many slices.
 MAX_SLICES = 32
@@ -147,19 +155,71 @@ def _new_figure(nrows_over_ncols: float, *, width_in: float = 6.4, side_in: floa
     return Figure(figsize=(width_in, height), layout="constrained")
 
 
+def parse_size_cm(text: str) -> tuple[float, float]:
+    """Parse a figure size ``"WIDTHxHEIGHT"`` in centimetres (e.g. ``"8.5x6"``) → (w, h) cm."""
+    parts = str(text).lower().replace("cm", "").replace("×", "x").split("x")
+    try:
+        w, h = (float(v) for v in parts)
+    except ValueError:
+        raise StepError(f"figure size must be WIDTHxHEIGHT in cm, e.g. 8.5x6, got {text!r}") \
+            from None
+    if not (2.0 <= w <= 100.0 and 2.0 <= h <= 100.0):
+        raise StepError(f"figure size {w:g} x {h:g} cm is outside 2-100 cm per side")
+    return w, h
+
+
+@contextlib.contextmanager
+def figure_output(*, dpi: float | None = None, size_cm: tuple[float, float] | None = None
+                  ) -> Iterator[None]:
+    """Within the block, every figure is saved at ``dpi`` (dots per inch) and ``size_cm``.
+
+    Parameters
+    ----------
+    dpi : float, optional
+        Resolution of the PNG files, dots per inch (default :data:`DPI`, 120).
+    size_cm : (float, float), optional
+        Figure width and height in centimetres (e.g. (8.5, 6) for one journal
+        column); default: each figure's own size, fitted to its map's aspect.
+        Font sizes stay in points, as a journal asks.
+    """
+    if dpi is not None and not (20 <= float(dpi) <= 2400):
+        raise StepError(f"dpi must be between 20 and 2400, got {dpi}")
+    if size_cm is not None:
+        size_cm = parse_size_cm(f"{size_cm[0]}x{size_cm[1]}")
+    old = dict(_OUTPUT)
+    _OUTPUT["dpi"] = float(dpi) if dpi is not None else old["dpi"]
+    if size_cm is not None:
+        _OUTPUT["size_in"] = (size_cm[0] / CM_PER_INCH, size_cm[1] / CM_PER_INCH)
+    try:
+        yield
+    finally:
+        _OUTPUT.clear()
+        _OUTPUT.update(old)
+
+
+def _apply_output(fig) -> None:
+    if _OUTPUT["size_in"] is not None:
+        fig.set_size_inches(*_OUTPUT["size_in"])
+    fig.set_dpi(_OUTPUT["dpi"])
+
+
 def _save(fig, path: str | Path, info: Mapping[str, Any]) -> Path:
     p = Path(path)
     p.parent.mkdir(parents=True, exist_ok=True)
-    meta = {"Software": f"pmap {__version__}", "Description": json.dumps(dict(info))}
-    fig.savefig(p, dpi=DPI, metadata=meta)
+    info = dict(info)
+    _apply_output(fig)
+    info.setdefault("dpi", float(_OUTPUT["dpi"]))
+    info.setdefault("size_in", [float(v) for v in fig.get_size_inches()])
+    meta = {"Software": f"pmap {__version__}", "Description": json.dumps(info)}
+    fig.savefig(p, dpi=_OUTPUT["dpi"], metadata=meta)
     return p
 
 
 def _render(fig) -> None:
-    """Lay out and draw ``fig`` on an Agg canvas at :data:`DPI`, as :func:`_save` will."""
+    """Lay out and draw ``fig`` on an Agg canvas at the output dpi and size, as :func:`_save`."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
-    fig.set_dpi(DPI)
+    _apply_output(fig)
     FigureCanvasAgg(fig).draw()
 
 
@@ -327,6 +387,7 @@ def plot_map(
     cmap: str | None = None,
     robust: bool = True,
     scale_bar: bool = True,
+    vlim: tuple[float, float] | None = None,
 ) -> Path:
     """Save one 2-D map (y, x in µm) as a PNG with colour bar and scale bar.
 
@@ -349,16 +410,19 @@ def plot_map(
         (else min and max).
     scale_bar : bool
         Draw a scale bar of a round length near 1/5 of the width (µm maps only).
+    vlim : (float, float), optional
+        Colour limits in the map's units (overrides ``robust``); values beyond
+        them are counted on the colour bar.
 
     Returns
     -------
     Path
-        The PNG written (dpi 120).
+        The PNG written (dpi 120 unless :func:`figure_output` says otherwise).
     """
     da = _as_map(da)
     fig = _new_figure(da.sizes["y"] / da.sizes["x"])
     ax = fig.add_subplot()
-    art = _draw_map(ax, da, cmap=cmap, robust=robust, scale_bar=scale_bar)
+    art = _draw_map(ax, da, cmap=cmap, robust=robust, scale_bar=scale_bar, vlim=vlim)
     ax.set_title(title if title is not None else _title(da))
     return _save(
         fig,
@@ -936,3 +1000,90 @@ def summarise_result(ds: xr.Dataset) -> dict[str, float]:
             row[f"{stem} sigma_MAD{suffix}"] = mad
             row[f"{stem} finite fraction"] = finite.size / max(vals.size, 1)
     return row
+
+
+def plot_small_multiples(
+    maps: Mapping[str, xr.DataArray],
+    path: str | Path,
+    *,
+    vlim: tuple[float, float] | None = None,
+    title: str | None = None,
+    ncols: int | None = None,
+) -> Path:
+    """Save several maps of one quantity side by side on shared colour limits (one colour bar).
+
+    For a batch of results: the same colour means the same value in every
+    panel. The shared limits are the 2nd and 98th percentiles of all the maps'
+    finite values pooled (unless ``vlim``), stated on the colour bar with the
+    number of pixels beyond them.
+
+    Parameters
+    ----------
+    maps : mapping of str to xarray.DataArray
+        Panel label → (y, x) map (size-1 dims squeezed), all of one variable
+        and units (the first map names the colour bar).
+    path : str or Path
+        Output PNG file.
+    vlim : (float, float), optional
+        Shared colour limits, in the maps' units.
+    title : str, optional
+        Figure title (default: the variable's human name and units).
+    ncols : int, optional
+        Panels per row (default up to 4).
+
+    Returns
+    -------
+    Path
+        The PNG written.
+    """
+    from matplotlib.colors import Normalize
+
+    if not maps:
+        raise StepError("small multiples need at least one map")
+    items = [(str(k), _as_map(v)) for k, v in maps.items()]
+    units = {str(v.attrs.get("units", "")) for _, v in items}
+    if len(units) > 1:
+        raise StepError(f"small multiples need maps in one unit, got {sorted(units)}")
+    first = items[0][1]
+    pooled = np.concatenate([np.asarray(v.values, float).ravel() for _, v in items])
+    lim = vlim if vlim is not None else _robust_limits(pooled, True)
+    if lim is None:
+        raise StepError(f"no finite values in any map of {first.name!r}")
+    lo, hi = float(lim[0]), float(lim[1])
+    below = int(np.sum(pooled < lo))
+    above = int(np.sum(pooled > hi))
+    n = len(items)
+    ncols = ncols or min(n, 4)
+    nrows = math.ceil(n / ncols)
+    aspect = max(first.sizes["y"] / first.sizes["x"], 0.2)
+    width = 2.6 * ncols + 1.4
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, min(2.6 * aspect * nrows + 1.2, 14.0)), layout="constrained")
+    axes = np.atleast_1d(fig.subplots(nrows, ncols, squeeze=False)).ravel()
+    norm = Normalize(lo, hi)
+    im = None
+    for ax, (label, da) in zip(axes, items):
+        art = _draw_map(ax, da, norm=norm, cmap=_style.colormap_for(str(first.name or "")),
+                        scale_bar=True, discrete=False)
+        im = art.image
+        ax.set_title(label, fontsize=8)
+        ax.tick_params(labelsize=7)
+        ax.xaxis.label.set_size(7)
+        ax.yaxis.label.set_size(7)
+    for ax in axes[n:]:
+        ax.set_axis_off()
+    extend = {(True, True): "both", (True, False): "min", (False, True): "max"}.get(
+        (below > 0, above > 0), "neither")
+    cb = fig.colorbar(im, ax=axes[:n].tolist(), shrink=0.9, extend=extend)
+    how = "shared limits" if vlim is not None else "shared 2–98 % limits of all maps"
+    cb.set_label(f"{_label(first, 'value')}\n{how}; clipped: {below} px below, {above} above",
+                 fontsize=8)
+    fig.suptitle(title if title is not None else _title(first) + " — same colour scale in "
+                 "every panel", fontsize=10)
+    return _save(fig, path, {
+        "variable": str(first.name), "units": first.attrs.get("units"),
+        "panels": [k for k, _ in items], "clim": [lo, hi],
+        "colorbar_label": cb.ax.get_ylabel(), "clipped_below": below, "clipped_above": above,
+    })
+
