@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+import time
 import traceback
 import warnings
 from collections.abc import Callable, Sequence
@@ -234,20 +235,25 @@ def cmd_process(args: argparse.Namespace) -> int:
         for i, (src, out) in enumerate(zip(inputs, outputs)):
             if many:
                 print(f"[{i + 1}/{len(inputs)}] {src}", file=sys.stderr)
+            t_start = time.perf_counter()
             ds = process(src, out, pipeline=load_pipeline(args.config) if i else pipe,
                          peaks=args.peaks, model=args.model, regions=regions,
                          components=args.components, overwrite=args.overwrite,
                          resume=args.resume, progress=not args.quiet,
                          read_options=dict(read_options), memory_limit=args.memory_limit,
                          client=client, planck=True if args.planck else None)
+            wall_s = time.perf_counter() - t_start
             print(f"result store: {out}")
             _print_fit_summary(ds)
             _note_medium(_medium_note_for_result(ds, src, read_options))
+            figs = None
             if pipe.output.get("figures", True) and not args.no_figures:
                 from .report import write_figures
 
                 figs = write_figures(ds, _figures_dir(out))
                 print(f"figures ({len(figs)}): {_figures_dir(out)}")
+            if not args.no_html:
+                _write_html(out, figs, wall_s)
             if many:
                 from .report import summarise_result
 
@@ -261,7 +267,21 @@ def cmd_process(args: argparse.Namespace) -> int:
         table = out_dir / "summary.csv"
         pd.DataFrame(summaries).to_csv(table, index=False)
         print(f"summary table: {table}")
+        if not args.no_html:
+            from .report_html import write_summary_html
+
+            print(f"summary report: {write_summary_html(summaries, out_dir / 'summary.html')}")
     return 0
+
+
+def _write_html(store: Path, figures, run_time_s: float | None = None) -> Path:
+    """The self-contained HTML report of a result store, beside its PNG figures."""
+    from .report_html import html_report_path, write_html_report
+
+    path = write_html_report(store, html_report_path(store, _figures_dir(store)),
+                             figures=figures, run_time_s=run_time_s)
+    print(f"HTML report: {path}")
+    return path
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -512,6 +532,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scheduler", help="address of a running dask scheduler to join "
                    "(e.g. tcp://10.0.0.5:8786)")
     p.add_argument("--no-figures", action="store_true", help="do not write PNG figures")
+    p.add_argument("--no-html", action="store_true", help="do not write the HTML report "
+                   "(RESULT_figures/RESULT_report.html; summary.html for a folder)")
     p.add_argument("--print-config", action="store_true",
                    help="print the default pipeline TOML and exit")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
