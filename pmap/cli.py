@@ -1,4 +1,5 @@
-"""The ``plcube`` command (also ``python -m pmap``): info, convert, process, report, demo, steps, view.
+"""The ``plcube`` command (also ``python -m pmap``): info, convert, process, report, export,
+demo, steps, view, series, stack.
 
 User errors print one line on stderr (``plcube: error: ...``) and exit with
 status 2, without a traceback; ``--debug`` shows the traceback. No subcommand
@@ -310,6 +311,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     figs.append(_demo_spike_figure(cube_path, paths["truth"], _figures_dir(result_path)))
     print(f"result:      {result_path}")
     print(f"figures:     {_figures_dir(result_path)} ({len(figs)} PNG)")
+    _write_html(result_path, figs)
     try:
         from .synthetic import compare_with_truth
 
@@ -340,20 +342,28 @@ def _demo_spike_figure(cube_path: Path, truth_path: Path, out_dir: Path) -> Path
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from .report import write_figures
+    from .report import figure_output, parse_size_cm, write_figures
     from .results import open_result
 
+    size_cm = parse_size_cm(args.size) if args.size else None
     store = Path(args.result)
     ds = open_result(store)
     out = Path(args.out) if args.out else _figures_dir(store)
-    if ds.attrs.get("series_law"):  # a series store (plcube series): its own figures
-        from .report_series import write_series_figures
+    with figure_output(dpi=args.dpi, size_cm=size_cm):
+        if ds.attrs.get("series_law"):  # a series store (plcube series): its own figures
+            from .report_series import write_series_figures
 
-        figs = write_series_figures(ds, out)
-        print(f"figures ({len(figs)}): {out}")
-        return 0
-    figs = write_figures(ds, out)
+            figs = write_series_figures(ds, out)
+        else:
+            figs = write_figures(ds, out)
     print(f"figures ({len(figs)}): {out}")
+    if args.html:
+        from .report_html import html_report_path, write_html_report
+
+        html_path = write_html_report(store, html_report_path(store, out), figures=figs)
+        print(f"HTML report: {html_path}")
+    if ds.attrs.get("series_law"):
+        return 0
     region_vars = [v for v in ds.data_vars if "region_id" in ds[v].dims]
     if region_vars:
         from .decomposition import write_region_csv
@@ -361,6 +371,33 @@ def cmd_report(args: argparse.Namespace) -> int:
         csv = out / "regions.csv"
         write_region_csv(ds[region_vars].rename({"region_id": "region"}).load(), csv)
         print(f"region table: {csv}")
+    return 0
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    from .export import export_map
+    from .results import open_result
+
+    index: dict[str, int] = {}
+    for item in args.index or []:
+        dim, sep, val = item.partition("=")
+        try:
+            index[dim.strip()] = int(val)
+        except ValueError:
+            raise PmapError(f"--index needs DIM=N with an integer N, got {item!r}") from None
+        if not sep:
+            raise PmapError(f"--index needs DIM=N, got {item!r}")
+    if args.peak is not None:
+        index["peak"] = args.peak
+    dst = Path(args.output)
+    if dst.exists() and not args.overwrite:
+        raise PmapError(f"{dst} exists; use --overwrite to replace it")
+    src = Path(args.result)
+    if dst.resolve() == src.resolve():
+        raise PmapError("the output would replace the input store")
+    ds = open_result(src)
+    out = export_map(ds, args.variable, dst, index=index)
+    print(f"wrote {out}")
     return 0
 
 
@@ -555,7 +592,24 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("report", help="(re)draw the figures and region table of a result store")
     p.add_argument("result", help="result store written by plcube process (or plcube series)")
     p.add_argument("-o", "--out", help="folder for the figures (default RESULT_figures/)")
+    p.add_argument("--html", action="store_true", help="also write one self-contained HTML "
+                   "report (figures embedded, opens offline): OUT/RESULT_report.html")
+    p.add_argument("--dpi", type=float, help="resolution of the PNG figures, dots per inch "
+                   "(default 120; e.g. 300 for a paper)")
+    p.add_argument("--size", metavar="WxH", help="size of every figure in centimetres, "
+                   "e.g. 8.5x6 for one journal column (default: each figure's own size)")
     p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("export", help="export one map of a result as a CSV table (x, y, value "
+                       "with units) or a 32-bit float TIFF with its pixel size")
+    p.add_argument("result", help="result store (RESULT.zarr)")
+    p.add_argument("variable", help="map to export, e.g. peak_energy, integrated_intensity")
+    p.add_argument("-o", "--output", required=True, help="FILE.csv, FILE.tif or FILE.tiff")
+    p.add_argument("--peak", type=int, help="peak index (0 = lowest energy) for per-peak maps")
+    p.add_argument("--index", action="append", metavar="DIM=N",
+                   help="slice of another dim, repeatable, e.g. --index component=1")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output file")
+    p.set_defaults(func=cmd_export)
 
     p = sub.add_parser("steps", help="list the processing steps a pipeline TOML may name")
     p.set_defaults(func=cmd_steps)
