@@ -369,7 +369,10 @@ def cmd_report(args: argparse.Namespace) -> int:
         from .decomposition import write_region_csv
 
         csv = out / "regions.csv"
-        write_region_csv(ds[region_vars].rename({"region_id": "region"}).load(), csv)
+        stats = ds[region_vars].rename({"region_id": "region"}).load()
+        if "region_name" in stats.coords:  # Zarr v3 gives numpy StringDType: plain str objects
+            stats = stats.assign_coords(region_name=stats["region_name"].astype(object))
+        write_region_csv(stats, csv)
         print(f"region table: {csv}")
     return 0
 
