@@ -242,7 +242,7 @@ def cmd_process(args: argparse.Namespace) -> int:
                          components=args.components, overwrite=args.overwrite,
                          resume=args.resume, progress=not args.quiet,
                          read_options=dict(read_options), memory_limit=args.memory_limit,
-                         client=client, planck=True if args.planck else None)
+                         client=client, planck=_planck_option(args, src, read_options))
             wall_s = time.perf_counter() - t_start
             print(f"result store: {out}")
             _print_fit_summary(ds)
@@ -283,6 +283,40 @@ def _write_html(store: Path, figures, run_time_s: float | None = None) -> Path:
                              figures=figures, run_time_s=run_time_s)
     print(f"HTML report: {path}")
     return path
+
+
+def _planck_option(args: argparse.Namespace, src: Path, read_options: dict):
+    """The ``planck=`` argument of process: None, True, or the window in eV.
+
+    ``--planck-window LO:HI`` is in eV for a cube on an energy axis and in nm for a cube
+    on a wavelength axis (in the cube's medium; converted to eV as to_energy converts the
+    axis: air to vacuum, then E = hc/lambda).
+    """
+    if not args.planck_window:
+        return True if args.planck else None
+    from .io import open_cube
+    from .planck import window_nm_to_ev
+
+    try:
+        lo, hi = (float(v) for v in args.planck_window.split(":"))
+    except ValueError:
+        raise PmapError(f"--planck-window takes LOW:HIGH (eV, or nm for a wavelength cube), "
+                        f"got {args.planck_window!r}") from None
+    if not lo < hi:
+        raise PmapError(f"--planck-window: LOW must be below HIGH, got {lo:g}:{hi:g}")
+    cube = open_cube(src, **read_options)
+    if "energy" in cube.dims:
+        window = (lo, hi)
+        print(f"Planck window: {lo:g}-{hi:g} eV", file=sys.stderr)
+    elif "wavelength" in cube.dims:
+        medium = str(cube.attrs.get("wavelength_medium", "air"))
+        window = window_nm_to_ev((lo, hi), medium=medium)
+        print(f"Planck window: {lo:g}-{hi:g} nm ({medium}) = {window[0]:.4f}-{window[1]:.4f} eV",
+              file=sys.stderr)
+    else:
+        raise PmapError(f"--planck-window needs a cube on an energy (eV) or wavelength (nm) "
+                        f"axis; {src} has dims {tuple(cube.dims)}")
+    return {"energy_range_ev": [float(window[0]), float(window[1])]}
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -563,6 +597,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--planck", action="store_true", help="absolute PL: fit the generalized "
                    "Planck law (qfls, carrier_temperature, implied_voc; needs a cube in "
                    "photons s-1 m-2 eV-1; options in the [planck] table)")
+    p.add_argument("--planck-window", metavar="LOW:HIGH", help="Planck fit window (implies "
+                   "--planck): in eV for a cube on an energy axis, in nm for a cube on a "
+                   "wavelength axis (its medium, air unless stated), e.g. 1.60:1.75")
     p.add_argument("--overwrite", action="store_true", help="replace an existing result store")
     p.add_argument("--resume", action="store_true",
                    help="continue an interrupted run, recomputing only unfinished blocks")
