@@ -14,11 +14,13 @@ import numpy as np
 import xarray as xr
 
 from .errors import StepError
+from .noise import get_noise_model, noise_coords, noise_scaled
 from .provenance import with_step
-from .series._fit import STATUS_LEGEND, lm_fit
+from .series._fit import STATUS_FLAG_MEANINGS, STATUS_FLAG_VALUES, STATUS_LEGEND, lm_fit
 from .series._laws import K_B_EV, Law
 
-__all__ = ["planck_flux", "fit_planck", "PLANCK_PREFACTOR", "PHOTON_FLUX_UNITS"]
+__all__ = ["planck_flux", "fit_planck", "PLANCK_PREFACTOR", "PHOTON_FLUX_UNITS",
+           "PHOTON_FLUX_PER_NM_UNITS", "COUNT_DENSITY_UNITS"]
 
 _H_EV_S = 6.62607015e-34 / 1.602176634e-19  # Planck constant, eV s (exact, 2019 SI)
 _C_M_S = 299792458.0
@@ -27,6 +29,12 @@ PLANCK_PREFACTOR = 2 * np.pi / (_H_EV_S**3 * _C_M_S**2)
 #: accepted spellings of the absolute photon-flux unit of a calibrated cube
 PHOTON_FLUX_UNITS = ("photons s-1 m-2 eV-1", "photons/s/m2/eV", "photons/(s m2 eV)",
                      "photons s^-1 m^-2 eV^-1")
+#: the same flux per nm of wavelength (a cube on a ``wavelength`` axis): converted to per eV
+#: with the Jacobian |dλ/dE| by :func:`pmap.spectral.to_energy`
+PHOTON_FLUX_PER_NM_UNITS = ("photons s-1 m-2 nm-1", "photons/s/m2/nm", "photons/(s m2 nm)",
+                            "photons s^-1 m^-2 nm^-1")
+#: detector densities per eV that ``photon_flux_per_count`` turns into photon flux
+COUNT_DENSITY_UNITS = ("counts/eV", "counts/s/eV")
 
 
 def planck_flux(energy_ev, qfls_ev, temperature_k, absorptivity=1.0):
@@ -85,24 +93,113 @@ def _planck_law(absorptivity: float) -> Law:
                lambda p: (p[:, 1] <= 0), "Würfel, J. Phys. C 15, 3967 (1982)")
 
 
+def window_nm_to_ev(window_nm: tuple[float, float], *, medium: str = "air",
+                    method: str = "ciddor") -> tuple[float, float]:
+    """A wavelength window (nm) as the photon-energy window (eV, ascending) it covers.
+
+    Air wavelengths (``medium="air"``, pmap's default for an axis) are first made vacuum
+    wavelengths with :func:`pmap.airvac.air_to_vacuum` (as :func:`pmap.spectral.to_energy`
+    does), then E = hc/λ_vac.
+    """
+    from .airvac import air_to_vacuum
+    from .conventions import nm_to_ev
+
+    lo, hi = (float(v) for v in window_nm)
+    if not (0 < lo < hi):
+        raise StepError(f"wavelength window must be 0 < low < high nm, got {lo}:{hi}")
+    lam = np.array([lo, hi])
+    if str(medium).lower() == "air":
+        lam = np.asarray(air_to_vacuum(lam, method=method), float)
+    e = np.sort(np.asarray(nm_to_ev(lam), float))
+    return float(e[0]), float(e[1])
+
+
+def _absolute(cube: xr.DataArray, photon_flux_per_count) -> tuple[xr.DataArray, str]:
+    """The cube in photons s⁻¹ m⁻² eV⁻¹ on an energy axis, and how it got there."""
+    units = str(cube.attrs.get("units", ""))
+    if units in PHOTON_FLUX_PER_NM_UNITS:
+        if "wavelength" not in cube.dims:
+            raise StepError(f"a cube in {units!r} must be on a wavelength axis (nm)")
+        from .spectral import to_energy
+
+        # to_energy's density-per-nm path multiplies by |dλ/dE| whatever is counted: run it
+        # under a per-nm unit it knows and put the photon-flux unit back
+        out = to_energy(cube.assign_attrs(units="W/nm"))
+        return (out.assign_attrs(units="photons/s/m2/eV"),
+                "per nm converted to per eV with the Jacobian |dλ/dE| = λ²/hc (vacuum λ)")
+    if "energy" not in cube.dims:
+        raise StepError("fit_planck needs a cube on an energy axis (eV), or a photon flux per "
+                        "nm on a wavelength axis: convert it first (pmap.to_energy)")
+    if units in PHOTON_FLUX_UNITS:
+        return cube, "absolute photon flux as given"
+    cal = photon_flux_per_count if photon_flux_per_count is not None \
+        else cube.attrs.get("photon_flux_per_count")
+    if units in COUNT_DENSITY_UNITS and cal is not None:
+        if isinstance(cal, xr.DataArray):
+            if set(cal.dims) - set(cube.dims):
+                raise StepError(f"photon_flux_per_count spectrum has dims {cal.dims}; "
+                                "it must be on the cube's energy axis")
+            f = cal
+        else:
+            arr = np.asarray(cal, dtype=float)
+            if arr.ndim == 0:
+                f = xr.DataArray(float(arr))
+            elif arr.shape == (cube.sizes["energy"],):
+                f = xr.DataArray(arr, dims=("energy",))
+            else:
+                raise StepError(f"photon_flux_per_count must be a number or one value per "
+                                f"energy channel ({cube.sizes['energy']}), got shape {arr.shape}")
+        fv = np.asarray(f.values, float)
+        if not (np.all(np.isfinite(fv)) and np.all(fv > 0)):
+            raise StepError("photon_flux_per_count must be finite and > 0")
+        out = noise_scaled(cube * f, cube, f, "planck: photon_flux_per_count calibration")
+        out.attrs = {**cube.attrs, "units": "photons/s/m2/eV"}
+        return out, f"{units} times photon_flux_per_count (photons s-1 m-2 per count)"
+    if units in ("counts", "counts/s"):
+        raise StepError(f"fit_planck: the cube is in {units!r} per channel: convert it to a "
+                        "density per eV (pmap.to_energy) and give photon_flux_per_count "
+                        "(photons s-1 m-2 per count) to make it an absolute photon flux")
+    what = (" and photon_flux_per_count (attr or option) is missing"
+            if units in COUNT_DENSITY_UNITS else "")
+    raise StepError(f"fit_planck needs an absolutely calibrated cube in photons s-1 m-2 eV-1 "
+                    f"(or per nm), or counts/eV with photon_flux_per_count; this one is in "
+                    f"{units!r}{what}")
+
+
 def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | None = None,
+               wavelength_range_nm: tuple[float, float] | None = None,
                sigma: xr.DataArray | None = None, absorptivity: float = 1.0,
-               max_iter: int = 200) -> xr.Dataset:
+               photon_flux_per_count=None, max_iter: int = 200) -> xr.Dataset:
     """Fit the generalized Planck law per pixel on the high-energy side of the PL.
 
     Parameters
     ----------
     cube : DataArray
-        Absolutely calibrated cube on an ``energy`` axis (eV), ``units`` in photons
-        s⁻¹ m⁻² eV⁻¹ (see :data:`PHOTON_FLUX_UNITS`).
+        An absolute photon flux: on an ``energy`` axis (eV) in photons s⁻¹ m⁻² eV⁻¹
+        (:data:`PHOTON_FLUX_UNITS`), or on a ``wavelength`` axis (nm) in photons s⁻¹ m⁻²
+        nm⁻¹ (:data:`PHOTON_FLUX_PER_NM_UNITS`; converted to per eV with the Jacobian by
+        :func:`pmap.spectral.to_energy`), or a detector density per eV (``counts/eV``,
+        ``counts/s/eV``) with ``photon_flux_per_count``.
     energy_range_ev : (float, float), optional
         Fit window, eV (default: from the maximum of the mean spectrum + 3kT at 300 K,
         77.6 meV, to the end of the axis).
+    wavelength_range_nm : (float, float), optional
+        The window in nm instead (in the cube's medium, ``wavelength_medium``, air unless
+        stated; :func:`window_nm_to_ev`). Only one of the two windows may be given.
     sigma : DataArray, optional
-        1σ uncertainties of the cube values (same units). Without them every point gets
-        the same relative error and the errors are scaled by √χ²_red.
+        1σ uncertainties of the cube values (same units). Default: from the cube's noise
+        model (:mod:`pmap.noise`) when it has one, var = s·a·m + s²·(a·p + b) with m the
+        fitted model (a first fit weighted with the data as m, a second with the model:
+        the Poisson score equations at the solution); errors absolute, ``planck_chi2_red``
+        a true reduced χ² (a correlated model: weights from the law, errors scaled by
+        √χ²_red). Without either, every point gets the same relative error and the errors
+        are scaled by √χ²_red.
     absorptivity : float
         Absorptivity a on the window (1), assumed, not fitted.
+    photon_flux_per_count : float, array or DataArray on ``energy``, optional
+        Absolute calibration of a ``counts/eV`` (or ``counts/s/eV``) cube: photons s⁻¹ m⁻²
+        per count (per count/s), a number or a calibration spectrum; default the cube's
+        attr ``photon_flux_per_count``.
     max_iter : int
         Levenberg–Marquardt iteration limit.
 
@@ -110,15 +207,17 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
     -------
     Dataset
         ``qfls`` (eV), ``carrier_temperature`` (K), ``implied_voc`` (V) with ``_err``,
-        ``planck_chi2_red`` and ``planck_status`` on the cube's non-spectral dims.
+        ``planck_chi2_red`` and ``planck_status`` (CF flags) on the cube's non-spectral
+        dims; the assumptions in the attrs (``planck_assumptions``).
     """
-    if not isinstance(cube, xr.DataArray) or "energy" not in cube.dims:
-        raise StepError("fit_planck needs a cube on an energy axis (eV): convert it first "
-                        "(pmap.to_energy)")
-    units = str(cube.attrs.get("units", ""))
-    if units not in PHOTON_FLUX_UNITS:
-        raise StepError(f"fit_planck needs an absolutely calibrated cube in photons s-1 m-2 "
-                        f"eV-1; this one is in {units!r}")
+    if not isinstance(cube, xr.DataArray):
+        raise StepError(f"fit_planck needs an xarray DataArray, got {type(cube).__name__}")
+    if energy_range_ev is not None and wavelength_range_nm is not None:
+        raise StepError("give the Planck window once: energy_range_ev or wavelength_range_nm")
+    if wavelength_range_nm is not None:
+        medium = str(cube.attrs.get("wavelength_medium", "air"))
+        energy_range_ev = window_nm_to_ev(wavelength_range_nm, medium=medium)
+    cube, how = _absolute(cube, photon_flux_per_count)
     if not absorptivity > 0:
         raise StepError(f"absorptivity must be > 0, got {absorptivity}")
     e_all = np.asarray(cube["energy"].values, float)
@@ -137,15 +236,39 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
     e = e_all[sel]
     law = _planck_law(absorptivity)
     weighted = sigma is not None
+    model = get_noise_model(cube) if not weighted else None
+    use_noise = model is not None and model.valid
+    poisson = use_noise and not model.correlated
+    a_n = model.var_per_count if use_noise else 0.0
+    b_n = model.var_offset_counts2 if use_noise else 0.0
+    fl_n = model.floor_counts2 if use_noise else 0.0
     sig = sigma.isel(energy=np.flatnonzero(sel)) if weighted else None
 
-    def kernel(v, s):
+    def kernel(v, s, sc, pd):
         shape = v.shape[:-1]
-        v2 = v.reshape(-1, v.shape[-1])
-        s2 = s.reshape(-1, s.shape[-1]) if weighted else np.abs(v2)
-        p, pe, cr, st = lm_fit(law, e, v2, s2, max_iter=max_iter, weighted=True)
-        if not weighted:
-            pe = pe * np.sqrt(cr)[:, None]
+        n = v.shape[-1]
+        v2 = v.reshape(-1, n)
+        if use_noise:
+            sc2 = np.broadcast_to(sc, v.shape).reshape(-1, n)
+            pd2 = np.broadcast_to(pd, v.shape).reshape(-1, n)
+
+            def sd_of(m):  # pmap.noise: var = s·a·m + s²·(a·p + b), floored at s²·floor
+                var = sc2 * a_n * np.maximum(m, 0.0) + sc2 * sc2 * (a_n * pd2 + b_n)
+                return np.sqrt(np.maximum(var, sc2 * sc2 * fl_n))
+
+            p, pe, cr, st = lm_fit(law, e, v2, sd_of(v2), max_iter=max_iter, weighted=True)
+            good = np.all(np.isfinite(p), axis=1)
+            with np.errstate(all="ignore"):
+                m = law.model(e, np.where(good[:, None], p, [[float(e[0]), 300.0]]))
+            m = np.where(good[:, None] & np.isfinite(m), m, v2)
+            p, pe, cr, st = lm_fit(law, e, v2, sd_of(m), max_iter=max_iter, weighted=True)
+            if not poisson:
+                pe = pe * np.sqrt(cr)[:, None]
+        else:
+            s2 = s.reshape(-1, n) if weighted else np.abs(v2)
+            p, pe, cr, st = lm_fit(law, e, v2, s2, max_iter=max_iter, weighted=True)
+            if not weighted:
+                pe = pe * np.sqrt(cr)[:, None]
         return np.concatenate([p, pe, cr[:, None], st[:, None].astype(float)],
                               axis=1).reshape(*shape, 6)
 
@@ -153,11 +276,21 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
         sub = sub.chunk({"energy": -1})
         if weighted:
             sig = sig.chunk(dict(zip(sub.dims, sub.chunks)))
-    s_in = sig if weighted else xr.zeros_like(sub)
-    out = xr.apply_ufunc(kernel, sub, s_in, input_core_dims=[["energy"], ["energy"]],
+    s_in = sig if weighted else xr.DataArray(np.zeros(sub.sizes["energy"]), dims=("energy",))
+    if use_noise:
+        sc, pd = noise_coords(sub)
+        sc = sc if "energy" in sc.dims else sc.expand_dims(energy=sub.sizes["energy"])
+        pd = pd if "energy" in pd.dims else pd.expand_dims(energy=sub.sizes["energy"])
+        if hasattr(pd.data, "dask"):
+            pd = pd.chunk({"energy": -1})
+    else:
+        sc = pd = xr.DataArray(np.zeros(sub.sizes["energy"]), dims=("energy",))
+    out = xr.apply_ufunc(kernel, sub, s_in, sc, pd,
+                         input_core_dims=[["energy"]] * 4,
                          output_core_dims=[["_planck"]], dask="parallelized",
                          output_dtypes=[float],
                          dask_gufunc_kwargs={"output_sizes": {"_planck": 6}})
+    out = out.transpose(*[d for d in sub.dims if d != "energy"], "_planck")
     ds = xr.Dataset()
     ds["qfls"] = out.isel(_planck=0).assign_attrs(units="eV",
                                                  long_name="quasi-Fermi-level splitting")
@@ -171,13 +304,37 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
                                                       long_name="implied open-circuit voltage")
     ds["implied_voc_err"] = ds["qfls_err"].copy().assign_attrs(units="V",
                                                               long_name="1-sigma of implied_voc")
-    ds["planck_chi2_red"] = out.isel(_planck=4).assign_attrs(units="1")
+    ds["planck_chi2_red"] = out.isel(_planck=4).assign_attrs(
+        units="1", long_name="reduced chi-square of the Planck fit")
     ds["planck_status"] = out.isel(_planck=5).fillna(4).astype(np.int8).assign_attrs(
-        units="1", legend=str(STATUS_LEGEND).replace("'", '"'))
+        units="1", long_name="Planck fit status", legend=str(STATUS_LEGEND).replace("'", '"'),
+        flag_values=np.array(STATUS_FLAG_VALUES, np.int8), flag_meanings=STATUS_FLAG_MEANINGS)
+    ds = ds.drop_vars([c for c in ds.coords if c.startswith("noise_")], errors="ignore")
+    cal = photon_flux_per_count
     params = {"energy_range_ev": [lo, hi], "absorptivity": absorptivity, "max_iter": max_iter}
+    if wavelength_range_nm is not None:
+        params["wavelength_range_nm"] = [float(v) for v in wavelength_range_nm]
+    if cal is not None:
+        params["photon_flux_per_count"] = (float(cal) if np.ndim(cal) == 0 and
+                                           not isinstance(cal, xr.DataArray) else "spectrum")
     attrs = with_step({k: v for k, v in cube.attrs.items() if k != "units"}, "planck", params,
                       reference="Würfel, J. Phys. C 15, 3967 (1982)", weighted=weighted)
-    attrs["uncertainty_method"] = ("weighted by the given 1-sigma errors" if weighted else
-                                   "equal relative errors; scaled by sqrt(chi2_red)")
+    if weighted:
+        attrs["uncertainty_method"] = "weighted by the given 1-sigma errors"
+    elif poisson:
+        attrs["uncertainty_method"] = (
+            "weighted by the noise model (var = s*a*m + s^2*(a*p + b), m the fitted model); "
+            "absolute 1-sigma errors; planck_chi2_red a true reduced chi-square")
+    elif use_noise:
+        attrs["uncertainty_method"] = ("weights from the noise model's per-channel variance "
+                                       "(correlated noise); errors scaled by sqrt(chi2_red)")
+    else:
+        attrs["uncertainty_method"] = "equal relative errors; scaled by sqrt(chi2_red)"
+    attrs["planck_window_ev"] = [lo, hi]
+    attrs["planck_flux"] = how
+    attrs["planck_assumptions"] = (
+        f"generalized Planck law (Würfel 1982) with absorptivity a = {absorptivity:g} on the "
+        "window (assumed, not fitted); parabolic bands, quasi-Fermi levels flat over the "
+        "probed depth, one carrier temperature; Boltzmann tail window above the maximum")
     ds.attrs = attrs
     return ds
