@@ -12,6 +12,7 @@ from scipy import constants as _c
 from .errors import CubeValidationError
 
 __all__ = [
+    "udunits",
     "HC_EV_NM",
     "K_B_EV_PER_K",
     "SPECTRAL_DIMS",
@@ -68,6 +69,29 @@ _INTENSITY_ALIASES = {
     "photons/s/m2/ev": "photons/s/m2/eV", "photons s-1 m-2 ev-1": "photons/s/m2/eV",
     "photons/(s m2 ev)": "photons/s/m2/eV", "photons s^-1 m^-2 ev^-1": "photons/s/m2/eV",
 }
+
+
+#: pmap's unit words that UDUNITS-2 does not parse, and the UDUNITS string written for them
+#: in files meant for other tools (NetCDF export). A photon count and a pixel index are
+#: pure numbers to UDUNITS; the variable's long_name keeps what is counted.
+_UDUNITS = {
+    "pixel": "1", "arbitrary": "1", "photons/s": "s-1", "photons/s/m2/eV": "s-1 m-2 eV-1",
+    "e-/count": "1",
+}
+
+
+def udunits(units: str) -> str:
+    """A UDUNITS-2 string for one of pmap's unit strings (unchanged when it already is one).
+
+    ``"pixel"`` → ``"1"``, ``"photons/s/m2/eV"`` → ``"s-1 m-2 eV-1"``; see ``_UDUNITS``.
+    """
+    import re
+
+    text = str(units).strip()
+    if text in _UDUNITS:
+        return _UDUNITS[text]
+    # composite units ("pixel2" for a region's area, "counts/pixel"): a pixel is a number
+    return re.sub(r"\bpixels?(\^?-?\d+)?\b", "1", text)
 
 
 def nm_to_ev(wavelength_nm):

@@ -145,6 +145,28 @@ def _with_model(out: xr.DataArray, model: NoiseModel) -> xr.DataArray:
     return out
 
 
+#: CF attributes of the two propagation coordinates (so other tools can say what they are).
+SCALE_ATTRS = {"long_name": "noise propagation: factor from raw detector counts to this "
+                            "cube's intensity units"}
+PEDESTAL_ATTRS = {"long_name": "noise propagation: level subtracted so far, in raw detector "
+                               "counts", "units": "counts"}
+
+
+def describe_noise_coords(ds: Any) -> Any:
+    """``ds`` (Dataset or DataArray) with the CF attrs of the propagation coordinates set."""
+    for name, attrs in ((SCALE_COORD, SCALE_ATTRS), (PEDESTAL_COORD, PEDESTAL_ATTRS)):
+        if name in ds.coords:
+            ds[name].attrs = {**attrs, **ds[name].attrs}
+    return ds
+
+
+def _coord_variable(new: xr.DataArray, attrs: dict) -> xr.Variable:
+    """The variable of ``new`` with the CF attrs of its propagation coordinate."""
+    var = new.variable.copy(deep=False)
+    var.attrs = dict(attrs)
+    return var
+
+
 def _bare(v: Any) -> xr.DataArray:
     """A scalar or DataArray as a DataArray without coordinates (dims kept)."""
     if isinstance(v, xr.DataArray):
@@ -163,7 +185,7 @@ def noise_scaled(out: xr.DataArray, cube: xr.DataArray, factor: Any, why: str) -
         return out
     s, _ = noise_coords(cube)
     new = (s * _bare(factor)).astype(np.float64)
-    out = out.assign_coords({SCALE_COORD: new.variable})
+    out = out.assign_coords({SCALE_COORD: _coord_variable(new, SCALE_ATTRS)})
     return _with_model(out, replace(model, notes=model.notes + (why,)))
 
 
@@ -181,7 +203,7 @@ def noise_subtracted(
         return out
     s, p = noise_coords(cube)
     new = (p + _bare(subtracted) / s).astype(np.float64)
-    out = out.assign_coords({PEDESTAL_COORD: new.variable})
+    out = out.assign_coords({PEDESTAL_COORD: _coord_variable(new, PEDESTAL_ATTRS)})
     return _with_model(out, replace(model, notes=model.notes + (why,)))
 
 

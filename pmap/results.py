@@ -29,6 +29,7 @@ import numpy as np
 import xarray as xr
 
 from .errors import FormatError, InputFileError, OutputExistsError
+from .noise import describe_noise_coords
 from .provenance import PROVENANCE_ATTR
 
 __all__ = [
@@ -73,9 +74,13 @@ def assemble_result(
             if c in ds.coords and c in coords_from.coords:
                 ds = ds.assign_coords({c: coords_from[c]})
     ds.attrs["Conventions"] = "CF-1.10"
-    for c, ax in (("x", "X"), ("y", "Y")):  # CF axis attributes of the map coordinates
-        if c in ds.coords:
-            ds[c].attrs = {**ds[c].attrs, "axis": ax}
+    ds = describe_noise_coords(ds)
+    # No CF ``axis`` X/Y on the stage coordinates: CF (and its reference checker, IOOS
+    # compliance-checker §4, §5.6) reads axis X/Y as the horizontal axes of the Earth and
+    # then demands true latitude and longitude. y, x carry units and long_name instead.
+    for c in ("x", "y"):
+        if c in ds.coords and "axis" in ds[c].attrs:
+            ds[c].attrs = {k: v for k, v in ds[c].attrs.items() if k != "axis"}
     return ds
 
 

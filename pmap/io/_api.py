@@ -13,9 +13,11 @@ import numpy as np
 import xarray as xr
 import zarr
 
-from ..conventions import CUBE_NAME
+from .._version import __version__
+from ..conventions import CUBE_NAME, udunits
 from ..cube import DEFAULT_CHUNK_MIB
 from ..errors import FormatError, InputFileError, OutputExistsError
+from ..noise import describe_noise_coords
 from ..provenance import PROVENANCE_ATTR, get_provenance
 from ._common import check_input, detect_format, finish_cube, read_sidecar
 from ._readers import read_netcdf, read_npy, read_tiff, read_zarr
@@ -227,13 +229,42 @@ def _result_to_netcdf(src: Path, out: Path, *, overwrite: bool) -> Path:
     if not bool(ds.attrs.get("pmap_complete", False)):
         raise InputFileError(f"{src} is an incomplete result (an interrupted run); resume it "
                              "first")
+    ds = describe_noise_coords(ds)
     ds.attrs = {k: _netcdf_attr(v) for k, v in ds.attrs.items()}
-    for var in ds.variables.values():
+    ds.attrs.setdefault("title", f"PL map results of {_input_name(ds.attrs)} (pmap)")
+    ds.attrs.setdefault("history", f"{_now_iso()} converted from {src.name} by pmap "
+                                   f"{__version__}")
+    encoding: dict[str, dict] = {}
+    for name, var in ds.variables.items():
         var.attrs = {k: _netcdf_attr(v) for k, v in var.attrs.items()}
+        if "units" in var.attrs:
+            var.attrs["units"] = udunits(str(var.attrs["units"]))
         if "flag_values" in var.attrs:  # CF: flag values of the variable's own type
             var.attrs["flag_values"] = np.asarray(var.attrs["flag_values"], dtype=var.dtype)
         var.encoding = {}
+        if name in ("x", "y"):  # stage axes, not the Earth's: see pmap.results (CF §4, §5.6)
+            var.attrs.pop("axis", None)
+        if name in ds.dims:  # CF §2.5.1: coordinate variables carry no _FillValue
+            encoding[name] = {"_FillValue": None}
     tmp = out.with_name(out.name + ".partial")
-    ds.to_netcdf(tmp, engine="h5netcdf")
+    try:
+        ds.to_netcdf(tmp, engine="h5netcdf", encoding=encoding)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
     os.replace(tmp, out)  # written whole or not at all
     return out
+
+
+def _input_name(attrs: dict) -> str:
+    """File name of the input recorded in a store's provenance, or "a PL map"."""
+    try:
+        return Path(json.loads(attrs.get("pmap_provenance", "{}"))["input"]["path"]).name
+    except (ValueError, KeyError, TypeError):
+        return "a PL map"
+
+
+def _now_iso() -> str:
+    from datetime import UTC, datetime
+
+    return datetime.now(UTC).isoformat(timespec="seconds")
