@@ -197,21 +197,48 @@ def figure_output(*, dpi: float | None = None, size_cm: tuple[float, float] | No
         _OUTPUT.update(old)
 
 
-def _apply_output(fig) -> None:
-    if _OUTPUT["size_in"] is not None:
-        fig.set_size_inches(*_OUTPUT["size_in"])
-    fig.set_dpi(_OUTPUT["dpi"])
+#: At a chosen figure size smaller than a figure's own, the figure is laid out at up to
+#: this factor of the chosen size and scaled down into it (text shrinks by the same
+#: factor: 10 pt → 6.3 pt at most), so a one-column figure keeps room for its map.
+MAX_SHRINK = 1.6
+
+
+def _apply_output(fig) -> float:
+    """Set ``fig``'s size and dpi for the output settings; returns the rendering dpi."""
+    dpi = float(_OUTPUT["dpi"])
+    size = _OUTPUT["size_in"]
+    if size is not None:
+        natural = getattr(fig, "_pmap_natural_width_in", None)
+        if natural is None:
+            natural = float(fig.get_size_inches()[0])
+            fig._pmap_natural_width_in = natural
+        k = min(max(natural / size[0], 1.0), MAX_SHRINK)
+        fig.set_size_inches(size[0] * k, size[1] * k)
+        dpi /= k  # same pixels as size × dpi: the layout is scaled down by k
+    fig.set_dpi(dpi)
+    return dpi
 
 
 def _save(fig, path: str | Path, info: Mapping[str, Any]) -> Path:
     p = Path(path)
     p.parent.mkdir(parents=True, exist_ok=True)
     info = dict(info)
-    _apply_output(fig)
+    render_dpi = _apply_output(fig)
     info.setdefault("dpi", float(_OUTPUT["dpi"]))
-    info.setdefault("size_in", [float(v) for v in fig.get_size_inches()])
+    if _OUTPUT["size_in"] is not None:
+        info.setdefault("size_cm", [round(v * CM_PER_INCH, 3) for v in _OUTPUT["size_in"]])
     meta = {"Software": f"pmap {__version__}", "Description": json.dumps(info)}
-    fig.savefig(p, dpi=_OUTPUT["dpi"], metadata=meta)
+    fig.savefig(p, dpi=render_dpi, metadata=meta)
+    if render_dpi != _OUTPUT["dpi"]:  # record the chosen dpi, so the PNG prints at its size
+        from PIL import Image, PngImagePlugin
+
+        with Image.open(p) as im:
+            im.load()
+            text = dict(im.text)
+            png = PngImagePlugin.PngInfo()
+            for key, value in text.items():
+                png.add_text(key, value)
+            im.save(p, dpi=(_OUTPUT["dpi"], _OUTPUT["dpi"]), pnginfo=png)
     return p
 
 
