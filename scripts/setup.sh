@@ -1,7 +1,8 @@
 #!/usr/bin/env bash
 # Set up a virtual environment in .venv with plcube (the pmap package) and all its extras.
 #   scripts/setup.sh          # pmap[all]
-#   scripts/setup.sh --test   # also the system packages the viewer tests need (Xvfb, Mesa, Qt's X libs)
+#   scripts/setup.sh --test   # also the system packages the tests need (Xvfb, Mesa, Qt's X libs,
+#                             # headless Chromium for the HTML report)
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
@@ -65,4 +66,9 @@ if (( want_test )); then
             libxcb-shape0 libxcb-xfixes0 libxcb-xkb1 libxcb-cursor0 libfontconfig1 libdbus-1-3 libglib2.0-0); break; }
     done
     if (( ${#need[@]} )); then apt_install "${need[@]}"; fi
+    # Headless Chromium (the distribution's package) renders the HTML report in its test.
+    if ! command -v chromium >/dev/null && ! command -v chromium-browser >/dev/null \
+            && ! command -v google-chrome >/dev/null; then
+        apt_install chromium
+    fi
 fi
