@@ -135,6 +135,16 @@ class MergeData:
     to_spectra: Any = None
     n_shape: int = 0
     min_difference: float = MIN_DIFFERENCE
+    #: Unit-area spectra (m, C) of the no-emission continua (clusters without an
+    #: emission peak: laser tail, stray light, glow), or None; with ``spectra`` (n, C),
+    #: the rows' measured spectra, the spectral difference across a border is also taken
+    #: on what is left after the best non-negative sum of the continua.
+    continuum: Any = None
+    spectra: Any = None
+    #: The spectral axis (C,) of ``spectra`` and which rows may serve as a host (rows of
+    #: emission clusters, not of no-emission continua), for :func:`host_aligned_difference`.
+    axis: Any = None
+    host_ok: Any = None
 
 
 def pair_score(data: MergeData, ra: np.ndarray, rb: np.ndarray):
@@ -167,7 +177,12 @@ def pair_score(data: MergeData, ra: np.ndarray, rb: np.ndarray):
         scores.append(data.separation * jump / data.continuity)
     if np.isfinite(diff) and data.min_difference > 0:
         scores.append(data.separation * diff / data.min_difference)
-    return min(scores), sep, r, jump, diff
+    aligned = float("nan")
+    if not np.isfinite(jump) and data.min_difference > 0:
+        aligned = host_aligned_difference(data, ra, rb, data.min_difference)
+        if np.isfinite(aligned):
+            scores.append(data.separation * aligned / data.min_difference)
+    return min(scores), sep, r, jump, diff, aligned
 
 
 def border_jump(data: MergeData, ra: np.ndarray, rb: np.ndarray, t: np.ndarray):
@@ -203,9 +218,126 @@ def border_jump(data: MergeData, ra: np.ndarray, rb: np.ndarray, t: np.ndarray):
         k = data.n_shape
         sa = data.to_spectra(data.feats[a_rows, :k].mean(axis=0)[None, :])[0]
         sb = data.to_spectra(data.feats[b_rows, :k].mean(axis=0)[None, :])[0]
-        norm = float(np.linalg.norm(sa)) or 1.0
-        diff = float(np.linalg.norm(sa - sb) / norm)
+        diff = emission_difference(sa, sb)
+        if data.continuum is not None and data.spectra is not None:
+            ma = _unit_area(data.spectra[a_rows].mean(axis=0))
+            mb = _unit_area(data.spectra[b_rows].mean(axis=0))
+            diff = min(diff, emission_difference(ma, mb, data.continuum))
     return jump, diff
+
+
+def _hosts(data: MergeData, rows: np.ndarray, other: np.ndarray) -> np.ndarray:
+    """Rows that are 4-neighbours of ``rows`` and belong to neither group (host rows)."""
+    pairs = data.pairs
+    n = len(data.feats)
+    side = np.zeros(n, dtype=np.int8)
+    side[rows], side[other] = 1, 2
+    s0, s1 = side[pairs[:, 0]], side[pairs[:, 1]]
+    out = np.concatenate([pairs[(s0 == 1) & (s1 == 0), 1], pairs[(s1 == 1) & (s0 == 0), 0]])
+    if data.host_ok is not None:
+        out = out[np.asarray(data.host_ok)[out]]
+    return out
+
+
+def best_shift(ref: np.ndarray, s: np.ndarray, axis: np.ndarray, max_shift: float) -> float:
+    """Shift Δ (axis units) minimising |ref(E) − s(E − Δ)| over |Δ| ≤ ``max_shift``:
+    a grid at the median channel step, refined by a parabola through the best three."""
+    step = float(np.median(np.abs(np.diff(axis)))) or 1.0
+    n = int(max_shift / step)
+    shifts = step * np.arange(-n, n + 1)
+    cost = np.array([np.sum((ref - np.interp(axis - d, axis, s)) ** 2) for d in shifts])
+    i = int(np.argmin(cost))
+    if 0 < i < len(cost) - 1:
+        den = cost[i - 1] - 2 * cost[i] + cost[i + 1]
+        if den > 0:
+            return float(shifts[i] + 0.5 * step * (cost[i - 1] - cost[i + 1]) / den)
+    return float(shifts[i])
+
+
+#: Largest host shift tried by :func:`host_aligned_difference`, as a share of the window.
+MAX_HOST_SHIFT = 0.2
+
+
+def host_aligned_difference(
+    data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: float
+) -> float:
+    """Spectral difference of two groups that share no border, each seen against its own
+    surroundings (NaN when it cannot be judged).
+
+    A minority that sits inside a host whose line drifts across the map (a dot-size or
+    composition gradient) is red- or blue-shifted *from its host*, so its spots far
+    apart emit at different absolute energies. Here the host spectrum around A (mean
+    unit-area spectrum of A's 4-neighbours in neither group) and around B are aligned
+    by the shift Δ that best maps one onto the other (:func:`best_shift`, at most
+    ``MAX_HOST_SHIFT`` of the window); if the two hosts then agree within
+    ``tolerance`` (the same host type, shifted), the groups' own mean spectra are
+    compared after a shift between 0 and Δ (:func:`emission_difference`, the smallest
+    of five evenly spaced shifts: lines that follow the host move by Δ, a defect band
+    of fixed energy by 0). Spectra add linearly
+    and a gradient moves host and minority together, so two spots of one minority type
+    agree; two different minority types in one host do not.
+    """
+    if data.spectra is None or data.axis is None:
+        return float("nan")
+    ha, hb = _hosts(data, ra, rb), _hosts(data, rb, ra)
+    if len(ha) < MIN_BORDER_PAIRS or len(hb) < MIN_BORDER_PAIRS:
+        return float("nan")
+    sp, axis = data.spectra, np.asarray(data.axis, dtype=float)
+    host_a = _unit_area(sp[np.unique(ha)].mean(axis=0))
+    host_b = _unit_area(sp[np.unique(hb)].mean(axis=0))
+    span = float(abs(axis[-1] - axis[0]))
+    d = best_shift(host_a, host_b, axis, MAX_HOST_SHIFT * span)
+    if emission_difference(host_a, np.interp(axis - d, axis, host_b)) >= tolerance:
+        return float("nan")
+    own_a = _unit_area(sp[ra].mean(axis=0))
+    own_b = _unit_area(sp[rb].mean(axis=0))
+    # Lines that follow the host's drift move by Δ, lines that do not (a defect band
+    # of fixed energy) by 0: the groups are compared at the best shift between the two.
+    return min(emission_difference(own_a, np.interp(axis - f * d, axis, own_b))
+               for f in np.linspace(0.0, 1.0, 5))
+
+
+def _unit_area(s: np.ndarray) -> np.ndarray:
+    """A spectrum over its channel sum, or half its absolute sum when that is larger
+    (as :func:`pmap.decomposition._emission.unit_area`)."""
+    a = max(float(s.sum()), 0.5 * float(np.abs(s).sum()))
+    return s / a if a > 0 else s
+
+
+#: A border side whose spectrum is within this fraction of a sum of no-emission continua
+#: has no emission shape of its own to compare.
+MIN_EMISSION_LEFT = 0.05
+
+
+def emission_difference(sa: np.ndarray, sb: np.ndarray, continuum=None) -> float:
+    """Relative difference |ŝ_A − ŝ_B| / |ŝ_A| of two (unit-area) spectra's emission.
+
+    Without ``continuum`` ŝ = s. With the no-emission continua B (m, C), each spectrum
+    first loses its best non-negative sum of them (``scipy.optimize.nnls``), and the
+    rest is scaled to unit norm: a pixel where an emission fades into the laser tail or
+    stray light (a wafer's edge exclusion, a flake's rim) is compared with its brighter
+    neighbour by the emission it still has, not by how much continuum lies under it.
+    Spectra add linearly (dim emission + continuum), so this is the shape test of
+    :func:`pair_score` on the emission part. A side that is all continuum (less than
+    ``MIN_EMISSION_LEFT`` of its norm left) is compared as it is.
+    """
+    sa, sb = np.asarray(sa, dtype=float), np.asarray(sb, dtype=float)
+    na = float(np.linalg.norm(sa)) or 1.0
+    plain = float(np.linalg.norm(sa - sb) / na)
+    if continuum is None or len(continuum) == 0:
+        return plain
+    from scipy.optimize import nnls
+
+    basis = np.asarray(continuum, dtype=float).T
+    left = []
+    for s in (sa, sb):
+        coef, _ = nnls(basis, s)
+        r = s - basis @ coef
+        nr = float(np.linalg.norm(r))
+        if nr < MIN_EMISSION_LEFT * (float(np.linalg.norm(s)) or 1.0):
+            return plain
+        left.append(r / nr)
+    return float(np.linalg.norm(left[0] - left[1]))
 
 
 @dataclass

@@ -42,6 +42,7 @@ from ._merge import (
     SEPARATION,
     VALLEY_RATIO,
     MergeData,
+    _unit_area,
     merge_history,
     mixed_groups,
     pair_score,
@@ -537,6 +538,11 @@ def _fit_merge(
         if continuum[piece_sizes > 0].all():
             continuum[:] = False
     emit = np.flatnonzero(~continuum & (piece_sizes > 0))
+    if spectra is not None:
+        data.spectra = spectra
+        data.host_ok = ~continuum[lab]
+        if continuum.any():
+            data.continuum = np.array([_unit_area(m) for m in piece_means[continuum]])
     states = merge_history(data, lab, emit)
     bg = -1
     cont_members = [int(j) for j in np.flatnonzero(continuum)]
@@ -926,7 +932,8 @@ def segment(
                          continuity=float(continuity),
                          to_spectra=None if space is None else space.unit_area_of,
                          n_shape=0 if space is None else space.n_components,
-                         min_difference=float(min_difference))
+                         min_difference=float(min_difference),
+                         axis=np.asarray(arr[core].values, dtype=float) if spectral else None)
         model, k, scores, dropped, natural = _fit_merge(
             data, spectra, n_regions=n_regions, ks=ks, seed=seed, min_pixels=min_pixels,
         )
