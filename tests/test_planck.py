@@ -93,3 +93,144 @@ def test_planck_stage_in_process(tmp_path, rng):
     save_cube(cube.assign_attrs(units="counts"), tmp_path / "k.zarr")
     assert main(["process", str(tmp_path / "k.zarr"), "-o", str(tmp_path / "q.zarr"),
                  "--planck", "-q", "--no-figures"]) == 2
+
+
+def _counts_cube(rng, *, mu=1.10, temp=320.0, peak=2e4, gain=2.0, read=3.0, shape=(40, 50)):
+    """Raw detector counts of a Planck spectrum: Poisson electrons / gain + Gaussian read noise.
+
+    The photon-transfer law var = μ/gain + read² (Janesick, Photon Transfer, SPIE 2007) is
+    what the cube's noise model states; f converts counts/eV to photons s-1 m-2 eV-1.
+    """
+    from pmap.spectral import attach_noise_model
+
+    e = np.linspace(1.55, 1.75, 60)
+    de = np.gradient(e)  # channel widths, eV (uniform axis: the same as to_energy's edges)
+    phi = planck_flux(e, mu, temp)
+    f = phi[0] * de[0] / peak
+    counts = phi * de / f
+    ny, nx = shape
+    raw = rng.poisson(np.broadcast_to(counts * gain, (ny, nx, e.size))) / gain
+    raw = raw + rng.normal(size=raw.shape) * read
+    cube = xr.DataArray(
+        raw, dims=("y", "x", "energy"), name="intensity",
+        coords={"energy": ("energy", e, {"units": "eV"}),
+                "y": ("y", np.arange(ny) * 1.0, {"units": "um"}),
+                "x": ("x", np.arange(nx) * 1.0, {"units": "um"})},
+        attrs={"units": "counts", "gain_e_per_count": gain, "read_noise_counts": read,
+               "dark_level_counts": 0.0})
+    return attach_noise_model(cube.chunk({"y": 20, "x": 25})), f
+
+
+def test_noise_model_weights_give_honest_pulls(rng):
+    """Counts with a noise model: weights from it, absolute errors, pulls of s.d. 1.
+
+    n = 2000 pixels; s.e. of a sample s.d. 1/√(2n) = 0.016 (common practice), of a mean
+    1/√n. Measured (seeds 1, 2; gain 1): s.d. 0.983/1.005 (qfls), 0.983/1.003 (T).
+    """
+    from pmap.spectral import to_energy
+
+    cube, f = _counts_cube(rng)
+    c = to_energy(cube)  # counts per channel -> counts/eV, the noise scale follows
+    assert c.attrs["units"] == "counts/eV"
+    out = fit_planck(c, photon_flux_per_count=f, energy_range_ev=(1.55, 1.75)).compute()
+    assert "noise model" in out.attrs["uncertainty_method"]
+    assert (out["planck_status"] == 0).all()
+    n = 2000
+    for name, true in (("qfls", 1.10), ("carrier_temperature", 320.0)):
+        pull = ((out[name] - true) / out[f"{name}_err"]).values.ravel()
+        assert pull.size == n
+        assert abs(pull.std() - 1) < 3 / np.sqrt(2 * n), (name, pull.std())
+        assert abs(pull.mean()) < 3 / np.sqrt(n), (name, pull.mean())
+    # a true reduced chi-square: mean over n pixels of 58 dof, s.e. sqrt(2/58/n)
+    assert abs(float(out["planck_chi2_red"].mean()) - 1) < 3 * np.sqrt(2 / 58 / n)
+    # the same calibration given as a spectrum (one value per channel) and as an attr
+    spec = np.full(c.sizes["energy"], f)
+    small = c.isel(y=slice(0, 2), x=slice(0, 2))
+    a = fit_planck(small, photon_flux_per_count=spec, energy_range_ev=(1.55, 1.75)).compute()
+    b = fit_planck(small.assign_attrs(photon_flux_per_count=f),
+                   energy_range_ev=(1.55, 1.75)).compute()
+    np.testing.assert_allclose(a["qfls"], out["qfls"][:2, :2], rtol=1e-9)
+    np.testing.assert_allclose(b["carrier_temperature"], out["carrier_temperature"][:2, :2],
+                               rtol=1e-9)
+
+
+def test_counts_without_calibration_refused(rng):
+    from pmap.spectral import to_energy
+
+    cube, _ = _counts_cube(rng, shape=(2, 2))
+    with pytest.raises(StepError, match="photon_flux_per_count.*missing"):
+        fit_planck(to_energy(cube))
+    with pytest.raises(StepError, match="density per eV"):
+        fit_planck(cube, photon_flux_per_count=1.0)  # counts per channel
+    with pytest.raises(StepError, match="> 0"):
+        fit_planck(to_energy(cube), photon_flux_per_count=-1.0)
+
+
+@pytest.mark.parametrize("medium", ["vacuum", "air"])
+def test_flux_per_nm_converted_with_the_jacobian(medium):
+    """Φ_λ = Φ_E·|dE/dλ| = Φ_E·hc/λ² (vacuum λ); without the Jacobian T would be ~3 % off."""
+    from pmap.airvac import air_to_vacuum
+    from pmap.conventions import HC_EV_NM
+
+    lam = np.linspace(705.0, 800.0, 120)  # nm, in the cube's medium
+    lam_vac = np.asarray(air_to_vacuum(lam)) if medium == "air" else lam
+    e = HC_EV_NM / lam_vac
+    phi_e = planck_flux(e, 1.05, 300.0)
+    # dE/dλ_medium = hc/λ_vac² · dλ_vac/dλ_medium
+    dvac = np.gradient(lam_vac, lam)
+    phi_l = phi_e * HC_EV_NM / lam_vac**2 * dvac
+    cube = xr.DataArray(np.broadcast_to(phi_l, (2, 3, lam.size)).copy(),
+                        dims=("y", "x", "wavelength"), name="intensity",
+                        coords={"wavelength": ("wavelength", lam, {"units": "nm"}),
+                                "y": ("y", [0.0, 1.0], {"units": "um"}),
+                                "x": ("x", [0.0, 1.0, 2.0], {"units": "um"})},
+                        attrs={"units": "photons/(s m2 nm)", "wavelength_medium": medium})
+    out = fit_planck(cube, wavelength_range_nm=(705.0, 760.0)).compute()
+    assert "Jacobian" in out.attrs["planck_flux"]
+    np.testing.assert_allclose(out["qfls"], 1.05, atol=2e-5)
+    np.testing.assert_allclose(out["carrier_temperature"], 300.0, atol=0.05)
+    lo, hi = out.attrs["planck_window_ev"]
+    assert hi == pytest.approx(HC_EV_NM / float(lam_vac[0]), rel=1e-6)
+
+
+def test_window_nm_to_ev():
+    from pmap.conventions import HC_EV_NM
+    from pmap.planck import window_nm_to_ev
+
+    # vacuum: E = hc/λ with hc = 1239.84198 eV nm (CODATA 2018, exact SI constants)
+    lo, hi = window_nm_to_ev((700.0, 800.0), medium="vacuum")
+    assert (lo, hi) == pytest.approx((1239.84198 / 800.0, 1239.84198 / 700.0), rel=1e-8)
+    # air: n − 1 ≈ 2.75e-4 near 800 nm (Ciddor, Appl. Opt. 35, 1566 (1996); from memory)
+    lo_air, _ = window_nm_to_ev((700.0, 800.0), medium="air")
+    assert HC_EV_NM / lo_air - 800.0 == pytest.approx(800.0 * 2.75e-4, rel=0.02)
+    with pytest.raises(StepError):
+        window_nm_to_ev((800.0, 700.0))
+
+
+def test_cli_planck_window(tmp_path, rng, capsys):
+    import json
+
+    from pmap.cli import main
+    from pmap.io import save_cube
+    from pmap.results import open_result
+
+    cube, _ = _cube(1.05, 300.0, rng, shape=(4, 5), relative_noise=True)
+    cube = cube.assign_coords(y=("y", np.arange(4.0), {"units": "um"}),
+                              x=("x", np.arange(5.0), {"units": "um"}))
+    src = tmp_path / "c.zarr"
+    save_cube(cube, src)
+    # no cleaning steps: the default pipeline's remove_baseline (edges) would subtract the
+    # tail's own level from an absolute flux (reported to the pipeline's owner)
+    toml = tmp_path / "p.toml"
+    toml.write_text("[descriptors]\n[output]\nfigures = false\n")
+    assert main(["process", str(src), "-o", str(tmp_path / "r.zarr"), "--config", str(toml),
+                 "--planck-window", "1.60:1.75", "-q", "--no-figures"]) == 0
+    assert "Planck window: 1.6-1.75 eV" in capsys.readouterr().err
+    res = open_result(tmp_path / "r.zarr")
+    steps = json.loads(res.attrs["pmap_provenance"])["steps"]
+    assert [s["params"] for s in steps if s["step"] == "planck"] == [
+        {"energy_range_ev": [1.60, 1.75]}]
+    assert np.all(np.abs(res["qfls"] - 1.05) < 4 * res["qfls_err"])  # n = 20: 4σ
+    assert main(["process", str(src), "-o", str(tmp_path / "s.zarr"), "--planck-window",
+                 "1.75:1.6", "-q"]) == 2
+    assert "LOW must be below HIGH" in capsys.readouterr().err
