@@ -116,3 +116,66 @@ def test_corrupt_chunk_is_a_data_error(tmp_path, capsys):
     chunks[2].write_bytes(b[: len(b) // 2])
     code, err = _run(capsys, "process", str(p), "-o", str(tmp_path / "r.zarr"), "-q")
     assert code == 2 and "cannot be decoded" in err[-1] and len(err) == 1
+
+
+def _long_table(path, n_bad_row=None):
+    """A long text table (x, y, wavelength, intensity), 4 x 3 pixels x 40 channels; with
+    ``n_bad_row`` that data row holds a word instead of a number."""
+    lam = np.linspace(600.0, 700.0, 40)
+    rows = ["x,y,wavelength,intensity"]
+    for y in range(3):
+        for x in range(4):
+            rows += [f"{x},{y},{w:.3f},{100 + x + y + i}" for i, w in enumerate(lam)]
+    if n_bad_row is not None:
+        parts = rows[n_bad_row].split(",")
+        rows[n_bad_row] = ",".join(parts[:3] + ["n/a?"])
+    path.write_text("\n".join(rows) + "\n")
+    return path
+
+
+def _leftovers(folder):
+    return sorted(p.name for p in folder.iterdir() if ".partial" in p.name)
+
+
+def test_failed_text_conversion_leaves_nothing(tmp_path, capsys):
+    """A conversion that fails midway leaves no store under the output name (and no
+    temporary one): issue 13, "written to a temporary name and renamed when complete"."""
+    src = _long_table(tmp_path / "scan.csv", n_bad_row=300)
+    out = tmp_path / "scan.zarr"
+    assert cli.main(["convert", str(src), str(out)]) == 2
+    assert "error" in capsys.readouterr().err
+    assert not out.exists() and _leftovers(tmp_path) == []
+    # and a good file then converts without --overwrite: nothing blocks the rerun
+    _long_table(src)
+    assert cli.main(["convert", str(src), str(out), "-O", "wavelength_medium=air"]) == 0
+    assert pmap.open_cube(out).shape == (3, 4, 40)
+
+
+def test_failed_overwrite_keeps_the_old_output(tmp_path, capsys):
+    """With --overwrite, the old output is replaced only by a complete new one."""
+    good = _long_table(tmp_path / "good.csv")
+    out = tmp_path / "cube.zarr"
+    assert cli.main(["convert", str(good), str(out), "-O", "wavelength_medium=air"]) == 0
+    before = pmap.open_cube(out).values.copy()
+    bad = _long_table(tmp_path / "bad.csv", n_bad_row=200)
+    assert cli.main(["convert", str(bad), str(out), "--overwrite"]) == 2
+    np.testing.assert_array_equal(pmap.open_cube(out).values, before)
+    assert _leftovers(tmp_path) == []
+
+
+def test_interrupted_cube_save_leaves_nothing(tmp_path, monkeypatch):
+    """save_cube interrupted while writing (Ctrl-C in the middle of the chunks): no output
+    under the final name, no temporary store left."""
+    from pmap.io import _write
+
+    cube = pmap.make_cube(np.ones((4, 5, 16), np.float32), wavelength_nm=np.arange(16) + 500.0)
+
+    def broken(ds, out, **kw):
+        out.mkdir()
+        (out / "zarr.json").write_text("{}")
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(_write, "write_zarr", broken)
+    with pytest.raises(KeyboardInterrupt):
+        pmap.save_cube(cube, tmp_path / "c.zarr")
+    assert list(tmp_path.iterdir()) == []

@@ -22,7 +22,7 @@ from ..provenance import PROVENANCE_ATTR, get_provenance
 from ._common import check_input, detect_format, finish_cube, read_sidecar
 from ._readers import read_netcdf, read_npy, read_tiff, read_zarr
 from ._text import text_to_zarr
-from ._write import output_format, save_cube
+from ._write import _same_or_inside, atomic_output, output_format, prepare_output, save_cube
 
 
 def _read_text(path: Path, options: dict[str, Any]) -> xr.Dataset:
@@ -187,12 +187,15 @@ def convert(
     p = check_input(src)
     out = Path(dst).expanduser()
     if (src_fmt or detect_format(p)) == "text" and output_format(out, fmt) == "zarr":
-        written = Path(
-            text_to_zarr(p, out, overwrite=overwrite, zarr_format=zarr_format, **read_options)
-        )
-        source = "option" if read_options.get("wavelength_medium") is not None else "assumed"
-        _record_medium(written, source)
-        return written
+        out = prepare_output(out, overwrite=overwrite, attrs={}, remove=False)
+        if _same_or_inside(out, p):
+            raise OutputExistsError(f"refusing to write {out}: it is the input ({p})")
+        with atomic_output(out) as tmp:  # a failed conversion leaves nothing behind
+            text_to_zarr(p, tmp, overwrite=True, zarr_format=zarr_format, **read_options)
+            source = "option" if read_options.get("wavelength_medium") is not None \
+                else "assumed"
+            _record_medium(tmp, source)
+        return out
     if p.is_dir() and output_format(out, fmt) == "netcdf" and _is_result(p):
         return _result_to_netcdf(p, out, overwrite=overwrite)
     cube = open_cube(p, fmt=src_fmt, **read_options)
@@ -223,6 +226,8 @@ def _netcdf_attr(v: Any) -> Any:
 
 def _result_to_netcdf(src: Path, out: Path, *, overwrite: bool) -> Path:
     """Every map of a result store into one NetCDF4 file (lazily, chunk by chunk)."""
+    if _same_or_inside(out, src):
+        raise OutputExistsError(f"refusing to write {out}: it is the input ({src})")
     if out.exists() and not overwrite:
         raise OutputExistsError(f"{out} exists; pass --overwrite to replace it")
     ds = xr.open_zarr(str(src), consolidated=None)
@@ -246,13 +251,8 @@ def _result_to_netcdf(src: Path, out: Path, *, overwrite: bool) -> Path:
             var.attrs.pop("axis", None)
         if name in ds.dims:  # CF §2.5.1: coordinate variables carry no _FillValue
             encoding[name] = {"_FillValue": None}
-    tmp = out.with_name(out.name + ".partial")
-    try:
+    with atomic_output(out) as tmp:  # written whole or not at all
         ds.to_netcdf(tmp, engine="h5netcdf", encoding=encoding)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    os.replace(tmp, out)  # written whole or not at all
     return out
 
 

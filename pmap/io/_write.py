@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import shutil
 import warnings
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -35,11 +37,14 @@ def _same_or_inside(a: Path, b: Path) -> bool:
     return a == b or b in a.parents or a in b.parents
 
 
-def prepare_output(path: str | os.PathLike, *, overwrite: bool, attrs: dict[str, Any]) -> Path:
+def prepare_output(path: str | os.PathLike, *, overwrite: bool, attrs: dict[str, Any],
+                   remove: bool = True) -> Path:
     """Check that ``path`` may be written, removing an old output if ``overwrite``.
 
     Raises OutputExistsError when the path exists and ``overwrite`` is False, or
-    when it is (or contains, or lies inside) the input recorded in ``attrs``.
+    when it is (or contains, or lies inside) the input recorded in ``attrs``. With
+    ``remove=False`` an old output is left in place (:func:`atomic_output` replaces it
+    only once the new one is complete).
     """
     out = Path(path).expanduser()
     src = get_provenance(attrs).get("input", {}).get("path")
@@ -50,12 +55,42 @@ def prepare_output(path: str | os.PathLike, *, overwrite: bool, attrs: dict[str,
     if out.exists() or out.is_symlink():
         if not overwrite:
             raise OutputExistsError(f"output {out} exists; pass overwrite=True to replace it")
-        if out.is_dir() and not out.is_symlink():
-            shutil.rmtree(out)
-        else:
-            out.unlink()
+        if remove:
+            _remove(out)
     out.parent.mkdir(parents=True, exist_ok=True)
     return out
+
+
+def _remove(path: Path) -> None:
+    if path.is_dir() and not path.is_symlink():
+        shutil.rmtree(path)
+    elif path.exists() or path.is_symlink():
+        path.unlink()
+
+
+def partial_name(out: Path) -> Path:
+    """The temporary name a conversion writes ``out`` under (same folder, hidden)."""
+    return out.with_name(f".{out.name}.partial-{os.getpid()}")
+
+
+@contextlib.contextmanager
+def atomic_output(out: Path) -> Iterator[Path]:
+    """Write under a temporary name, then rename to ``out``: whole or not at all.
+
+    Yields the temporary path. On success an old ``out`` (checked beforehand by
+    :func:`prepare_output` with ``remove=False``) is replaced; on any error or
+    interruption the temporary output is removed and ``out`` is untouched.
+    """
+    tmp = partial_name(out)
+    _remove(tmp)
+    try:
+        yield tmp
+    except BaseException:
+        _remove(tmp)
+        raise
+    if out.exists() or out.is_symlink():
+        _remove(out)
+    os.replace(tmp, out)
 
 
 def _netcdf_safe(attrs: dict[str, Any]) -> dict[str, Any]:
@@ -146,11 +181,18 @@ def save_cube(
     out = Path(path).expanduser()
     kind = output_format(out, fmt)
     cube = validate_cube(cube) if cube.name != CUBE_NAME or cube.chunks is None else cube
-    out = prepare_output(out, overwrite=overwrite, attrs=cube.attrs)
+    out = prepare_output(out, overwrite=overwrite, attrs=cube.attrs, remove=False)
     ds = cube_dataset(cube)
-    if kind == "zarr":
-        write_zarr(ds, out, zarr_format=zarr_format)
-        return out
+    with atomic_output(out) as tmp:
+        if kind == "zarr":
+            write_zarr(ds, tmp, zarr_format=zarr_format)
+        else:
+            _write_netcdf(ds, tmp)
+    return out
+
+
+def _write_netcdf(ds: xr.Dataset, out: Path) -> None:
+    """The cube Dataset as NetCDF4 (attrs made storable, chunks kept)."""
     ds.attrs = {}
     ds[CUBE_NAME].attrs = _netcdf_safe(ds[CUBE_NAME].attrs)
     enc: dict[str, Any] = {}
@@ -161,7 +203,4 @@ def save_cube(
     try:
         ds.to_netcdf(out, engine="h5netcdf", encoding={CUBE_NAME: enc})
     except (TypeError, ValueError) as exc:
-        if out.exists():
-            out.unlink()
-        raise FormatError(f"cannot write {out.name} as NetCDF: {exc}") from exc
-    return out
+        raise FormatError(f"cannot write NetCDF: {exc}") from exc
