@@ -130,7 +130,8 @@ def _add_read_options(p: argparse.ArgumentParser) -> None:
 def cmd_info(args: argparse.Namespace) -> int:
     from .io import cube_info, format_cube_info
 
-    info = cube_info(args.path, value_range=not args.no_range, **_read_options(args))
+    info = cube_info(args.path, value_range=not args.no_range, full_range=args.full_range,
+                     **_read_options(args))
     print(format_cube_info(info))
     return 0
 
@@ -570,8 +571,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("info", help="describe a cube: dims, spectral range, pixel size, chunks")
     p.add_argument("path")
-    p.add_argument("--no-range", action="store_true",
-                   help="skip the min/max scan (instant on huge files)")
+    p.add_argument("--no-range", action="store_true", help="no value range at all")
+    p.add_argument("--full-range", action="store_true",
+                   help="value range from every chunk (one full read); by default a large "
+                   "cube's range comes from the file's stored actual_range or a stated sample "
+                   "of chunks spread over the map")
     _add_read_options(p)
     p.set_defaults(func=cmd_info)
 
