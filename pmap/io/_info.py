@@ -39,6 +39,64 @@ def _stored_chunks(cube) -> Any:
     return None
 
 
+#: cubes up to this many bytes (in memory) get a full min/max scan by default
+FULL_SCAN_BYTES = 64 * 2**20
+#: the sampled value range reads about this many bytes, spread over the map
+SAMPLE_BYTES = 32 * 2**20
+
+
+def _stored_range(attrs: dict) -> tuple[float, float] | None:
+    """(min, max) stated in the file: the CF ``actual_range`` attribute, if well formed."""
+    v = attrs.get("actual_range")
+    try:
+        lo, hi = (float(t) for t in np.asarray(v, dtype=float).ravel())
+    except (TypeError, ValueError):
+        return None
+    return (lo, hi) if np.isfinite(lo) and np.isfinite(hi) and lo <= hi else None
+
+
+def _value_range(cube, full: bool) -> dict[str, Any]:
+    """Value range of a cube: stored, full scan (small cubes or ``full``) or a chunk sample.
+
+    Returns ``value_min``, ``value_max`` and ``value_range_source``: "stored"
+    (CF ``actual_range`` in the file), "full" (every chunk read) or "sample"
+    (``value_range_sample`` = fraction of the spectra read: whole stored chunks
+    spread evenly over the stored chunk grid, about ``SAMPLE_BYTES``).
+    """
+    stored = _stored_range(cube.attrs)
+    if stored is not None and not full:
+        return {"value_min": stored[0], "value_max": stored[1], "value_range_source": "stored"}
+    data = cube.data
+    if full or not isinstance(data, da.Array) or data.nbytes <= FULL_SCAN_BYTES:
+        lo, hi = dask.compute(da.nanmin(data), da.nanmax(data)) if isinstance(
+            data, da.Array) else (np.nanmin(data), np.nanmax(data))
+        return {"value_min": float(lo), "value_max": float(hi), "value_range_source": "full"}
+    # sample units: the stored chunks (a read touches only those), else the dask chunks
+    stored_chunks = _stored_chunks(cube) or {}
+    unit = [min(int(stored_chunks.get(d) or max(c)), n)
+            for d, c, n in zip(cube.dims, data.chunks, data.shape)]
+    sdim = cube.dims.index(spectral_dim(cube))
+    unit[sdim] = data.shape[sdim]  # whole spectra
+    grid = [-(-n // u) for n, u in zip(data.shape, unit)]
+    n_units = int(np.prod(grid))
+    unit_bytes = max(int(np.prod(unit)) * data.dtype.itemsize, 1)
+    k = max(1, min(n_units, SAMPLE_BYTES // unit_bytes))
+    picks = np.unique(np.linspace(0, n_units - 1, k).round().astype(int))
+    parts = []
+    for p in picks:
+        idx = np.unravel_index(int(p), grid)
+        parts.append(data[tuple(slice(i * u, (i + 1) * u) for i, u in zip(idx, unit))])
+    mins_maxs = dask.compute(*[(da.nanmin(b), da.nanmax(b)) for b in parts])
+    lo = np.nanmin([m[0] for m in mins_maxs])
+    hi = np.nanmax([m[1] for m in mins_maxs])
+    read = sum(int(np.prod(b.shape)) for b in parts)
+    return {
+        "value_min": float(lo), "value_max": float(hi), "value_range_source": "sample",
+        "value_range_sample": read / max(int(np.prod(data.shape)), 1),
+        "value_range_chunks": (len(parts), n_units),
+    }
+
+
 def _text_info(path, fmt: str, value_range: bool, options: dict[str, Any]) -> dict[str, Any]:
     spec = inspect_text(path, **options)
     layout = scan_text(spec, value_range=value_range, **options)
@@ -59,6 +117,7 @@ def _text_info(path, fmt: str, value_range: bool, options: dict[str, Any]) -> di
         "rows": layout.n_rows,
         "value_min": layout.value_min,
         "value_max": layout.value_max,
+        "value_range_source": "full" if value_range else None,
         "units": options.get("units", "counts"),
         "metadata": {},
         "attrs": {},
@@ -71,7 +130,8 @@ def _text_info(path, fmt: str, value_range: bool, options: dict[str, Any]) -> di
 
 
 def cube_info(
-    path: str | os.PathLike, *, value_range: bool = True, **read_options: Any
+    path: str | os.PathLike, *, value_range: bool = True, full_range: bool = False,
+    **read_options: Any
 ) -> dict[str, Any]:
     """Summary of a map file: dims, shape, axes, pixel size, chunks, value range, metadata.
 
@@ -80,8 +140,15 @@ def cube_info(
     path : str or path-like
         Any file :func:`pmap.io.open_cube` reads.
     value_range : bool
-        Compute the minimum and maximum intensity (chunk by chunk, bounded
-        memory; one full read of the data). False skips it for huge files.
+        Give the minimum and maximum intensity (in the cube's units). For a
+        binary cube: the CF ``actual_range`` attribute when the file states one,
+        else a full scan (chunk by chunk, bounded memory) of a cube of up to
+        ``FULL_SCAN_BYTES``, else the range of a sample of whole chunks spread
+        over the map (about ``SAMPLE_BYTES`` read, so info stays fast on any
+        size); ``value_range_source`` says which ("stored", "full", "sample").
+        Text tables are read whole (the scan that finds the grid). False skips it.
+    full_range : bool
+        Always scan every chunk (exact range of huge files; one full read).
     **read_options
         Read options of :func:`pmap.io.open_cube`.
 
@@ -92,6 +159,8 @@ def cube_info(
         ``dtype``, ``spectral_dim``, ``spectral`` / ``y`` / ``x`` (min, max, n,
         step, units; positions in µm), ``pixel_size_um``, ``extent_um``
         (y, x), ``chunks``, ``stored_chunks``, ``value_min``, ``value_max``,
+        ``value_range_source`` (and for a sample ``value_range_sample``, the
+        fraction of spectra read, and ``value_range_chunks``, (read, total)),
         ``units``, ``medium`` (wavelength axes only: ``{"medium": "air"|"vacuum",
         "source": "data"|"sidecar"|"option"|"assumed"}``), ``metadata`` (known
         acquisition attrs), ``attrs`` (the rest), ``provenance`` (decoded record).
@@ -102,7 +171,10 @@ def cube_info(
         opts = {k: v for k, v in read_options.items() if k in (*TEXT_OPTIONS, "chunk_rows")}
         info = _text_info(p, fmt, value_range, opts)
     else:
-        cube = open_cube(p, fmt=fmt, **read_options)
+        # rechunking with no distributed client uses dask's "tasks" method; saying so
+        # up front spares dask importing distributed to look for a client (~0.5-1 s)
+        with dask.config.set({"array.rechunk.method": "tasks"}):
+            cube = open_cube(p, fmt=fmt, **read_options)
         sdim = spectral_dim(cube)
         info = {
             "dims": list(cube.dims),
@@ -119,8 +191,19 @@ def cube_info(
             "units": cube.attrs.get("units"),
         }
         if value_range:
-            lo, hi = dask.compute(da.nanmin(cube.data), da.nanmax(cube.data))
-            info["value_min"], info["value_max"] = float(lo), float(hi)
+            sample_cube = cube
+            st = info["stored_chunks"] or {}
+            if (not full_range and _stored_range(cube.attrs) is None
+                    and cube.data.nbytes > FULL_SCAN_BYTES and "chunks" not in read_options
+                    and st.get("y") and st.get("x")
+                    and (st["y"], st["x"]) != (info["chunks"]["y"], info["chunks"]["x"])):
+                # the sample reads stored chunks: a view chunked like the file, so a
+                # sampled stored chunk does not pull in the whole processing chunk
+                with dask.config.set({"array.rechunk.method": "tasks"}):
+                    sample_cube = open_cube(p, fmt=fmt, chunks={"y": int(st["y"]),
+                                                                "x": int(st["x"])},
+                                            **read_options)
+            info.update(_value_range(sample_cube, full_range))
         attrs = {
             k: v for k, v in cube.attrs.items() if k not in (PROVENANCE_ATTR, "units", "long_name")
         }
@@ -161,6 +244,17 @@ def _medium_text(medium: dict[str, str]) -> str:
     return f"{medium.get('medium', 'air')} wavelengths ({_MEDIUM_SOURCE_TEXT.get(src, src)})"
 
 
+def _range_source_text(info: dict[str, Any]) -> str:
+    src = info.get("value_range_source", "full")
+    if src == "stored":
+        return "stated in the file (actual_range); --full-range to scan every chunk"
+    if src == "sample":
+        k, n = info["value_range_chunks"]
+        return (f"SAMPLE of {k} of {n} chunks, {100 * info['value_range_sample']:.2g} % of the "
+                "spectra; --full-range to scan every chunk")
+    return "full scan"
+
+
 def format_cube_info(info: dict[str, Any]) -> str:
     """Human-readable text of a :func:`cube_info` dict (for ``plcube info``)."""
     lines = [
@@ -198,7 +292,8 @@ def format_cube_info(info: dict[str, Any]) -> str:
     if info.get("rows") is not None:
         lines.append(f"  rows          {info['rows']}")
     if info.get("value_min") is not None:
-        lines.append(f"  values        {info['value_min']:.6g} .. {info['value_max']:.6g}")
+        lines.append(f"  values        {info['value_min']:.6g} .. {info['value_max']:.6g}"
+                     f" ({_range_source_text(info)})")
     for k, v in {**info.get("metadata", {}), **info.get("attrs", {})}.items():
         lines.append(f"  {k:<13} {v}")
     prov = info.get("provenance") or {}
