@@ -101,7 +101,7 @@ figcaption{font-size:.8em;color:#444;margin-top:4px}
 pre{background:#f6f8fa;border:1px solid #e1e6eb;padding:8px;overflow:auto;font-size:.8em;
  max-height:420px}
 details summary{cursor:pointer;color:#0f4c81}
-code{font-size:.9em;background:#f1f3f5;padding:0 3px;border-radius:3px}
+code{font-size:.95em;background:#f1f3f5;padding:0 3px;border-radius:3px}
 footer{margin-top:40px;font-size:.8em;color:#666}
 @media print{nav{display:none}.grid{display:block}figure{break-inside:avoid;margin-bottom:10px}}
 """
@@ -125,6 +125,18 @@ def _num(v: Any, digits: int = 4) -> str:
     if f == int(f) and abs(f) < 1e15:
         return f"{int(f)}"
     return f"{f:.{digits}g}"
+
+
+def _mean_sd(mean: float, sd: float) -> str:
+    """``mean ± sd`` with the s.d. to 2 significant digits and the mean to the same place."""
+    if not np.isfinite(mean):
+        return "–"
+    if not (np.isfinite(sd) and sd > 0):
+        return _num(mean, 5)
+    place = int(np.floor(np.log10(sd))) - 1  # the s.d.'s second significant digit
+    decimals = max(-place, 0)
+    m, sdr = round(mean, -place), round(sd, -place)
+    return f"{m:.{decimals}f} ± {sdr:.{decimals}f}"
 
 
 def _kv_table(rows: Sequence[tuple[str, Any]], raw: bool = False) -> str:
@@ -376,6 +388,7 @@ def _section_caveats(ds: xr.Dataset, warns: list[str]) -> str:
     med = _medium_warning(ds)
     if med:
         items.append(med)
+    items.extend(_region_warnings(ds))
     for key in ("component_notice",):
         if ds.attrs.get(key):
             items.append(str(ds.attrs[key]))
@@ -475,6 +488,84 @@ def _figure_order(path: Path) -> tuple[int, str]:
     return len(_MAIN) + len(_QUALITY), stem
 
 
+_MAPS_NOTE = ("<p>Every map: y up with the origin (smallest x and y) at the lower left, axes "
+              "in µm, colour limits at the 2nd and 98th percentiles unless the colour bar says "
+              "otherwise (the pixels beyond them are counted on the bar), grey where a pixel has "
+              "no value (NaN, masked or no signal).</p>")
+
+
+def _skipped_maps(ds: xr.Dataset) -> str:
+    """A note naming the float maps that have no figure because every pixel is NaN."""
+    empty = []
+    for name, v in ds.data_vars.items():
+        if v.dtype.kind != "f" or not {"y", "x"} <= set(v.dims) or v.ndim > 3 \
+                or any(d in v.dims for d in ("energy", "wavelength")):
+            continue
+        if not bool(np.isfinite(np.asarray(v.values)).any()):
+            empty.append(f"{name} ({v.attrs.get('long_name', '')})".replace(" ()", ""))
+    if not empty:
+        return ""
+    return _box("note", "<b>Not drawn, every pixel is NaN:</b> " + _e("; ".join(empty)))
+
+
+def _region_warnings(ds: xr.Dataset, limit: float = 2.0) -> list[str]:
+    """Regions whose mean reduced χ² exceeds ``limit``: the line model misses their spectra."""
+    if "chi2_red_mean" not in ds or "region_pixel_count" not in ds:
+        return []
+    rdim = ds["chi2_red_mean"].dims[0]
+    codes = np.asarray(ds[rdim].values).astype(int)
+    names = ({int(c): str(t) for c, t in zip(codes, np.asarray(ds["region_name"].values))}
+             if "region_name" in ds.coords else {})
+    chi = np.asarray(ds["chi2_red_mean"].values, float)
+    peaks = ds.attrs.get("fit_n_peaks")
+    out = []
+    for c, x in zip(codes, chi):
+        if np.isfinite(x) and x > limit:
+            shape = f" ({peaks} peak{'s' if peaks != 1 else ''})" if peaks else ""
+            out.append(f"region {c} ({names.get(int(c), '')}): mean reduced chi-square {x:.3g} "
+                       f"(above {limit:g}): the fitted line shape{shape} does not describe "
+                       "these spectra (compare the region's mean spectrum; fit more peaks "
+                       "with --peaks, or another --model)")
+    return out
+
+
+def _find_count(results: Mapping[str, Any], words: Sequence[str]) -> str | None:
+    """``"key: value"`` of the first numeric result whose key contains one of ``words``."""
+    for k, v in results.items():
+        if any(w in k.lower() for w in words) and isinstance(v, (int, float, list)) \
+                and not isinstance(v, bool):
+            return f"{k}: {v}"
+    return None
+
+
+def _qc_counts(steps: Sequence[Mapping[str, Any]]) -> list[tuple[str, Any]]:
+    """Spikes, hot channels and calibration residuals as recorded by the steps, or why not."""
+    by: dict[str, list] = {}
+    for st in steps:
+        by.setdefault(str(st.get("step", "")), []).append(st)
+    rows: list[tuple[str, Any]] = []
+    sp = by.get("remove_spikes")
+    if sp:
+        got = _find_count(sp[-1].get("results", {}), ("n_", "count", "number"))
+        rows.append(("cosmic spikes replaced", got or "not recorded in the store (the step "
+                     "records its parameters, not its count)"))
+    else:
+        rows.append(("cosmic spikes replaced", "no spike removal in this run"))
+    bp = by.get("mask_bad_pixels")
+    if bp:
+        got = _find_count(bp[-1].get("results", {}), ("hot", "dead", "saturat", "channel"))
+        rows.append(("hot / dead channels, saturated values", got or "not recorded in the "
+                     "store (masked pixels are counted above)"))
+    cal = [st for name, sts in by.items() if "calib" in name for st in sts]
+    for st in cal:
+        got = _find_count(st.get("results", {}), ("rms", "residual", "uncertainty", "sigma"))
+        rows.append((f"calibration residuals ({st.get('step')})", got or "not recorded"))
+    if not cal:
+        rows.append(("calibration residuals", "no calibration step in this run (the spectral "
+                     "axis is used as stored)"))
+    return rows
+
+
 def _region_table(ds: xr.Dataset) -> str:
     if "region_pixel_count" not in ds:
         return ""
@@ -507,7 +598,7 @@ def _region_table(ds: xr.Dataset) -> str:
             sel = {d: 0 for d in m.dims if d != rdim}
             mv = float(np.asarray(m.isel(sel).values)[i])
             sv = float(np.asarray(s.isel(sel).values)[i]) if s is not None else float("nan")
-            row.append(f"{_num(mv, 5)} ± {_num(sv, 2)}")
+            row.append(_mean_sd(mv, sv))
         rows.append(row)
     n_num = len(header)
     return _table(header, rows, num_cols=tuple(range(3, n_num)))
@@ -530,7 +621,8 @@ def _section_regions(ds: xr.Dataset, figs: list[Path]) -> str:
         out.append("<p>Colours are the same in the region map, the mean spectra and the viewer "
                    f"(Okabe &amp; Ito palette); grey ({_e(_style.NAN_COLOUR)}) is no emission "
                    "detected, NaN or masked.</p>")
-    out.append(_grid([_figure(f) for f in figs]))
+    # the region map carries a legend of long names: a whole row, so the names stay legible
+    out.append(_grid([_figure(f, wide=f.stem == "region") for f in figs]))
     return "".join(out)
 
 
@@ -612,27 +704,20 @@ def _section_qc(ds: xr.Dataset, figs: list[Path]) -> str:
     for v in ds.data_vars:
         if v.endswith("_mask") and {"y", "x"} <= set(ds[v].dims):
             rows.append((f"{v} (true values)", int(np.asarray(ds[v].values).sum())))
-    recorded = False
-    for step in get_provenance(ds.attrs).get("steps", []):
+    steps = get_provenance(ds.attrs).get("steps", [])
+    rows.extend(_qc_counts(steps))
+    for step in steps:
         name = step.get("step", "")
-        if name in ("mask_bad_pixels", "remove_spikes", "calibrate_wavelength", "calibrate",
-                    "calibrate_intensity", "remove_dark", "remove_baseline", "attach_noise_model",
-                    "hot_channels") or "calib" in name or "spike" in name or "mask" in name:
+        if name in ("mask_bad_pixels", "remove_spikes", "remove_dark", "remove_baseline",
+                    "attach_noise_model") or "calib" in name or "spike" in name \
+                or "mask" in name:
             res = step.get("results")
             params = step.get("params", {})
             text = ", ".join(f"{k} = {v}" for k, v in params.items())
             if res:
-                recorded = True
                 text += " — " + "; ".join(f"{k}: {v}" for k, v in res.items())
-            rows.append((name, text or "(default parameters)"))
-    if not rows:
-        out.append("<p>The store records no quality-control step.</p>")
-    else:
-        out.append(_kv_table(rows))
-    if not recorded:
-        out.append(_box("note", "The cleaning steps of this run recorded their parameters but "
-                        "no counts (spikes replaced, hot channels found, calibration residuals); "
-                        "those counts are not in the store."))
+            rows.append((f"step {name}", text or "(default parameters)"))
+    out.append(_kv_table(rows))
     out.append(_grid([_figure(f, wide=True) for f in figs]))
     return "".join(out)
 
@@ -759,8 +844,9 @@ def write_html_report(
             ("input", "Input", _section_input(ds, store, run_time_s)),
             ("summary", "Fit summary", summary),
             ("caveats", "Warnings & caveats", _section_caveats(ds, warns)),
-            ("maps", "Maps", ('<h2 id="maps">Maps</h2>' + _grid(
-                [_figure(f) for f in groups.get("maps", []) + groups.get("other", [])]))
+            ("maps", "Maps", ('<h2 id="maps">Maps</h2>' + _MAPS_NOTE + _grid(
+                [_figure(f) for f in groups.get("maps", []) + groups.get("other", [])])
+                + _skipped_maps(ds))
              if groups.get("maps") or groups.get("other") else ""),
             ("physics", "Absolute PL", ('<h2 id="physics">Absolute PL (generalized Planck law)'
                                         '</h2>' + _grid([_figure(f) for f in
