@@ -30,15 +30,12 @@ from . import _style
 from ._version import __version__
 from .errors import StepError
 from .report import MAX_SLICES, plot_labels, plot_map
-from .series import LAWS, POWER_CLASS_LEGEND, evaluate_law
+from .series import LAW_TITLES, LAWS, POWER_CLASS_LEGEND, evaluate_law
 
 __all__ = ["write_series_figures", "plot_series_by_region", "region_series", "is_series_store",
            "LAW_TITLES"]
 
 DPI = 120
-#: Printed names of the laws.
-LAW_TITLES = {"varshni": "Varshni", "bose_einstein": "Bose–Einstein", "linewidth": "Linewidth",
-              "arrhenius": "Arrhenius", "power_law": "Power law"}
 _CLASS_NAMES = {-1: "no converged fit", 0: "k < 1", 1: "1 ≤ k ≤ 2", 2: "k > 2"}
 
 
@@ -75,16 +72,9 @@ def _stem(name: str, suffix: str) -> str:
 
 
 def _param_title(law: str, name: str, v: xr.DataArray, suffix: str) -> str:
-    param = name.removeprefix(law + "_")
-    err = param.endswith("_err")
-    param = param.removesuffix("_err")
-    lw = LAWS[law]
-    desc = lw.descriptions[lw.params.index(param)] if param in lw.params else param
-    units = _style.unit_text(v.attrs.get("units"))
-    text = f"{LAW_TITLES[law]} {param}" + (" 1σ uncertainty" if err else f": {desc}")
-    text += f" ({units})" if units else ""
-    text += " — converged fits" + (f" — {suffix}" if suffix else "")
-    return text
+    """The map's title as the viewer names its layer (:func:`pmap._style.map_title`)."""
+    return (_style.map_title(name, attrs=v.attrs) + " — converged fits"
+            + (f" — {suffix}" if suffix else ""))
 
 
 def _region_groups(ds: xr.Dataset, sl: dict) -> tuple[list[tuple[int, str, np.ndarray]], str]:
@@ -283,7 +273,7 @@ def write_series_figures(ds: xr.Dataset, out_dir: str | Path, *, prefix: str = "
         sfx = f" — {suffix}" if suffix else ""
         if bool(np.isfinite(chi.values).any()):
             written.append(plot_map(chi, out / f"{prefix}{_stem(f'{law}_chi2_red', suffix)}.png",
-                                    title=f"{LAW_TITLES[law]} fit: reduced χ²{sfx}"))
+                                    title=_style.map_title(chi.name, attrs=chi.attrs) + sfx))
         written.append(plot_labels(st, out / f"{prefix}{_stem(f'{law}_status', suffix)}.png",
                                    title=f"{LAW_TITLES[law]} fit status{sfx}"))
         if "power_law_class" in ds.data_vars:

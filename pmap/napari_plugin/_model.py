@@ -33,6 +33,8 @@ __all__ = [
     "map_label",
     "REGION_COLOURS",
     "region_colour",
+    "discrete_colours",
+    "series_at",
     "map_names",
     "result_layers",
     "cube_layer",
@@ -276,7 +278,10 @@ def result_layers(ds: xr.Dataset, *, path: str | Path | None = None) -> list[tup
     grid = grid_of(ds)
     entries: list[tuple[int, tuple]] = []
     meta_base = {"kind": "result", "path": str(path) if path is not None else None}
-    primary = next((p for p in _PRIMARY if p in ds.data_vars), None)
+    law = str(ds.attrs.get("series_law", ""))
+    first = f"{law}_{_series_params(law)[0]}" if _series_params(law) else None
+    primary = first if first in ds.data_vars else next(
+        (p for p in _PRIMARY if p in ds.data_vars), None)
     for name in map_names(ds):
         var = ds[name]
         if name == "intensity":
@@ -284,36 +289,30 @@ def result_layers(ds: xr.Dataset, *, path: str | Path | None = None) -> list[tup
         var = var.transpose(..., "y", "x")
         split = next((d for d in _SPLIT_DIMS if d in var.dims), None)
         units = var.attrs.get("units")
-        if name in ("region", "fit_status"):
-            lab = np.asarray(var.values).astype(np.int32)
-            offset = 2 if name == "region" else 1
-            data = lab + offset
-            meta = {
-                **meta_base,
-                "variable": name,
-                "label_offset": offset,
-                "legend": var.attrs.get("legend"),
-            }
-            if name == "region":
-                colours = {r + offset: region_colour(r)
-                           for r in range(-1, max(int(lab.max()) + 1, 1))}
-            else:
-                flags = _style.discrete_levels(lab, var.attrs) or sorted(set(np.unique(lab)))
-                colours = {c + offset: col
-                           for c, col in _style.status_colours(flags, var.attrs).items()}
-            kw = {
-                "name": map_label(name, attrs=var.attrs),
-                "metadata": {META_KEY: meta},
-                "opacity": 0.7,
-                "colormap": {0: "transparent", None: _style.NAN_COLOUR, **colours},
-                "visible": False,
-                **_placement(grid, var.dims[:-2]),
-            }
-            entries.append((3 if name == "region" else 0, (data, kw, "labels")))
-            continue
         for k in range(var.sizes[split]) if split else [None]:
             v = var.isel({split: k}) if split else var
             index = v[split].values.item() if split and split in v.coords else k
+            colours = discrete_colours(name, v) if v.size <= _MAX_DISCRETE_PX else None
+            if colours is not None:
+                # integer maps (regions, status flags, iteration counts): one colour per
+                # value, as in the figures; label = value + offset (label 0, NaN: transparent)
+                offset, colours = colours
+                vals = np.asarray(v.values, dtype=float)
+                data = np.where(np.isfinite(vals), vals + offset, 0).astype(np.int32)
+                meta = {**meta_base, "variable": name, "dim": split, "index": k,
+                        "label_offset": offset, "legend": var.attrs.get("legend"),
+                        "levels": sorted(c - offset for c in colours)}
+                kw = {
+                    "name": map_label(name, attrs=var.attrs, dim=split if split else None,
+                                      index=index if split else None),
+                    "metadata": {META_KEY: meta},
+                    "opacity": 0.7 if name == "region" else 1.0,
+                    "colormap": {0: "transparent", None: _style.NAN_COLOUR, **colours},
+                    "visible": False,
+                    **_placement(grid, v.dims[:-2]),
+                }
+                entries.append((3 if name == "region" else 0, (data, kw, "labels")))
+                continue
             arr = v.data
             lim = robust_limits(v.values if v.size <= 4_000_000 else v[..., ::4, ::4].values)
             meta = {**meta_base, "variable": name, "dim": split, "index": k}
@@ -352,6 +351,47 @@ def result_layers(ds: xr.Dataset, *, path: str | Path | None = None) -> list[tup
         entries.append((-1, (nan.astype(np.int32), kw, "labels")))
     entries.sort(key=lambda e: e[0])  # stable: bottom of the layer list first
     return [e[1] for e in entries]
+
+
+#: Integer maps above this many pixels are drawn as continuous images (not loaded to look).
+_MAX_DISCRETE_PX = 50_000_000
+
+
+def discrete_colours(name: str, var: xr.DataArray) -> tuple[int, dict[int, str]] | None:
+    """(label offset, {label: hex colour}) of an integer map, or None for a continuous one.
+
+    The figures' rule (:func:`pmap.report.plot_labels`, :func:`pmap.report.plot_map`):
+    ``region`` by code (:func:`pmap._style.region_colour`, grey for −1); CF flag maps
+    (status) by flag order (:func:`pmap._style.status_colours`, no-value states grey,
+    codes outside the flags grey); other integer-typed maps by code like regions;
+    float maps with whole values (:func:`pmap._style.discrete_levels`) one colour per
+    value sampled from their colour map. Labels are value + offset ≥ 1 (0 is transparent).
+    """
+    is_int = var.dtype.kind in "iub"
+    if not (is_int or "flag_values" in var.attrs or var.dtype.kind == "f"):
+        return None
+    vals = np.asarray(var.values)
+    levels = _style.discrete_levels(vals, var.attrs)
+    if levels is None:
+        return None
+    f = vals.astype(float)
+    present = np.unique(f[np.isfinite(f)]).astype(int).tolist()
+    codes = sorted(set(levels) | set(present))
+    offset = max(0, 1 - min(codes)) if codes else 1
+    if name == "region" or (is_int and "flag_values" not in var.attrs):
+        cols = {c: _style.region_colour(c) for c in codes}
+    elif "flag_values" in var.attrs:
+        by = _style.status_colours(levels, var.attrs)
+        cols = {c: by.get(c, _style.NAN_COLOUR) for c in codes}
+    else:
+        import matplotlib as mpl
+        from matplotlib.colors import to_hex
+
+        base = mpl.colormaps[_style.colormap_for(name)]
+        n = len(levels)
+        cols = {lv: to_hex(base(0.5 if n == 1 else i / (n - 1))) for i, lv in enumerate(levels)}
+        cols.update({c: _style.NAN_COLOUR for c in codes if c not in cols})
+    return offset, {c + offset: col for c, col in cols.items()}
 
 
 def region_colour(region: int) -> str:
@@ -590,6 +630,28 @@ class MapSource:
         return self.ds is not None and "peak_energy" in self.ds and "peak_area" in self.ds
 
     @property
+    def has_series(self) -> bool:
+        """True for a series store or a result whose maps carry a stack dim."""
+        return self.ds is not None and _stack_dim_of(self.ds) is not None
+
+    @property
+    def stack_dim(self) -> str | None:
+        """The stack dim of the result (temperature, excitation_power, …) or cube, or None."""
+        from ..cube import STACK_DIMS
+
+        if self.ds is not None:
+            return _stack_dim_of(self.ds)
+        if self.cube is not None:
+            return next((str(d) for d in self.cube.dims if d in STACK_DIMS), None)
+        return None
+
+    def series(self, iy: int, ix: int, *, at: Mapping | None = None) -> dict | None:
+        """The series at a pixel and its law (:func:`series_at`), or None."""
+        if self.ds is None:
+            return None
+        return series_at(self.ds, iy, ix, at=at)
+
+    @property
     def has_regions(self) -> bool:
         """True if the store holds a region map."""
         return self.ds is not None and "region" in self.ds
@@ -601,13 +663,18 @@ class MapSource:
         s = _spectral_of(self.cube)
         return s, self.cube[s].attrs.get("units", SPECTRAL_DIMS[s])
 
-    def spectrum(self, iy: int, ix: int) -> tuple[np.ndarray, np.ndarray] | None:
-        """(axis, values) of the spectrum at a pixel, or None without spectra."""
+    def spectrum(self, iy: int, ix: int, *, at: Mapping | None = None
+                 ) -> tuple[np.ndarray, np.ndarray] | None:
+        """(axis, values) of the spectrum at a pixel, or None without spectra.
+
+        ``at`` picks the index along stack dims (e.g. ``{"temperature": 3}``; default 0).
+        """
         if self.cube is None:
             return None
+        at = dict(at or {})
         sdim = _spectral_of(self.cube)
         sp = self.cube.isel(y=iy, x=ix)
-        sp = sp.isel({d: 0 for d in sp.dims if d != sdim})
+        sp = sp.isel({d: min(int(at.get(d, 0)), sp.sizes[d] - 1) for d in sp.dims if d != sdim})
         return (np.asarray(self.cube[sdim].values, dtype=float), np.asarray(sp.values, dtype=float))
 
     def fit_at(self, iy: int, ix: int, axis: np.ndarray) -> xr.Dataset | None:
@@ -697,6 +764,123 @@ class MapSource:
             if peaks:
                 lines.append(" · ".join(peaks))
         return "\n".join(lines)
+
+
+#: Law fitted on the fly to a stack result's pixel, by stack dim: (law, quantities tried).
+_DEFAULT_LAWS = {"temperature": ("varshni", ("peak_energy",)),
+                 "excitation_power": ("power_law", ("peak_area", "integrated_intensity"))}
+
+
+def _stack_dim_of(ds: xr.Dataset) -> str | None:
+    from ..cube import STACK_DIMS
+
+    if ds.attrs.get("series_dim"):
+        return str(ds.attrs["series_dim"])
+    for name in ds.data_vars:
+        for d in ds[name].dims:
+            if d in STACK_DIMS and {"y", "x"} <= set(ds[name].dims):
+                return str(d)
+    return None
+
+
+def _pixel_1d(v: xr.DataArray, iy: int, ix: int, keep: str | None, at: Mapping) -> np.ndarray:
+    """The values of ``v`` at a pixel, along ``keep`` (or a scalar), other dims at ``at``/0."""
+    px = v.isel(y=iy, x=ix)
+    px = px.isel({d: int(at.get(d, 0)) for d in px.dims if d != keep})
+    return np.asarray(px.values, dtype=float)
+
+
+def series_at(ds: xr.Dataset, iy: int, ix: int, *, at: Mapping | None = None) -> dict | None:
+    """The series at a pixel (quantity against the stack value, 1σ) and its law, or None.
+
+    For a series store (:func:`pmap.series.fit_law`) the stored fit; for a result whose
+    maps carry a stack dim, the default law of that dim (Varshni on ``peak_energy``
+    along temperature, the power law on ``peak_area`` or ``integrated_intensity``
+    along excitation power) fitted here, to this pixel only (``fitted_here``).
+
+    Returns
+    -------
+    dict or None
+        ``x``, ``y``, ``yerr`` (NaN without errors), ``quantity``, ``units``, ``dim``,
+        ``dim_units``, ``law`` (or None), ``params`` (name → value, 1σ), ``status``,
+        ``chi2_red``, ``curve_x``, ``curve_y``, ``fitted_here``, ``note``.
+    """
+    from ..series import LAWS, STATUS_LEGEND, evaluate_law, fit_law
+
+    at = dict(at or {})
+    dim = _stack_dim_of(ds)
+    if dim is None:
+        return None
+    law = str(ds.attrs.get("series_law", "")) or None
+    fitted_here = law is None
+    if law is not None:
+        quantity = str(ds.attrs.get("series_quantity", ""))
+    else:
+        law, cands = _DEFAULT_LAWS.get(dim, (None, ()))
+        quantity = next((q for q in cands if q in ds.data_vars and dim in ds[q].dims), None)
+        if quantity is None:
+            quantity = next((n for n in _PRIMARY if n in ds.data_vars and dim in ds[n].dims),
+                            None)
+            law = None
+    if quantity is None or quantity not in ds.data_vars or dim not in ds[quantity].dims:
+        return None
+    q = ds[quantity]
+    x = np.asarray(ds[dim].values, dtype=float) if dim in ds.coords \
+        else np.arange(q.sizes[dim], dtype=float)
+    y = _pixel_1d(q, iy, ix, dim, at)
+    err_name = f"{quantity}_err"
+    yerr = _pixel_1d(ds[err_name], iy, ix, dim, at) if err_name in ds.data_vars \
+        else np.full(y.shape, np.nan)
+    if quantity.startswith("peak_") and "peak_status" in ds.data_vars \
+            and dim in ds["peak_status"].dims:
+        y = np.where(_pixel_1d(ds["peak_status"], iy, ix, dim, at) == 0, y, np.nan)
+    out = {"x": x, "y": y, "yerr": yerr, "quantity": quantity,
+           "units": str(q.attrs.get("units", "")), "dim": dim,
+           "dim_units": str(ds[dim].attrs.get("units", "")) if dim in ds.coords else "",
+           "law": law, "params": {}, "status": None, "chi2_red": float("nan"),
+           "curve_x": np.array([]), "curve_y": np.array([]), "fitted_here": fitted_here,
+           "note": ""}
+    if law is None:
+        out["note"] = f"no law for the stack dim {dim!r}"
+        return out
+    lw = LAWS[law]
+    ref = ds.attrs.get("reference_power_W")
+    if fitted_here:
+        one = xr.Dataset({quantity: ((dim,), y, dict(q.attrs))},
+                         coords={dim: (dim, x, dict(ds[dim].attrs) if dim in ds.coords else {})})
+        if np.isfinite(yerr).any():
+            one[err_name] = ((dim,), yerr, dict(q.attrs))
+        try:
+            fit = fit_law(one, law=law, quantity=quantity, dim=dim, keep_data=False)
+        except StepError as exc:
+            out["note"] = f"{law} not fitted: {exc}"
+            return out
+        ref = fit.attrs.get("reference_power_W")
+        get = {n: float(fit[n].values) for n in fit.data_vars}
+    else:
+        get = {}
+        for n in [f"{law}_{p}" for p in lw.params] + [f"{law}_{p}_err" for p in lw.params] \
+                + [f"{law}_chi2_red", f"{law}_status"]:
+            if n in ds.data_vars:
+                get[n] = float(_pixel_1d(ds[n], iy, ix, None, at).ravel()[0])
+    vals = [get.get(f"{law}_{p}", np.nan) for p in lw.params]
+    out["params"] = {p: (v, get.get(f"{law}_{p}_err", np.nan)) for p, v in zip(lw.params, vals)}
+    st = get.get(f"{law}_status", np.nan)
+    out["status"] = STATUS_LEGEND.get(int(st), str(st)) if np.isfinite(st) else None
+    out["chi2_red"] = get.get(f"{law}_chi2_red", np.nan)
+    if np.all(np.isfinite(vals)) and x.size > 1:
+        fx = np.asarray(x, dtype=float)
+        cx = (np.geomspace(fx.min(), fx.max(), 200) if law == "power_law"
+              else np.linspace(fx.min(), fx.max(), 200))
+        out["curve_x"] = cx
+        out["curve_y"] = evaluate_law(law, cx, vals, reference_power_w=ref)
+    return out
+
+
+def _series_params(law: str) -> tuple[str, ...]:
+    from ..series import LAWS
+
+    return LAWS[law].params if law in LAWS else ()
 
 
 def _legend_dict(text: Any) -> dict:

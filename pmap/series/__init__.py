@@ -4,6 +4,7 @@ Layer 3 (beside fitting/): works on result maps, imports only layers 0–2.
 """
 
 from ._fit import (
+    LAW_TITLES,
     POWER_CLASS_CAVEAT,
     POWER_CLASS_LEGEND,
     STATUS_FLAG_MEANINGS,
@@ -14,5 +15,5 @@ from ._fit import (
 )
 from ._laws import K_B_EV, LAWS
 
-__all__ = ["fit_law", "evaluate_law", "STATUS_FLAG_VALUES", "STATUS_FLAG_MEANINGS", "LAWS", "K_B_EV", "STATUS_LEGEND", "POWER_CLASS_LEGEND",
+__all__ = ["fit_law", "LAW_TITLES", "evaluate_law", "STATUS_FLAG_VALUES", "STATUS_FLAG_MEANINGS", "LAWS", "K_B_EV", "STATUS_LEGEND", "POWER_CLASS_LEGEND",
            "POWER_CLASS_CAVEAT"]

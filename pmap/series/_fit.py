@@ -9,6 +9,10 @@ from ..errors import StepError
 from ..provenance import with_step
 from ._laws import LAWS, Law
 
+#: printed names of the laws (titles of maps, figures and viewer layers)
+LAW_TITLES = {"varshni": "Varshni", "bose_einstein": "Bose–Einstein", "linewidth": "Linewidth",
+              "arrhenius": "Arrhenius", "power_law": "Power law"}
+
 #: fit status legend (the codes follow the result store's ``fit_status``)
 STATUS_LEGEND = {0: "converged", 1: "iteration limit", 4: "too few valid points (masked/NaN)",
                  5: "solver failure", 6: "implausible (parameter outside its physical domain)"}
@@ -289,11 +293,12 @@ def fit_law(data, *, law: str, quantity: str | None = None, dim: str | None = No
     ds = xr.Dataset()
     for i, (name, unit, desc) in enumerate(zip(lw.params, lw.units, lw.descriptions)):
         unit = q_units if unit == "y" else unit
-        ds[f"{law}_{name}"] = out.isel(_law_out=i).assign_attrs(units=unit, long_name=desc)
+        ds[f"{law}_{name}"] = out.isel(_law_out=i).assign_attrs(
+            units=unit, long_name=f"{LAW_TITLES[law]} {name}: {desc}", description=desc)
         ds[f"{law}_{name}_err"] = out.isel(_law_out=k + i).assign_attrs(
             units=unit, long_name=f"1-sigma uncertainty of {law}_{name}")
     ds[f"{law}_chi2_red"] = out.isel(_law_out=2 * k).assign_attrs(
-        units="1", long_name="reduced chi-square of the law fit"
+        units="1", long_name=f"{LAW_TITLES[law]} fit: reduced χ²"
         + ("" if weighted else " (unweighted: residual variance, no uncertainties given)"))
     st = out.isel(_law_out=2 * k + 1).fillna(4).astype(np.int8)
     ds[f"{law}_status"] = st.assign_attrs(

@@ -201,7 +201,8 @@ LAWS: dict[str, Law] = {
     "varshni": Law(
         "varshni", "temperature", "K", ("peak_energy",),
         ("e0", "alpha", "beta"), ("eV", "eV/K", "K"),
-        ("energy at 0 K", "Varshni alpha", "Varshni beta"),
+        ("energy at 0 K", "high-temperature slope -dE/dT", "temperature scale (about the Debye "
+         "temperature)"),
         _varshni_model, _varshni_jac, _varshni_start,
         lambda p: (p[:, 2] <= 0) | (p[:, 1] <= 0),
         "Varshni, Physica 34, 149 (1967): E(T) = E0 - alpha T^2/(T + beta)"),
