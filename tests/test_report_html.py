@@ -362,3 +362,27 @@ def test_summary_page_renders_in_chromium(chromium, tmp_path):
     page = write_summary_html(rows, tmp_path / "summary.html")
     record, console, pixels = _browse(chromium, page, tmp_path)
     _assert_clean(record, console, pixels, 2)
+
+
+def test_cli_process_folder_writes_reports_and_summary_html(tmp_path, capsys):
+    """plcube process FOLDER/ -o OUT/: one HTML report per result and summary.html."""
+    from pmap.cli import main
+    from pmap.synthetic import write_demo_cube
+
+    src = tmp_path / "maps"
+    for seed in (1, 2):
+        paths = write_demo_cube(tmp_path / f"gen{seed}", size="tiny", seed=seed)
+        shutil.copytree(paths["cube"], src / f"map{seed}.zarr")
+    out = tmp_path / "results"
+    assert main(["process", str(src), "-o", str(out), "--no-figures", "-q"]) == 0
+    printed = capsys.readouterr().out
+    assert "summary report:" in printed
+    summary = out / "summary.html"
+    text = summary.read_text(encoding="utf-8")
+    assert _outside_references(text) == []
+    assert "map1_result" in text and "map2_result" in text
+    assert sum(1 for tag, _ in _parse(text).tags if tag == "img") >= 2  # small multiples
+    for seed in (1, 2):
+        page = out / f"map{seed}_result_figures" / f"map{seed}_result_report.html"
+        assert page.exists(), page
+        assert _outside_references(page.read_text(encoding="utf-8")) == []
