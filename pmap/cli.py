@@ -254,7 +254,7 @@ def cmd_process(args: argparse.Namespace) -> int:
 
                 figs = write_figures(ds, _figures_dir(out))
                 print(f"figures ({len(figs)}): {_figures_dir(out)}")
-            if not args.no_html:
+            if figs is not None and not args.no_html:  # beside the PNGs
                 _write_html(out, figs, wall_s)
             if many:
                 from .report import summarise_result
@@ -614,7 +614,8 @@ def build_parser() -> argparse.ArgumentParser:
                    "(e.g. tcp://10.0.0.5:8786)")
     p.add_argument("--no-figures", action="store_true", help="do not write PNG figures")
     p.add_argument("--no-html", action="store_true", help="do not write the HTML report "
-                   "(RESULT_figures/RESULT_report.html; summary.html for a folder)")
+                   "(RESULT_figures/RESULT_report.html, written with the figures; summary.html "
+                   "for a folder)")
     p.add_argument("--print-config", action="store_true",
                    help="print the default pipeline TOML and exit")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
