@@ -374,7 +374,7 @@ def test_cli_process_folder_writes_reports_and_summary_html(tmp_path, capsys):
         paths = write_demo_cube(tmp_path / f"gen{seed}", size="tiny", seed=seed)
         shutil.copytree(paths["cube"], src / f"map{seed}.zarr")
     out = tmp_path / "results"
-    assert main(["process", str(src), "-o", str(out), "--no-figures", "-q"]) == 0
+    assert main(["process", str(src), "-o", str(out), "-q"]) == 0
     printed = capsys.readouterr().out
     assert "summary report:" in printed
     summary = out / "summary.html"
@@ -386,3 +386,8 @@ def test_cli_process_folder_writes_reports_and_summary_html(tmp_path, capsys):
         page = out / f"map{seed}_result_figures" / f"map{seed}_result_report.html"
         assert page.exists(), page
         assert _outside_references(page.read_text(encoding="utf-8")) == []
+    # without figures there is no per-map report (it goes beside the PNGs), still a summary
+    out2 = tmp_path / "bare"
+    assert main(["process", str(src), "-o", str(out2), "-q", "--no-figures"]) == 0
+    assert (out2 / "summary.html").exists()
+    assert not list(out2.rglob("*_report.html"))
