@@ -259,6 +259,20 @@ def _axes_px(ax) -> list[float]:
     return [float(x0), float(h - y1), float(x1), float(h - y0)]
 
 
+#: Titles longer than this many characters are wrapped onto more lines (never cut).
+TITLE_WIDTH = 54
+
+
+def _set_title(ax, text: str) -> str:
+    """Set the axes title, wrapped at :data:`TITLE_WIDTH` characters; returns the text."""
+    import textwrap
+
+    text = str(text)
+    ax.set_title("\n".join(textwrap.wrap(text, TITLE_WIDTH)) if len(text) > TITLE_WIDTH
+                 else text)
+    return text
+
+
 def _safe_name(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(text)).strip("_") or "figure"
 
@@ -450,13 +464,13 @@ def plot_map(
     fig = _new_figure(da.sizes["y"] / da.sizes["x"])
     ax = fig.add_subplot()
     art = _draw_map(ax, da, cmap=cmap, robust=robust, scale_bar=scale_bar, vlim=vlim)
-    ax.set_title(title if title is not None else _title(da))
+    title_text = _set_title(ax, title if title is not None else _title(da))
     return _save(
         fig,
         path,
         {
             "variable": str(da.name),
-            "title": ax.get_title(),
+            "title": title_text,
             "units": da.attrs.get("units"),
             "cmap": art.image.get_cmap().name,
             "clim": [float(v) for v in art.image.get_clim()],
@@ -549,7 +563,7 @@ def plot_histogram(
     ax.set_xlabel(_label(da, "value"))
     ax.set_ylabel("pixels")
     info["xlabel"] = ax.get_xlabel()
-    ax.set_title(title if title is not None else "Histogram: " + _title(da))
+    _set_title(ax, title if title is not None else "Histogram: " + _title(da))
     _render(fig)
     info["stats_bbox_px"] = [float(v) for v in side.texts[0].get_window_extent().extents] \
         if side.texts else None
@@ -812,13 +826,13 @@ def plot_labels(
         title=_label(da, "label"),
         title_fontsize=8,
     )
-    ax.set_title(title if title is not None else _title(da))
+    title_text = _set_title(ax, title if title is not None else _title(da))
     return _save(
         fig,
         path,
         {
             "variable": str(da.name),
-            "title": ax.get_title(),
+            "title": title_text,
             "colours": colours,
             "legend": [h.get_label() for h in handles],
             "extent": [float(v) for v in art.image.get_extent()],

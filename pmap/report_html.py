@@ -605,18 +605,18 @@ def _region_table(ds: xr.Dataset) -> str:
 
 
 def _section_regions(ds: xr.Dataset, figs: list[Path]) -> str:
-    if "region" not in ds and not figs:
-        return ""
+    if not figs and "region_pixel_count" not in ds:
+        return ""  # e.g. a series store that keeps the region map only for its by-region plot
     out = ['<h2 id="regions">Regions</h2>']
     r = ds["region"] if "region" in ds else None
     if r is not None:
         a = r.attrs
-        desc = [("method", a.get("method", "–")), ("feature space", a.get("feature_space", "–")),
-                ("number of regions", f"{a.get('k', '–')} ({a.get('rule', '')})"),
-                ("ordered by", a.get("order_by", "–"))]
-        if a.get("island_rule"):
-            desc.append(("islands", a["island_rule"]))
-        out.append(_kv_table(desc))
+        desc = [(label, a[key]) for label, key in (
+            ("method", "method"), ("feature space", "feature_space"),
+            ("number of regions", "k"), ("how the number was chosen", "rule"),
+            ("ordered by", "order_by"), ("islands", "island_rule")) if key in a]
+        if desc:
+            out.append(_kv_table(desc))
         out.append(_region_table(ds))
         out.append("<p>Colours are the same in the region map, the mean spectra and the viewer "
                    f"(Okabe &amp; Ito palette); grey ({_e(_style.NAN_COLOUR)}) is no emission "
@@ -663,7 +663,8 @@ def _section_series(ds: xr.Dataset, figs: list[Path]) -> str:
            _kv_table([("law", f"{law} ({ds.attrs.get('series_reference', '')})"),
                       ("fitted quantity", ds.attrs.get("series_quantity", "–")),
                       ("along", ds.attrs.get("series_dim", "–")),
-                      ("stack values", ds.attrs.get(f"{ds.attrs.get('series_dim')}_values", "–")),
+                      ("stack values", ", ".join(f"{float(v):.4g}" for v in np.atleast_1d(
+                          ds.attrs.get(f"{ds.attrs.get('series_dim')}_values", []))) or "–"),
                       ("uncertainties", ds.attrs.get("uncertainty_method", "–"))])]
     st_name = f"{law}_status"
     ok = None
@@ -687,7 +688,18 @@ def _section_series(ds: xr.Dataset, figs: list[Path]) -> str:
     if rows:
         out.append(_table(["parameter", "meaning", "median", "median 1σ", "units",
                            "pixels converged"], rows, num_cols=(2, 3, 5)))
-    out.append(_grid([_figure(f, wide="_by_region" in f.stem) for f in figs]))
+    order = [f"{law}_{p}" for p in (lw.params if lw else [])]
+
+    def rank(f: Path) -> tuple[int, str]:
+        stem = f.stem
+        if "_by_region" in stem:
+            return -1, stem
+        for i, base in enumerate(order):
+            if stem == base or stem.startswith(base + "_err") or stem.startswith(base + "_"):
+                return i, stem
+        return len(order), stem
+
+    out.append(_grid([_figure(f, wide="_by_region" in f.stem) for f in sorted(figs, key=rank)]))
     return "".join(out)
 
 
