@@ -91,11 +91,11 @@ _EXTEND_SIGMA = 3.0
 _LINE_TOLERANCE = 0.02
 #: The shape test uses this fraction of the stated instrument FWHM (a margin for a
 #: stated width a little too large); the assumed 2-channel default is used as is.
-_WIDTH_SAFETY = 0.9
+_WIDTH_SAFETY = 1.0
 #: Range of instrument FWHM (channels) the shape kernels are built for.
 _FWHM_MIN_CH, _FWHM_MAX_CH = 1.0, 12.0
 #: FWHM bins of the shape kernels: 1.05^k channels (each channel uses the bin below).
-_FWHM_BIN = 1.05
+_FWHM_BIN = 1.01
 #: In a map the line-shape test is this much (s.d.) less strict than ``threshold``: the
 #: excess has already proved not to be in the neighbours.
 _MAP_SHAPE_EASE = 1.5
@@ -394,10 +394,25 @@ def _find_candidates(x, n, t2, lags, law, nz, z, best, cand):  # pragma: no cove
                     continue
         cand[c] = False
         z[c] = 0.0
-    cand[0] = False
-    cand[n - 1] = False
-    z[0] = 0.0
-    z[n - 1] = 0.0
+    # the end channels: above each of the next ``lags`` channels inward (one-sided, so
+    # the variance of a difference of two values)
+    for c in (0, n - 1):
+        cand[c] = False
+        z[c] = 0.0
+        if n < lags + 2:
+            continue
+        e = np.inf
+        for k in range(1, lags + 1):
+            j = c + k if c == 0 else c - k
+            e = min(e, x[c] - x[j])
+        j = 1 if c == 0 else n - 2
+        v = _var_at(j, x[j], law, nz)
+        if e > 0 and e * e > t2 * 2.0 * v:
+            zc = e / np.sqrt(2.0 * v)
+            if zc > _skewed_threshold(c, x[j], v, np.sqrt(t2), law, nz):
+                cand[c] = True
+                z[c] = zc
+                found = True
     return found
 
 
@@ -546,11 +561,38 @@ def _best_box(x, n, r, cnt, sf2, lo, hi, resid, blo, bhi, ca, maxw, bank, ms, bi
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
+def _alone_z(x, n, r, cnt, sf2, lo, hi, resid, s, w, j, kb, bank, ms, law, nz):  # pragma: no cover
+    """Line-shape statistic of the one-channel box at j (next to the box [s, s + w − 1])
+    with the box bridged by a straight line from its outer neighbours (as if it were
+    removed): a channel that only looked like spike because a spike stood beside it (the
+    flank of an emitter) then passes as emission. The box's values are restored."""
+    a = s - 1
+    b = s + w
+    buf = np.empty(w)
+    y = r if resid else x
+    off = lo if resid else 0
+    ya = y[a - off] if a - off >= 0 else y[b - off]
+    yb = y[b - off] if b - off < y.size and b <= (hi if resid else n - 1) else ya
+    for k in range(w):
+        buf[k] = y[s + k - off]
+        y[s + k - off] = ya + (k + 1) / (w + 1) * (yb - ya)
+    if resid:
+        zt = _box_z_resid(x, r, cnt, sf2, lo, hi, j, 1, kb, bank, ms, law, nz)
+    else:
+        zt = _box_z_self(x, n, j, 1, kb, bank, ms, law, nz)
+    for k in range(w):
+        y[s + k - off] = buf[k]
+    return zt if zt == zt else np.inf
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def _grow_box(x, n, r, cnt, sf2, lo, hi, resid, zb, maxw, bank, ms, bin_of, law, nz,
-              res):  # pragma: no cover - compiled
+              res, t_join):  # pragma: no cover - compiled
     """Widen the spike box res[0:2] to the whole spike: a neighbouring channel that stands
     3 s.d. above (the prediction, or its outer pair) joins when the statistic of the
-    wider box stays within 0.5 of the best; emission a spike sits on does not."""
+    wider box stays within 0.5 of the best and the channel is a spike of its own once the
+    box is bridged (:func:`_alone_z` > ``t_join``); emission a spike sits on or stands
+    beside does not."""
     s = int(res[0])
     w = int(res[1])
     kb = bin_of[s]
@@ -577,7 +619,8 @@ def _grow_box(x, n, r, cnt, sf2, lo, hi, resid, zb, maxw, bank, ms, bin_of, law,
                     continue
                 s2 = s - 1 if side == 0 else s
                 zt = _box_z_self(x, n, s2, w + 1, kb, bank, ms, law, nz)
-            if zt == zt and zt >= zb - 0.5:
+            if zt == zt and zt >= zb - 0.5 and _alone_z(x, n, r, cnt, sf2, lo, hi, resid, s, w,
+                                                         j, kb, bank, ms, law, nz) > t_join:
                 s = s2
                 w += 1
                 if zt > zb:
@@ -739,13 +782,22 @@ def _excess_z(r, p, cnt, c, lo, sf2, law, nz):  # pragma: no cover - compiled
     π/2k beyond), or the flank scatter sf2 where that is larger: 1.5 times when the
     cube states its noise law (a mere fluctuation of an estimate from ~20 channels does
     not count), at all when the law was fitted to the spectrum (then sf2 is a second,
-    independent estimate)."""
+    independent estimate). The noise is taken at the level of p averaged over c ± 5 (or
+    at p where higher): a prediction from one or two spectra scatters, and its low values
+    would understate the noise just where the residual is large."""
     pc = p[c - lo]
     k = cnt[c - lo]
     rc = r[c - lo]
     if k == 0 or not pc == pc or not rc == rc:
         return -np.inf
-    v = _var_at(c, pc, law, nz) * (1.0 + (1.0 / k if k <= 2 else 1.5708 / k))
+    lv = 0.0
+    kk = 0
+    for j in range(c - 5 - lo, c + 6 - lo):
+        if 0 <= j < cnt.size and cnt[j] > 0 and p[j] == p[j]:
+            lv += p[j]
+            kk += 1
+    lv = max(lv / kk, pc)
+    v = _var_at(c, lv, law, nz) * (1.0 + (1.0 / k if k <= 2 else 1.5708 / k))
     gate = 1.5 if law[0, 0] == law[0, 0] else 1.0
     if sf2 > gate * v:  # the flanks scatter more than the noise explains
         v = sf2
@@ -754,13 +806,15 @@ def _excess_z(r, p, cnt, c, lo, sf2, law, nz):  # pragma: no cover - compiled
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
 def _robust_ratio(x, ref, off, lo, hi, g0, g1, a, law, nz, wb):  # pragma: no cover - compiled
-    """Ratio of sums x/ref over channels lo … hi outside g0 … g1 (ref indexed from
-    ``off``), started from the median of the channel ratios (over the channels where
-    ref stands 3 s.d. above zero; ``a``, the plain ratio of sums, when under 5 do) and
-    refined twice leaving out the channels where x and a·ref differ by more than 4 s.d.
-    of their difference: a spike in either spectrum (repeated acquisitions of one pixel
-    differ only by noise and an overall factor) must not bias the factor with which the
-    other predicts it. ``wb``: work (≥ hi − lo + 1)."""
+    """Factor a with x ≈ a·ref over channels lo … hi outside g0 … g1 (ref indexed from
+    ``off``), robust to a spike in either spectrum (repeated acquisitions of one pixel
+    differ only by noise and an overall factor, and a spike must not bias the factor
+    with which the other predicts it): from each of two starts, the plain ratio of sums
+    ``a`` and the median of the channel ratios (channels where ref stands 3 s.d. above
+    zero), the ratio of sums is refined twice leaving out the channels where x and a·ref
+    differ by more than 4 s.d.; the start whose result agrees with more channels wins
+    (a consensus choice, as in random-sample consensus: Fischler & Bolles, Commun. ACM 24,
+    381 (1981)). ``wb``: work (≥ hi − lo + 1)."""
     m = 0
     for c in range(lo, hi + 1):
         if g0 <= c <= g1:
@@ -769,26 +823,39 @@ def _robust_ratio(x, ref, off, lo, hi, g0, g1, a, law, nz, wb):  # pragma: no co
         if v == v and x[c] == x[c] and v * v > 9.0 * _var_at(c, v, law, nz):
             wb[m] = x[c] / v
             m += 1
-    if m >= 5:
-        a = median_of(wb, m)
-    for _ in range(2):
-        sx = 0.0
-        sr = 0.0
-        for c in range(lo, hi + 1):
-            if g0 <= c <= g1:
-                continue
-            v = ref[c - off]
-            if not (v == v and x[c] == x[c]):
-                continue
-            d = x[c] - a * v
-            var = _var_at(c, x[c], law, nz) + a * a * _var_at(c, v, law, nz)
-            if d * d <= 16.0 * var:
-                sx += x[c]
-                sr += v
-        if not (sr > 0 and sx > 0):
-            return a
-        a = sx / sr
-    return a
+    best = a
+    kbest = -1
+    for start in range(2):
+        if start == 1:
+            if m < 5:
+                break
+            a1 = median_of(wb, m)
+        else:
+            a1 = a
+        kept = 0
+        for _ in range(2):
+            sx = 0.0
+            sr = 0.0
+            kept = 0
+            for c in range(lo, hi + 1):
+                if g0 <= c <= g1:
+                    continue
+                v = ref[c - off]
+                if not (v == v and x[c] == x[c]):
+                    continue
+                d = x[c] - a1 * v
+                var = _var_at(c, x[c], law, nz) + a1 * a1 * _var_at(c, v, law, nz)
+                if d * d <= 16.0 * var:
+                    sx += x[c]
+                    sr += v
+                    kept += 1
+            if not (sr > 0 and sx > 0):
+                break
+            a1 = sx / sr
+        if kept > kbest:
+            kbest = kept
+            best = a1
+    return best
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
@@ -844,6 +911,8 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
                 m += 1
         cnt[c - lo] = m
         p[c - lo] = median_of(vbuf, m) if m else np.nan
+    for c in range(hi - lo + 1, cnt.size):  # (no stale entries beyond the window)
+        cnt[c] = 0
     if cnt[ca - lo] < min_refs:
         return False
     # the excess over the plain prediction at the candidate: channels around it more than
@@ -865,9 +934,12 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
     # scatter of the residual over the flanks (what the prediction leaves of differences
     # between the spectra, beyond the noise): the smaller of the robust s.d. of the
     # residual and of its first differences / √2 (the latter ignores smooth leftovers,
-    # the former is the steadier when there are none)
+    # the former is the steadier when there are none). Not for frames under a stated
+    # noise law: repeated acquisitions of one pixel differ by noise and a factor only,
+    # so the law is exact, and the flanks' scatter would only carry a spike of the
+    # other frame (with two frames the prediction is that one frame)
     sf2 = 0.0
-    for mode in range(2):
+    for mode in range(0 if t_shape <= 0 and law[0, 0] == law[0, 0] else 2):
         m = 0
         for c in range(lo, hi):
             if (c < ca - h or c >= ca + h) and not x0 - 2 <= c <= x1 + 1:
@@ -915,7 +987,7 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
             if not zs > t_shape:  # shaped like real emission: keep
                 return True
             _grow_box(x, n, rbuf, cnt, sf2, lo, hi, resid, zs, maxw, bank, ms, bin_of, law,
-                      nz, sres)
+                      nz, sres, t_shape)
             e0 = int(sres[0])
             e1 = e0 + int(sres[1]) - 1
             # the box's ends that stand out of the prediction by less than 2 s.d. are not
@@ -976,7 +1048,7 @@ def _judge_single(x, n, ca, t, maxw, bank, ms, sds, bin_of, law, nz, cnt, sres, 
         if not zs > t:
             return
         _grow_box(x, n, x, cnt, 0.0, 0, n - 1, False, zs, maxw, bank, ms, bin_of, law, nz,
-                  sres)
+                  sres, t)
         e0 = int(sres[0])
         e1 = e0 + int(sres[1]) - 1
     else:  # near the ends of the axis
@@ -1077,6 +1149,8 @@ def _map_kernel(b, t, min_refs, maxw, bank, ms, sds, bin_of, law, g_default, out
                             for k in range(lo, hi + 1):
                                 refs[nref, k - lo] = b[ib, iy + dy, ix + dx, k]
                             nref += 1
+                    kl = ca > 0 and cand[ca - 1]
+                    kr = ca < n - 1 and cand[ca + 1]
                     done = False
                     if nref >= min_refs:
                         done = _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw,
@@ -1089,6 +1163,12 @@ def _map_kernel(b, t, min_refs, maxw, bank, ms, sds, bin_of, law, g_default, out
                     if sres[5] > 0:  # later judgements see the spectrum cleaned so far
                         for k in range(int(sres[3]), int(sres[4]) + 1):
                             x[k] = o[k]
+                        # and a candidate beside the removed spike is judged again (a
+                        # second spike next to it; emission beside it then passes)
+                        if kl and ca - 1 < sres[3]:
+                            cand[ca - 1] = True
+                        if kr and ca + 1 > sres[4]:
+                            cand[ca + 1] = True
     return out
 
 
@@ -1114,24 +1194,37 @@ def _frame_candidates(b, ib, f, s, x, n, t, law, nz, fsc, vbuf, z, cand, wb):  #
             fsc[f2] = _robust_ratio(x, b[ib, f2, s], 0, 0, n - 1, -1, -1, fsc[f2], law, nz,
                                     wb)
     found = False
-    for c in range(n):
-        if not x[c] == x[c]:
-            continue
+    mref = 0
+    for c in range(n):  # the prediction of every channel into wb
         m = 0
         for f2 in range(nf):
             v = b[ib, f2, s, c]
             if f2 != f and v == v:
                 vbuf[m] = fsc[f2] * v
                 m += 1
-        if m == 0:
+        wb[c] = median_of(vbuf, m) if m else np.nan
+        mref = max(mref, m)
+    for c in range(n):
+        pc = wb[c]
+        if not (x[c] == x[c] and pc == pc):
             continue
-        pc = median_of(vbuf, m)
-        var = _var_at(c, pc, law, nz)
+        m = mref
+        # the noise is taken at the level of the prediction averaged over c ± 5 (or at pc
+        # where higher): with one or two other frames pc itself scatters, and its low
+        # values would understate the noise just where the difference is large
+        lv = 0.0
+        k = 0
+        for j in range(max(c - 5, 0), min(c + 5, n - 1) + 1):
+            if wb[j] == wb[j]:
+                lv += wb[j]
+                k += 1
+        lv = max(lv / k, pc)
+        var = _var_at(c, lv, law, nz)
         v = var * (1.0 + (1.0 / m if m <= 2 else 1.5708 / m))
         e = x[c] - pc
         if e > 0 and e * e > t * t * v:
             zc = e / np.sqrt(v)
-            if zc > _skewed_threshold(c, pc, var, t, law, nz) and zc > z[c]:
+            if zc > _skewed_threshold(c, lv, var, t, law, nz) and zc > z[c]:
                 z[c] = zc
                 cand[c] = True
                 found = True
@@ -1193,6 +1286,8 @@ def _frames_kernel(b, t, maxw, bank, ms, sds, bin_of, law, g_default, out):
                         for k in range(lo, hi + 1):
                             refs[nref, k - lo] = b[ib, f2, s, k]
                         nref += 1
+                    kl = ca > 0 and cand[ca - 1]
+                    kr = ca < n - 1 and cand[ca + 1]
                     done = False
                     if nref >= 1:
                         done = _judge(x, n, ca, lo, hi, refs, nref, 1, 0.0, t, maxw, bank, ms,
@@ -1205,6 +1300,12 @@ def _frames_kernel(b, t, maxw, bank, ms, sds, bin_of, law, g_default, out):
                     if sres[5] > 0:  # later judgements see the spectrum cleaned so far
                         for k in range(int(sres[3]), int(sres[4]) + 1):
                             x[k] = o[k]
+                        # and a candidate beside the removed spike is judged again (a
+                        # second spike next to it; emission beside it then passes)
+                        if kl and ca - 1 < sres[3]:
+                            cand[ca - 1] = True
+                        if kr and ca + 1 > sres[4]:
+                            cand[ca + 1] = True
     return out
 
 
@@ -1220,13 +1321,22 @@ def _map_block(block: np.ndarray, opts: dict, out_dtype: np.dtype) -> np.ndarray
     return out.reshape(shape[:-3] + out.shape[1:])
 
 
-def _frames_block(block: np.ndarray, opts: dict, out_dtype: np.dtype) -> np.ndarray:
-    """Core over a block (B…, F, y, x, n) whole along the frame axis F."""
+def _frames_block(block: np.ndarray, opts: dict, out_dtype: np.dtype,
+                  dark: np.ndarray | None = None) -> np.ndarray:
+    """Core over a block (B…, F, y, x, n) whole along the frame axis F. ``dark`` (n,), the
+    detector's dark level in the cube's units when known, is taken off before the frames
+    are compared (acquisitions differ by a factor of the light, not of the dark level)
+    and put back on the replaced values; every other value is returned as it came."""
     shape = block.shape
     lead = int(np.prod(shape[:-4], dtype=np.int64))
     b = block.reshape(lead, shape[-4], shape[-3] * shape[-2], shape[-1])
-    out = np.empty(b.shape, dtype=out_dtype)
+    if dark is not None:
+        b0 = b
+        b = b.astype(np.float64) - dark
+    out = np.empty(b.shape, dtype=np.float64 if dark is not None else out_dtype)
     _frames_kernel(b, out=out, **opts)
+    if dark is not None:
+        out = np.where(out != b, out + dark, b0).astype(out_dtype)
     return out.reshape(shape)
 
 
@@ -1263,7 +1373,8 @@ def _instrument_fwhm_channels(
 
 def _noise_law(cube: xr.DataArray, sdim: str, n: int) -> tuple[np.ndarray, str, float]:
     """(law (3, n): a, b, floor of var = a·value + b, or NaN; where it comes from; the
-    default shot-noise slope of the data-driven estimate)."""
+    default shot-noise slope of the data-driven estimate). See :func:`_dark_level` for
+    the dark level under the same law."""
     law = np.full((3, n), np.nan)
     units = str(cube.attrs.get("units", ""))
     g_default = 1.0 if units == "counts" else 0.0
@@ -1295,6 +1406,24 @@ def _noise_law(cube: xr.DataArray, sdim: str, n: int) -> tuple[np.ndarray, str, 
     law[1] = scale * scale * b
     law[2] = scale * scale * fl
     return law, src, g_default
+
+
+def _dark_level(cube: xr.DataArray, sdim: str, n: int, law: np.ndarray) -> np.ndarray | None:
+    """The detector's dark level (n,) in the cube's units when the noise law is stated
+    (noise model or attrs: dark_level_counts times the noise scale), else None."""
+    if not law[0, 0] == law[0, 0]:
+        return None
+    model = get_noise_model(cube)
+    dark = model.dark_level_counts if model is not None else None
+    if dark is None:
+        dark = cube.attrs.get("dark_level_counts", cube.attrs.get("dark_offset_counts"))
+    if dark is None or not np.isfinite(float(dark)):
+        return None
+    scale = np.ones(n)
+    if SCALE_COORD in cube.coords:
+        scale = np.broadcast_to(np.asarray(cube.coords[SCALE_COORD].values, dtype=np.float64),
+                                (n,))
+    return float(dark) * scale
 
 
 @register_step("remove_spikes")
@@ -1385,7 +1514,14 @@ def remove_spikes(
     data = cube.transpose(*canonical).data.astype(dt)
     if frame is not None:
         data = data.rechunk({len(lead): -1})
-        cleaned = data.map_blocks(partial(_frames_block, opts=opts, out_dtype=dt), dtype=dt)
+        dark = _dark_level(cube, sdim, n, law)
+        fopts = dict(opts)
+        if dark is not None:  # the law of the values less the dark level
+            fl = law.copy()
+            fl[1] = law[1] + law[0] * dark
+            fopts["law"] = fl
+        cleaned = data.map_blocks(partial(_frames_block, opts=fopts, out_dtype=dt, dark=dark),
+                                  dtype=dt)
         mode = f"frames ({frame})"
     else:
         opts["min_refs"] = int(min_neighbours)
