@@ -504,7 +504,8 @@ def fit_settings(ds: xr.Dataset) -> dict:
 
 
 def fit_curves(
-    ds: xr.Dataset, iy: int, ix: int, energy_ev: Any, *, settings: Mapping | None = None
+    ds: xr.Dataset, iy: int, ix: int, energy_ev: Any, *, settings: Mapping | None = None,
+    at: Mapping | None = None,
 ) -> xr.Dataset | None:
     """Fitted model, its peak components and background at one pixel of a result.
 
@@ -522,6 +523,8 @@ def fit_curves(
         Photon energies (eV) to evaluate at.
     settings : mapping, optional
         Output of :func:`fit_settings` (computed when omitted).
+    at : mapping, optional
+        Index along stack dims (e.g. ``{"temperature": 2}``; default 0).
 
     Returns
     -------
@@ -536,7 +539,7 @@ def fit_curves(
     settings = dict(settings or fit_settings(ds))
     px = ds.isel(y=iy, x=ix)
     stack = [d for d in px["peak_energy"].dims if d != "peak"]
-    px = px.isel({d: 0 for d in stack})
+    px = px.isel({d: min(int(dict(at or {}).get(d, 0)), px.sizes[d] - 1) for d in stack})
     center = np.atleast_1d(np.asarray(px["peak_energy"].values, dtype=float))
     if not np.any(np.isfinite(center)):
         return None
@@ -565,15 +568,16 @@ def fit_curves(
 
 
 def _cube_point(
-    cube: xr.DataArray, y_um: float, x_um: float
+    cube: xr.DataArray, y_um: float, x_um: float, *, at: Mapping | None = None
 ) -> tuple[np.ndarray, np.ndarray] | None:
     grid = grid_of(cube)
     ij = pixel_at((y_um, x_um), grid)
     if ij is None:
         return None
     sdim = _spectral_of(cube)
+    at = dict(at or {})
     sp = cube.isel(y=ij[0], x=ij[1])
-    sp = sp.isel({d: 0 for d in sp.dims if d != sdim})
+    sp = sp.isel({d: min(int(at.get(d, 0)), sp.sizes[d] - 1) for d in sp.dims if d != sdim})
     return np.asarray(cube[sdim].values, dtype=float), np.asarray(sp.values, dtype=float)
 
 
@@ -677,11 +681,12 @@ class MapSource:
         sp = sp.isel({d: min(int(at.get(d, 0)), sp.sizes[d] - 1) for d in sp.dims if d != sdim})
         return (np.asarray(self.cube[sdim].values, dtype=float), np.asarray(sp.values, dtype=float))
 
-    def fit_at(self, iy: int, ix: int, axis: np.ndarray) -> xr.Dataset | None:
+    def fit_at(self, iy: int, ix: int, axis: np.ndarray, *, at: Mapping | None = None
+               ) -> xr.Dataset | None:
         """Fitted model and components at a pixel on ``axis`` (eV), or None."""
         if not self.has_fit or self.spectral_name()[0] != "energy":
             return None
-        return fit_curves(self.ds, iy, ix, axis, settings=self.fit)
+        return fit_curves(self.ds, iy, ix, axis, settings=self.fit, at=at)
 
     def raw_cube(self) -> xr.DataArray | None:
         """The input cube named in a result's provenance, when it is still readable."""
@@ -698,7 +703,8 @@ class MapSource:
                     self._raw = None
         return self._raw if isinstance(self._raw, xr.DataArray) else None
 
-    def raw_spectrum(self, iy: int, ix: int) -> tuple[np.ndarray, np.ndarray, str] | None:
+    def raw_spectrum(self, iy: int, ix: int, *, at: Mapping | None = None
+                     ) -> tuple[np.ndarray, np.ndarray, str] | None:
         """(energy_ev, values, units) of the raw input spectrum at a pixel's position, or None.
 
         A wavelength axis is shown as E = hc/λ (the air/vacuum difference,
@@ -707,7 +713,7 @@ class MapSource:
         raw = self.raw_cube()
         if raw is None:
             return None
-        got = _cube_point(raw, float(self.grid.y[iy]), float(self.grid.x[ix]))
+        got = _cube_point(raw, float(self.grid.y[iy]), float(self.grid.x[ix]), at=at)
         if got is None:
             return None
         axis, vals = got
@@ -734,8 +740,11 @@ class MapSource:
             mean = np.nanmean(sel, axis=0) if sel.size else np.full(vals.shape[-1], np.nan)
         return np.asarray(self.cube[sdim].values, dtype=float), mean, int(sel.shape[0])
 
-    def pixel_summary(self, iy: int, ix: int) -> str:
-        """One or two lines about a pixel: position, region, fit status and peak parameters."""
+    def pixel_summary(self, iy: int, ix: int, *, at: Mapping | None = None) -> str:
+        """One or two lines about a pixel: position, region, fit status and peak parameters.
+
+        ``at`` picks the index along a stack dim (default 0).
+        """
         y, x = float(self.grid.y[iy]), float(self.grid.x[ix])
         u = "µm" if self.grid.units == "um" else "px"
         parts = [f"y = {y:.4g} {u}, x = {x:.4g} {u} (pixel {iy}, {ix})"]
@@ -743,6 +752,13 @@ class MapSource:
         if ds is None:
             return parts[0]
         px = ds.isel(y=iy, x=ix)
+        dim = self.stack_dim
+        if dim is not None and dim in px.dims:
+            i = min(int(dict(at or {}).get(dim, 0)), px.sizes[dim] - 1)
+            px = px.isel({dim: i})
+            if dim in px.coords:
+                units = px[dim].attrs.get("units", "")
+                parts.append(f"{dim} {float(px[dim].values):.4g} {units}".rstrip())
         if "region" in px:
             r = int(np.asarray(px["region"].values).ravel()[0])
             parts.append("no signal" if r < 0 else f"region {r}")
@@ -839,7 +855,7 @@ def series_at(ds: xr.Dataset, iy: int, ix: int, *, at: Mapping | None = None) ->
            "dim_units": str(ds[dim].attrs.get("units", "")) if dim in ds.coords else "",
            "law": law, "params": {}, "status": None, "chi2_red": float("nan"),
            "curve_x": np.array([]), "curve_y": np.array([]), "fitted_here": fitted_here,
-           "note": ""}
+           "note": "", "reference_power_W": ds.attrs.get("reference_power_W")}
     if law is None:
         out["note"] = f"no law for the stack dim {dim!r}"
         return out
@@ -856,6 +872,7 @@ def series_at(ds: xr.Dataset, iy: int, ix: int, *, at: Mapping | None = None) ->
             out["note"] = f"{law} not fitted: {exc}"
             return out
         ref = fit.attrs.get("reference_power_W")
+        out["reference_power_W"] = ref
         get = {n: float(fit[n].values) for n in fit.data_vars}
     else:
         get = {}

@@ -57,6 +57,7 @@ class SpectrumPanel(QWidget):
         self._world: tuple[float, float] | None = None
         self.pins: list[tuple[MapSource, int, int, str]] = []
         self.lines: dict[str, Any] = {}
+        self.series: dict | None = None
         self._shape_layers: list[Any] = []
 
         self.sources = SourceList(self.viewer)
@@ -102,14 +103,18 @@ class SpectrumPanel(QWidget):
         lay.addLayout(buttons)
 
         self.sources.currentIndexChanged.connect(self._source_changed)
+        self.viewer.dims.events.current_step.connect(self._step_changed)
         self.viewer.mouse_drag_callbacks.append(self._on_mouse)
         self.viewer.layers.events.inserted.connect(self._layers_changed)
         self.viewer.layers.events.removed.connect(self._layers_changed)
         callback, callbacks = self._on_mouse, self.viewer.mouse_drag_callbacks
 
+        dims_event, step_slot = self.viewer.dims.events.current_step, self._step_changed
+
         def _forget(*_: Any) -> None:
             if callback in callbacks:
                 callbacks.remove(callback)
+            dims_event.disconnect(step_slot)
 
         self.destroyed.connect(_forget)
         self._layers_changed()
@@ -138,7 +143,7 @@ class SpectrumPanel(QWidget):
             return
         self.current = (int(iy), int(ix))
         self._world = (float(src.grid.y[iy]), float(src.grid.x[ix]))
-        self.info.setText(src.pixel_summary(iy, ix))
+        self.info.setText(src.pixel_summary(iy, ix, at=self.stack_at(src)))
         self._update_markers()
         self.redraw()
 
@@ -172,6 +177,29 @@ class SpectrumPanel(QWidget):
             )
         self.viewer.layers.selection.active = layer
         layer.mode = "add_rectangle"
+
+    def stack_at(self, src: MapSource | None = None) -> dict:
+        """{stack dim: index} of the viewer's slider for the source's stack dim ({} if none).
+
+        Maps and cubes put their stack dim first with scale 1, so napari's own slider
+        position along it is the index; a stack map (…, y, x) has it third from the end,
+        a stack cube (…, S, y, x) fourth.
+        """
+        src = src or self.source()
+        dim = src.stack_dim if src is not None else None
+        if dim is None:
+            return {}
+        back = 4 if src.ds is None else 3
+        steps = tuple(self.viewer.dims.current_step)
+        if len(steps) < back:
+            return {dim: 0}
+        return {dim: int(max(0, round(float(steps[-back]))))}
+
+    def _step_changed(self, *_: Any) -> None:
+        src = self.source()
+        if src is not None and src.stack_dim is not None and self.current is not None:
+            self.info.setText(src.pixel_summary(*self.current, at=self.stack_at(src)))
+            self.redraw()
 
     def _source_changed(self, *_: Any) -> None:
         src = self.source()
@@ -294,10 +322,27 @@ class SpectrumPanel(QWidget):
         fig.clear()
         self.lines = {}
         src = self.source()
-        gs = fig.add_gridspec(2, 1, height_ratios=(3, 1))
+        series = src is not None and src.has_series and self.current is not None
+        spectra = src is None or src.cube is not None
+        if series and spectra:  # a stack result with its spectra: spectrum, residual, series
+            gs = fig.add_gridspec(3, 1, height_ratios=(3, 1, 2.4))
+        else:
+            gs = fig.add_gridspec(2, 1, height_ratios=(3, 1))
+        if series and not spectra:  # a series store: the series and its normalised residual
+            ax = self.plot.style(fig.add_subplot(gs[0]))
+            axr = self.plot.style(fig.add_subplot(gs[1], sharex=ax))
+            ax.tick_params(labelbottom=False)
+            self._draw_series(src, ax, axr)
+            self.plot.legend(ax, loc="best")
+            self.plot.draw()
+            return
         ax = self.plot.style(fig.add_subplot(gs[0]))
         axr = self.plot.style(fig.add_subplot(gs[1], sharex=ax))
         ax.tick_params(labelbottom=False)
+        if series:
+            axs = self.plot.style(fig.add_subplot(gs[2]))
+            self._draw_series(src, axs, None)
+            self.plot.legend(axs, loc="best")
         sdim, sunit = src.spectral_name() if src is not None else ("energy", "eV")
         yunit = src.cube.attrs.get("units", "") if src is not None and src.cube is not None else ""
         ax.set_ylabel(f"intensity [{yunit}]" if yunit else "intensity")
@@ -325,16 +370,75 @@ class SpectrumPanel(QWidget):
         self.plot.legend(ax, loc="best")
         self.plot.draw()
 
+    def _draw_series(self, src: MapSource, ax: Any, axr: Any | None) -> None:
+        """The selected pixel's series (quantity against the stack value, ±1σ) and its law."""
+        from ... import _style
+        from ...series import LAW_TITLES
+
+        iy, ix = self.current
+        at = self.stack_at(src)
+        s = src.series(iy, ix, at=at)
+        self.series = s
+        if s is None:
+            ax.set_title("no series at this pixel")
+            return
+        yerr = np.where(np.isfinite(s["yerr"]), s["yerr"], 0.0)
+        self.lines["series"] = ax.errorbar(
+            s["x"], s["y"], yerr=yerr, fmt="o", ms=3.5, capsize=2.5, color=DATA_COLOUR,
+            ecolor=DATA_COLOUR, label=f"{s['quantity'].replace('_', ' ')} ±1σ")
+        if s["curve_y"].size:
+            how = "fitted to this pixel here" if s["fitted_here"] else "stored fit"
+            (self.lines["law"],) = ax.plot(s["curve_x"], s["curve_y"], color=FIT_COLOUR, lw=1.5,
+                                           label=f"{LAW_TITLES[s['law']]} ({how})")
+        if s["law"] == "power_law":
+            ax.set_xscale("log")
+            ax.set_yscale("log")
+        d = at.get(s["dim"])
+        if d is not None and d < s["x"].size:
+            ax.axvline(s["x"][d], color="#9e9e9e", lw=0.8, ls=":")
+        xl = _style.map_title(s["dim"], s["dim_units"])
+        ax.set_ylabel(_style.map_title(s["quantity"], s["units"]))
+        parts = []
+        for name, (v, e) in s["params"].items():
+            parts.append(f"{name} = {v:.5g}" + (f" ± {e:.2g}" if np.isfinite(e) else ""))
+        head = f"series at pixel ({iy}, {ix})"
+        if s["law"]:
+            head += f": {LAW_TITLES[s['law']]}"
+        if np.isfinite(s["chi2_red"]):
+            head += f", χ²_red {s['chi2_red']:.3g}"
+        if s["status"] and s["status"] != "converged":
+            head += f" ({s['status']})"
+        ax.set_title(head, fontsize=9)
+        law_line = (f"{LAW_TITLES[s['law']]}: " + ", ".join(parts)) if parts else s["note"]
+        self.info.setText(src.pixel_summary(iy, ix, at=at) + ("\n" + law_line if law_line else ""))
+        if axr is None:
+            ax.set_xlabel(xl)
+            return
+        axr.set_xlabel(xl)
+        axr.set_ylabel("(data − law)/σ")
+        if s["curve_y"].size and np.isfinite(s["yerr"]).any():
+            from ...series import evaluate_law
+
+            vals = [v for v, _ in s["params"].values()]
+            law_y = evaluate_law(s["law"], s["x"], vals,
+                                 reference_power_w=s["reference_power_W"])
+            (self.lines["residual"],) = axr.plot(s["x"], (s["y"] - law_y) / s["yerr"], "o",
+                                                 ms=3, color=FIT_COLOUR)
+        axr.axhline(0, color="#9e9e9e", lw=0.6)
+
     def _draw_pixel(self, src: MapSource, ax: Any, axr: Any) -> None:
         iy, ix = self.current
-        got = src.spectrum(iy, ix)
-        ax.set_title(f"pixel ({iy}, {ix}): y {src.grid.y[iy]:.4g}, x {src.grid.x[ix]:.4g} µm")
+        at = self.stack_at(src)
+        got = src.spectrum(iy, ix, at=at)
+        where = "".join(f", {d} #{i}" for d, i in at.items())
+        ax.set_title(f"pixel ({iy}, {ix}): y {src.grid.y[iy]:.4g}, x {src.grid.x[ix]:.4g} µm"
+                     + where)
         if got is not None:
             axis, values = got
             (self.lines["spectrum"],) = ax.plot(
                 axis, values, ".", ms=2.5, color=DATA_COLOUR, label="spectrum"
             )
-            fit = src.fit_at(iy, ix, axis) if self.show_fit.isChecked() else None
+            fit = src.fit_at(iy, ix, axis, at=at) if self.show_fit.isChecked() else None
             if fit is not None:
                 (self.lines["fit"],) = ax.plot(
                     axis,
@@ -364,7 +468,7 @@ class SpectrumPanel(QWidget):
                 (self.lines["residual"],) = axr.plot(axis, resid, lw=0.8, color=FIT_COLOUR)
                 axr.axhline(0, color="#9e9e9e", lw=0.6)
         if self.show_raw.isChecked():
-            raw = src.raw_spectrum(iy, ix)
+            raw = src.raw_spectrum(iy, ix, at=at)
             if raw is not None:
                 ax2 = self.plot.style(ax.twinx())
                 ax2.grid(False)
