@@ -98,6 +98,11 @@ _NAMES = {
     "window_ratio": "Window ratio",
     "component_abundance": "Component amplitude",
     "region": "Regions",
+    "qfls": "Quasi-Fermi-level splitting",
+    "implied_voc": "Implied open-circuit voltage",
+    "carrier_temperature": "Carrier temperature",
+    "planck_chi2_red": "Planck fit: reduced χ²",
+    "planck_status": "Planck fit status",
 }
 
 

@@ -405,6 +405,9 @@ def _draw_map(
             extend = {(True, True): "both", (True, False): "min", (False, True): "max"}.get(
                 (bool(lo_c), bool(hi_c)), "neither")
         cb = ax.figure.colorbar(im, ax=ax, shrink=0.9, extend=extend)
+        fmt = cb.ax.yaxis.get_major_formatter()
+        if hasattr(fmt, "set_useOffset"):  # whole values on the bar, not "+1.576" and 0.0005
+            fmt.set_useOffset(False)
         cb.set_label(_label(da, "value") + clip_note, fontsize=8.5 if clip_note else None)
     n_nan = int(np.sum(~np.isfinite(values)))
     note = _style.ORIENTATION_NOTE

@@ -70,7 +70,7 @@ _MAIN = ("peak_energy", "peak_wavelength", "peak_fwhm", "peak_height", "peak_are
 _QUALITY = ("fit_status", "peak_status", "chi2_red", "residual_variance",
             "weighted_residual_variance", "bic", "n_iter", "background_offset",
             "background_slope")
-_PHYSICS = ("qfls", "carrier_temperature", "implied_voc", "planck_")
+_PHYSICS = ("qfls", "implied_voc", "carrier_temperature", "planck_")
 
 _CSS = """
 body{font-family:system-ui,-apple-system,"Segoe UI",Roboto,"Helvetica Neue",Arial,sans-serif;
@@ -441,7 +441,8 @@ def _physics_assumptions(ds: xr.Dataset) -> list[str]:
                 f"Generalized Planck law: absorptivity {p.get('absorptivity', 1)}")
                 + _e("; the cube must be in absolute units (photons s⁻¹ m⁻² eV⁻¹): qfls, carrier "
                      "temperature and implied Voc are only as good as that calibration; the "
-                     "high-energy tail is assumed to be thermal (Boltzmann) emission. "
+                     "carriers are taken as in quasi-equilibrium, one quasi-Fermi-level "
+                     "splitting and one carrier temperature per pixel. "
                      f"{'Weighted by the given errors.' if r.get('weighted') else 'Unweighted.'}"))
         elif name == "series":
             out.append(_e(
@@ -482,10 +483,10 @@ def _classify(stem: str, law: str | None) -> str:
 def _figure_order(path: Path) -> tuple[int, str]:
     """Main quantities first (peak energy, width, intensity...), then the rest by name."""
     stem = Path(path).stem
-    for i, name in enumerate(_MAIN + _QUALITY):
+    for i, name in enumerate(_MAIN + _QUALITY + _PHYSICS):
         if stem == name or stem.startswith(name + "_"):
             return i, stem
-    return len(_MAIN) + len(_QUALITY), stem
+    return len(_MAIN) + len(_QUALITY) + len(_PHYSICS), stem
 
 
 _MAPS_NOTE = ("<p>Every map: y up with the origin (smallest x and y) at the lower left, axes "
