@@ -226,7 +226,7 @@ def plot_series_by_region(ds: xr.Dataset, path: str | Path, *,
     ax.set_ylabel(qname)
     suffix = "".join(f" — {k} {v}" for k, v in (index or {}).items())
     ax.set_title(title if title is not None else
-                 f"{qname} against {dname[:1].lower() + dname[1:]}: {LAW_TITLES[law]} law{suffix}", fontsize=10)
+                 f"{qname} against {dname[:1].lower() + dname[1:]}: {LAW_TITLES[law]} fit{suffix}", fontsize=10)
     ax.legend(fontsize=8, loc="best", frameon=False)
     ax.grid(alpha=0.3, lw=0.5)
     ref = LAWS[law].reference
