@@ -1107,21 +1107,27 @@ def plot_small_multiples(
     axes = np.atleast_1d(fig.subplots(nrows, ncols, squeeze=False)).ravel()
     norm = Normalize(lo, hi)
     im = None
+    n_nan = 0
     for ax, (label, da) in zip(axes, items):
         art = _draw_map(ax, da, norm=norm, cmap=_style.colormap_for(str(first.name or "")),
                         scale_bar=True, discrete=False)
         im = art.image
+        n_nan += art.n_nan
         ax.set_title(label, fontsize=8)
         ax.tick_params(labelsize=7)
         ax.xaxis.label.set_size(7)
         ax.yaxis.label.set_size(7)
     for ax in axes[n:]:
         ax.set_axis_off()
+    note = _style.ORIENTATION_NOTE  # one note for all panels (each map drew its own)
+    if n_nan:
+        note += f" · {_style.NAN_TEXT}: {n_nan} px in all panels"
+    fig.supxlabel(note, fontsize=7.5, color="0.3")
     extend = {(True, True): "both", (True, False): "min", (False, True): "max"}.get(
         (below > 0, above > 0), "neither")
     cb = fig.colorbar(im, ax=axes[:n].tolist(), shrink=0.9, extend=extend)
-    how = "shared limits" if vlim is not None else "shared 2–98 % limits of all maps"
-    cb.set_label(f"{_label(first, 'value')}\n{how}; clipped: {below} px below, {above} above",
+    how = "shared limits" if vlim is not None else "2–98 % of all maps' values"
+    cb.set_label(f"{_label(first, 'value')}\n{how}\nclipped: {below} px below, {above} above",
                  fontsize=8)
     fig.suptitle(title if title is not None else _title(first) + " — same colour scale in "
                  "every panel", fontsize=10)

@@ -101,6 +101,7 @@ figcaption{font-size:.8em;color:#444;margin-top:4px}
 pre{background:#f6f8fa;border:1px solid #e1e6eb;padding:8px;overflow:auto;font-size:.8em;
  max-height:420px}
 details summary{cursor:pointer;color:#0f4c81}
+.scroll{overflow-x:auto;max-width:100%}
 code{font-size:.95em;background:#f1f3f5;padding:0 3px;border-radius:3px}
 footer{margin-top:40px;font-size:.8em;color:#666}
 @media print{nav{display:none}.grid{display:block}figure{break-inside:avoid;margin-bottom:10px}}
@@ -917,7 +918,7 @@ def write_summary_html(
     Path
         The HTML file written.
     """
-    from .report import plot_small_multiples
+    from .report import _no_value_mask, plot_small_multiples
     from .results import open_result
 
     if not rows:
@@ -926,10 +927,23 @@ def write_summary_html(
     opened = [(Path(str(r["result"])).name.removesuffix(".zarr"), open_result(r["result"]))
               for r in rows]
     cols = list(dict.fromkeys(k for r in rows for k in r))
-    trows = [[_e(r.get(c, "")) if c in ("input", "result") else _num(r.get(c, ""), 5)
-              for c in cols] for r in rows]
-    table = _table(cols, trows, num_cols=tuple(i for i, c in enumerate(cols)
-                                               if c not in ("input", "result")))
+
+    def table_of(columns: list[str], short: bool = False) -> str:
+        def cell(r, c):
+            if c in ("input", "result"):
+                return _e(Path(str(r.get(c, ""))).name if short else r.get(c, ""))
+            return _num(r.get(c, ""), 5)
+
+        trows = [[cell(r, c) for c in columns] for r in rows]
+        return '<div class="scroll">' + _table(columns, trows, num_cols=tuple(
+            i for i, c in enumerate(columns) if c not in ("input", "result"))) + "</div>"
+
+    main_cols = ["input"] + [c for v in variables for c in cols
+                             if (c.startswith(v + " ") or c.startswith(v + "["))
+                             and (" median" in c or " sigma_MAD" in c)]
+    main_cols += [c for c in cols if c.startswith("peak_energy") and "finite fraction" in c][:1]
+    table = (table_of(main_cols, short=True) + "<details><summary>every column (as in summary.csv)"
+             "</summary>" + table_of(cols) + "</details>")
     figs = []
     skipped = []
     with tempfile.TemporaryDirectory(prefix="pmap_summary_") as tmp:
@@ -942,6 +956,9 @@ def write_summary_html(
                 if da.dtype.kind != "f" or "flag_values" in da.attrs:
                     break
                 da = da.isel({d: 0 for d in da.dims if d not in ("y", "x")})
+                no_value = _no_value_mask(ds)  # grey as in each result's own figures
+                if no_value is not None:
+                    da = da.where(~no_value)
                 maps[label] = da.load()
             else:
                 if maps and any(np.isfinite(np.asarray(m.values, float)).any()
@@ -954,9 +971,9 @@ def write_summary_html(
                 f"{_e(', '.join(skipped))}.</p>" if skipped else "")
         sections = [
             ("table", "Table", f'<h2 id="table">Summary table ({len(rows)} maps)</h2>'
-             "<p>Median, robust spread σ_MAD = 1.4826 × median absolute deviation, and the "
-             "fraction of pixels with a value, for every map of every result "
-             "(the same numbers as summary.csv).</p>" + table),
+             "<p>Median and robust spread σ_MAD = 1.4826 × median absolute deviation of the "
+             "main maps, and the fraction of pixels with a peak energy; every map's numbers "
+             "(the same as summary.csv) below.</p>" + table),
             ("maps", "Maps", '<h2 id="maps">Main maps on shared colour limits</h2>'
              "<p>Within each figure every panel uses the same colour scale, so colours compare "
              "across samples.</p>" + fig_html + note),
