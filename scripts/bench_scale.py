@@ -1,17 +1,25 @@
-"""Benchmark: end-to-end `plcube process` on a cube larger than the memory limit it sets.
+"""Benchmark: `plcube process` end to end, as a user runs it, against the read floor.
 
 Generates the synthetic demo cube at a chosen size (written tile by tile to Zarr),
 then, each in a fresh process so that peak memory is its own:
 
-1. the read floor: read every chunk of the cube and sum it (nothing else);
-2. the whole job: read, clean (bad pixels, spikes, baseline), convert to energy,
-   descriptors, one-peak fit, write the result store, under ``--memory-limit``.
+1. startup: ``plcube --version`` (interpreter and imports only);
+2. the read floor: open the cube, read every chunk and sum it (nothing else;
+   timed inside the process, imports excluded);
+3. the whole job: the command ``plcube process CUBE -o RESULT.zarr --memory-limit
+   LIMIT`` with the default pipeline, figures on (read, clean, convert to energy,
+   descriptors, one-peak fit, write the result store, draw the figures).
 
-Prints spectra/s, peak RSS (VmHWM) of each, and last the ratio of the end-to-end
-time to the read floor measured in the same run.
+Prints spectra/s and peak RSS (the child's own maximum resident set) of each, and
+last ``end_to_end_vs_read: N``: the command's wall time less the startup time,
+divided by the read floor measured in the same run. With ``--sizes`` it repeats
+this for several sizes and prints the scaling table: seconds per GB and the
+deviation of each time from the least-squares straight line through all sizes.
 
-    python scripts/bench_scale.py                 # ≈4 GB of float32 data (≈1.2 GB compressed on disk)
-    python scripts/bench_scale.py --size 0.25 --memory-limit 1GB   # quick
+    python scripts/bench_scale.py                       # 0.5 GB of float32 data
+    python scripts/bench_scale.py --size 4 --memory-limit 1GB
+    python scripts/bench_scale.py --sizes 0.5,1,2,4     # scaling line (long)
+    python scripts/bench_scale.py --profile prof/       # py-spy profile of the process run
 """
 
 from __future__ import annotations
@@ -35,78 +43,123 @@ t = time.perf_counter()
 with dask.config.set(scheduler="threads"):
     total = float(cube.data.sum(dtype="float64").compute())
 dt = time.perf_counter() - t
-hwm = [int(l.split()[1]) for l in open("/proc/self/status") if l.startswith("VmHWM")][0]
-print(json.dumps({"seconds": dt, "rss_mib": hwm / 1024, "n": int(cube.sizes["y"] * cube.sizes["x"])}))
-"""
-
-PROCESS = r"""
-import json, sys, time, warnings
-import pmap
-warnings.simplefilter("ignore")
-t = time.perf_counter()
-pipe = pmap.load_pipeline(None)
-if sys.argv[4] != "0":
-    pipe.components = {"method": "nmf", "n_components": int(sys.argv[4])}
-    pipe.regions = {"n_regions": 3, "method": "gmm", "feature_space": "shape+intensity"}
-ds = pmap.process(sys.argv[1], sys.argv[2], pipeline=pipe, memory_limit=sys.argv[3],
-                  progress=True)
-dt = time.perf_counter() - t
-st = ds.fit_status.values
-hwm = [int(l.split()[1]) for l in open("/proc/self/status") if l.startswith("VmHWM")][0]
-print(json.dumps({"seconds": dt, "rss_mib": hwm / 1024, "converged": float((st == 0).mean())}))
+print(json.dumps({"seconds": dt, "n": int(cube.sizes["y"] * cube.sizes["x"])}))
 """
 
 
-def run(code: str, *args: str) -> dict:
-    res = subprocess.run([sys.executable, "-c", code, *args], capture_output=True, text=True)
-    if res.returncode:
-        sys.stderr.write(res.stderr)
-        raise SystemExit(f"benchmark step failed ({res.returncode})")
-    return json.loads(res.stdout.strip().splitlines()[-1])
+def _run_child(cmd: list[str]) -> tuple[float, float, str, str]:
+    """Run cmd; (wall seconds, peak RSS MiB of that child alone, stdout, stderr)."""
+    with tempfile.TemporaryFile("w+") as fo, tempfile.TemporaryFile("w+") as fe:
+        t = time.perf_counter()
+        proc = subprocess.Popen(cmd, stdout=fo, stderr=fe, text=True)
+        _, status, ru = os.wait4(proc.pid, 0)  # the child's own rusage (ru_maxrss in KiB)
+        wall = time.perf_counter() - t
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        fo.seek(0)
+        fe.seek(0)
+        out, err = fo.read(), fe.read()
+    if proc.returncode:
+        sys.stderr.write(err)
+        raise SystemExit(f"benchmark step failed ({proc.returncode}): {' '.join(cmd)}")
+    return wall, ru.ru_maxrss / 1024, out, err
 
 
-def main() -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--size", type=float, default=4.0,
-                    help="cube size in GB of float32 data (default 4)")
-    ap.add_argument("--channels", type=int, default=512)
-    ap.add_argument("--memory-limit", default="1GB")
-    ap.add_argument("--workdir", default=None, help="folder for the cube (default: a temp dir)")
-    ap.add_argument("--keep", action="store_true", help="keep the generated files")
-    ap.add_argument("--regions", action="store_true",
-                    help="also NMF (3 components) and 3 regions, as `plcube demo` does")
-    args = ap.parse_args()
+def _load() -> str:
+    return "/".join(f"{v:.2f}" for v in os.getloadavg())
 
+
+def bench_one(size_gb: float, args, work: Path) -> dict:
+    """Generate one cube and measure startup, read floor and the process command."""
     from pmap.synthetic import write_demo_cube
 
-    side = int(math.sqrt(args.size * 1e9 / (4 * args.channels)))
-    work = Path(args.workdir or tempfile.mkdtemp(prefix="pmap_bench_scale_"))
-    work.mkdir(parents=True, exist_ok=True)
+    side = int(math.sqrt(size_gb * 1e9 / (4 * args.channels)))
     print(f"cube: {side} x {side} x {args.channels} float32 = "
-          f"{side * side * args.channels * 4 / 1e9:.2f} GB in memory; "
-          f"memory limit {args.memory_limit}; load average {os.getloadavg()[0]:.1f}")
+          f"{side * side * args.channels * 4 / 1e9:.2f} GB in memory; memory limit "
+          f"{args.memory_limit}; load average {_load()}", flush=True)
     t = time.perf_counter()
     paths = write_demo_cube(work, shape=(side, side), n_channels=args.channels, seed=1,
-                            workers=os.cpu_count() or 1, overwrite=True, name="bench")
+                            workers=os.cpu_count() or 1, overwrite=True, name=f"bench_{side}")
     gen = time.perf_counter() - t
     disk = sum(f.stat().st_size for f in Path(paths["cube"]).rglob("*") if f.is_file())
     n = side * side
     print(f"generated in {gen:.1f} s ({n / gen:,.0f} spectra/s), {disk / 1e9:.2f} GB on disk")
-
-    read = run(READ, str(paths["cube"]))
+    py = sys.executable
+    startup = min(_run_child([py, "-m", "pmap", "--version"])[0] for _ in range(3))
+    print(f"startup:     {startup:.2f} s (plcube --version, best of 3)")
+    wall_r, rss_r, out, _ = _run_child([py, "-c", READ, str(paths["cube"])])
+    read = json.loads(out.strip().splitlines()[-1])
     print(f"read floor:  {read['seconds']:.1f} s, {n / read['seconds']:,.0f} spectra/s, "
-          f"{disk / 1e9 / read['seconds']:.2f} GB/s from disk, peak RSS {read['rss_mib']:.0f} MiB")
-    out = work / "bench_result.zarr"
-    shutil.rmtree(out, ignore_errors=True)
-    proc = run(PROCESS, str(paths["cube"]), str(out), args.memory_limit,
-               "3" if args.regions else "0")
-    print(f"end to end:  {proc['seconds']:.1f} s, {n / proc['seconds']:,.0f} spectra/s, "
-          f"peak RSS {proc['rss_mib']:.0f} MiB (limit {args.memory_limit}), "
-          f"{100 * proc['converged']:.1f} % of fits converged")
-    print(f"load average after: {os.getloadavg()[0]:.1f}")
-    if not args.keep and not args.workdir:
-        shutil.rmtree(work, ignore_errors=True)
-    print(f"end_to_end_vs_read: {proc['seconds'] / read['seconds']:.1f}")
+          f"{disk / 1e9 / read['seconds']:.2f} GB/s from disk, peak RSS {rss_r:.0f} MiB "
+          f"(process incl. startup {wall_r:.1f} s); load {_load()}", flush=True)
+    res = work / f"bench_{side}_result.zarr"
+    shutil.rmtree(res, ignore_errors=True)
+    shutil.rmtree(work / f"bench_{side}_result_figures", ignore_errors=True)
+    cmd = [py, "-m", "pmap", "process", str(paths["cube"]), "-o", str(res),
+           "--memory-limit", args.memory_limit]
+    if args.regions:
+        cmd += ["--regions", "3", "--components", "3"]
+    if args.profile:
+        prof = Path(args.profile)
+        prof.mkdir(parents=True, exist_ok=True)
+        cmd = ["py-spy", "record", "--rate", "50", "--format", "raw", "--threads", "-o",
+               str(prof / f"process_{side}.txt"), "--", *cmd]
+    wall_p, rss_p, out, err = _run_child(cmd)
+    summary = [ln for ln in err.splitlines() if "converged" in ln][:1]
+    work_s = wall_p - startup
+    print(f"end to end:  {wall_p:.1f} s for the command ({work_s:.1f} s after startup), "
+          f"{n / work_s:,.0f} spectra/s, peak RSS {rss_p:.0f} MiB (limit {args.memory_limit})"
+          f"{'; ' + summary[0].strip() if summary else ''}; load {_load()}", flush=True)
+    if not args.keep:
+        for p in (paths["cube"], paths["truth"], res, work / f"bench_{side}_result_figures"):
+            shutil.rmtree(p, ignore_errors=True)
+    return {"gb": side * side * args.channels * 4 / 1e9, "read": read["seconds"],
+            "process": work_s, "startup": startup, "rss_read": rss_r, "rss_process": rss_p}
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--size", type=float, default=0.5,
+                    help="cube size in GB of float32 data (default 0.5)")
+    ap.add_argument("--sizes", help="comma-separated sizes in GB for the scaling line, "
+                    "e.g. 0.5,1,2,4 (each generated, read and processed in turn)")
+    ap.add_argument("--channels", type=int, default=512)
+    ap.add_argument("--memory-limit", default="1GB")
+    ap.add_argument("--workdir", default=None, help="folder for the cubes (default: a temp dir)")
+    ap.add_argument("--keep", action="store_true", help="keep the generated files")
+    ap.add_argument("--regions", action="store_true",
+                    help="also NMF (3 components) and 3 regions, as `plcube demo` does")
+    ap.add_argument("--profile", help="folder for py-spy profiles (raw collapsed stacks) of "
+                    "the process runs (needs py-spy on PATH)")
+    args = ap.parse_args()
+    sizes = [float(s) for s in args.sizes.split(",")] if args.sizes else [args.size]
+    work = Path(args.workdir or tempfile.mkdtemp(prefix="pmap_bench_scale_"))
+    work.mkdir(parents=True, exist_ok=True)
+    rows = []
+    try:
+        for s in sizes:
+            rows.append(bench_one(s, args, work))
+    finally:
+        if not args.keep and not args.workdir:
+            shutil.rmtree(work, ignore_errors=True)
+    print(f"load average after: {_load()}")
+    if len(rows) > 1:
+        gb = [r["gb"] for r in rows]
+        tp = [r["process"] for r in rows]
+        m = len(gb)
+        mx, my = sum(gb) / m, sum(tp) / m
+        slope = sum((g - mx) * (t - my) for g, t in zip(gb, tp)) / max(
+            sum((g - mx) ** 2 for g in gb), 1e-300)
+        icpt = my - slope * mx
+        print(f"scaling: process time = {icpt:.1f} s + {slope:.1f} s/GB x size (least squares)")
+        print(" GB      read s  process s  ratio  s/GB   off line  RSS read  RSS process")
+        for r in rows:
+            line = icpt + slope * r["gb"]
+            print(f"{r['gb']:5.2f}  {r['read']:8.1f}  {r['process']:9.1f}  "
+                  f"{r['process'] / r['read']:5.1f}  {r['process'] / r['gb']:5.1f}  "
+                  f"{100 * (r['process'] - line) / line:+7.1f} %  {r['rss_read']:6.0f} MiB"
+                  f"  {r['rss_process']:6.0f} MiB")
+    last = rows[-1]
+    print(f"end_to_end_vs_read: {last['process'] / last['read']:.1f}")
 
 
 if __name__ == "__main__":
