@@ -463,8 +463,37 @@ def _template(mean, spec):
     return np.asarray(best, dtype=float), float(height[0]), float(e_max[0])
 
 
-def _starts(Y, rows, desc, spec, template):
-    """Starting values (len(rows), n_full) for rows ``rows`` of Y, ``desc`` of those rows."""
+#: the centroid that places a multi-peak template uses the channels above this
+#: fraction of the spectrum's maximum above its base
+_CENTROID_FRAC = 0.2
+
+
+def _centroid(Yr, base, x):
+    """Centroid energy (eV) of each row's signal above ``base``, over the channels above
+    ``_CENTROID_FRAC`` of its maximum (masked channels left out); NaN without signal."""
+    Z = np.asarray(Yr, dtype=np.float64) - np.asarray(base, dtype=np.float64)[:, None]
+    Z = np.where(np.isfinite(Z), Z, 0.0)
+    top = Z.max(axis=1, keepdims=True)
+    W = np.where((Z > _CENTROID_FRAC * top) & (top > 0), Z, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return (W @ x) / W.sum(axis=1)
+
+
+def _template_centroid(tp, spec):
+    """:func:`_centroid` of the template's peaks (background left out), eV."""
+    nb = spec.K * spec.npp
+    f = np.empty(spec.x.size)
+    K.eval_model(spec.code, spec.x, spec.xref, np.ascontiguousarray(tp[:nb], dtype=np.float64),
+                 spec.K, 0, f, np.zeros((spec.x.size, nb)), False)
+    return float(_centroid(f[None, :], np.zeros(1), spec.x)[0])
+
+
+def _starts(Y, rows, desc, spec, template, base=None):
+    """Starting values (len(rows), n_full) for rows ``rows`` of Y, ``desc`` of those rows.
+
+    ``base`` (len(rows),): each row's base level (minimum of the 3-channel running
+    mean), used to place a multi-peak template by the centroid.
+    """
     m = rows.size
     b, e_max, height, fw = desc
     P0 = np.zeros((m, spec.nfull))
@@ -472,8 +501,15 @@ def _starts(Y, rows, desc, spec, template):
     if template is not None:
         tp, t_height, t_centre = template
         scale = np.where(t_height > 0, np.maximum(height, 0.0) / t_height, 1.0)
-        # the template moved to the pixel: its centres shift with the pixel's maximum
-        shift = np.where(np.isfinite(e_max), e_max - t_centre, 0.0)
+        # the template moved to the pixel: one peak shifts with the pixel's maximum;
+        # several with the pixel's centroid (the maximum can jump from one line to
+        # another where their heights cross, which would start every line one
+        # separation away)
+        if spec.K > 1 and base is not None:
+            shift = _centroid(Y[rows], base, spec.x) - _template_centroid(tp, spec)
+        else:
+            shift = e_max - t_centre
+        shift = np.where(np.isfinite(shift), shift, 0.0)
         P0[:] = tp
         for k in range(spec.K):
             P0[:, k * npp + 2] = tp[k * npp + 2] * scale
@@ -540,7 +576,7 @@ def _fit_rows(Y, mean, spec, nz, max_iter, min_snr, VS=_ONE, VP=_ZERO):
         if spec.K > 1 or spec.init == "mean":
             template = _template(mean, spec)
         sel = tuple(v[fit_rows] for v in start)
-        P0 = _starts(Y, fit_rows, sel, spec, template)
+        P0 = _starts(Y, fit_rows, sel, spec, template, base=b[fit_rows])
         P, COV, chi2, st, niter = _run(Y, spec, P0, nz, max_iter, fit_rows, VS=VS, VP=VP)
         res = _postprocess(P, COV, chi2, st, niter, spec, nz[0] == 1, min_snr)
         if spec.K > 1:
