@@ -184,8 +184,9 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
         Fit window, eV (default: from the maximum of the mean spectrum + 3kT at 300 K,
         77.6 meV, to the end of the axis).
     wavelength_range_nm : (float, float), optional
-        The window in nm instead (in the cube's medium, ``wavelength_medium``, air unless
-        stated; :func:`window_nm_to_ev`). Only one of the two windows may be given.
+        The window in nm instead, for a cube on a wavelength axis (in its medium,
+        ``wavelength_medium``, air unless stated; :func:`window_nm_to_ev`). Only one of
+        the two windows may be given.
     sigma : DataArray, optional
         1σ uncertainties of the cube values (same units). Default: from the cube's noise
         model (:mod:`pmap.noise`) when it has one, var = s·a·m + s²·(a·p + b) with m the
@@ -215,6 +216,10 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
     if energy_range_ev is not None and wavelength_range_nm is not None:
         raise StepError("give the Planck window once: energy_range_ev or wavelength_range_nm")
     if wavelength_range_nm is not None:
+        if "wavelength" not in cube.dims and "wavelength_medium" not in cube.attrs:
+            raise StepError("wavelength_range_nm needs the cube's wavelength medium, lost once "
+                            "the axis is in energy: give energy_range_ev (plcube process "
+                            "--planck-window converts nm with the input cube's medium)")
         medium = str(cube.attrs.get("wavelength_medium", "air"))
         energy_range_ev = window_nm_to_ev(wavelength_range_nm, medium=medium)
     cube, how = _absolute(cube, photon_flux_per_count)

@@ -191,6 +191,12 @@ def test_flux_per_nm_converted_with_the_jacobian(medium):
     np.testing.assert_allclose(out["carrier_temperature"], 300.0, atol=0.05)
     lo, hi = out.attrs["planck_window_ev"]
     assert hi == pytest.approx(HC_EV_NM / float(lam_vac[0]), rel=1e-6)
+    # on an energy axis the medium is gone: a window in nm is refused, not guessed
+    from pmap.spectral import to_energy
+
+    e_cube = to_energy(cube.assign_attrs(units="W/nm"))
+    with pytest.raises(StepError, match="medium"):
+        fit_planck(e_cube.assign_attrs(units="photons/s/m2/eV"), wavelength_range_nm=(705, 760))
 
 
 def test_window_nm_to_ev():
