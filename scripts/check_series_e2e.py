@@ -104,7 +104,7 @@ def run(seed, ny, nx, shifted, tmp, scene_name=None):
     reg_err = np.abs(est - np.array(shifts)).max()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        res = process(stack, Path(tmp) / f"r{seed}{int(shifted)}.zarr", progress=False, peaks=1)
+        res = process(stack, Path(tmp) / f"r{scene_name or 0}{seed}{int(shifted)}.zarr", progress=False, peaks=1)
     pe = res["peak_energy"].isel(peak=0)
     pull_pe = ((pe - (E0 - ALPHA * res["temperature"] ** 2 / (res["temperature"] + BETA)))
                / res["peak_energy_err"].isel(peak=0)).values.ravel()
