@@ -391,3 +391,20 @@ def test_cli_process_folder_writes_reports_and_summary_html(tmp_path, capsys):
     assert main(["process", str(src), "-o", str(out2), "-q", "--no-figures"]) == 0
     assert (out2 / "summary.html").exists()
     assert not list(out2.rglob("*_report.html"))
+
+
+def test_cli_report_html(demo_store, tmp_path, capsys):
+    """plcube report RESULT --html: the figures and, beside them, NAME_report.html."""
+    from pmap.cli import main
+
+    out = tmp_path / "figs"
+    assert main(["report", str(demo_store), "-o", str(out), "--html"]) == 0
+    page = out / "r_report.html"
+    assert f"HTML report: {page}" in capsys.readouterr().out
+    text = page.read_text(encoding="utf-8")
+    assert _outside_references(text) == []
+    pngs = sorted(out.glob("*.png"))
+    imgs = [a["src"] for tag, a in _parse(text).tags if tag == "img"]
+    assert len(imgs) == len(pngs)  # every figure drawn is in the page, once
+    embedded = {base64.b64decode(s.split(",", 1)[1]) for s in imgs}
+    assert embedded == {p.read_bytes() for p in pngs}
