@@ -339,14 +339,16 @@ def cmd_demo(args: argparse.Namespace) -> int:
     pipe.regions = {"n_regions": regions, "method": "gmm", "feature_space": "shape+intensity"}
     if args.components:
         pipe.components = {"method": "nmf", "n_components": args.components}
+    t_start = time.perf_counter()
     ds = process(cube_path, result_path, pipeline=pipe, overwrite=True,
                  progress=not args.quiet)
+    wall_s = time.perf_counter() - t_start
     _print_fit_summary(ds)
     figs = write_figures(ds, _figures_dir(result_path))
     figs.append(_demo_spike_figure(cube_path, paths["truth"], _figures_dir(result_path)))
     print(f"result:      {result_path}")
     print(f"figures:     {_figures_dir(result_path)} ({len(figs)} PNG)")
-    _write_html(result_path, figs)
+    _write_html(result_path, figs, wall_s)
     try:
         from .synthetic import compare_with_truth
 
