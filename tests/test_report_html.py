@@ -203,7 +203,7 @@ def test_all_text_is_escaped(demo_store, tmp_path):
     ds.attrs["pmap_provenance"] = json.dumps(prov)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", PmapNotice)
-        out = write_html_report(ds, tmp_path / "evil.html")
+        out = write_html_report(ds, tmp_path / "evil.html", figures=[])
     text = out.read_text(encoding="utf-8")
     assert "<script" not in text and "<b>bold</b>" not in text
     assert html.escape(evil) in text and html.escape("/data/<b>bold</b>.zarr") in text
@@ -408,3 +408,27 @@ def test_cli_report_html(demo_store, tmp_path, capsys):
     assert len(imgs) == len(pngs)  # every figure drawn is in the page, once
     embedded = {base64.b64decode(s.split(",", 1)[1]) for s in imgs}
     assert embedded == {p.read_bytes() for p in pngs}
+
+
+def test_caveats_of_an_assumed_medium_and_the_planck_stage(demo_store, tmp_path):
+    """The assumed-medium warning gives the shift at the median peak; physics assumptions."""
+    from pmap.conventions import HC_EV_NM
+    from pmap.spectral._airvac import medium_shift_mev
+
+    ds = open_result(demo_store)
+    ds = ds.drop_vars([v for v in ds.data_vars if v == "intensity"])
+    prov = get_provenance(ds.attrs)
+    prov["input"].update(wavelength_medium="air", wavelength_medium_source="assumed")
+    prov["steps"].append({"step": "planck", "params": {"energy_range_ev": [1.58, 1.75],
+                                                        "absorptivity": 1.0, "max_iter": 50},
+                          "results": {"reference": "Würfel, J. Phys. C 15, 3967 (1982)",
+                                      "weighted": False}})
+    ds.attrs["pmap_provenance"] = json.dumps(prov)
+    text = write_html_report(ds, tmp_path / "m.html", figures=[]).read_text(encoding="utf-8")
+    med = float(np.nanmedian(ds["peak_energy"].isel(peak=0).values))
+    peak_nm = HC_EV_NM / med
+    # the shift the warning quotes is the one pmap.spectral computes at the median peak
+    assert f"energies are {medium_shift_mev(peak_nm):.3g} meV higher at {peak_nm:.0f} nm" in text
+    assert "assuming air" in text
+    assert "absorptivity taken as a constant 1.0 on the fitted window 1.58–1.75 eV" in text
+    assert "Würfel" in text
