@@ -98,6 +98,8 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
            "--memory-limit", args.memory_limit]
     if args.regions:
         cmd += ["--regions", "3", "--components", "3"]
+    if args.no_figures:
+        cmd += ["--no-figures"]
     if args.profile:
         prof = Path(args.profile)
         prof.mkdir(parents=True, exist_ok=True)
@@ -128,6 +130,9 @@ def main() -> None:
     ap.add_argument("--keep", action="store_true", help="keep the generated files")
     ap.add_argument("--regions", action="store_true",
                     help="also NMF (3 components) and 3 regions, as `plcube demo` does")
+    ap.add_argument("--no-figures", action="store_true",
+                    help="diagnosis only: run the command with --no-figures (a user's run "
+                    "draws them; the default measures that)")
     ap.add_argument("--profile", help="folder for py-spy profiles (raw collapsed stacks) of "
                     "the process runs (needs py-spy on PATH)")
     args = ap.parse_args()
