@@ -496,6 +496,7 @@ def plot_histogram(
     *,
     bins: int = 80,
     title: str | None = None,
+    log: bool = False,
 ) -> Path:
     """Save a histogram of a map's finite values, with median and robust spread.
 
@@ -512,6 +513,10 @@ def plot_histogram(
         Output PNG file.
     bins : int
         Number of bins.
+    log : bool
+        Logarithmic value axis with bins of equal ratio (for positive
+        quantities spanning decades, e.g. a reduced χ²); values <= 0 are
+        counted as not drawn.
     title : str, optional
         Figure title; default the variable name.
 
@@ -537,10 +542,17 @@ def plot_histogram(
         "n_no_value": int(values.size - finite.size),
     }
     if finite.size:
-        lo, hi = np.percentile(finite, [0.5, 99.5])
+        positive = finite[finite > 0]
+        log = bool(log and positive.size)
+        lo, hi = np.percentile(positive if log else finite, [0.5, 99.5])
         if hi <= lo:
             lo, hi = lo - (abs(lo) * 1e-3 or 1.0), hi + (abs(hi) * 1e-3 or 1.0)
-        ax.hist(finite, bins=bins, range=(lo, hi), color=_style.CATEGORY_PALETTE[0])
+        if log:
+            lo, hi = (lo, hi) if lo > 0 else (hi * 1e-3, hi)
+            ax.hist(finite, bins=np.geomspace(lo, hi, bins + 1), color=_style.CATEGORY_PALETTE[0])
+            ax.set_xscale("log")
+        else:
+            ax.hist(finite, bins=bins, range=(lo, hi), color=_style.CATEGORY_PALETTE[0])
         med = float(np.median(finite))
         sig = float(1.4826 * np.median(np.abs(finite - med)))
         below, above = int(np.sum(finite < lo)), int(np.sum(finite > hi))
@@ -559,7 +571,7 @@ def plot_histogram(
             lines.append(f"{values.size - finite.size} pixels\nwithout a value\n(NaN, no signal)")
         side.text(0.0, 1.0, "\n\n".join(lines), transform=side.transAxes, ha="left", va="top",
                   fontsize=8.5)
-        info.update(median=med, sigma_mad=sig, outside_below=below, outside_above=above,
+        info.update(median=med, sigma_mad=sig, outside_below=below, outside_above=above, log=log,
                     range=[float(lo), float(hi)])
     else:
         ax.text(0.5, 0.5, "no finite values", transform=ax.transAxes, ha="center")

@@ -461,7 +461,7 @@ def _physics_assumptions(ds: xr.Dataset) -> list[str]:
 def _classify(stem: str, law: str | None) -> str:
     s = stem
     if s.endswith("_histogram"):
-        return "histograms"
+        return "quality" if s.startswith("chi2_red") else "histograms"
     if s.startswith("region"):
         return "regions"
     if s.startswith("component"):
@@ -794,6 +794,20 @@ def _draw_figures(ds: xr.Dataset, folder: Path) -> list[Path]:
         return write_figures(ds, folder)
 
 
+def _fit_quality_figures(ds: xr.Dataset, folder: Path, have: set[str]) -> list[Path]:
+    """The reduced χ² histogram (pixels with a fit), when the store has χ² and no such figure."""
+    if "chi2_red" not in ds or "chi2_red_histogram" in have:
+        return []
+    chi = ds["chi2_red"]
+    if not bool(np.isfinite(np.asarray(chi.values, float)).any()):
+        return []
+    from .report import plot_histogram
+
+    return [plot_histogram(chi, folder / "chi2_red_histogram.png",
+                           title="Reduced χ² of the fits (1 when the model and the noise model "
+                                 "describe the data)", log=True)]
+
+
 def write_html_report(
     result: xr.Dataset | str | Path,
     path: str | Path | None = None,
@@ -848,6 +862,8 @@ def write_html_report(
     ds = ds.assign({k: v.load() for k, v in small.items() if k in ds.data_vars})
     with tempfile.TemporaryDirectory(prefix="pmap_report_") as tmp:
         figs = [Path(f) for f in figures] if figures is not None else _draw_figures(ds, Path(tmp))
+        if figures is None or figs:
+            figs += _fit_quality_figures(ds, Path(tmp), {f.stem for f in figs})
         law = ds.attrs.get("series_law")
         groups: dict[str, list[Path]] = {}
         for f in sorted(figs, key=_figure_order):

@@ -201,3 +201,21 @@ def test_all_nan_map_is_skipped_with_a_note(tmp_path):
     with pytest.warns(PmapNotice, match="every pixel is NaN"):
         paths = report.write_figures(ds, tmp_path)
     assert [p.name for p in paths] == ["max_energy.png"]
+
+
+def test_histogram_log_axis_for_values_spanning_decades(tmp_path):
+    """log=True: equal-ratio bins over the 0.5–99.5 percentiles of the positive values."""
+    rng = np.random.default_rng(3)
+    vals = np.concatenate([10 ** rng.normal(0.0, 0.6, 3000), [-1.0, 0.0, np.nan]])
+    da = xr.DataArray(vals.reshape(1, -1), dims=("y", "x"), name="chi2_red",
+                      attrs={"units": "1"})
+    _, info, pixels = png_info(report.plot_histogram(da, tmp_path / "h.png", log=True))
+    pos = vals[np.isfinite(vals) & (vals > 0)]
+    lo, hi = np.percentile(pos, [0.5, 99.5])  # reference: numpy on the same values
+    assert info["log"] is True
+    assert info["range"] == pytest.approx([lo, hi], rel=1e-12)
+    finite = vals[np.isfinite(vals)]
+    assert info["outside_below"] == int(np.sum(finite < lo))  # the two values <= 0 included
+    assert info["outside_above"] == int(np.sum(finite > hi))
+    assert info["n"] == finite.size and info["n_no_value"] == 1
+    assert pixels.std() > 10
