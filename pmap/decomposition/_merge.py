@@ -15,12 +15,22 @@ s.d. 1):
 * **a smooth spatial trend explains the difference**: in the least-squares fit
   ``t = poly₄(y, x) + δ·[pixel in the second cluster]`` the membership step δ is
   less than ``separation`` (6) residual s.d. (a line that drifts across the map,
-  sampled by grains far apart, is one type).
+  sampled by grains far apart, is one type);
+* **the same emission on both sides of their border**: the mean unit-area spectra of
+  the border pixels on each side differ by less than ``min_difference`` (10 %), also
+  compared after each loses its best non-negative sum of the no-emission continua
+  (laser tail, stray light: a wafer's edge where the emission fades into the laser
+  tail is that emission, dimmer; :func:`emission_difference`);
+* **the same emission against their own surroundings** (groups without a shared
+  border): each group's mean spectrum, aligned by the shift that maps the spectrum
+  of one group's neighbours onto the other's, differs by less than
+  ``min_difference`` (a minority red-shifted from a host whose line drifts across
+  the map; :func:`host_aligned_difference`).
 
 This is merging of mixture components by unimodality of the discriminant projection
 (Hennig, Adv. Data Anal. Classif. 4, 3 (2010), the "ridgeline"/"dip" family, with a
 density-valley ratio in place of the dip test of Hartigan & Hartigan, Ann. Stat. 13,
-70 (1985)), extended by two spatial terms because a PL map's gradients are smooth in
+70 (1985)), extended by spatial and spectral terms because a PL map's gradients are smooth in
 space. Merging is greedy, least separated pair first (each criterion mapped onto the
 scale of δ/σ, the smallest counts), until every pair left is separated.
 
@@ -148,8 +158,9 @@ class MergeData:
 
 
 def pair_score(data: MergeData, ra: np.ndarray, rb: np.ndarray):
-    """(score, δ/σ, valley ratio, border jump ratio or NaN) of two clusters given by
-    their row indices; score < ``data.separation`` means one emission type."""
+    """(score, δ/σ, valley ratio, border jump ratio, border spectral difference,
+    host-aligned difference) of two clusters given by their row indices (NaN where a
+    test cannot speak); score < ``data.separation`` means one emission type."""
     za, zb = data.feats[ra], data.feats[rb]
     w = fisher_direction(za, zb)
     ta, tb = za @ w, zb @ w
@@ -256,6 +267,9 @@ def best_shift(ref: np.ndarray, s: np.ndarray, axis: np.ndarray, max_shift: floa
 
 #: Largest host shift tried by :func:`host_aligned_difference`, as a share of the window.
 MAX_HOST_SHIFT = 0.2
+#: Two hosts are one host type, shifted, when they agree after the shift within this
+#: many times the spectral tolerance (a drift that moves a line often widens it too).
+HOST_AGREEMENT = 3.0
 
 
 def host_aligned_difference(
@@ -270,8 +284,8 @@ def host_aligned_difference(
     unit-area spectrum of A's 4-neighbours in neither group) and around B are aligned
     by the shift Δ that best maps one onto the other (:func:`best_shift`, at most
     ``MAX_HOST_SHIFT`` of the window); if the two hosts then agree within
-    ``tolerance`` (the same host type, shifted), the groups' own mean spectra are
-    compared after a shift between 0 and Δ (:func:`emission_difference`, the smallest
+    ``HOST_AGREEMENT`` × ``tolerance`` (the same host type, shifted and perhaps
+    broadened), the groups' own mean spectra are compared after a shift between 0 and Δ (:func:`emission_difference`, the smallest
     of five evenly spaced shifts: lines that follow the host move by Δ, a defect band
     of fixed energy by 0). Spectra add linearly
     and a gradient moves host and minority together, so two spots of one minority type
@@ -287,7 +301,7 @@ def host_aligned_difference(
     host_b = _unit_area(sp[np.unique(hb)].mean(axis=0))
     span = float(abs(axis[-1] - axis[0]))
     d = best_shift(host_a, host_b, axis, MAX_HOST_SHIFT * span)
-    if emission_difference(host_a, np.interp(axis - d, axis, host_b)) >= tolerance:
+    if emission_difference(host_a, np.interp(axis - d, axis, host_b)) >= HOST_AGREEMENT * tolerance:
         return float("nan")
     own_a = _unit_area(sp[ra].mean(axis=0))
     own_b = _unit_area(sp[rb].mean(axis=0))
