@@ -490,7 +490,9 @@ def _template_shift(Yr, base, tp, spec):
         T[:, j] = f
     Z = np.asarray(Yr, dtype=np.float64) - np.asarray(base, dtype=np.float64)[:, None]
     Z = np.where(np.isfinite(Z), Z, 0.0)
-    C = Z @ T
+    # per-row sums in a fixed order (not BLAS, whose blocking depends on the number of
+    # rows): a pixel's start, and so its fit, does not depend on the chunking
+    C = np.einsum("rc,cs->rs", Z, T, optimize=False)
     i = np.clip(np.argmax(C, axis=1), 1, shifts.size - 2)
     r = np.arange(C.shape[0])
     cm, c0, cp = C[r, i - 1], C[r, i], C[r, i + 1]
