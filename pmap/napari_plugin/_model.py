@@ -232,8 +232,8 @@ def _placement(grid: Grid, lead: Sequence[str]) -> dict:
         "translate": (*([0.0] * len(lead)), *grid.origin),
         "axis_labels": (*lead, "y", "x"),
     }
-    if grid.units == "um" and not lead:
-        kw["units"] = ("um", "um")
+    if grid.units == "um":  # stack dims (an index, scale 1) are dimensionless
+        kw["units"] = (*(["dimensionless"] * len(lead)), "um", "um")
     return kw
 
 
