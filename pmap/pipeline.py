@@ -58,6 +58,8 @@ from .errors import PmapNotice, StepError
 from .noise import get_noise_model
 from .provenance import get_provenance
 from .results import (
+    DONE_ARRAY,
+    append_stage,
     assemble_result,
     is_result_store,
     mark_complete,
@@ -380,6 +382,10 @@ def add_regions(store: str | Path, cube: xr.DataArray, params: dict, *, csv: boo
 
     store = Path(store)
     maps = xr.open_zarr(str(store), consolidated=False)
+    # the maps of the block pass only: not the done-record, nor the regions of an earlier,
+    # interrupted attempt at this stage (a resumed run computes them again)
+    maps = maps.drop_vars([v for v in maps.data_vars if v in ("region", DONE_ARRAY)
+                           or "region_id" in maps[v].dims])
     params = dict(params)
     space = params.get("feature_space", "shape")
     if space == "parameters":
@@ -396,21 +402,18 @@ def add_regions(store: str | Path, cube: xr.DataArray, params: dict, *, csv: boo
     stats = region_statistics(region, maps, cube=cube).compute()
     # The map is the variable "region" (y, x); the statistics live on dim "region_id".
     stats_store = stats.rename({"region": "region_id"})
-    import zarr
-
-    g = zarr.open_group(str(store), mode="r")
-    attrs = dict(g.attrs)
-    region.drop_vars([c for c in region.coords if c not in ("y", "x")]).to_dataset()\
-        .drop_vars(["y", "x"]).to_zarr(str(store), mode="a", consolidated=False)
-    stats_store.to_zarr(str(store), mode="a", consolidated=False)
-    prov = get_provenance(attrs)
-    prov["steps"].append({"step": "segment", "params": params,
-                          "results": {"k": region.attrs.get("k")}})
-    attrs["pmap_provenance"] = json.dumps(prov)
-    g = zarr.open_group(str(store), mode="r+")
-    g.attrs.update(attrs)
+    # the statistics' attrs (pixel area, legend...) go to the store's attrs, as before
+    stage = stats_store.assign(
+        region=region.drop_vars([c for c in region.coords if c not in ("y", "x")]))
+    append_stage(store, stage, {"step": "segment", "params": params,
+                                "results": {"k": region.attrs.get("k")}})
     if csv:
         write_region_csv(stats, store.with_name(store.name.removesuffix(".zarr") + "_regions.csv"))
+
+
+#: Smallest compute chunk (MiB) the memory model chooses: below it, per-task overhead
+#: dominates.
+MIN_CHUNK_MIB = 0.25
 
 
 def parse_memory(text: str | int | float | None) -> int:
@@ -530,7 +533,7 @@ def process(
     if chunk_mib is None:
         spare = max(mem - BASE_MEMORY_BYTES, mem / 4)
         chunk_mib = min(64.0, spare / (CHUNK_MEMORY_FACTOR * max(threads, 1)) / 2**20)
-    chunk_mib = max(float(chunk_mib), 0.25)
+    chunk_mib = max(float(chunk_mib), MIN_CHUNK_MIB)
     pipe_hash = _pipeline_hash(pipe)
     if recorded is not None:  # resume on the recorded grid, whatever the memory now
         _check_resumable(recorded, source, pipe_hash, out)

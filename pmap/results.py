@@ -19,11 +19,13 @@ viewer, later steps and users rely on):
 
 from __future__ import annotations
 
+import json
 import os
 import shutil
 import sys
 import warnings
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import xarray as xr
@@ -40,7 +42,7 @@ __all__ = [
     "is_result_store",
     "prepare_output",
     "mark_complete",
-    "progress_dir",
+    "append_stage",
     "fit_summary",
 ]
 
@@ -141,7 +143,6 @@ def prepare_output(path: str | Path, *, overwrite: bool, input_paths: tuple = ()
                 f"{p} exists and is not a pmap result store; refusing to delete it"
             )
         shutil.rmtree(p)
-        shutil.rmtree(progress_dir(p), ignore_errors=True)
     p.parent.mkdir(parents=True, exist_ok=True)
     return p
 
@@ -151,18 +152,44 @@ def mark_complete(path: str | Path) -> None:
     import zarr
 
     g = zarr.open_group(str(path), mode="r+")
-    g.attrs["pmap_complete"] = True
+    if not g.attrs.get(BLOCKS_WRITTEN_ATTR):
+        raise FormatError(f"{path}: not every block is written; the store cannot be marked "
+                          "complete")
+    if DONE_ARRAY in g:
+        del g[DONE_ARRAY]
     with warnings.catch_warnings():
         # consolidated metadata is not (yet) in the Zarr v3 spec; xarray and zarr-python read it
         warnings.simplefilter("ignore")
         zarr.consolidate_metadata(str(path))
-    shutil.rmtree(progress_dir(path), ignore_errors=True)
+    # the flag last: a kill before this line leaves an incomplete store that --resume
+    # finishes; setting a root attr keeps the consolidated metadata (Zarr v3)
+    zarr.open_group(str(path), mode="r+").attrs["pmap_complete"] = True
 
 
-def progress_dir(path: str | Path) -> Path:
-    """Folder beside a result store that holds its done-block markers while it is written."""
+def append_stage(path: str | Path, stage: xr.Dataset, step: dict[str, Any]) -> None:
+    """Add a later stage's variables (regions, their statistics...) to an incomplete store.
+
+    ``stage`` holds the new variables on the store's dims (y, x coordinates are taken
+    from the store, not written again); ``step`` ({"step", "params", "results"}) is
+    appended to the store's provenance. The store stays incomplete: the caller marks it
+    complete (:func:`mark_complete`) once every stage is written.
+    """
+    import zarr
+
     p = Path(path)
-    return p.with_name(p.name + ".progress")
+    if _is_complete(p):
+        raise FormatError(f"{p} is complete; stages are added before completion")
+    g = zarr.open_group(str(p), mode="r")
+    attrs = dict(g.attrs)
+    known = set(g.array_keys())
+    stage = stage.drop_vars([c for c in ("y", "x") if c in stage.coords and c in known])
+    stage.to_zarr(str(p), mode="a", consolidated=False)
+    prov = json.loads(attrs.get(PROVENANCE_ATTR) or "{}") or {"steps": []}
+    # a resumed run writes the stage again: its record replaces the first one
+    steps = [s for s in prov.get("steps", []) if s.get("step") != step.get("step")]
+    prov["steps"] = [*steps, step]
+    attrs[PROVENANCE_ATTR] = json.dumps(prov)
+    zarr.open_group(str(p), mode="r+").attrs.update(attrs)
 
 
 def _spatial_blocks(ds: xr.Dataset) -> list[tuple[slice, slice]]:
@@ -229,11 +256,60 @@ def _metadata_template(ds: xr.Dataset) -> xr.Dataset:
     return out
 
 
-def _write_block(path: str, marker: str, blocks: dict) -> str:
-    """Write one block of every map into the store's Zarr arrays, then its done-marker.
+#: Array inside a result store that records which write blocks are on disk (one element,
+#: and one Zarr chunk, per block, so blocks mark themselves done without touching each
+#: other); removed when the store is complete.
+DONE_ARRAY = "pmap_blocks_done"
+#: Store attr set once every block is on disk (before the done-record is removed).
+BLOCKS_WRITTEN_ATTR = "pmap_blocks_written"
+
+
+def _create_done_array(path: Path, names: list[str]) -> None:
+    """Create the done-record of a fresh store: one 0/1 chunk per write block."""
+    import zarr
+
+    g = zarr.open_group(str(path), mode="r+")
+    arr = g.create_array(DONE_ARRAY, shape=(len(names),), chunks=(1,), dtype="uint8",
+                         fill_value=0, dimension_names=["pmap_write_block"])
+    arr.attrs["blocks"] = list(names)
+    arr.attrs["long_name"] = "write block on disk (1) or not yet (0); removed when complete"
+
+
+def _done_blocks(path: Path, names: list[str]) -> set[str]:
+    """Names of the blocks an interrupted run wrote completely (its done-record)."""
+    import zarr
+
+    g = zarr.open_group(str(path), mode="r")
+    if g.attrs.get(BLOCKS_WRITTEN_ATTR):  # every block was on disk before the record went
+        return set(names)
+    if DONE_ARRAY not in g:
+        raise FormatError(f"{path} has no record of its written blocks (written by an older "
+                          "pmap?); start again with --overwrite")
+    arr = g[DONE_ARRAY]
+    if list(arr.attrs.get("blocks", [])) != list(names):
+        raise FormatError(f"{path} was written on a different block grid; it cannot be "
+                          "resumed (start again with --overwrite)")
+    flags = np.asarray(arr[:])
+    return {n for n, f in zip(names, flags, strict=True) if f}
+
+
+def _has_done_record(path: Path) -> bool:
+    """True when a store's metadata was written completely (its done-record exists)."""
+    import zarr
+
+    try:
+        g = zarr.open_group(str(path), mode="r")
+        return bool(g.attrs.get(BLOCKS_WRITTEN_ATTR)) or DONE_ARRAY in g
+    except Exception:  # metadata cut short by a kill: nothing of it can be trusted
+        return False
+
+
+def _write_block(path: str, index: int, blocks: dict) -> int:
+    """Write one block of every map into the store's Zarr arrays, then mark it done.
 
     ``blocks`` maps a variable name to a list of (index tuple, computed values). Runs as
-    one task, so the marker exists only once every variable of the block is on disk.
+    one task; the block's element of the done-record is set only after every variable
+    of the block is on disk, so a kill at any moment leaves it 0 or the block complete.
     """
     import zarr
 
@@ -242,13 +318,8 @@ def _write_block(path: str, marker: str, blocks: dict) -> str:
         arr = g[name]
         for idx, values in pieces:
             arr[idx] = np.asarray(values, dtype=arr.dtype)
-    return _mark_done(marker)
-
-
-def _mark_done(marker: str) -> str:
-    """Create a block's done-marker; called only after the block's writes returned."""
-    Path(marker).touch()
-    return marker
+    g[DONE_ARRAY][index] = 1
+    return index
 
 
 def _block_pieces(maps: dict, blocks: list[tuple[slice, slice]]) -> dict:
@@ -304,8 +375,8 @@ def write_result(
 
     Metadata (and the small non-spatial variables) are written first with
     ``pmap_complete = False``; then each aligned spatial block is computed and written
-    into its region of the Zarr arrays by one task, which then creates the block's
-    done-marker (in ``STORE.progress/`` beside the store). All blocks form one graph, so
+    into its region of the Zarr arrays by one task, which then sets the block's element
+    of the done-record inside the store (array ``pmap_blocks_done``, one chunk per block). All blocks form one graph, so
     chunks that neighbouring blocks share are computed once. ``resume=True`` on an
     existing incomplete store recomputes only the blocks not marked done.
     ``concurrency`` is the number of threads; ``client`` is a dask.distributed Client
@@ -320,6 +391,9 @@ def write_result(
     """
     p = Path(path)
     fresh = not (resume and p.exists())
+    if not fresh and is_result_store(p) and not _has_done_record(p):
+        # interrupted while its metadata was written: nothing was computed, start afresh
+        fresh, overwrite = True, True
     if fresh:
         p = prepare_output(p, overwrite=overwrite, input_paths=input_paths)
     elif not is_result_store(p):
@@ -333,19 +407,25 @@ def write_result(
     streaming = streaming or client is not None
     ds = _grow_write_blocks(ds, spatial, strips=streaming)
     others = [k for k in ds.data_vars if k not in spatial]
-    pdir = progress_dir(p)
-    if fresh:
+    names = [_block_name(ys, xs) for ys, xs in _spatial_blocks(ds)]
+    if fresh:  # metadata built under a temporary name: the store exists whole or not at all
+        for stale in p.parent.glob(f".{p.name}.partial-*"):  # left by an earlier kill
+            shutil.rmtree(stale, ignore_errors=True)
+        tmp = p.with_name(f".{p.name}.partial-{os.getpid()}")
         base = ds[others] if others else xr.Dataset()
         base.attrs = dict(ds.attrs)
-        base.to_zarr(str(p), mode="w", consolidated=False)  # small global variables, in full
-        _metadata_template(ds[spatial]).to_zarr(str(p), mode="a", compute=False,
+        base.to_zarr(str(tmp), mode="w", consolidated=False)  # small global variables, in full
+        _metadata_template(ds[spatial]).to_zarr(str(tmp), mode="a", compute=False,
                                                 consolidated=False)
-        shutil.rmtree(pdir, ignore_errors=True)
-    pdir.mkdir(exist_ok=True)
-    done = {f.name for f in pdir.iterdir()}
+        _create_done_array(tmp, names)
+        if p.exists():  # an earlier attempt's metadata, cut short (see above)
+            shutil.rmtree(p)
+        os.replace(tmp, p)
+    done = _done_blocks(p, names)
     maps = {k: ds[k].variable for k in spatial}
-    todo = [(ys, xs) for ys, xs in _spatial_blocks(ds) if _block_name(ys, xs) not in done]
-    total = len(_spatial_blocks(ds))
+    todo = [(i, ys, xs) for i, (ys, xs) in enumerate(_spatial_blocks(ds))
+            if names[i] not in done]
+    total = len(names)
     from tqdm import tqdm
 
     bar = tqdm(total=total, initial=total - len(todo), desc="blocks", unit="block",
@@ -354,13 +434,13 @@ def write_result(
 
     pieces = _block_pieces(maps, _spatial_blocks(ds))
 
-    def task(ys, xs):
+    def task(i, ys, xs):
         name = _block_name(ys, xs)
-        return dask.delayed(_write_block)(str(p), str(pdir / name), pieces[name],
+        return dask.delayed(_write_block)(str(p), i, pieces[name],
                                           dask_key_name=f"{_DONE_KEY}{name}")
 
     try:
-        tasks = [task(ys, xs) for ys, xs in todo]
+        tasks = [task(i, ys, xs) for i, ys, xs in todo]
         if client is not None:
             from distributed import as_completed
 
@@ -385,6 +465,11 @@ def write_result(
                     dask.compute(*tasks[i:i + batch], num_workers=n)
     finally:
         bar.close()
+    import zarr
+
+    g = zarr.open_group(str(p), mode="r+")
+    if np.asarray(g[DONE_ARRAY][:]).all() if DONE_ARRAY in g else False:
+        g.attrs[BLOCKS_WRITTEN_ATTR] = True
     if complete:
         mark_complete(p)
     return p

@@ -9,7 +9,7 @@ import pmap.results as results
 
 def interrupted(monkeypatch, run, after_blocks: int = 2) -> None:
     """Call ``run()`` with a KeyboardInterrupt raised once ``after_blocks`` blocks are done."""
-    real, calls = results._mark_done, {"n": 0}
+    real, calls = results._write_block, {"n": 0}
 
     def killed(*a, **k):
         calls["n"] += 1
@@ -17,7 +17,7 @@ def interrupted(monkeypatch, run, after_blocks: int = 2) -> None:
             raise KeyboardInterrupt  # as if Ctrl-C arrived after those blocks
         return real(*a, **k)
 
-    monkeypatch.setattr(results, "_mark_done", killed)
+    monkeypatch.setattr(results, "_write_block", killed)
     with pytest.raises(KeyboardInterrupt):
         run()
-    monkeypatch.setattr(results, "_mark_done", real)
+    monkeypatch.setattr(results, "_write_block", real)

@@ -7,7 +7,7 @@ import xarray as xr
 
 import pmap.results as results
 from pmap.errors import FormatError, OutputExistsError
-from pmap.results import assemble_result, open_result, progress_dir, write_result
+from pmap.results import DONE_ARRAY, assemble_result, open_result, write_result
 
 
 def _result(seed=0):
@@ -32,7 +32,11 @@ def test_write_and_reopen(tmp_path):
     assert r.attrs["pmap_complete"] is True
     xr.testing.assert_allclose(r.compute(), ds.compute().assign_attrs(pmap_complete=True))
     assert r.peak_energy.attrs["units"] == "eV" and r.x.attrs["units"] == "um"
-    assert not progress_dir(p).exists()
+    import zarr
+
+    # the done-record lives inside the store while it is written, and goes at completion
+    assert DONE_ARRAY not in zarr.open_group(str(p), mode="r")
+    assert not list(tmp_path.glob("*.progress"))
 
 
 def test_refuses_overwrite_and_foreign_folders(tmp_path):
@@ -53,7 +57,7 @@ def test_interrupted_then_resumed_equals_uninterrupted(tmp_path, monkeypatch):
     ds = _result(3)
     full = write_result(ds, tmp_path / "full.zarr", progress=False)
     calls = {"n": 0}
-    real = results._mark_done
+    real = results._write_block
 
     def flaky(*args, **kw):
         calls["n"] += 1
@@ -61,18 +65,20 @@ def test_interrupted_then_resumed_equals_uninterrupted(tmp_path, monkeypatch):
             raise KeyboardInterrupt  # as if the user pressed Ctrl-C mid-run
         return real(*args, **kw)
 
-    monkeypatch.setattr(results, "_mark_done", flaky)
+    monkeypatch.setattr(results, "_write_block", flaky)
     part = tmp_path / "part.zarr"
     with pytest.raises(KeyboardInterrupt):
         write_result(ds, part, progress=False, concurrency=1)
-    monkeypatch.setattr(results, "_mark_done", real)
+    monkeypatch.setattr(results, "_write_block", real)
     # an interrupted store never claims to be complete
     with pytest.raises(FormatError, match="incomplete"):
         open_result(part)
-    assert len(list(progress_dir(part).iterdir())) == 4
+    import zarr
+
+    assert int(np.asarray(zarr.open_group(str(part), mode="r")[DONE_ARRAY][:]).sum()) == 4
     written = []
-    monkeypatch.setattr(results, "_mark_done",
-                        lambda *a, **k: (written.append(a[0]), real(*a, **k))[1])
+    monkeypatch.setattr(results, "_write_block",
+                        lambda *a, **k: (written.append(a[1]), real(*a, **k))[1])
     write_result(ds, part, progress=False, resume=True)
     assert len(written) == 9 - 4  # only unfinished blocks were recomputed
     xr.testing.assert_identical(open_result(part).compute(), open_result(full).compute())
