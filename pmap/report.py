@@ -578,7 +578,7 @@ def plot_histogram(
     ax.set_xlabel(_label(da, "value"))
     ax.set_ylabel("pixels")
     info["xlabel"] = ax.get_xlabel()
-    _set_title(ax, title if title is not None else "Histogram: " + _title(da))
+    info["title"] = _set_title(ax, title if title is not None else "Histogram: " + _title(da))
     _render(fig)
     info["stats_bbox_px"] = [float(v) for v in side.texts[0].get_window_extent().extents] \
         if side.texts else None
@@ -694,7 +694,7 @@ def plot_spectra(
         ax.set_ylabel(ylabel)
         ax.legend(fontsize=8, loc="best")
         ax.set_title(title if title is not None else "")
-        info.update(xlabel=ax.get_xlabel(), ylabel=ax.get_ylabel(),
+        info.update(xlabel=ax.get_xlabel(), ylabel=ax.get_ylabel(), title=title or "",
                     legend=[t.get_text() for t in ax.get_legend().get_texts()])
         return _save(fig, path, info)
 
@@ -732,7 +732,7 @@ def plot_spectra(
     ax_res.set_xlabel(xlabel)
     fig.suptitle(title if title is not None else "")
     info.update(
-        xlabel=xlabel, ylabel=ylabel,
+        xlabel=xlabel, ylabel=ylabel, title=title or "",
         legend=[h.get_label() for h in handles],
         zoom_ylim=[float(v) for v in ax_zoom.get_ylim()],
         full_ylim=[float(v) for v in ax_full.get_ylim()],

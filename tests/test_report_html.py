@@ -405,9 +405,12 @@ def test_cli_report_html(demo_store, tmp_path, capsys):
     assert _outside_references(text) == []
     pngs = sorted(out.glob("*.png"))
     imgs = [a["src"] for tag, a in _parse(text).tags if tag == "img"]
-    assert len(imgs) == len(pngs)  # every figure drawn is in the page, once
-    embedded = {base64.b64decode(s.split(",", 1)[1]) for s in imgs}
-    assert embedded == {p.read_bytes() for p in pngs}
+    # every figure drawn is in the page, once, plus the reduced chi-square histogram
+    assert len(imgs) == len(pngs) + 1
+    embedded = [base64.b64decode(s.split(",", 1)[1]) for s in imgs]
+    assert {p.read_bytes() for p in pngs} <= set(embedded)
+    alts = [a.get("alt", "") for tag, a in _parse(text).tags if tag == "img"]
+    assert sum(a.startswith("Reduced χ² of the fits") for a in alts) == 1
 
 
 def test_caveats_of_an_assumed_medium_and_the_planck_stage(demo_store, tmp_path):
