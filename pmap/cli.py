@@ -151,7 +151,6 @@ def _figures_dir(store: Path) -> Path:
     return store.with_name(store.name.removesuffix(".zarr") + "_figures")
 
 
-_CUBE_SUFFIXES = (".zarr", ".nc", ".h5", ".hdf5", ".npy", ".tif", ".tiff", ".csv", ".tsv", ".txt")
 
 
 def _expand_inputs(items: list[str]) -> list[Path]:
@@ -161,7 +160,9 @@ def _expand_inputs(items: list[str]) -> list[Path]:
         p = Path(item)
         if p.is_dir() and not (p / "zarr.json").exists() and not (p / ".zgroup").exists() \
                 and not (p / ".zarray").exists():
-            found = sorted(c for c in p.iterdir() if c.suffix.lower() in _CUBE_SUFFIXES
+            from .io._common import READ_EXTENSIONS  # the format registry's endings
+
+            found = sorted(c for c in p.iterdir() if c.name.lower().endswith(READ_EXTENSIONS)
                            and not c.name.endswith("_result.zarr"))
             if not found:
                 raise PmapError(f"no cubes found in folder {p}")
@@ -465,7 +466,8 @@ def cmd_view(args: argparse.Namespace) -> int:
     if reason:
         raise PmapError(
             f"{COMMAND} view needs a graphical display: {reason}; run it in a desktop session "
-            f"(or ssh -X), or write PNG figures with: {COMMAND} report {args.path}"
+            f"(or ssh -X), or write the figures and an HTML report to open in a browser with: "
+            f"{COMMAND} report {args.path} --html"
         )
     try:
         from .napari_plugin import view
