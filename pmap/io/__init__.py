@@ -45,7 +45,16 @@ indices (units "pixel").
 from __future__ import annotations
 
 from ._api import convert, open_cube
-from ._common import FORMAT_EXTENSIONS, SUPPORTED_FORMATS, detect_format, sidecar_path
+from ._common import (
+    FORMAT_EXTENSIONS,
+    FORMATS,
+    SUPPORTED_FORMATS,
+    FileFormat,
+    detect_format,
+    get_format,
+    recognises,
+    sidecar_path,
+)
 from ._info import cube_info, format_cube_info
 from ._text import text_to_zarr
 from ._write import save_cube
@@ -53,6 +62,10 @@ from ._write import save_cube
 __all__ = [
     "SUPPORTED_FORMATS",
     "FORMAT_EXTENSIONS",
+    "FORMATS",
+    "FileFormat",
+    "get_format",
+    "recognises",
     "open_cube",
     "detect_format",
     "sidecar_path",

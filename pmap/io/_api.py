@@ -16,16 +16,16 @@ import zarr
 from .._version import __version__
 from ..conventions import CUBE_NAME, udunits
 from ..cube import DEFAULT_CHUNK_MIB
-from ..errors import FormatError, InputFileError, OutputExistsError
+from ..errors import InputFileError, OutputExistsError
 from ..noise import describe_noise_coords
 from ..provenance import PROVENANCE_ATTR, get_provenance
-from ._common import check_input, detect_format, finish_cube, read_sidecar
-from ._readers import read_netcdf, read_npy, read_tiff, read_zarr
+from ._common import check_input, detect_format, finish_cube, get_format, read_sidecar
 from ._text import text_to_zarr
 from ._write import _same_or_inside, atomic_output, output_format, prepare_output, save_cube
 
 
-def _read_text(path: Path, options: dict[str, Any]) -> xr.Dataset:
+def _read_text(path: Path, options: dict[str, Any], target_mib: float | None = None
+               ) -> xr.Dataset:
     store = zarr.storage.MemoryStore()
     text_to_zarr(path, store, **options)
     with warnings.catch_warnings():
@@ -82,18 +82,7 @@ def open_cube(
     """
     p = check_input(path)
     kind = fmt or detect_format(p)
-    if kind == "zarr":
-        raw = read_zarr(p, axis_options)
-    elif kind == "netcdf":
-        raw = read_netcdf(p, axis_options)
-    elif kind == "npy":
-        raw = read_npy(p, axis_options, target_chunk_mib)
-    elif kind == "tiff":
-        raw = read_tiff(p, axis_options, target_chunk_mib)
-    elif kind == "text":
-        raw = _read_text(p, axis_options)
-    else:
-        raise FormatError(f"unknown format {kind!r}; supported: zarr, netcdf, npy, tiff, text")
+    raw = get_format(kind).function("reader")(p, axis_options, target_chunk_mib)
     source = _medium_source(raw, p, kind, axis_options)
     cube = finish_cube(raw, p, kind, chunks=chunks, target_chunk_mib=target_chunk_mib)
     if "wavelength" in cube.dims:

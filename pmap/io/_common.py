@@ -8,9 +8,11 @@ keywords given to the call win over the sidecar.
 
 from __future__ import annotations
 
+import importlib
 import json
 import os
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -19,27 +21,88 @@ import xarray as xr
 
 from ..conventions import SPECTRAL_DIMS
 from ..cube import METADATA_ATTRS, validate_cube
-from ..errors import CubeValidationError, FormatError, InputFileError
+from ..errors import CubeValidationError, FormatError, InputFileError, PmapError
 from ..provenance import with_input
 
-#: Format name -> file name endings that select it.
-FORMAT_EXTENSIONS = {
-    "zarr": (".zarr",),
-    "netcdf": (".nc", ".nc4", ".h5", ".hdf5", ".he5", ".cdf"),
-    "npy": (".npy",),
-    "tiff": (".tif", ".tiff"),
-    "text": (".csv", ".tsv", ".txt", ".dat"),
-}
-SUPPORTED_FORMATS = tuple(FORMAT_EXTENSIONS)
 
-_MAGIC = (
-    (b"\x89HDF\r\n\x1a\n", "netcdf"),
-    (b"\x93NUMPY", "npy"),
-    (b"II*\x00", "tiff"),
-    (b"MM\x00*", "tiff"),
-    (b"II+\x00", "tiff"),
-    (b"MM\x00+", "tiff"),
-)
+@dataclass(frozen=True)
+class FileFormat:
+    """One entry of the format registry: how pmap recognises, reads and writes a format.
+
+    Readers and writers are named as ``"module:function"`` and imported on first use
+    (the registry stays importable without the readers' dependencies). A reader is
+    called as ``reader(path, options, target_mib)`` and returns a raw DataArray or
+    Dataset that :func:`finish_cube` turns into a cube.
+    """
+
+    name: str
+    description: str
+    extensions: tuple[str, ...]
+    magic: tuple[bytes, ...] = ()  # first bytes of a file in this format
+    directory_markers: tuple[str, ...] = ()  # files inside a directory store
+    reader: str = ""
+    writer: str | None = None  # writes a cube (pmap.io.save_cube's engine), if writable
+    needs_axes: bool = False  # bare arrays (npy, TIFF): axes from a sidecar or options
+    options: tuple[str, ...] = ()  # read options beyond the common metadata ones
+
+    def matches_name(self, path: Path) -> bool:
+        """True if the file name ends with one of this format's extensions."""
+        return path.name.lower().endswith(self.extensions)
+
+    def matches_content(self, path: Path) -> bool:
+        """True if the content (directory markers or first bytes) is of this format."""
+        if path.is_dir():
+            return any((path / m).exists() for m in self.directory_markers)
+        if not self.magic or not path.is_file():
+            return False
+        with open(path, "rb") as fh:
+            head = fh.read(16)
+        return any(head.startswith(m) for m in self.magic)
+
+    def function(self, which: str = "reader") -> Callable[..., Any]:
+        """The reader (or writer) function, imported now."""
+        spec = getattr(self, which)
+        if not spec:
+            raise FormatError(f"pmap has no {which} for {self.name}")
+        module, name = spec.split(":")
+        return getattr(importlib.import_module(module), name)
+
+
+#: The format registry: every format pmap reads or writes, in the order detection tries
+#: them. open_cube, convert, save_cube, the command line's folder scan and the napari
+#: reader all take their formats, endings and content tests from here.
+FORMATS: dict[str, FileFormat] = {f.name: f for f in (
+    FileFormat("zarr", "Zarr store (v2 or v3), directory", (".zarr",),
+               directory_markers=("zarr.json", ".zgroup", ".zarray", ".zmetadata"),
+               reader="pmap.io._readers:read_zarr", writer="pmap.io._write:write_zarr",
+               options=("variable", "allow_missing_chunks")),
+    FileFormat("netcdf", "NetCDF4 / HDF5 file", (".nc", ".nc4", ".h5", ".hdf5", ".he5", ".cdf"),
+               magic=(b"\x89HDF\r\n\x1a\n",), reader="pmap.io._readers:read_netcdf",
+               writer="pmap.io._write:_write_netcdf", options=("variable",)),
+    FileFormat("npy", "NumPy array file (axes in a NAME.axes.json sidecar or options)",
+               (".npy",), magic=(b"\x93NUMPY",), reader="pmap.io._readers:read_npy",
+               needs_axes=True),
+    FileFormat("tiff", "multi-page TIFF, one page per channel (axes in a sidecar or options)",
+               (".tif", ".tiff"), magic=(b"II*\x00", b"MM\x00*", b"II+\x00", b"MM\x00+"),
+               reader="pmap.io._readers:read_tiff", needs_axes=True),
+    FileFormat("text", "delimited text, long (x, y, wavelength, intensity) or wide table",
+               (".csv", ".tsv", ".txt", ".dat"), reader="pmap.io._api:_read_text"),
+)}
+#: Format name -> file name endings that select it (from :data:`FORMATS`).
+FORMAT_EXTENSIONS = {name: f.extensions for name, f in FORMATS.items()}
+SUPPORTED_FORMATS = tuple(FORMATS)
+#: Every file ending of a format pmap reads (folder scans).
+READ_EXTENSIONS = tuple(e for f in FORMATS.values() for e in f.extensions)
+
+
+def get_format(name: str) -> FileFormat:
+    """The registry entry of format ``name`` (FormatError naming the supported ones)."""
+    try:
+        return FORMATS[name]
+    except KeyError:
+        raise FormatError(f"unknown format {name!r}; supported: {supported_formats_text()}") \
+            from None
+
 
 #: Axis options shared by the array readers (npy, TIFF) and their sidecars.
 AXIS_OPTIONS = (
@@ -96,25 +159,51 @@ def detect_format(path: str | os.PathLike) -> str:
         The format is not one pmap reads; the message lists the supported ones.
     """
     p = check_input(path)
-    name = p.name.lower()
-    for fmt, exts in FORMAT_EXTENSIONS.items():
-        if name.endswith(exts):
-            return fmt
+    for f in FORMATS.values():
+        if f.matches_name(p):
+            return f.name
     if p.is_dir():
-        if any((p / m).exists() for m in ("zarr.json", ".zgroup", ".zarray", ".zmetadata")):
+        if FORMATS["zarr"].matches_content(p):
             return "zarr"
         raise FormatError(
             f"{p} is a directory but not a Zarr store; supported formats: {supported_formats_text()}"
         )
-    with open(p, "rb") as fh:
-        head = fh.read(8)
-    for magic, fmt in _MAGIC:
-        if head.startswith(magic):
-            return fmt
+    for f in FORMATS.values():
+        if f.matches_content(p):
+            return f.name
     raise FormatError(
         f"cannot tell the format of {p.name!r} from its name or content; "
         f"supported formats: {supported_formats_text()}"
     )
+
+
+def recognises(path: str | os.PathLike) -> bool:
+    """True if ``path`` holds content pmap can read as a cube without further options.
+
+    Stricter than :func:`detect_format` (which goes by the name): the content must be
+    of the format its name says, a bare array (npy, TIFF) needs its axis sidecar, a
+    text table a header pmap understands, a Zarr or NetCDF file an intensity variable
+    on a spectral axis. Used by the napari reader, so that it claims only files it can
+    open (an ordinary photo saved as .tif is left to other readers).
+    """
+    try:
+        p = check_input(path)
+        f = FORMATS[detect_format(p)]
+        if f.name == "text":
+            from ._text import inspect_text
+
+            inspect_text(p)
+            return True
+        if not f.matches_content(p):
+            return False
+        if f.needs_axes:
+            return sidecar_path(p).exists()
+        from ._api import open_cube
+
+        open_cube(p, fmt=f.name)  # lazy: metadata only
+        return True
+    except (PmapError, OSError, ValueError):
+        return False
 
 
 def check_options(options: Mapping[str, Any], allowed: tuple[str, ...], fmt: str) -> None:

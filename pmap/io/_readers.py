@@ -54,7 +54,8 @@ def _pick_variable(ds: xr.Dataset, options: dict[str, Any], path: Path) -> xr.Da
     return arr
 
 
-def read_zarr(path: Path, options: dict[str, Any]) -> xr.DataArray:
+def read_zarr(path: Path, options: dict[str, Any], target_mib: float | None = None
+              ) -> xr.DataArray:
     """Zarr v2 or v3 store, lazily (dask chunks follow the stored chunks).
 
     A chunk missing from the store (a deleted file, an incomplete copy) would read as
@@ -120,7 +121,8 @@ def _check_chunks_present(path: Path, arr: xr.DataArray, allow: bool) -> None:
     warnings.warn(msg + ": those pixels are read as missing (NaN)", PmapNotice, stacklevel=3)
 
 
-def read_netcdf(path: Path, options: dict[str, Any]) -> xr.DataArray:
+def read_netcdf(path: Path, options: dict[str, Any], target_mib: float | None = None
+                ) -> xr.DataArray:
     """NetCDF4/HDF5 file through h5netcdf, lazily (dask chunks follow the HDF5 chunks)."""
     check_options(options, STORE_OPTIONS, "netcdf")
     with open(path, "rb") as fh:

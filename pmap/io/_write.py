@@ -18,9 +18,10 @@ from ..conventions import CUBE_NAME
 from ..cube import validate_cube
 from ..errors import FormatError, OutputExistsError
 from ..provenance import get_provenance
+from ._common import FORMATS
 
-WRITE_FORMATS = ("zarr", "netcdf")
-_NETCDF_ENDINGS = (".nc", ".nc4", ".h5", ".hdf5", ".he5", ".cdf")
+#: Formats pmap writes cubes in (those with a writer in the registry).
+WRITE_FORMATS = tuple(name for name, f in FORMATS.items() if f.writer)
 
 
 def output_format(path: Path, fmt: str | None) -> str:
@@ -29,7 +30,7 @@ def output_format(path: Path, fmt: str | None) -> str:
         if fmt not in WRITE_FORMATS:
             raise FormatError(f"cannot write format {fmt!r}; writable formats: {WRITE_FORMATS}")
         return fmt
-    return "netcdf" if path.name.lower().endswith(_NETCDF_ENDINGS) else "zarr"
+    return "netcdf" if FORMATS["netcdf"].matches_name(path) else "zarr"
 
 
 def _same_or_inside(a: Path, b: Path) -> bool:
@@ -183,11 +184,9 @@ def save_cube(
     cube = validate_cube(cube) if cube.name != CUBE_NAME or cube.chunks is None else cube
     out = prepare_output(out, overwrite=overwrite, attrs=cube.attrs, remove=False)
     ds = cube_dataset(cube)
+    writer = FORMATS[kind].function("writer")
     with atomic_output(out) as tmp:
-        if kind == "zarr":
-            write_zarr(ds, tmp, zarr_format=zarr_format)
-        else:
-            _write_netcdf(ds, tmp)
+        writer(ds, tmp, **({"zarr_format": zarr_format} if kind == "zarr" else {}))
     return out
 
 

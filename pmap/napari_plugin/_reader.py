@@ -6,14 +6,15 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from ..errors import PmapError
 from ._model import read_path
 
 __all__ = ["napari_get_reader", "read_pmap"]
 
 
 def _handles(path: Any) -> bool:
-    from ..io import detect_format
+    """True for a result store or a file whose content pmap recognises as a cube
+    (:func:`pmap.io.recognises`): ordinary images or tables are left to other readers."""
+    from ..io import recognises
     from ..results import is_result_store
 
     if not isinstance(path, (str, Path)):
@@ -21,13 +22,7 @@ def _handles(path: Any) -> bool:
     p = Path(path)
     if not p.exists():
         return False
-    if is_result_store(p):
-        return True
-    try:
-        detect_format(p)
-    except PmapError:
-        return False
-    return True
+    return is_result_store(p) or recognises(p)
 
 
 def napari_get_reader(path: str | list[str]) -> Callable | None:
