@@ -166,10 +166,37 @@ def _absolute(cube: xr.DataArray, photon_flux_per_count) -> tuple[xr.DataArray, 
                     f"{units!r}{what}")
 
 
+def _plqy(cube: xr.DataArray, exc: float, sigma, model) -> xr.Dataset:
+    """PLQY = Σ Φ·ΔE / excitation flux (channel widths ΔE from the channel edges), ±1σ."""
+    from .spectral import channel_edges
+
+    if not (np.isfinite(exc) and exc > 0):
+        raise StepError(f"excitation_photon_flux must be > 0 photons s-1 m-2, got {exc}")
+    width = xr.DataArray(np.diff(channel_edges(cube["energy"].values)), dims=("energy",))
+    total = (cube * width).sum("energy", skipna=False)
+    if sigma is not None:
+        var = (sigma * sigma * width * width).sum("energy")
+    elif model is not None:
+        sc, pd = noise_coords(cube)
+        v = (sc * model.var_per_count * cube.clip(min=0)
+             + sc * sc * (model.var_per_count * pd + model.var_offset_counts2))
+        v = np.maximum(v, sc * sc * model.floor_counts2)
+        var = (v * width * width).sum("energy")
+    else:
+        var = xr.full_like(total, np.nan)
+    plqy = (total / exc).reset_coords(drop=True)
+    err = (np.sqrt(var) / exc).reset_coords(drop=True)
+    return xr.Dataset({
+        "plqy": plqy.assign_attrs(units="1", long_name="photoluminescence quantum yield "
+                                  "(emitted over incident excitation photons)"),
+        "plqy_err": err.assign_attrs(units="1", long_name="1-sigma of plqy")})
+
+
 def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | None = None,
                wavelength_range_nm: tuple[float, float] | None = None,
                sigma: xr.DataArray | None = None, absorptivity: float = 1.0,
-               photon_flux_per_count=None, max_iter: int = 200) -> xr.Dataset:
+               photon_flux_per_count=None, excitation_photon_flux: float | None = None,
+               max_iter: int = 200) -> xr.Dataset:
     """Fit the generalized Planck law per pixel on the high-energy side of the PL.
 
     Parameters
@@ -201,6 +228,11 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
         Absolute calibration of a ``counts/eV`` (or ``counts/s/eV``) cube: photons s⁻¹ m⁻²
         per count (per count/s), a number or a calibration spectrum; default the cube's
         attr ``photon_flux_per_count``.
+    excitation_photon_flux : float, optional
+        Incident excitation photon flux, photons s⁻¹ m⁻² (default the attr
+        ``excitation_photon_flux``): adds ``plqy`` = ∫Φ dE over the whole axis / this flux
+        (external quantum yield relative to the incident flux; divide by the absorptance
+        for the internal one), with ``plqy_err`` from the same noise as the fit.
     max_iter : int
         Levenberg–Marquardt iteration limit.
 
@@ -209,7 +241,8 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
     Dataset
         ``qfls`` (eV), ``carrier_temperature`` (K), ``implied_voc`` (V) with ``_err``,
         ``planck_chi2_red`` and ``planck_status`` (CF flags) on the cube's non-spectral
-        dims; the assumptions in the attrs (``planck_assumptions``).
+        dims, ``plqy`` (1) with ``plqy_err`` when the excitation flux is known; the
+        assumptions in the attrs (``planck_assumptions``).
     """
     if not isinstance(cube, xr.DataArray):
         raise StepError(f"fit_planck needs an xarray DataArray, got {type(cube).__name__}")
@@ -314,11 +347,17 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
     ds["planck_status"] = out.isel(_planck=5).fillna(4).astype(np.int8).assign_attrs(
         units="1", long_name="Planck fit status", legend=str(STATUS_LEGEND).replace("'", '"'),
         flag_values=np.array(STATUS_FLAG_VALUES, np.int8), flag_meanings=STATUS_FLAG_MEANINGS)
+    exc = excitation_photon_flux if excitation_photon_flux is not None \
+        else cube.attrs.get("excitation_photon_flux")
+    if exc is not None:
+        ds = ds.merge(_plqy(cube, float(exc), sigma, model if poisson else None))
     ds = ds.drop_vars([c for c in ds.coords if c.startswith("noise_")], errors="ignore")
     cal = photon_flux_per_count
     params = {"energy_range_ev": [lo, hi], "absorptivity": absorptivity, "max_iter": max_iter}
     if wavelength_range_nm is not None:
         params["wavelength_range_nm"] = [float(v) for v in wavelength_range_nm]
+    if exc is not None:
+        params["excitation_photon_flux"] = float(exc)
     if cal is not None:
         params["photon_flux_per_count"] = (float(cal) if np.ndim(cal) == 0 and
                                            not isinstance(cal, xr.DataArray) else "spectrum")

@@ -240,3 +240,36 @@ def test_cli_planck_window(tmp_path, rng, capsys):
     assert main(["process", str(src), "-o", str(tmp_path / "s.zarr"), "--planck-window",
                  "1.75:1.6", "-q"]) == 2
     assert "LOW must be below HIGH" in capsys.readouterr().err
+
+
+def test_plqy_with_honest_errors(rng):
+    """PLQY = ∫Φ dE / incident excitation flux; error from the noise model; n = 2000 pixels.
+
+    The flux's expectation is known here (Würfel 1982 with Δμ = 1.10 eV, T = 320 K,
+    a = 1), so the true PLQY is Σ Φ(E_i)·ΔE_i / flux exactly (rectangle rule on the
+    channels, as the counts are summed).
+    """
+    from pmap.spectral import to_energy
+
+    cube, f = _counts_cube(rng)
+    e = cube["energy"].values
+    exc = 1e22  # photons s-1 m-2
+    truth = float(np.sum(planck_flux(e, 1.10, 320.0) * np.gradient(e))) / exc
+    out = fit_planck(to_energy(cube), photon_flux_per_count=f, energy_range_ev=(1.55, 1.75),
+                     excitation_photon_flux=exc).compute()
+    assert out["plqy"].attrs["units"] == "1"
+    pull = ((out["plqy"] - truth) / out["plqy_err"]).values.ravel()
+    n = 2000
+    assert pull.size == n
+    assert abs(pull.std() - 1) < 3 / np.sqrt(2 * n), pull.std()
+    assert abs(pull.mean()) < 3 / np.sqrt(n), pull.mean()
+    assert json_params(out)["excitation_photon_flux"] == exc
+    with pytest.raises(StepError, match="excitation_photon_flux"):
+        fit_planck(to_energy(cube), photon_flux_per_count=f, excitation_photon_flux=-1.0)
+
+
+def json_params(ds):
+    import json
+
+    steps = json.loads(ds.attrs["pmap_provenance"])["steps"]
+    return [s for s in steps if s["step"] == "planck"][-1]["params"]
