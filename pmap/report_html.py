@@ -856,10 +856,10 @@ def write_html_report(
             raise StepError("write_html_report needs path= when given a Dataset")
         path = html_report_path(store)
     out = Path(path)
-    small = {v: ds[v] for v in ds.variables
-             if not any(d in ds[v].dims for d in ("energy", "wavelength", "wavenumber",
-                                                   "raman_shift")) or ds[v].ndim <= 2}
-    ds = ds.assign({k: v.load() for k, v in small.items() if k in ds.data_vars})
+    # the small per-region and per-component tables in memory; maps stay lazy (read one
+    # at a time where a section needs them), so a map of 10⁷ pixels is never held whole
+    small = [v for v in ds.data_vars if not {"y", "x"} & set(ds[v].dims)]
+    ds = ds.assign({k: ds[k].load() for k in small})
     with tempfile.TemporaryDirectory(prefix="pmap_report_") as tmp:
         figs = [Path(f) for f in figures] if figures is not None else _draw_figures(ds, Path(tmp))
         if figures is None or figs:
