@@ -196,7 +196,7 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
                wavelength_range_nm: tuple[float, float] | None = None,
                sigma: xr.DataArray | None = None, absorptivity: float = 1.0,
                photon_flux_per_count=None, excitation_photon_flux: float | None = None,
-               max_iter: int = 200) -> xr.Dataset:
+               max_iter: int = 200, whole_map=None) -> xr.Dataset:
     """Fit the generalized Planck law per pixel on the high-energy side of the PL.
 
     Parameters
@@ -235,6 +235,10 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
         for the internal one), with ``plqy_err`` from the same noise as the fit.
     max_iter : int
         Levenberg–Marquardt iteration limit.
+    whole_map : pmap.steps.WholeMapPass, optional
+        Given by the pipeline runner: the mean spectrum that places the automatic window
+        is computed through it once, now, and recorded in the provenance. Without it
+        (the default) nothing is computed here.
 
     Returns
     -------
@@ -260,9 +264,10 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
         raise StepError(f"absorptivity must be > 0, got {absorptivity}")
     e_all = np.asarray(cube["energy"].values, float)
     if energy_range_ev is None:
-        from .steps import materialize  # one pass, shared with the pipeline's checks
+        from .steps import whole_map_values  # phase one of a pipeline run
 
-        mean = np.asarray(materialize(cube.mean([d for d in cube.dims if d != "energy"]).data))
+        mean = np.asarray(whole_map_values(
+            whole_map, "planck", mean_spectrum=cube.mean([d for d in cube.dims if d != "energy"]).data))
         lo, hi = float(e_all[int(np.nanargmax(mean))]) + 3 * K_B_EV * 300.0, float(e_all[-1])
     else:
         lo, hi = (float(v) for v in energy_range_ev)
@@ -364,16 +369,18 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
     attrs = with_step({k: v for k, v in cube.attrs.items() if k != "units"}, "planck", params,
                       reference="Würfel, J. Phys. C 15, 3967 (1982)", weighted=weighted)
     if weighted:
-        attrs["uncertainty_method"] = "weighted by the given 1-sigma errors"
+        attrs["planck_uncertainty_method"] = "weighted by the given 1-sigma errors"
     elif poisson:
-        attrs["uncertainty_method"] = (
+        attrs["planck_uncertainty_method"] = (
             "weighted by the noise model (var = s*a*m + s^2*(a*p + b), m the fitted model); "
             "absolute 1-sigma errors; planck_chi2_red a true reduced chi-square")
     elif use_noise:
-        attrs["uncertainty_method"] = ("weights from the noise model's per-channel variance "
+        attrs["planck_uncertainty_method"] = ("weights from the noise model's per-channel variance "
                                        "(correlated noise); errors scaled by sqrt(chi2_red)")
     else:
-        attrs["uncertainty_method"] = "equal relative errors; scaled by sqrt(chi2_red)"
+        attrs["planck_uncertainty_method"] = "equal relative errors; scaled by sqrt(chi2_red)"
+    for v in ("qfls_err", "carrier_temperature_err", "implied_voc_err"):
+        ds[v].attrs["uncertainty_method"] = attrs["planck_uncertainty_method"]
     attrs["planck_window_ev"] = [lo, hi]
     attrs["planck_flux"] = how
     attrs["planck_assumptions"] = (

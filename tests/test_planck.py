@@ -57,7 +57,7 @@ def test_unweighted_and_refusals(rng):
     # without σ: equal relative errors assumed (true here: 1 % of the flux everywhere)
     cube, _ = _cube(1.0, 300.0, rng, shape=(4, 4), relative_noise=True)
     out = fit_planck(cube).compute()  # default window
-    assert "relative" in out.attrs["uncertainty_method"]
+    assert "relative" in out.attrs["planck_uncertainty_method"]
     assert np.all(np.abs(out["qfls"] - 1.0) < 4 * out["qfls_err"])  # n = 16: 4σ
     assert np.all(np.abs(out["carrier_temperature"] - 300) < 4 * out["carrier_temperature_err"])
     with pytest.raises(StepError, match="photons"):
@@ -133,7 +133,7 @@ def test_noise_model_weights_give_honest_pulls(rng):
     c = to_energy(cube)  # counts per channel -> counts/eV, the noise scale follows
     assert c.attrs["units"] == "counts/eV"
     out = fit_planck(c, photon_flux_per_count=f, energy_range_ev=(1.55, 1.75)).compute()
-    assert "noise model" in out.attrs["uncertainty_method"]
+    assert "noise model" in out.attrs["planck_uncertainty_method"]
     assert (out["planck_status"] == 0).all()
     n = 2000
     for name, true in (("qfls", 1.10), ("carrier_temperature", 320.0)):
