@@ -13,6 +13,11 @@ law fits, and the same numbers for unshifted maps (control).
 With ``--scenes`` the emission pattern is instead each scene of :mod:`pmap.scenes` (its
 integrated-intensity image, scaled to 0.15–1.65), displaced by the Fourier shift theorem
 (exact for a band-limited periodic image).
+
+Measured (2 cores, 2026-12-02): blobs 40 × 48, seeds 1–3: registration error ≤ 0.03 px, law
+χ²_red mean 0.95–1.02 and pull s.d. of E0, α, β 0.97–1.03 (n = 1512–1575 series); every
+scene of the bank, seeds 1–2: registration error ≤ 0.09 px, χ²_red mean 0.99–1.03, pull
+s.d. 0.98–1.04 (n = 1800–2596 series each).
 """
 
 from __future__ import annotations
