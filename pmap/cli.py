@@ -603,8 +603,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--regions", help="cluster pixels into K regions, or 'auto'")
     p.add_argument("--components", type=int, help="NMF components to extract")
     p.add_argument("--planck", action="store_true", help="absolute PL: fit the generalized "
-                   "Planck law (qfls, carrier_temperature, implied_voc; needs a cube in "
-                   "photons s-1 m-2 eV-1; options in the [planck] table)")
+                   "Planck law (qfls, carrier_temperature, implied_voc, plqy with "
+                   "excitation_photon_flux; needs a cube in photons s-1 m-2 eV-1, or counts "
+                   "with photon_flux_per_count as attr or in the [planck] table)")
     p.add_argument("--planck-window", metavar="LOW:HIGH", help="Planck fit window (implies "
                    "--planck): in eV for a cube on an energy axis, in nm for a cube on a "
                    "wavelength axis (its medium, air unless stated), e.g. 1.60:1.75")
