@@ -6,7 +6,13 @@ model of a CCD (Poisson photoelectrons, Gaussian read noise and a dark level: Ja
 check compares the cleaned values with the clean truth, never with the input alone.
 Spikes are boxes of 1-5 channels added after the noise (common practice: a cosmic ray
 deposits charge in a few adjacent pixels, independent of the light). The published basis
-of the step is Whitaker & Hayes, Chemometr. Intell. Lab. Syst. 179, 82 (2018).
+of the step is Whitaker & Hayes, Chemometr. Intell. Lab. Syst. 179, 82 (2018) (spike
+candidates from a modified z-score of differences); the line-shape test rests on the
+projection theorem for the convex cone of channel-integrated Gaussian instrument
+profiles (non-negative least squares: Lawson & Hanson, *Solving Least Squares Problems*,
+1974); frames are scaled to each other by a consensus ratio (random-sample consensus:
+Fischler & Bolles, Commun. ACM 24, 381 (1981)); thresholds keep their Gaussian tail
+probability under the skew of shot noise (Cornish-Fisher expansion, common practice).
 """
 
 import json
@@ -302,6 +308,94 @@ def test_frames_spike_in_one_acquisition(n_frames):
     assert "frames" in json.loads(cleaned.attrs["pmap_provenance"])["steps"][-1]["results"]["mode"]
 
 
+def test_frames_false_replacements_bounded_by_the_gaussian_tail():
+    # clean repeated acquisitions (2 and 3 frames, light drifting by 10 % between frames,
+    # dark level 100 counts): a value is replaced only when it exceeds the scaled median of
+    # the other frames by threshold = 4.5 s.d. of the difference (the noise law stated).
+    # Under the null each value is tested once, so the false rate is the Gaussian tail
+    # P(Z > 4.5) = 3.4e-6 (Abramowitz & Stegun 26.2.12; skew of shot noise corrected,
+    # Cornish-Fisher) plus what widening adds; the issue's target is 1e-5 per clean value.
+    # n = 2 x 30 x 30 x 600 = 1.08e6 and 1.62e6 values; the bound is the binomial mean at
+    # 1e-5 plus 3 of its standard deviations.
+    from scipy.stats import norm
+
+    tail = norm.sf(4.5)
+    assert tail < 1e-5
+    for n_frames in (2, 3):
+        rng = np.random.default_rng(40 + n_frames)
+        wl, base = _band_map(2.0, ny=30, nx=30)
+        base = base + 800.0 * _gauss(wl, 736.0, 0.6)
+        drift = 1.0 + 0.1 * np.arange(n_frames) / n_frames
+        expected = DARK + (base[None] - DARK) * drift[:, None, None, None]
+        noisy = _render(rng, expected)
+        cube = xr.concat([_cube(noisy[f], wl) for f in range(n_frames)], dim="frame")
+        _, mask = remove_spikes(cube, return_mask=True)
+        n = mask.size
+        count = int(mask.sum())
+        assert count <= 1e-5 * n + 3.0 * np.sqrt(1e-5 * n), (n_frames, count, n)
+
+
+def test_spikes_at_the_ends_of_the_axis():
+    # the first and last channels are candidates too (above the next channels inward);
+    # with the neighbours the spatial test decides there (common practice: a cosmic ray
+    # can hit any detector column)
+    rng = np.random.default_rng(12)
+    wl, expected = _band_map(1.5, ny=8, nx=8)
+    noisy = _render(rng, expected)
+    n = wl.size
+    truth = np.zeros(noisy.shape, bool)
+    for iy, ix, c in ((2, 3, 0), (5, 5, n - 1), (6, 1, 0), (1, 6, n - 1)):
+        noisy[iy, ix, c] += 30.0 * _sigma(expected[iy, ix, c])
+        truth[iy, ix, c] = True
+    cleaned, mask = remove_spikes(_cube(noisy, wl), return_mask=True)
+    np.testing.assert_array_equal(mask.values, truth)
+    _check_replaced(cleaned.values.astype(float), expected, truth)
+
+
+def test_narrow_instrument_two_spikes_side_by_side_and_emitters():
+    # an instrument 1.3 channels wide (FWHM 0.13 nm at 0.1 nm per channel): a 1-channel
+    # spike differs from a line of the instrument width only by its neighbours (the
+    # channel-integrated Gaussian puts 18 % of a centred line's area in each neighbour);
+    # spikes of 20 s.d. (one channel; half of them beside a second spike of 200 s.d., which
+    # is removed first, then the first is judged again against the cleaned spectrum) are
+    # removed and restored within 5 s.d. of the truth, while single-pixel emitters of
+    # exactly the instrument width (channel-integrated, at random sub-channel positions,
+    # 30-1000 s.d.) keep every value. n = 60 spike values, 25 emitters.
+    from scipy.special import erf
+
+    rng = np.random.default_rng(13)
+    fwhm = 0.13
+    wl, expected = _band_map(5.0)
+    s = fwhm / 2.3548200450309493
+    part = np.zeros_like(expected)
+    em = [(int(p) // 21, int(p) % 21) for p in rng.permutation(21 * 21)[:25]]
+    for iy, ix in em:
+        c = rng.uniform(715.0, 745.0)
+        prof = 0.5 * (erf((wl + 0.05 - c) / (s * np.sqrt(2))) - erf((wl - 0.05 - c) / (s * np.sqrt(2))))
+        k = int(np.argmax(prof))
+        part[iy, ix] = np.exp(rng.uniform(np.log(30), np.log(1000))) * _sigma(expected[iy, ix, k]) * prof / prof.max()
+    expected = expected + part
+    noisy = _render(rng, expected)
+    truth = np.zeros(noisy.shape, bool)
+    free = [p for p in range(21 * 21) if (p // 21, p % 21) not in em]
+    for k, p in enumerate(rng.permutation(free)[:40]):
+        iy, ix = divmod(int(p), 21)
+        c = int(rng.integers(100, 500))
+        chans = (c, c + 1) if k % 2 else (c,)
+        for j, cc in enumerate(chans):
+            noisy[iy, ix, cc] += (20.0 + 180.0 * j) * _sigma(expected[iy, ix, cc])
+            truth[iy, ix, cc] = True
+    cube = _cube(noisy, wl, attrs={"instrument_fwhm_nm": fwhm})
+    cleaned, mask = remove_spikes(cube, return_mask=True)
+    m = mask.values
+    after = cleaned.values.astype(float)
+    ok = m & (np.abs(after - expected) <= 5.0 * _sigma(expected))
+    assert (ok & truth).sum() >= 0.97 * truth.sum(), ((ok & truth).sum(), truth.sum())
+    for iy, ix in em:
+        assert not m[iy, ix].any(), (iy, ix)
+    assert (m & ~truth).sum() / (~truth).sum() <= 1e-5
+
+
 # --------------------------------------------------------------------------- (f) scene bank
 
 
@@ -340,8 +434,12 @@ def test_scene_bank(name):
     if sdim == "energy" and "instrument_fwhm_ev" not in cube.attrs:  # pragma: no cover
         fwhm_ch = np.nan
     # an instrument under 2 channels wide leaves a 1-channel spike and a 1.5-channel
-    # emitter little to tell them apart by
-    assert (m & big).sum() / big.sum() >= (0.98 if fwhm_ch >= 2 else 0.93)
+    # emitter little to tell them apart by (a 1-channel spike of h s.d. gives a line-shape
+    # statistic of only 0.36 h there); n = 160-2300 spike values >= 10 sd per scene
+    narrow = fwhm_ch < 2
+    assert (m & big).sum() / big.sum() >= (0.96 if narrow else 0.99)
+    restored = m & (np.abs(after - exp) <= 5 * sd)  # issue 12: within 5 sd of the truth
+    assert (restored & big).sum() / big.sum() >= (0.96 if narrow else 0.98)
     good = (tr.bad_pixel.values == 0)[..., None]
     assert (m & ~sp & good).sum() / (~sp & good).sum() <= 1e-5
     assert (m & ~sp).sum() / (~sp).sum() <= 2e-5
@@ -359,6 +457,51 @@ def test_scene_bank(name):
             win = (np.abs(ax - pos) < 4 * (fw + width)) & ~sp[iy, ix]
             change = (after[iy, ix] - raw[iy, ix])[win].sum()
             assert abs(change) <= 0.01 * tr.line_area_counts.values[li, iy, ix]
+
+
+@pytest.mark.parametrize("name", _bank_names())
+def test_scene_bank_as_two_frames(name):
+    # the scene acquired twice (a frame dim): each frame rendered from the clean truth with
+    # the scene's own detector (Poisson photoelectrons, read noise, dark level: Janesick
+    # 2007), each spiky pixel's spikes put into one of the two frames. A clean value is
+    # replaced only when it exceeds the other frame by 4.5 s.d. of the difference
+    # (Gaussian tail 3.4e-6); target <= 1e-5 per clean value, with a tolerance of 3
+    # binomial standard deviations at n ~ 2e6-6e6 clean values; spike values >= 10 sd
+    # are restored within 5 sd of the truth.
+    from pmap.scenes import make_scene
+
+    sc = make_scene(name, seed=0)
+    cube, tr = sc.cube, sc.truth
+    rng = np.random.default_rng(77)
+    exp = tr.expected.values.astype(float)
+    g = float(cube.attrs["gain_e_per_count"])
+    dark = float(cube.attrs["dark_level_counts"])
+    rn = float(cube.attrs["read_noise_counts"])
+    good = tr.bad_pixel.values == 0
+    raw = cube.values.astype(float)
+    sp = tr.spike_mask.values
+    owner = rng.integers(2, size=sp.shape[:2])
+    frames, masks = [], []
+    for f in range(2):
+        r = rng.poisson(np.maximum(exp - dark, 0.0) * g) / g + rng.normal(dark, rn, exp.shape)
+        mine = (owner == f)[..., None] & sp
+        r = r + np.where(mine, raw - exp, 0.0)
+        r[~good] = raw[~good]
+        frames.append(np.clip(np.rint(r), 0, cube.attrs["saturation_counts"]).astype(np.float32))
+        masks.append(mine)
+    two = xr.concat([cube.copy(data=fr) for fr in frames], dim="frame")
+    cleaned, mask = remove_spikes(two, return_mask=True)
+    m = mask.values
+    spk = np.stack(masks)
+    sd = np.sqrt(np.maximum(exp - dark, 0) / g + rn**2)[None]
+    val = np.stack(frames).astype(float)
+    okpx = np.broadcast_to(good[None, ..., None], spk.shape)
+    clean = ~spk & okpx
+    n = int(clean.sum())
+    assert (m & clean).sum() <= 1e-5 * n + 3.0 * np.sqrt(1e-5 * n)
+    big = spk & okpx & ((val - exp[None]) / sd >= 10)
+    restored = m & (np.abs(cleaned.values.astype(float) - exp[None]) <= 5 * sd)
+    assert (restored & big).sum() >= 0.99 * big.sum()
 
 
 # --------------------------------------------------------------------------- plumbing

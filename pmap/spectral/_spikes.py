@@ -46,15 +46,25 @@ three stages, in one compiled pass per spectrum (:func:`_map_kernel`,
    the boxes covering it exceeds ``threshold`` − 1.5 (maps: the excess has already
    proved not to be in the neighbours) or ``threshold`` (single spectra). A 2 %
    tolerance of the local contrast covers instrument profiles that are not exactly
-   Gaussian, and the stated FWHM is used at 90 % (a stated width a little too large).
-   The spike's extent is the best box, widened while the statistic holds (a spike on an
-   emitter does not take the emitter with it).
+   Gaussian; the stated FWHM is used as stated (kernels in FWHM bins of 1 %: with an
+   instrument 1.3 channels wide a 1-channel spike gives 0.36 × its height, and any
+   margin for a stated width too large costs most of that). The spike's extent is the
+   narrowest box holding 80 % of the best statistic (a wider box can win by taking in
+   the flank of emission beside the spike), widened by a neighbouring channel only when
+   that channel is a spike of its own once the box is bridged (a spike on or beside an
+   emitter does not take the emitter with it). A candidate beside a removed spike is
+   judged again against the spectrum so cleaned (two spikes side by side). The end
+   channels of the axis are candidates too (above each of the next channels inward).
 
 Replacements: in a map, the corrected prediction plus what the pixel's own emission
 adds under the spike (its residual interpolated across the spike when significant on
 both sides); in a single spectrum (or with fewer than ``min_neighbours`` valid
 neighbours), linear interpolation across the spike; with frames, the other frames'
-scaled median. Within 1.5 FWHM of the ends of the spectral axis, where the box
+scaled median (the dark level taken off before the frames are scaled to each other,
+each by a consensus ratio robust to a spike in either frame). When the residual is
+below zero on both sides of the spike, the prediction is still too high there (a steep
+band edge that moves between pixels) and the residual's means beside the spike are
+interpolated across it. Within 1.5 FWHM of the ends of the spectral axis, where the box
 statistic has no room, single spectra use the three-point curvature bound
 2ρ_L·x(c) − x(c−L) − x(c+L) ≤ 0 (ρ_L = exp(−L²/2s²)) and maps the spatial test alone.
 """
@@ -106,6 +116,8 @@ _MAX_JUDGED = 32
 #: Spectra at least this long get one weighted refit of the noise law, shorter ones two.
 _FIT_ONE_PASS_FROM = 254
 _FWHM_TO_SD = 1.0 / (2.0 * np.sqrt(2.0 * np.log(2.0)))
+#: The narrowest spike box whose statistic is at least this share of the best is taken.
+_NARROW_SHARE = 0.8
 
 
 def spike_candidates(x: np.ndarray, threshold: float = 6.0) -> tuple[np.ndarray, np.ndarray]:
@@ -545,6 +557,8 @@ def _best_box(x, n, r, cnt, sf2, lo, hi, resid, blo, bhi, ca, maxw, bank, ms, bi
     best = np.nan
     res[0] = ca
     res[1] = 1
+    bw = np.full(maxw, -np.inf)  # the best statistic of each width, and its start
+    bs = np.zeros(maxw, dtype=np.int64)
     for w in range(1, maxw + 1):
         for s in range(ca - w + 1, ca + 1):
             if s < blo or s + w - 1 > bhi:
@@ -557,6 +571,18 @@ def _best_box(x, n, r, cnt, sf2, lo, hi, resid, blo, bhi, ca, maxw, bank, ms, bi
                 best = zt
                 res[0] = s
                 res[1] = w
+            if zt == zt and zt > bw[w - 1]:
+                bw[w - 1] = zt
+                bs[w - 1] = s
+    # the narrowest box that holds nearly all of the statistic: a wider box can win by
+    # taking in the flank of emission beside the spike (then the replacement would take
+    # the emission too); a spike that is wider is still found by its own wider box
+    if best == best:
+        for w in range(1, int(res[1])):
+            if bw[w - 1] >= _NARROW_SHARE * best:
+                res[0] = bs[w - 1]
+                res[1] = w
+                return bw[w - 1]
     return best
 
 
@@ -999,15 +1025,27 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
             # the corrected prediction plus what this pixel's own emission adds under the
             # spike: the residual interpolated across the box when it is significant on
             # both sides (a spike on an emitter), else the smaller side (a spike's tail
-            # or the edge of a wider spike on one side only)
+            # or the edge of a wider spike on one side only); when the residual is below
+            # zero on both sides (the corrected prediction still too high here, as on a
+            # steep band edge that moves between pixels), its means over the two channels
+            # beside the box, interpolated across it
             ra = rbuf[e0 - 1 - lo] if e0 - 1 >= lo else 0.0
             rb = rbuf[e1 + 1 - lo] if e1 + 1 <= hi else 0.0
             both = (e0 - 1 >= lo and e1 + 1 <= hi
                     and _excess_z(rbuf, p, cnt, e0 - 1, lo, sf2, law, nz) > _EXTEND_SIGMA
                     and _excess_z(rbuf, p, cnt, e1 + 1, lo, sf2, law, nz) > _EXTEND_SIGMA)
             if not both:
-                ra = max(min(ra, rb), 0.0)
-                rb = ra
+                ma = 0.0
+                mb = 0.0
+                if e0 - 2 >= lo and e1 + 2 <= hi:
+                    ma = 0.5 * (rbuf[e0 - 1 - lo] + rbuf[e0 - 2 - lo])
+                    mb = 0.5 * (rbuf[e1 + 1 - lo] + rbuf[e1 + 2 - lo])
+                if ma < 0.0 and mb < 0.0 and ma == ma and mb == mb:
+                    ra = ma
+                    rb = mb
+                else:
+                    ra = max(min(ra, rb), 0.0)
+                    rb = ra
             for c in range(e0, e1 + 1):
                 f = (c - e0 + 1) / (e1 - e0 + 2)
                 out[c] = x[c] - rbuf[c - lo] + ra + f * (rb - ra)
