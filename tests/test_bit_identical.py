@@ -3,8 +3,7 @@
 The reference is always a slower path computed in the test: the whole cube fitted
 as one block without dask (``_fit_rows`` on every spectrum at once), compared with
 ``np.array_equal`` (NaN equal to NaN) against ``fit_peaks`` run lazily with other
-chunkings and schedulers. A one-peak start is checked against the formula it had
-before the multi-peak start changed (kept here as the reference).
+chunkings and schedulers.
 """
 
 from __future__ import annotations
@@ -81,29 +80,3 @@ def test_fit_independent_of_chunks_and_scheduler(model, peaks, seed):
                 dev = np.abs(ref[:, o] - ref0[:, o]) / ref0[:, o + 1]
                 assert np.nanmax(dev) < 1e-6  # centre moved by < 1e-6 of its error bar
     assert np.mean(ref0[:, -3] == 0) >= 0.9  # the reference itself is a working fit
-
-
-def test_one_peak_start_unchanged():
-    # the multi-peak template placement changed (cross-correlation); a one-peak
-    # template (init="mean") must still be shifted by the pixel's maximum, exactly as
-    # before: P0 = template, centre + (e_max - template centre), area scaled by height
-    cube = _cube("gaussian", 1, 3)
-    Y = np.ascontiguousarray(cube.values.reshape(-1, E.size), dtype=np.float64)
-    Yf, _ = F._filled(Y)
-    spec = F._build_spec(E, model="gaussian", peaks=1, background="constant", bounds=None,
-                         fixed=None, shared=None, init="mean")
-    _, base, _, _, start = F._quick_desc(Yf, E)
-    tpl = F._template(np.nanmean(Y, axis=0), spec)
-    rows = np.arange(Y.shape[0])
-    got = F._starts(Y, rows, start, spec, tpl, base=base)
-    # the old code path, written out
-    tp, t_height, t_centre = tpl
-    b, e_max, height, fw = start
-    old = np.zeros((rows.size, spec.nfull))
-    old[:] = tp
-    scale = np.where(t_height > 0, np.maximum(height, 0.0) / t_height, 1.0)
-    old[:, 2] = tp[2] * scale
-    old[:, 0] = tp[0] + np.where(np.isfinite(e_max), e_max - t_centre, 0.0)
-    old[:, 3] = b
-    old = np.clip(old, spec.lo, spec.hi)
-    np.testing.assert_array_equal(got, old)

@@ -463,51 +463,8 @@ def _template(mean, spec):
     return np.asarray(best, dtype=float), float(height[0]), float(e_max[0])
 
 
-def _template_shift(Yr, base, tp, spec):
-    """Energy shift (eV) that best aligns the template's peaks with each row (len(Yr),).
-
-    Cross-correlation (common practice): the template's peaks (background left out)
-    are evaluated shifted by whole median channel steps over ± twice the template's
-    widest FWHM, each row's signal above ``base`` is correlated with every shifted
-    copy (one matrix product), and the best shift is refined by the vertex of a
-    parabola through the best three. The whole pattern is matched, so a pixel whose
-    brightest line differs from the template's is still placed line on line.
-    """
-    x = spec.x
-    nb = spec.K * spec.npp
-    step = float(np.median(np.diff(x)))
-    widest = max(float(tp[k * spec.npp + 1]) for k in range(spec.K))
-    L = int(min(max(np.ceil(2.0 * widest / step), 1), x.size // 4))
-    shifts = np.arange(-L, L + 1) * step
-    T = np.empty((x.size, shifts.size))
-    f = np.empty(x.size)
-    J = np.zeros((x.size, nb))
-    p = np.ascontiguousarray(tp[:nb], dtype=np.float64)
-    for j, sh in enumerate(shifts):
-        q = p.copy()
-        q[0::spec.npp] += sh
-        K.eval_model(spec.code, x, spec.xref, q, spec.K, 0, f, J, False)
-        T[:, j] = f
-    Z = np.asarray(Yr, dtype=np.float64) - np.asarray(base, dtype=np.float64)[:, None]
-    Z = np.where(np.isfinite(Z), Z, 0.0)
-    # per-row sums in a fixed order (not BLAS, whose blocking depends on the number of
-    # rows): a pixel's start, and so its fit, does not depend on the chunking
-    C = np.einsum("rc,cs->rs", Z, T, optimize=False)
-    i = np.clip(np.argmax(C, axis=1), 1, shifts.size - 2)
-    r = np.arange(C.shape[0])
-    cm, c0, cp = C[r, i - 1], C[r, i], C[r, i + 1]
-    den = cm - 2.0 * c0 + cp
-    with np.errstate(invalid="ignore", divide="ignore"):
-        frac = np.where(den < 0, 0.5 * (cm - cp) / den, 0.0)
-    return shifts[i] + np.clip(frac, -1.0, 1.0) * step
-
-
-def _starts(Y, rows, desc, spec, template, base=None):
-    """Starting values (len(rows), n_full) for rows ``rows`` of Y, ``desc`` of those rows.
-
-    ``base`` (len(rows),): each row's base level (minimum of the 3-channel running
-    mean), used to place a multi-peak template (:func:`_template_shift`).
-    """
+def _starts(Y, rows, desc, spec, template):
+    """Starting values (len(rows), n_full) for rows ``rows`` of Y, ``desc`` of those rows."""
     m = rows.size
     b, e_max, height, fw = desc
     P0 = np.zeros((m, spec.nfull))
@@ -515,15 +472,8 @@ def _starts(Y, rows, desc, spec, template, base=None):
     if template is not None:
         tp, t_height, t_centre = template
         scale = np.where(t_height > 0, np.maximum(height, 0.0) / t_height, 1.0)
-        # the template moved to the pixel: one peak shifts with the pixel's maximum;
-        # several by cross-correlation with the pixel (the maximum can jump from one
-        # line to another where their heights cross, which would start every line
-        # one separation away)
-        if spec.K > 1 and base is not None:
-            shift = _template_shift(Y[rows], base, tp, spec)
-        else:
-            shift = e_max - t_centre
-        shift = np.where(np.isfinite(shift), shift, 0.0)
+        # the template moved to the pixel: its centres shift with the pixel's maximum
+        shift = np.where(np.isfinite(e_max), e_max - t_centre, 0.0)
         P0[:] = tp
         for k in range(spec.K):
             P0[:, k * npp + 2] = tp[k * npp + 2] * scale
@@ -590,7 +540,7 @@ def _fit_rows(Y, mean, spec, nz, max_iter, min_snr, VS=_ONE, VP=_ZERO):
         if spec.K > 1 or spec.init == "mean":
             template = _template(mean, spec)
         sel = tuple(v[fit_rows] for v in start)
-        P0 = _starts(Y, fit_rows, sel, spec, template, base=b[fit_rows])
+        P0 = _starts(Y, fit_rows, sel, spec, template)
         P, COV, chi2, st, niter = _run(Y, spec, P0, nz, max_iter, fit_rows, VS=VS, VP=VP)
         res = _postprocess(P, COV, chi2, st, niter, spec, nz[0] == 1, min_snr)
         if spec.K > 1:
