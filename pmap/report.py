@@ -86,7 +86,19 @@ def _title(da: xr.DataArray, stem: str | None = None) -> str:
             for cname, c in da.coords.items():
                 if cname != d and c.ndim == 0 and c.dtype.kind in "OUS" and d in cname:
                     index = f"{index} ({c.values.item()})"
-    return _style.map_title(name, attrs=da.attrs, dim=dim, index=index)
+    title = _style.map_title(name, attrs=da.attrs, dim=dim, index=index)
+    # a slice along a stack dim (temperature, excitation power, time...): say which
+    for cname, c in da.coords.items():
+        if c.ndim == 0 and cname not in ("y", "x", "peak", "component") \
+                and c.dtype.kind in "fiu" and cname in _STACK_DIMS:
+            unit = _style.unit_text(c.attrs.get("units"))
+            title += f" — {cname.replace('_', ' ')} {c.values.item():g} {unit}".rstrip()
+    return title
+
+
+#: Stack dims whose value is named in the title of a slice (pmap.stack, plcube stack).
+_STACK_DIMS = ("temperature", "excitation_power", "time", "exposure", "position", "field",
+               "pressure", "voltage", "current", "angle", "polarization", "index")
 
 
 def nice_scale_length(width: float) -> float:

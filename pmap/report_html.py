@@ -481,13 +481,14 @@ def _classify(stem: str, law: str | None) -> str:
     return "other"
 
 
-def _figure_order(path: Path) -> tuple[int, str]:
-    """Main quantities first (peak energy, width, intensity...), then the rest by name."""
+def _figure_order(path: Path) -> int:
+    """Main quantities first (peak energy, width, intensity...), then the rest; a stable sort
+    on this keeps the order the figures were drawn in (slices along a stack dim in order)."""
     stem = Path(path).stem
     for i, name in enumerate(_MAIN + _QUALITY + _PHYSICS):
         if stem == name or stem.startswith(name + "_"):
-            return i, stem
-    return len(_MAIN) + len(_QUALITY) + len(_PHYSICS), stem
+            return i
+    return len(_MAIN) + len(_QUALITY) + len(_PHYSICS)
 
 
 _MAPS_NOTE = ("<p>Every map: y up with the origin (smallest x and y) at the lower left, axes "

@@ -219,3 +219,17 @@ def test_histogram_log_axis_for_values_spanning_decades(tmp_path):
     assert info["outside_above"] == int(np.sum(finite > hi))
     assert info["n"] == finite.size and info["n_no_value"] == 1
     assert pixels.std() > 10
+
+
+def test_slices_along_a_stack_dim_are_named_in_the_title(tmp_path):
+    """A map on (temperature, y, x) gives one figure per temperature, titled with its value."""
+    t = np.array([20.0, 300.0])
+    ds = xr.Dataset(
+        {"peak_energy": (("temperature", "y", "x"), 1.5 + np.zeros((2, 4, 5)) + t[:, None, None]
+                         * 1e-4, {"units": "eV"})},
+        coords={"temperature": ("temperature", t, {"units": "K"}),
+                "y": ("y", np.arange(4.0), {"units": "um"}),
+                "x": ("x", np.arange(5.0), {"units": "um"})})
+    paths = [p for p in report.write_figures(ds, tmp_path) if "histogram" not in p.name]
+    titles = [png_info(p)[1]["title"] for p in paths]
+    assert titles == ["Peak energy (eV) — temperature 20 K", "Peak energy (eV) — temperature 300 K"]
