@@ -840,19 +840,26 @@ def _robust_ratio(x, ref, off, lo, hi, g0, g1, a, law, nz, wb):  # pragma: no co
     zero), the ratio of sums is refined twice leaving out the channels where x and a·ref
     differ by more than 4 s.d.; the start whose result agrees with more channels wins
     (a consensus choice, as in random-sample consensus: Fischler & Bolles, Commun. ACM 24,
-    381 (1981)). ``wb``: work (≥ hi − lo + 1)."""
-    m = 0
-    for c in range(lo, hi + 1):
-        if g0 <= c <= g1:
-            continue
-        v = ref[c - off]
-        if v == v and x[c] == x[c] and v * v > 9.0 * _var_at(c, v, law, nz):
-            wb[m] = x[c] / v
-            m += 1
+    381 (1981)). The second start is tried only when the first leaves out more than 2 %
+    of the channels. ``wb``: work (≥ hi − lo + 1)."""
     best = a
     kbest = -1
+    nvalid = 0
+    for c in range(lo, hi + 1):
+        if not g0 <= c <= g1 and ref[c - off] == ref[c - off] and x[c] == x[c]:
+            nvalid += 1
     for start in range(2):
         if start == 1:
+            if kbest >= 0.98 * nvalid:
+                break
+            m = 0
+            for c in range(lo, hi + 1):
+                if g0 <= c <= g1:
+                    continue
+                v = ref[c - off]
+                if v == v and x[c] == x[c] and v * v > 9.0 * _var_at(c, v, law, nz):
+                    wb[m] = x[c] / v
+                    m += 1
             if m < 5:
                 break
             a1 = median_of(wb, m)
@@ -1242,21 +1249,30 @@ def _frame_candidates(b, ib, f, s, x, n, t, law, nz, fsc, vbuf, z, cand, wb):  #
                 m += 1
         wb[c] = median_of(vbuf, m) if m else np.nan
         mref = max(mref, m)
+    # the noise is taken at the level of the prediction averaged over c ± 5 (or at pc
+    # where higher): with one or two other frames pc itself scatters, and its low values
+    # would understate the noise just where the difference is large (a running sum)
+    ws = 0.0
+    wk = 0
+    for j in range(min(5, n - 1) + 1):
+        if wb[j] == wb[j]:
+            ws += wb[j]
+            wk += 1
     for c in range(n):
+        if c > 0:
+            j = c + 5
+            if j < n and wb[j] == wb[j]:
+                ws += wb[j]
+                wk += 1
+            j = c - 6
+            if j >= 0 and wb[j] == wb[j]:
+                ws -= wb[j]
+                wk -= 1
         pc = wb[c]
         if not (x[c] == x[c] and pc == pc):
             continue
         m = mref
-        # the noise is taken at the level of the prediction averaged over c ± 5 (or at pc
-        # where higher): with one or two other frames pc itself scatters, and its low
-        # values would understate the noise just where the difference is large
-        lv = 0.0
-        k = 0
-        for j in range(max(c - 5, 0), min(c + 5, n - 1) + 1):
-            if wb[j] == wb[j]:
-                lv += wb[j]
-                k += 1
-        lv = max(lv / k, pc)
+        lv = max(ws / wk, pc)
         var = _var_at(c, lv, law, nz)
         v = var * (1.0 + (1.0 / m if m <= 2 else 1.5708 / m))
         e = x[c] - pc
