@@ -251,3 +251,75 @@ def test_demo_cube_regions():
     got = region.values
     for truth_code, ours in ((-1, -1), (1, 0), (2, 1), (0, 2)):
         assert np.mean(got[t == truth_code] == ours) > 0.95
+
+
+# ------------------------------------------------------- merge terms and the template check
+
+
+def _gauss(x, c, s):
+    return np.exp(-0.5 * ((x - c) / s) ** 2)
+
+
+def test_emission_difference_after_continuum():
+    """Dim emission over a strong continuum is the same emission as the bright pixel
+    beside it once the continuum is removed. Exact by construction: spectra add
+    linearly (common practice), no noise."""
+    from pmap.decomposition._merge import _unit_area, emission_difference
+
+    e = np.linspace(1.7, 3.1, 512)
+    line = _gauss(e, 2.72, 0.05)
+    tail = np.exp((e - 3.1) / 0.3)  # a laser tail rising to the window's edge
+    bright = _unit_area(line + 0.02 * tail)
+    dim = _unit_area(0.3 * line + 1.0 * tail)
+    plain = emission_difference(bright, dim)
+    assert plain > 0.5  # as they are, the two shapes differ a lot
+    assert emission_difference(bright, dim, _unit_area(tail)[None]) < 1e-6
+    # A different emission stays different after the continuum is removed.
+    other = _unit_area(0.3 * _gauss(e, 2.20, 0.15) + tail)
+    assert emission_difference(bright, other, _unit_area(tail)[None]) > 0.5
+
+
+def test_best_shift_recovers_a_drift():
+    """A Gaussian moved by 37 meV on a 2 meV grid: the shift is found to 0.1 channel
+    (parabolic refinement of a least-squares grid search; exact data)."""
+    from pmap.decomposition._merge import best_shift
+
+    e = np.arange(1.8, 2.4, 0.002)
+    ref = _gauss(e, 2.05, 0.04)
+    moved = _gauss(e, 2.05 - 0.037, 0.04)
+    assert best_shift(ref, moved, e, 0.1) == pytest.approx(0.037, abs=0.0002)
+
+
+def test_template_snr_null_and_signal():
+    """Matched-filter SNR (North, Proc. IEEE 51, 1016 (1963)): on white Gaussian noise
+    over a quadratic continuum it is ~N(0, 1) (n = 4000 rows: mean within 3 SE =
+    0.047, s.d. within 3 SE plus 5 % for the MAD-based noise estimate); a curved
+    (exponential) stray light leaves a bias well under the 5 sigma threshold; a line of
+    known amplitude gives A·|t⊥|/σ within 5 %."""
+    from pmap.decomposition._segment import MIN_TEMPLATE_SNR, template_snr
+
+    rng = np.random.default_rng(7)
+    c = 300
+    u = np.arange(c)
+    v = np.linspace(-1.0, 1.0, c)
+    tmpl = _gauss(u, 140.0, 12.0)
+    n, sigma = 4000, 2.0
+    noise = rng.normal(0.0, sigma, (n, c))
+    x = 20.0 + 5.0 * v - 3.0 * v * v + noise
+    snr = template_snr(x, np.zeros(n, dtype=int), tmpl[None])
+    se = 1.0 / np.sqrt(n)
+    assert abs(snr.mean()) < 3 * se
+    assert abs(snr.std() - 1.0) < 3 * se / np.sqrt(2) + 0.05
+    # Stray light 25 sigma strong, decaying exponentially (not a quadratic): biased,
+    # but far below the threshold.
+    curved = 50.0 * np.exp(-u / 120.0) + noise
+    bias = template_snr(curved, np.zeros(n, dtype=int), tmpl[None]).mean()
+    assert abs(bias) < 0.2 * MIN_TEMPLATE_SNR
+    # With the line: expected SNR = A * |template minus its quadratic part| / sigma.
+    q, _ = np.linalg.qr(np.stack([np.ones(c), v, v * v], axis=1))
+    tp = tmpl - q @ (q.T @ tmpl)
+    amp = 3.0
+    got = template_snr(x[:200] + amp * tmpl, np.zeros(200, dtype=int), tmpl[None])
+    assert np.mean(got) == pytest.approx(amp * np.linalg.norm(tp) / sigma, rel=0.05)
+    # Rows without a label are not tested.
+    assert np.all(np.isnan(template_snr(x[:3], -np.ones(3, dtype=int), tmpl[None])))

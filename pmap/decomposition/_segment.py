@@ -265,6 +265,44 @@ def _map_features(
     return xs, signal, prop
 
 
+#: A pixel keeps its region's label only when that region's mean spectrum is present
+#: in it at this many noise s.d. (matched filter, :func:`template_snr`).
+MIN_TEMPLATE_SNR = 5.0
+
+
+def template_snr(x: np.ndarray, which: np.ndarray, templates: np.ndarray) -> np.ndarray:
+    """Matched-filter signal-to-noise ratio of each row's template (units 1).
+
+    Rows ``x`` (n, C) and ``templates`` (m, C) lose their best quadratic baseline in
+    the channel index (a slowly curved continuum: stray light, laser tail, glow); the
+    row's projection on its unit-norm template ``templates[which]`` (``which`` (n,),
+    negative: none, NaN out) is divided by the row's white-noise s.d., 1.4826·MAD of
+    the second differences / √6 (common practice). The matched filter is the most
+    sensitive test for a known shape (North, Proc. IEEE 51, 1016 (1963)): a pixel
+    whose emission was detected carries the spectrum of the cluster it is nearest to,
+    while a curved background that a generic detector took for a broad peak does not.
+    """
+    n, c = x.shape
+    out = np.full(n, np.nan)
+    if c < 8 or not np.any(which >= 0):
+        return out
+    u = np.linspace(-1.0, 1.0, c)
+    q, _ = np.linalg.qr(np.stack([np.ones(c), u, u * u], axis=1))
+    tp = templates - (templates @ q) @ q.T
+    norm = np.linalg.norm(tp, axis=1)
+    tp = tp / np.where(norm > 0, norm, 1.0)[:, None]
+    for j in np.unique(which[which >= 0]):
+        rows = np.flatnonzero(which == j)
+        xs = x[rows]
+        xr = xs - (xs @ q) @ q.T
+        d2 = xs[:, :-2] - 2.0 * xs[:, 1:-1] + xs[:, 2:]
+        sig = 1.4826 * np.median(np.abs(d2 - np.median(d2, axis=1, keepdims=True)), axis=1)
+        sig = sig / np.sqrt(6.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out[rows] = np.where(sig > 0, (xr @ tp[j]) / sig, np.inf)
+    return out
+
+
 def _predict(
     x: np.ndarray,
     *,
@@ -281,16 +319,24 @@ def _predict(
     else:
         feats, signal, _ = transform(x, **tkw)
     out = np.full(len(x), -1, dtype=np.int32)
-    if not second:
-        if signal.any():
-            p = model.predict((feats[signal] - mu) / sd)
-            out[signal] = np.where(p >= 0, relabel[np.clip(p, 0, None)], -1)
-        return out
     alt = np.full(len(x), -2, dtype=np.int32)
     if signal.any():
-        p, q = model.predict2((feats[signal] - mu) / sd)
+        if second:
+            p, q = model.predict2((feats[signal] - mu) / sd)
+            alt[signal] = np.where(q >= 0, relabel[np.clip(q, 0, None)], q)
+        else:
+            p = model.predict((feats[signal] - mu) / sd)
         out[signal] = np.where(p >= 0, relabel[np.clip(p, 0, None)], -1)
-        alt[signal] = np.where(q >= 0, relabel[np.clip(q, 0, None)], q)
+    templates = getattr(model, "templates", None)
+    if templates is not None and np.any(out >= 0):
+        which = np.full(len(x), -1, dtype=np.int64)
+        rows = np.flatnonzero(signal)
+        which[rows] = model.nearest((feats[signal] - mu) / sd)
+        which[out < 0] = -1
+        snr = template_snr(fill_nan_channels(x), which, templates)
+        out = np.where((out >= 0) & ~(snr >= MIN_TEMPLATE_SNR), -1, out).astype(np.int32)
+    if not second:
+        return out
     return np.stack([out, alt], axis=1)
 
 
@@ -473,14 +519,21 @@ class _Nearest:
     """Nearest-centroid labels: each kept over-cluster centroid carries its region
     (−1: a continuum without an emission peak, i.e. no emission)."""
 
-    def __init__(self, centroids: np.ndarray, region_of: np.ndarray):
+    def __init__(self, centroids: np.ndarray, region_of: np.ndarray, templates=None):
         self.centroids = np.asarray(centroids, dtype=np.float64)
         self.region_of = np.asarray(region_of, dtype=np.int64)
         self.c2 = np.einsum("ij,ij->i", self.centroids, self.centroids)
+        #: Mean measured spectrum (C,) of each centroid's cluster, or None: a pixel
+        #: keeps its label only if it carries its nearest cluster's spectrum
+        #: (:func:`template_snr` ≥ MIN_TEMPLATE_SNR).
+        self.templates = None if templates is None else np.asarray(templates, dtype=np.float64)
+
+    def nearest(self, z: np.ndarray) -> np.ndarray:
+        """Index of the nearest centroid of each row."""
+        return np.argmin(self.c2[None, :] - 2.0 * (z @ self.centroids.T), axis=1)
 
     def predict(self, z: np.ndarray) -> np.ndarray:
-        d = self.c2[None, :] - 2.0 * (z @ self.centroids.T)
-        return self.region_of[np.argmin(d, axis=1)]
+        return self.region_of[self.nearest(z)]
 
     def predict2(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(label, runner-up label or −2): the runner-up is the label of the nearest
@@ -588,14 +641,25 @@ def _fit_merge(
         if (step > 0 and n <= hi) or (step < 0 and n >= lo):
             break
     groups, kept, notes = done[pick]
-    centroids, region_of = [], []
+    centroids, region_of, templates = [], [], []
     for r, g in enumerate(kept):
+        # A cluster too small to be a region on its own is checked against the
+        # spectrum of the nearest large cluster of its region (its own mean would be
+        # whatever its few pixels hold, a curved background included).
+        large = [m for m in groups[g] if piece_sizes[m] >= min_pixels]
         for member in groups[g]:
             centroids.append(km.cluster_centers_[member])
             region_of.append(r)
+            ref = member
+            if piece_sizes[member] < min_pixels and large:
+                dist = [np.sum((km.cluster_centers_[m] - km.cluster_centers_[member]) ** 2)
+                        for m in large]
+                ref = large[int(np.argmin(dist))]
+            templates.append(piece_means[ref])
     for member in cont_members:
         centroids.append(km.cluster_centers_[member])
         region_of.append(-1)
+        templates.append(piece_means[member])
     if cont_members:
         share = float(np.isin(lab, cont_members).mean()) * 100
         notes["continuum"] = (
@@ -603,7 +667,9 @@ def _fit_merge(
             "emission peak inside the window: no emission"
         )
     scores = [float(s.score) for s in states[1:]]
-    return _Nearest(np.array(centroids), np.array(region_of)), len(kept), scores, notes, k_natural
+    model = _Nearest(np.array(centroids), np.array(region_of),
+                     np.array(templates) if spectra is not None else None)
+    return model, len(kept), scores, notes, k_natural
 
 
 def _sample_pos(arr: xr.DataArray, core: str, positions) -> np.ndarray:
@@ -766,7 +832,11 @@ def segment(
         spectrum has no peak inside the window (stray light, laser tail: no emission,
         −1) are not regions. "auto" stops where every pair left is separated (clipped
         to ``k_range``); a given K merges on, or stops earlier, until K regions remain.
-        The fit sample is drawn as 2 × 2 squares so that it holds neighbours.
+        The fit sample is drawn as 2 × 2 squares so that it holds neighbours. A pixel
+        keeps its region only when the mean spectrum of its nearest cluster (for a
+        cluster too small to be a region, of the nearest large cluster of the same
+        region) is present in it at ``MIN_TEMPLATE_SNR`` (5) noise s.d. after a
+        quadratic baseline (matched filter, :func:`template_snr`); else −1.
         ``"kmeans"``: k-means with K clusters ("auto": largest silhouette); ``"gmm"``:
         a Gaussian mixture ("auto": smallest BIC).
     feature_space : {"emission", "shape", "shape+intensity", "abundance", "parameters"}
@@ -943,7 +1013,9 @@ def segment(
             f"inside, density valley ratio > {valley_ratio}, membership step < "
             f"{separation} residual s.d. beyond a quartic spatial trend, or border spectra "
             f"within {min_difference:.0%}; groups under {min_pixels} fitted pixels joined "
-            f"their nearest; mixed-pixel groups and peakless continua (no emission) dropped"
+            f"their nearest; mixed-pixel groups and peakless continua (no emission) dropped; "
+            f"a pixel without its nearest cluster's spectrum at {MIN_TEMPLATE_SNR:g} sigma "
+            f"(matched filter) is no emission"
             + ("" if n_regions == "auto" else f"; merged on to the K = {k} given")
         )
         merge_info = {"k_natural": int(natural), "dropped_clusters": json.dumps(dropped)}
