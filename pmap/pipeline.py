@@ -67,7 +67,7 @@ from .results import (
     prepare_output,
     write_result,
 )
-from .steps import eager_globals, get_step
+from .steps import WHOLE_MAP_KEYWORD, WholeMapPass, get_step
 
 __all__ = [
     "DEFAULT_PIPELINE_TOML",
@@ -223,7 +223,8 @@ def _check_keys(origin: str, where: str, func: Any, params: dict) -> None:
     if any(p.kind is p.VAR_KEYWORD for p in sig.parameters.values()):
         return
     known = [n for i, (n, p) in enumerate(sig.parameters.items())
-             if i > 0 and p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD)]
+             if i > 0 and p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD)
+             and n != WHOLE_MAP_KEYWORD]  # set by the runner, never by a pipeline file
     for key in params:
         if key not in known:
             close = difflib.get_close_matches(str(key), known, n=1)
@@ -289,10 +290,22 @@ def _refuse_empty(cube: xr.DataArray) -> None:
         raise StepError("the cube holds no finite values (all NaN or empty): nothing to process")
 
 
-def _run_step(name: str, cube: xr.DataArray, params: dict) -> Any:
-    spec = get_step(name)
+def _run_step(name: str, cube: xr.DataArray, params: dict,
+              whole_map: WholeMapPass | None = None) -> Any:
+    """Run one registered step; a step that takes ``whole_map`` gets the run's pass."""
+    return _call(get_step(name).func, name, cube, params, whole_map)
+
+
+def _call(func: Any, name: str, cube: xr.DataArray, params: dict,
+          whole_map: WholeMapPass | None) -> Any:
+    import inspect
+
+    if WHOLE_MAP_KEYWORD in params:
+        raise StepError(f"{WHOLE_MAP_KEYWORD!r} is set by pmap, not by a pipeline file")
+    extra = ({WHOLE_MAP_KEYWORD: whole_map} if whole_map is not None
+             and WHOLE_MAP_KEYWORD in inspect.signature(func).parameters else {})
     try:
-        return spec.func(cube, **params)
+        return func(cube, **params, **extra)
     except TypeError as exc:
         raise StepError(f"step {name!r}: {exc}") from None
 
@@ -303,22 +316,20 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
     Runs the cube steps, descriptors, fit and decomposition. Small reductions over
     the whole map that steps need (hot channels, saturation level, the mean
     spectrum seeding multi-peak fits, PCA/NMF bases fitted on a pixel sample) are
-    computed now, once (:func:`pmap.steps.eager_globals`), so that every block of
-    the result depends only on its own chunks; the maps stay lazy. Regions, which need the
-    whole map, are made afterwards from the written store (:func:`add_regions`).
+    computed now, once, in phase one: each step gets the run's
+    :class:`pmap.steps.WholeMapPass` and computes them through it, and their values go
+    into the result's provenance (``whole_map_pass``). Every block of the result then
+    depends only on its own chunks; the maps stay lazy. Regions, which need the whole
+    map, are made afterwards from the written store (:func:`add_regions`).
     Returns (result, processed_cube).
     """
-    with eager_globals():
-        return _build_result(cube, pipeline)
-
-
-def _build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr.DataArray]:
+    whole_map = WholeMapPass()
     named = any(n == "attach_noise_model" for n, _ in pipeline.steps)
     if not named and cube.attrs.get("units") == "counts" and get_noise_model(cube) is None:
         # raw counts: the noise model starts here and follows every step (pmap.noise)
         cube = _run_step("attach_noise_model", cube, {})
     for name, params in pipeline.steps:
-        out = _run_step(name, cube, params)
+        out = _run_step(name, cube, params, whole_map)
         if not isinstance(out, xr.DataArray):
             raise StepError(f"step {name!r} does not return a cube; put it in its own table")
         cube = out
@@ -330,7 +341,7 @@ def _build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, x
         params = getattr(pipeline, attr)
         if params is None:
             continue
-        part = _run_step(step, cube, dict(params))
+        part = _run_step(step, cube, dict(params), whole_map)
         parts.append(part)
         prov["steps"].append({"step": step, "params": params})
         if step == "fit_peaks" and pipeline.properties:
@@ -339,7 +350,7 @@ def _build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, x
     if pipeline.planck is not None:  # absolute PL: generalized Planck law (pmap.planck)
         from .planck import fit_planck
 
-        parts.append(fit_planck(cube, **dict(pipeline.planck)))
+        parts.append(_call(fit_planck, "planck", cube, dict(pipeline.planck), whole_map))
         prov["steps"].append({"step": "planck", "params": pipeline.planck})
     keep = pipeline.output.get("keep_cube", "auto")
     if keep == "auto":
@@ -349,6 +360,7 @@ def _build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, x
     if not parts:
         raise StepError("the pipeline produces nothing: add [descriptors], [fit] or more")
     prov["pipeline"] = pipeline.as_dict()
+    prov["whole_map_pass"] = whole_map.records  # phase one's quantities and their values
     ds = assemble_result(parts, provenance_json=json.dumps(prov), coords_from=cube)
     return ds, cube
 

@@ -152,7 +152,8 @@ def mark_complete(path: str | Path) -> None:
     import zarr
 
     g = zarr.open_group(str(path), mode="r+")
-    if not g.attrs.get(BLOCKS_WRITTEN_ATTR):
+    if DONE_ARRAY in g and not g.attrs.get(BLOCKS_WRITTEN_ATTR):  # (a store written in one
+        # go, without blocks, has no done-record)
         raise FormatError(f"{path}: not every block is written; the store cannot be marked "
                           "complete")
     if DONE_ARRAY in g:

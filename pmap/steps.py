@@ -19,11 +19,12 @@ Pipeline TOML (read by :mod:`pmap.pipeline`) lists steps in order::
 
 from __future__ import annotations
 
-import contextlib
-import threading
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from dataclasses import dataclass
 from importlib import import_module
+from typing import Any
+
+import numpy as np
 
 from .errors import StepError
 
@@ -32,8 +33,8 @@ __all__ = [
     "register_step",
     "get_step",
     "available_steps",
-    "eager_globals",
-    "materialize",
+    "WholeMapPass",
+    "whole_map_values",
 ]
 
 
@@ -90,36 +91,73 @@ def available_steps() -> dict[str, StepSpec]:
     return dict(sorted(_REGISTRY.items()))
 
 
-# ----------------------------------------------------------------------------- globals
+# ------------------------------------------------------------------ whole-map pass
 # Some steps need a small quantity reduced over the whole map (hot-channel votes, the
 # maximum for saturation, the mean spectrum that seeds multi-peak fits, a PCA basis).
 # Lazily, every block written on its own would recompute that reduction, i.e. re-read
-# the whole cube per block. Inside ``eager_globals()`` (the pipeline runner uses it),
-# steps pass such reductions through ``materialize``, which computes them once, at
-# graph-build time, so that each block then depends only on its own chunks. Outside
-# the context (the default) steps stay fully lazy.
-_EAGER = threading.local()
+# the whole cube per block. A pipeline run therefore has two explicit phases: the
+# runner hands each step a ``WholeMapPass`` (keyword ``whole_map``), through which the
+# step computes those quantities once, now, and records them; the per-block phase then
+# depends only on each block's own chunks and on these values. Called without a pass
+# (the default), a step computes nothing and its graph holds the reductions.
+
+#: The keyword through which the pipeline runner hands a step its whole-map pass (not a
+#: pipeline-file key).
+WHOLE_MAP_KEYWORD = "whole_map"
 
 
-@contextlib.contextmanager
-def eager_globals() -> Iterator[None]:
-    """Within this block, :func:`materialize` computes small global reductions at once."""
-    old = getattr(_EAGER, "on", False)
-    _EAGER.on = True
-    try:
-        yield
-    finally:
-        _EAGER.on = old
+def _summary(value: np.ndarray) -> Any:
+    """A provenance-sized record of a computed quantity: the values when small, else the
+    indices of a sparse boolean mask, else shape, range and a content hash."""
+    import hashlib
+
+    v = np.asarray(value)
+    if v.dtype == bool:
+        idx = np.flatnonzero(v)
+        if idx.size <= 256:
+            return {"true_at": idx.tolist(), "count": int(idx.size), "shape": list(v.shape)}
+    if v.size <= 16:
+        return v.tolist()
+    finite = v[np.isfinite(v)] if v.dtype.kind == "f" else v.ravel()
+    return {"shape": list(v.shape), "dtype": str(v.dtype),
+            "min": float(finite.min()) if finite.size else None,
+            "max": float(finite.max()) if finite.size else None,
+            "sha256": hashlib.sha256(np.ascontiguousarray(v).tobytes()).hexdigest()[:16]}
 
 
-def materialize(*arrs):
-    """Compute small dask arrays now (in one pass) inside :func:`eager_globals`.
+class WholeMapPass:
+    """Phase one of a pipeline run: whole-map quantities computed once and recorded.
 
-    Outside the context they are returned unchanged. One argument gives one array
-    back, several give a tuple.
+    ``records`` lists, per step, the quantities computed and their values (small ones in
+    full, large ones summarised), for the result's provenance.
     """
-    if getattr(_EAGER, "on", False):
-        import dask
 
-        arrs = dask.persist(*arrs)
+    def __init__(self) -> None:
+        self.records: list[dict[str, Any]] = []
+
+    def compute(self, step: str, **quantities: Any) -> tuple:
+        """Compute the lazy ``quantities`` of ``step`` in one pass; returns them as
+        single-chunk-per-original-chunk dask arrays holding the values."""
+        import dask
+        import dask.array as da
+
+        names = list(quantities)
+        values = dask.compute(*quantities.values())
+        self.records.append({"step": step, "values": {
+            n: _summary(v) for n, v in zip(names, values, strict=True)}})
+        out = []
+        for lazy, v in zip(quantities.values(), values, strict=True):
+            v = np.asarray(v)
+            chunks = getattr(lazy, "chunks", None)
+            out.append(da.from_array(v, chunks=chunks if chunks is not None else -1))
+        return tuple(out)
+
+
+def whole_map_values(whole_map: WholeMapPass | None, step: str, **quantities: Any):
+    """The named whole-map ``quantities`` of ``step``: computed now through ``whole_map``
+    (phase one of a pipeline run, recorded under these names), or returned unchanged
+    (lazy) without one. One quantity gives one array back, several a tuple in order.
+    """
+    arrs = (whole_map.compute(step, **quantities) if whole_map is not None
+            else tuple(quantities.values()))
     return arrs[0] if len(arrs) == 1 else tuple(arrs)

@@ -66,7 +66,6 @@ def _half_block(n: int, real):
 
 def arm(point: str, n: int) -> None:
     """Install the kill at ``point`` (its n-th arrival)."""
-    import dask
     import matplotlib.figure
     import zarr
 
@@ -74,13 +73,14 @@ def arm(point: str, n: int) -> None:
     import pmap.pipeline as pipeline
     import pmap.report_html as report_html
     import pmap.results as results
+    import pmap.steps as steps
 
     if point == "none":
         return
     if point == "build":  # the start of the whole-map pass
         pipeline.build_result = _counting(n, pipeline.build_result)
-    elif point == "persist":  # inside the whole-map pass (hot channels, fit template)
-        dask.persist = _counting(n, dask.persist)
+    elif point == "whole_map":  # inside phase one (hot channels, fit template...)
+        steps.WholeMapPass.compute = _counting(n, steps.WholeMapPass.compute)
     elif point == "metadata":  # after the global variables, before the map arrays
         results._metadata_template = _counting(n, results._metadata_template)
     elif point == "record":  # metadata and done-record written, not yet renamed into place

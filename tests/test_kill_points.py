@@ -24,7 +24,7 @@ KILLER = Path(__file__).with_name("_killer.py")
 #: point (the n-th arrival at it in that run), so the points cover every stage and each
 #: resume meets a store left by a kill; a last plain --resume finishes. 20 points in all.
 CHAIN_STORE = [  # the store: whole-map pass, metadata, blocks, regions, completion
-    ("build", 1), ("persist", 1), ("metadata", 1), ("record", 1), ("block", 1),
+    ("build", 1), ("whole_map", 1), ("metadata", 1), ("record", 1), ("block", 1),
     ("half_block", 2), ("block", 3), ("segment", 1), ("stage", 1), ("complete", 1),
     ("consolidate", 1),
 ]
@@ -104,7 +104,7 @@ def test_kill_points_cover_every_stage():
     """At least 20 kill points, over every stage named by the issue."""
     points = CHAIN_STORE + CHAIN_MEMORY_AND_FIGURES
     assert len(points) >= 20
-    stages = {"build": "whole-map", "persist": "whole-map", "metadata": "metadata",
+    stages = {"build": "whole-map", "whole_map": "whole-map", "metadata": "metadata",
               "record": "metadata", "block": "blocks", "half_block": "blocks",
               "segment": "regions", "stage": "regions", "complete": "completion",
               "consolidate": "completion", "figure": "figures", "html": "figures"}

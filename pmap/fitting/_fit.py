@@ -16,7 +16,7 @@ from ..errors import PmapNotice, StepError
 from ..noise import get_noise_model, noise_coords
 from ..provenance import with_step
 from ..spectral._axis import channel_edges
-from ..steps import materialize, register_step
+from ..steps import WholeMapPass, register_step, whole_map_values
 from . import _kernels as K
 from ._common import fwhm_at_half, smooth3
 from ._instrument import MODELS as _INSTRUMENT_MODELS
@@ -879,6 +879,7 @@ def fit_peaks(
     instrument_fwhm_ev: float | None = None,
     instrument_fwhm_nm: float | None = None,
     instrument_lamp=None,
+    whole_map: WholeMapPass | None = None,
 ) -> xr.Dataset:
     """Fit a sum of peaks plus background to every spectrum of an energy cube (lazy).
 
@@ -936,6 +937,10 @@ def fit_peaks(
     instrument_lamp : DataArray or path, optional
         Measure the instrument FWHM (nm) from the strongest line of this lamp
         spectrum instead (:func:`pmap.fitting.measure_instrument_fwhm`).
+    whole_map : pmap.steps.WholeMapPass, optional
+        Given by the pipeline runner: the mean spectrum that seeds multi-peak starts is
+        computed through it once, now, and recorded in the provenance. Without it (the
+        default) nothing is computed here.
 
     Returns
     -------
@@ -1022,7 +1027,8 @@ def fit_peaks(
         spatial = [d for d in cube.dims if d != "energy"]
         mean = cube.mean(dim=spatial, skipna=True).reset_coords(drop=True)
         mean = mean.chunk({"energy": -1}) if isinstance(mean.data, da.Array) else mean
-        mean = mean.copy(data=materialize(mean.data))
+        mean = mean.copy(data=whole_map_values(whole_map, "fit_peaks",
+                                               mean_spectrum=mean.data))
 
     def rows(Y, mean_vec, VS, VP):
         return _fit_rows(Y, mean_vec, spec, nz, int(max_iter), float(min_snr), VS=VS, VP=VP)

@@ -11,7 +11,7 @@ import xarray as xr
 from scipy import ndimage
 
 from ..errors import StepError
-from ..steps import materialize, register_step
+from ..steps import WholeMapPass, register_step, whole_map_values
 from ._common import check_cube, finish, float_dtype
 from ._robust import diff_noise_sd, robust_sigma_of_diff
 
@@ -162,6 +162,7 @@ def mask_bad_pixels(
     hot_threshold: float = 10.0,
     bad_channels: Any = None,
     return_mask: bool = False,
+    whole_map: WholeMapPass | None = None,
 ) -> xr.DataArray | tuple[xr.DataArray, xr.DataArray]:
     """Set dead spectra, saturated values, hot and bad channels to NaN.
 
@@ -187,6 +188,10 @@ def mask_bad_pixels(
     return_mask : bool
         Also return a uint8 DataArray ``bad_pixel_code`` (1 dead, 2 saturated,
         4 hot or bad channel; codes add up).
+    whole_map : pmap.steps.WholeMapPass, optional
+        Given by the pipeline runner: the hot-channel mask and the map maximum
+        (saturation) are computed through it once, now, and recorded in the provenance.
+        Without it (the default) nothing is computed here.
 
     Returns
     -------
@@ -236,7 +241,8 @@ def mask_bad_pixels(
     level = float(level) if (saturated and level is not None) else None
     auto = saturated and level is None
     gmax = da.nanmax(data) if auto else da.zeros((), dtype=dt)
-    hot_mask, gmax = materialize(hot_mask, gmax)  # one pass over the data for both
+    hot_mask, gmax = whole_map_values(  # one pass over the data for both
+        whole_map, "mask_bad_pixels", hot_channels=hot_mask, max_counts=gmax)
     opts = {"sat_level": level, "auto_sat": auto, "dead": dead}
     cleaned = da.map_blocks(_mask_core, data, gmax, hot_mask, dtype=dt, masked=True, **opts)
     out = finish(

@@ -10,7 +10,7 @@ import xarray as xr
 
 from ..errors import StepError
 from ..noise import noise_scaled, noise_subtracted
-from ..steps import materialize, register_step
+from ..steps import WholeMapPass, register_step, whole_map_values
 from ._common import (
     check_cube,
     finish,
@@ -32,7 +32,8 @@ def _describe(obj: Any) -> Any:
 
 @register_step("subtract_dark")
 def subtract_dark(
-    cube: xr.DataArray, *, dark: Any = None, region: Mapping[str, Any] | None = None
+    cube: xr.DataArray, *, dark: Any = None, region: Mapping[str, Any] | None = None,
+    whole_map: WholeMapPass | None = None,
 ) -> xr.DataArray:
     """Subtract a dark (background) signal.
 
@@ -47,6 +48,10 @@ def subtract_dark(
     region : dict, optional
         Instead of ``dark``: an off-sample region ``{"x": (x0, x1), "y": (y0, y1)}`` in the
         cube's spatial units (µm); its mean spectrum is subtracted from every pixel.
+    whole_map : pmap.steps.WholeMapPass, optional
+        Given by the pipeline runner: the region's mean spectrum is computed through it
+        once, now, and recorded in the provenance. Without it (the default) nothing is
+        computed here.
 
     Returns
     -------
@@ -63,7 +68,9 @@ def subtract_dark(
             raise StepError(f"region must be a mapping like {{'x': (0, 5)}}, got {region!r}")
         sub = region_slice(x, region)
         ref = sub.mean(("y", "x"))
-        ref = ref.copy(data=materialize(ref.data)) if ref.chunks is not None else ref
+        if ref.chunks is not None:
+            ref = ref.copy(data=whole_map_values(whole_map, "subtract_dark",
+                                                 region_mean_spectrum=ref.data))
         out = x - ref
         sub_val = ref
         params = {"region": {k: list(v) for k, v in region.items()}}

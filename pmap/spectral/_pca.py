@@ -9,7 +9,7 @@ import xarray as xr
 
 from ..errors import StepError
 from ..noise import noise_correlated
-from ..steps import materialize, register_step
+from ..steps import WholeMapPass, register_step, whole_map_values
 from ._common import check_cube, finish, float_dtype
 from ._robust import robust_sigma_of_diff
 
@@ -100,6 +100,7 @@ def pca_denoise(
     sample_size: int = 20000,
     seed: int | None = 0,
     max_components: int = 64,
+    whole_map: WholeMapPass | None = None,
 ) -> xr.DataArray:
     """Denoise by keeping the leading principal components of the spectra.
 
@@ -117,6 +118,10 @@ def pca_denoise(
         Seed of the random sample.
     max_components : int
         Upper bound of k when chosen by ``rule`` (default 64; sets the projection cost).
+    whole_map : pmap.steps.WholeMapPass, optional
+        Given by the pipeline runner: the PCA basis (mean spectrum and projection) is
+        computed through it once, now, and recorded in the provenance. Without it (the
+        default) nothing is computed here.
 
     Returns
     -------
@@ -147,9 +152,10 @@ def pca_denoise(
     sample = cube.data.vindex[idx]
     width = int(n_components) if n_components is not None else min(n, int(max_components))
     fit = dask.delayed(_fit, nout=2)(sample, n_components, rule, width)
-    mean, proj = materialize(
-        da.from_delayed(fit[0], shape=(n,), dtype=np.float64),
-        da.from_delayed(fit[1], shape=(n, width), dtype=np.float64),
+    mean, proj = whole_map_values(
+        whole_map, "pca_denoise",
+        mean_spectrum=da.from_delayed(fit[0], shape=(n,), dtype=np.float64),
+        projection=da.from_delayed(fit[1], shape=(n, width), dtype=np.float64),
     )
     dt = float_dtype(cube.dtype)
     out = xr.apply_ufunc(
