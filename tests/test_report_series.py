@@ -174,3 +174,48 @@ def test_cli_series_figures_and_report(tmp_path, rng, capsys):
     assert not (tmp_path / "T_figures").exists()
     assert main(["report", str(tmp_path / "T.zarr")]) == 0
     assert (tmp_path / "T_figures" / "varshni_peak_energy_by_region.png").exists()
+
+
+KB = 8.617333262e-5  # eV/K, CODATA 2018 (Tiesinga et al., Rev. Mod. Phys. 93, 025010 (2021))
+T_GRID = np.linspace(10.0, 300.0, 14)
+# (law, quantity, units, truth(T), relative 1-sigma of a point); parameters: GaAs Bose-Einstein
+# (O'Donnell & Chen 1991, REFERENCES.md: 1.521 eV, S 3.0, 26.7 meV; from memory), linewidth
+# with a 36 meV LO phonon (Rudin, Reinecke & Segall 1990; GaAs LO from memory), one-channel
+# quenching (common practice)
+LAW_CASES = [
+    ("bose_einstein", "peak_energy", "eV",
+     lambda t: 1.521 - 2 * 3.0 * 0.0267 / np.expm1(0.0267 / (KB * t)), 2e-4),
+    ("linewidth", "peak_fwhm", "eV",
+     lambda t: 0.004 + 2e-6 * t + 0.02 / np.expm1(0.036 / (KB * t)), 2e-4),
+    ("arrhenius", "integrated_intensity", "counts",
+     lambda t: 1e4 / (1 + 300.0 * np.exp(-0.05 / (KB * t))), 0.01),
+]
+
+
+@pytest.mark.parametrize("law, quantity, units, truth, sig", LAW_CASES,
+                         ids=[c[0] for c in LAW_CASES])
+def test_every_temperature_law_draws_its_curve(tmp_path, rng, law, quantity, units, truth, sig):
+    clean = truth(T_GRID)
+    s = sig * (clean if units == "counts" else 1.0)
+    shape = (len(T_GRID), 8, 10)
+    noisy = clean[:, None, None] + rng.normal(size=shape) * np.broadcast_to(
+        np.asarray(s).reshape(-1, 1, 1) if np.ndim(s) else s, shape)
+    err = np.broadcast_to(np.asarray(s).reshape(-1, 1, 1) if np.ndim(s) else s, shape)
+    ds = xr.Dataset({quantity: (("temperature", "y", "x"), noisy, {"units": units}),
+                     f"{quantity}_err": (("temperature", "y", "x"), err.copy(), {"units": units})},
+                    coords={"temperature": ("temperature", T_GRID, {"units": "K"}),
+                            "y": ("y", np.arange(8.0), {"units": "um"}),
+                            "x": ("x", np.arange(10.0), {"units": "um"})})
+    out = fit_law(ds, law=law, quantity=quantity).compute()
+    figs = write_series_figures(out, tmp_path)
+    from pmap.series import LAWS
+
+    # each parameter and its 1-sigma, chi2_red, status, the series plot
+    assert len(figs) == 2 * len(LAWS[law].params) + 3
+    rp = _meta(tmp_path / f"{law}_{quantity}_by_region.png")
+    [r] = rp["regions"]
+    assert r["n_converged"] >= 0.95 * 80
+    # the law at the map's median parameters follows the truth within a few s.e. of one
+    # point (80 pixels: the median's scatter is ~1.25 sigma/sqrt(80) per point)
+    tol = 5 * np.asarray(s) * 1.25 / np.sqrt(80)
+    assert np.all(np.abs(np.array(r["curve"]) - clean) < np.maximum(tol, 1e-12))
