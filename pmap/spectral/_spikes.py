@@ -816,6 +816,14 @@ def _excess_z(r, p, cnt, c, lo, sf2, law, nz):  # pragma: no cover - compiled
     rc = r[c - lo]
     if k == 0 or not pc == pc or not rc == rc:
         return -np.inf
+    f = 1.0 + (1.0 / k if k <= 2 else 1.5708 / k)
+    gate = 1.5 if law[0, 0] == law[0, 0] else 1.0
+    v = _var_at(c, pc, law, nz) * f
+    if sf2 > gate * v:  # the flanks scatter more than the noise explains
+        v = sf2
+    z = rc / np.sqrt(v)
+    if not z > 2.0:  # (the local level only lowers z; no test here is below 2 s.d.)
+        return z
     lv = 0.0
     kk = 0
     for j in range(c - 5 - lo, c + 6 - lo):
@@ -823,9 +831,8 @@ def _excess_z(r, p, cnt, c, lo, sf2, law, nz):  # pragma: no cover - compiled
             lv += p[j]
             kk += 1
     lv = max(lv / kk, pc)
-    v = _var_at(c, lv, law, nz) * (1.0 + (1.0 / k if k <= 2 else 1.5708 / k))
-    gate = 1.5 if law[0, 0] == law[0, 0] else 1.0
-    if sf2 > gate * v:  # the flanks scatter more than the noise explains
+    v = _var_at(c, lv, law, nz) * f
+    if sf2 > gate * v:
         v = sf2
     return rc / np.sqrt(v)
 
