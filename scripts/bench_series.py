@@ -25,6 +25,8 @@ LAWS = {
                       lambda t, e0, s, w: e0 - 2 * s * w / np.expm1(w / (K_B_EV * t))),
     "linewidth": ("temperature", np.linspace(10, 400, 40), (3e-3, 1e-5, 2e-2, 0.036), 2e-4,
                   lambda t, g0, g, gl, el: g0 + g * t + gl / np.expm1(el / (K_B_EV * t))),
+    "arrhenius": ("temperature", np.linspace(10, 300, 30), (1e4, 300.0, 0.05), None,
+                  lambda t, i0, c, ea: i0 / (1 + c * np.exp(-ea / (K_B_EV * t)))),
     "power_law": ("excitation_power", np.geomspace(1e-6, 1e-3, 12), (2e3, 1.5), None,
                   lambda p, a, k: a * (p / 3.16e-5) ** k),
 }
