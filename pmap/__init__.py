@@ -20,12 +20,16 @@ from importlib import import_module
 from typing import Any
 
 from ._version import __version__
-from .conventions import HC_EV_NM, ev_to_nm, nm_to_ev
-from .cube import make_cube, validate_cube
 from .errors import CubeValidationError, FormatError, InputFileError, PmapError, StepError
 
 # public name -> module that defines it (imported on first access)
 _LAZY = {
+    # conventions and the cube model (dask is imported only when they are first used)
+    "HC_EV_NM": "pmap.conventions",
+    "nm_to_ev": "pmap.conventions",
+    "ev_to_nm": "pmap.conventions",
+    "make_cube": "pmap.cube",
+    "validate_cube": "pmap.cube",
     # io
     "open_cube": "pmap.io",
     "save_cube": "pmap.io",
@@ -73,11 +77,6 @@ _LAZY = {
 
 __all__ = [
     "__version__",
-    "HC_EV_NM",
-    "nm_to_ev",
-    "ev_to_nm",
-    "make_cube",
-    "validate_cube",
     "PmapError",
     "CubeValidationError",
     "FormatError",

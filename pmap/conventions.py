@@ -7,7 +7,6 @@ The bottom layer of pmap: imports nothing else from the package except
 from __future__ import annotations
 
 import numpy as np
-from scipy import constants as _c
 
 from .errors import CubeValidationError
 
@@ -28,10 +27,16 @@ __all__ = [
     "normalise_intensity_unit",
 ]
 
+# Defining constants of the 2019 SI (exact; BIPM, The International System of Units,
+# 9th edition, 2019), the same values as scipy.constants without importing scipy here.
+_H_J_S = 6.62607015e-34
+_C_M_PER_S = 299792458.0
+_E_C = 1.602176634e-19
+_K_J_PER_K = 1.380649e-23
 #: h·c in eV·nm, exact in the 2019 SI (CODATA 2018): 1239.841984... eV nm.
-HC_EV_NM: float = _c.h * _c.c / _c.e * 1e9
+HC_EV_NM: float = _H_J_S * _C_M_PER_S / _E_C * 1e9
 #: Boltzmann constant in eV/K.
-K_B_EV_PER_K: float = _c.k / _c.e
+K_B_EV_PER_K: float = _K_J_PER_K / _E_C
 
 CUBE_NAME = "intensity"
 SPATIAL_DIMS = ("y", "x")
