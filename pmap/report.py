@@ -232,26 +232,33 @@ def _apply_output(fig) -> float:
 
 
 def _save(fig, path: str | Path, info: Mapping[str, Any]) -> Path:
+    """Write ``fig`` as PNG with ``info`` (JSON) in its metadata, drawn once.
+
+    A figure already drawn by :func:`_render` (to measure its layout for ``info``) is
+    encoded from that drawing, not drawn a second time.
+    """
+    from PIL import Image, PngImagePlugin
+
     p = Path(path)
     p.parent.mkdir(parents=True, exist_ok=True)
     info = dict(info)
-    render_dpi = _apply_output(fig)
     info.setdefault("dpi", float(_OUTPUT["dpi"]))
     if _OUTPUT["size_in"] is not None:
         info.setdefault("size_cm", [round(v * CM_PER_INCH, 3) for v in _OUTPUT["size_in"]])
-    meta = {"Software": f"pmap {__version__}", "Description": json.dumps(info)}
-    fig.savefig(p, dpi=render_dpi, metadata=meta)
-    if render_dpi != _OUTPUT["dpi"]:  # record the chosen dpi, so the PNG prints at its size
-        from PIL import Image, PngImagePlugin
-
-        with Image.open(p) as im:
-            im.load()
-            text = dict(im.text)
-            png = PngImagePlugin.PngInfo()
-            for key, value in text.items():
-                png.add_text(key, value)
-            im.save(p, dpi=(_OUTPUT["dpi"], _OUTPUT["dpi"]), pnginfo=png)
+    if getattr(fig, "_pmap_rendered", None) != _output_key():
+        _render(fig)
+    png = PngImagePlugin.PngInfo()
+    png.add_text("Software", f"pmap {__version__}")
+    png.add_text("Description", json.dumps(info))
+    # the chosen dpi goes into the file, so the PNG prints at its size
+    Image.fromarray(np.asarray(fig.canvas.buffer_rgba())).save(
+        p, format="png", dpi=(_OUTPUT["dpi"], _OUTPUT["dpi"]), pnginfo=png)
     return p
+
+
+def _output_key() -> tuple:
+    return (float(_OUTPUT["dpi"]), None if _OUTPUT["size_in"] is None
+            else tuple(_OUTPUT["size_in"]))
 
 
 def _render(fig) -> None:
@@ -260,12 +267,14 @@ def _render(fig) -> None:
 
     _apply_output(fig)
     FigureCanvasAgg(fig).draw()
+    fig._pmap_rendered = _output_key()
 
 
 def _axes_px(ax) -> list[float]:
     """Axes box in PNG pixels (x0, y0, x1, y1), y from the top of the image, as saved."""
     fig = ax.figure
-    _render(fig)
+    if getattr(fig, "_pmap_rendered", None) != _output_key():
+        _render(fig)
     x0, y0, x1, y1 = ax.get_window_extent().extents
     h = fig.bbox.height
     return [float(x0), float(h - y1), float(x1), float(h - y0)]
