@@ -19,7 +19,7 @@ LAYERS = {
     "fitting": 3, "decomposition": 3, "series": 3, "planck": 3,
     "results": 4,
     "pipeline": 5,
-    "cli": 6, "report": 6, "report_html": 6, "export": 6, "napari_plugin": 6, "__main__": 6, "__init__": 6,
+    "cli": 6, "report": 6, "report_html": 6, "report_series": 6, "export": 6, "napari_plugin": 6, "__main__": 6, "__init__": 6,
 }
 
 
