@@ -329,6 +329,12 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
         # raw counts: the noise model starts here and follows every step (pmap.noise)
         cube = _run_step("attach_noise_model", cube, {})
     for name, params in pipeline.steps:
+        if name == "remove_baseline" and pipeline.planck is not None:
+            warnings.warn("absolute PL (planck): the remove_baseline step is skipped, since it "
+                          "would subtract part of the absolute photon flux the Planck fit "
+                          "needs (the peak fit's constant background takes any offset)",
+                          PmapNotice, stacklevel=2)
+            continue
         out = _run_step(name, cube, params, whole_map)
         if not isinstance(out, xr.DataArray):
             raise StepError(f"step {name!r} does not return a cube; put it in its own table")
@@ -560,6 +566,11 @@ def process(
         # chunks chosen at open time, aligned with the stored chunks (no re-reads)
         cube = open_cube(in_path, target_chunk_mib=chunk_mib, **(read_options or {}))
     _refuse_empty(cube)
+    stack = [d for d in cube.dims if d not in ("y", "x") and d != spectral_dim(cube)]
+    if pipe.regions is not None and stack:
+        raise StepError(f"regions are made on one map, and this cube has the stack dim(s) "
+                        f"{', '.join(stack)}: process it without --regions, or segment one "
+                        "of its maps")
     if not (resume and out.exists()):
         prepare_output(out, overwrite=overwrite, input_paths=(in_path,))
     if spectral_dim(cube) == "wavelength" and not any(n == "to_energy" for n, _ in pipe.steps):

@@ -179,3 +179,19 @@ def test_interrupted_cube_save_leaves_nothing(tmp_path, monkeypatch):
     with pytest.raises(KeyboardInterrupt):
         pmap.save_cube(cube, tmp_path / "c.zarr")
     assert list(tmp_path.iterdir()) == []
+
+
+def test_regions_on_a_stack_cube_refused_before_output(tmp_path):
+    """Regions are made on one map: a stack cube with --regions is refused with a line that
+    names the stack dim, and nothing is written."""
+    import xarray as xr
+
+    lam = np.linspace(600.0, 700.0, 32)
+    maps = [pmap.make_cube(np.random.default_rng(i).poisson(50, (4, 5, 32)).astype(np.float32),
+                           wavelength_nm=lam) for i in range(2)]
+    stack = xr.concat(maps, dim="temperature").assign_coords(
+        temperature=("temperature", [10.0, 300.0], {"units": "K"}))
+    out = tmp_path / "r.zarr"
+    with pytest.raises(pmap.errors.StepError, match="temperature"):
+        pmap.process(stack, out, regions=2, progress=False)
+    assert not out.exists()
