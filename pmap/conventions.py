@@ -58,8 +58,8 @@ INTENSITY_UNITS = (
     "counts/s/W/eV", "counts/nm", "W/nm", "W/eV", "photons/s",
     # densities per wavenumber (pmap.spectral.to_wavenumber / to_raman_shift)
     "counts/cm-1", "counts/s/cm-1", "counts/s/W/cm-1", "W/cm-1",
-    # absolute photon flux per unit energy (absolute PL, pmap.planck)
-    "photons/s/m2/eV",
+    # absolute photon flux per unit energy or wavelength (absolute PL, pmap.planck)
+    "photons/s/m2/eV", "photons/s/m2/nm",
 )
 _INTENSITY_ALIASES = {
     "count": "counts", "counts": "counts", "cts": "counts", "adu": "counts", "dn": "counts",
@@ -73,6 +73,8 @@ _INTENSITY_ALIASES = {
     "counts/s/w/cm-1": "counts/s/W/cm-1", "w/cm-1": "W/cm-1",
     "photons/s/m2/ev": "photons/s/m2/eV", "photons s-1 m-2 ev-1": "photons/s/m2/eV",
     "photons/(s m2 ev)": "photons/s/m2/eV", "photons s^-1 m^-2 ev^-1": "photons/s/m2/eV",
+    "photons/s/m2/nm": "photons/s/m2/nm", "photons s-1 m-2 nm-1": "photons/s/m2/nm",
+    "photons/(s m2 nm)": "photons/s/m2/nm", "photons s^-1 m^-2 nm^-1": "photons/s/m2/nm",
 }
 
 
@@ -81,6 +83,7 @@ _INTENSITY_ALIASES = {
 #: pure numbers to UDUNITS; the variable's long_name keeps what is counted.
 _UDUNITS = {
     "pixel": "1", "arbitrary": "1", "photons/s": "s-1", "photons/s/m2/eV": "s-1 m-2 eV-1",
+    "photons/s/m2/nm": "s-1 m-2 nm-1",
     "e-/count": "1",
 }
 

@@ -122,3 +122,21 @@ def test_bad_units_refused():
     cube = pmap.make_cube(np.ones((1, 1, 5)), wavelength_nm=np.arange(5) + 600.0, units="counts/eV")
     with pytest.raises(StepError, match="cannot convert intensity unit"):
         to_energy(cube)
+
+
+def test_photon_flux_per_nm_file_converts_with_the_jacobian(tmp_path):
+    """An absolute photon flux per nm read from a file becomes a flux per eV multiplied by
+    |dλ/dE| = λ²/(hc) (Mooney & Kambhampati, J. Phys. Chem. Lett. 4, 3316, 2013)."""
+    import pmap
+    from pmap.conventions import HC_EV_NM
+
+    lam = np.linspace(700.0, 800.0, 21)
+    cube = pmap.make_cube(np.full((2, 3, 21), 1e18, np.float32), wavelength_nm=lam,
+                          units="photons s-1 m-2 nm-1", attrs={"wavelength_medium": "vacuum"})
+    pmap.save_cube(cube, tmp_path / "flux.zarr")
+    back = pmap.open_cube(tmp_path / "flux.zarr")
+    assert back.attrs["units"] == "photons/s/m2/nm"
+    e = pmap.to_energy(back)
+    assert e.attrs["units"] == "photons/s/m2/eV"
+    lam_e = HC_EV_NM / e["energy"].values
+    np.testing.assert_allclose(e.values[0, 0], 1e18 * lam_e**2 / HC_EV_NM, rtol=1e-5)

@@ -31,7 +31,7 @@ _PER_CHANNEL = {
     "arbitrary": "arbitrary",
     "1": "arbitrary",
 }
-_PER_NM = {"counts/nm": "counts", "W/nm": "W"}
+_PER_NM = {"counts/nm": "counts", "W/nm": "W", "photons/s/m2/nm": "photons/s/m2"}
 
 
 def channel_edges(centres: Any) -> np.ndarray:
