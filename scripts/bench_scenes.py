@@ -1,7 +1,7 @@
 """Every method on every scene of the bank (issue 12): one row per scene.
 
 For each scene of ``pmap.scenes`` (synthetic, with truth) this runs the default
-``pmap process`` with regions (the true K and ``auto``), spike removal and the
+``plcube process`` with regions (the true K and ``auto``), spike removal and the
 no-signal test, and prints: ARI with the true K and with automatic K (adjusted Rand
 index, scikit-learn; Hubert & Arabie, J. Classif. 2, 193 (1985)), the chosen K,
 background purity (share of true no-emission pixels given one label), spike recall
