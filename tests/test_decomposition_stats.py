@@ -110,6 +110,18 @@ def test_table_and_csv(setup, tmp_path):
     np.testing.assert_allclose(back["peak_fwhm_mean [eV]"], df["peak_fwhm_mean"], rtol=1e-9)
 
 
+def test_csv_leaves_out_maps_without_a_value(setup, tmp_path):
+    """A map that is NaN everywhere (a window ratio whose window holds no channel) gets no
+    empty columns in the CSV (issue 16: the figure is skipped, and so is the column)."""
+    cube, truth, region, maps = setup
+    maps = maps.assign(window_ratio=maps["peak_fwhm"] * np.nan)
+    st = region_statistics(region, maps, cube)
+    assert "window_ratio_mean" in region_table(st).columns
+    back = pd.read_csv(write_region_csv(st, tmp_path / "r.csv"), index_col=0)
+    assert not any(c.startswith("window_ratio") for c in back.columns)
+    assert not back.isna().all().any() and "peak_fwhm_mean [eV]" in back.columns
+
+
 def test_bad_input(setup):
     cube, truth, region, maps = setup
     with pytest.raises(StepError, match="labels"):

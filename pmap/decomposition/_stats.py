@@ -291,9 +291,14 @@ def region_table(stats: xr.Dataset) -> pd.DataFrame:
 
 
 def write_region_csv(stats: xr.Dataset, path: str | os.PathLike) -> Path:
-    """Write :func:`region_table` to a CSV file, units in brackets in the header; return the path."""
+    """Write :func:`region_table` to a CSV file, units in brackets in the header; return the path.
+
+    Columns without a single value (statistics of a map that is NaN everywhere, such as a
+    window ratio whose window holds no channel) are left out, as its figure is.
+    """
     df = region_table(stats)
     units = df.attrs["units"]
+    df = df.drop(columns=[c for c in df.columns if df[c].isna().all()])
     df = df.rename(columns={c: f"{c} [{u}]" for c, u in units.items() if u not in ("", "1")})
     out = Path(path)
     df.to_csv(out)
