@@ -1,9 +1,10 @@
 """Absolute PL: the generalized Planck law fitted per pixel on the high-energy side.
 
 Würfel, J. Phys. C 15, 3967 (1982): Φ(E) = a·2πE²/(h³c²) / (exp((E − Δμ)/kT) − 1),
-Φ in photons s⁻¹ m⁻² eV⁻¹ (E in eV), a the absorptivity (taken as a constant, 1 by
-default: on the high-energy side of an absorber a ≈ 1; a and Δμ are degenerate on the
-Boltzmann tail, so a is not fitted). The fit gives the quasi-Fermi-level splitting Δμ
+Φ in photons s⁻¹ m⁻² eV⁻¹ (E in eV), a the absorptivity: a constant (1 by default: on
+the high-energy side of an absorber a ≈ 1; a constant a and Δμ are degenerate on the
+Boltzmann tail, so it is not fitted), a given spectrum, or an Urbach step (1 above the
+gap, exp((E − E_g)/E_U) below) whose Urbach energy E_U is fitted. The fit gives the quasi-Fermi-level splitting Δμ
 (``qfls``, eV), the carrier temperature T (K) and the implied open-circuit voltage
 Δμ/q (``implied_voc``, V).
 """
@@ -56,25 +57,44 @@ def planck_flux(energy_ev, qfls_ev, temperature_k, absorptivity=1.0):
     return absorptivity * PLANCK_PREFACTOR * e * e / np.expm1(z)
 
 
-def _planck_law(absorptivity: float) -> Law:
-    pre = absorptivity * PLANCK_PREFACTOR
+def _planck_law(absorptivity, urbach_gap_ev: float | None = None) -> Law:
+    """The Planck law on a window: ``absorptivity`` a number or one value per window
+    channel; with ``urbach_gap_ev`` a third parameter, the Urbach energy E_U (eV) of the
+    step a(E) = 1 above the gap, exp((E − E_g)/E_U) below it, is fitted."""
+    pre0 = np.asarray(absorptivity, float) * PLANCK_PREFACTOR
+    fit_urbach = urbach_gap_ev is not None
+
+    def a_of(e, p):
+        if not fit_urbach:
+            return 1.0
+        below = np.minimum(e - urbach_gap_ev, 0.0)
+        return np.exp(below / p[:, 2:3])
 
     def model(e, p):
         z = (e - p[:, 0:1]) / (K_B_EV * p[:, 1:2])
-        return pre * e * e / np.expm1(z)
+        return pre0 * a_of(e, p) * e * e / np.expm1(z)
 
     def jac(e, p):
         t = p[:, 1:2]
         z = (e - p[:, 0:1]) / (K_B_EV * t)
         g = 1.0 / np.expm1(z)
         dg = -np.exp(z) * g * g
-        base = pre * e * e * dg
-        return np.stack([base * (-1.0 / (K_B_EV * t)), base * (-z / t)], axis=-1)
+        a = a_of(e, p)
+        base = pre0 * a * e * e * dg
+        cols = [base * (-1.0 / (K_B_EV * t)), base * (-z / t)]
+        if fit_urbach:  # ∂a/∂E_U = a·(E_g − E)/E_U² below the gap, 0 above
+            below = np.minimum(e - urbach_gap_ev, 0.0)
+            cols.append(pre0 * e * e * g * a * (-below) / p[:, 2:3] ** 2)
+        return np.stack(cols, axis=-1)
 
     def start(e, y, w):
-        # Boltzmann tail: ln(Φ/(pre E²)) = (Δμ − E)/kT, weighted linear fit per pixel
+        # Boltzmann tail: ln(Φ/(pre E²)) = (Δμ − E)/kT, weighted linear fit per pixel, on
+        # the channels above the gap when an Urbach step is fitted
         ok = (y > 0) & (w > 0)
-        ly = np.where(ok, np.log(np.where(ok, y, 1.0) / (pre * e * e)), 0.0)
+        if fit_urbach:
+            ok &= (e >= urbach_gap_ev)[None, :]
+        pre_e = pre0 * np.ones_like(e)
+        ly = np.where(ok, np.log(np.where(ok, y, 1.0) / (pre_e * e * e)), 0.0)
         wl = np.where(ok, (w * y) ** 2, 0.0)  # σ(ln Φ) = σ/Φ
         s0, s1, s2 = wl.sum(1), (wl * e).sum(1), (wl * e * e).sum(1)
         t0, t1 = (wl * ly).sum(1), (wl * ly * e).sum(1)
@@ -86,11 +106,68 @@ def _planck_law(absorptivity: float) -> Law:
             mu = -b0 / b1
         bad = ~(np.isfinite(temp) & (temp > 0) & np.isfinite(mu))
         temp[bad], mu[bad] = 300.0, float(np.min(e)) - 0.3
-        return np.stack([mu, temp], axis=1)
+        cols = [mu, temp] + ([np.full_like(mu, 0.015)] if fit_urbach else [])
+        return np.stack(cols, axis=1)
 
-    return Law("planck", "energy", "eV", (), ("qfls", "carrier_temperature"), ("eV", "K"),
-               ("quasi-Fermi-level splitting", "carrier temperature"), model, jac, start,
-               lambda p: (p[:, 1] <= 0), "Würfel, J. Phys. C 15, 3967 (1982)")
+    names = ("qfls", "carrier_temperature") + (("urbach_energy",) if fit_urbach else ())
+    units = ("eV", "K") + (("eV",) if fit_urbach else ())
+    descr = ("quasi-Fermi-level splitting", "carrier temperature") + (
+        ("Urbach energy of the absorptivity step",) if fit_urbach else ())
+    return Law("planck", "energy", "eV", (), names, units, descr, model, jac, start,
+               lambda p: (p[:, 1] <= 0) | ((p[:, 2] <= 0) if fit_urbach else False),
+               "Würfel, J. Phys. C 15, 3967 (1982)")
+
+
+def _absorptivity(absorptivity, energy_ev: np.ndarray):
+    """(a on the axis or a number, Urbach gap to fit at or None, description) from the
+    ``absorptivity`` option: a number, one value per channel (array or DataArray on
+    ``energy``), a two-column text file (energy eV, a), or a mapping
+    ``{"urbach_gap_ev": Eg}`` (Urbach energy fitted) / ``{"urbach_gap_ev": Eg,
+    "urbach_energy_ev": Eu}`` (the step given)."""
+    if isinstance(absorptivity, dict):
+        unknown = set(absorptivity) - {"urbach_gap_ev", "urbach_energy_ev"}
+        if unknown or "urbach_gap_ev" not in absorptivity:
+            raise StepError("an absorptivity step is {urbach_gap_ev = Eg, urbach_energy_ev = "
+                            f"Eu (optional: fitted when absent)}}, got {absorptivity!r}")
+        gap = float(absorptivity["urbach_gap_ev"])
+        eu = absorptivity.get("urbach_energy_ev")
+        if eu is None:
+            return 1.0, gap, f"Urbach step at {gap:g} eV, Urbach energy fitted"
+        eu = float(eu)
+        if not eu > 0:
+            raise StepError(f"urbach_energy_ev must be > 0, got {eu}")
+        a = np.exp(np.minimum(energy_ev - gap, 0.0) / eu)
+        return a, None, f"Urbach step at {gap:g} eV with Urbach energy {eu:g} eV (given)"
+    if isinstance(absorptivity, (str, bytes)) or hasattr(absorptivity, "__fspath__"):
+        try:
+            table = np.loadtxt(absorptivity, delimiter=None, comments="#", ndmin=2)
+        except (OSError, ValueError) as exc:
+            raise StepError(f"cannot read the absorptivity spectrum {absorptivity}: {exc}") \
+                from None
+        if table.shape[1] < 2:
+            raise StepError("an absorptivity file has two columns: energy (eV), absorptivity")
+        order = np.argsort(table[:, 0])
+        e_tab, a_tab = table[order, 0], table[order, 1]
+        if energy_ev.min() < e_tab[0] or energy_ev.max() > e_tab[-1]:
+            raise StepError(f"the absorptivity spectrum covers {e_tab[0]:g}–{e_tab[-1]:g} eV, "
+                            f"not the cube's {energy_ev.min():g}–{energy_ev.max():g} eV")
+        a = np.interp(energy_ev, e_tab, a_tab)
+        desc = f"absorptivity spectrum from {absorptivity}"
+    elif np.ndim(absorptivity) == 0 and not isinstance(absorptivity, xr.DataArray):
+        a = float(absorptivity)
+        if not a > 0:
+            raise StepError(f"absorptivity must be > 0, got {absorptivity}")
+        return a, None, f"a = {a:g} (assumed, not fitted)"
+    else:
+        a = np.asarray(absorptivity.values if isinstance(absorptivity, xr.DataArray)
+                       else absorptivity, float).ravel()
+        if a.size != energy_ev.size:
+            raise StepError(f"an absorptivity spectrum needs one value per channel "
+                            f"({energy_ev.size}), got {a.size}")
+        desc = "absorptivity spectrum given per channel"
+    if not (np.all(np.isfinite(a)) and np.all(a > 0) and np.all(a <= 1.0 + 1e-9)):
+        raise StepError("absorptivity values must lie in (0, 1]")
+    return a, None, desc
 
 
 def window_nm_to_ev(window_nm: tuple[float, float], *, medium: str = "air",
@@ -222,8 +299,13 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
         a true reduced χ² (a correlated model: weights from the law, errors scaled by
         √χ²_red). Without either, every point gets the same relative error and the errors
         are scaled by √χ²_red.
-    absorptivity : float
-        Absorptivity a on the window (1), assumed, not fitted.
+    absorptivity : float, array, DataArray, path or dict
+        Absorptivity a(E) (1): a number (default 1: assumed, not fitted); a spectrum, one
+        value per channel of the energy axis or a DataArray on ``energy`` (interpolated);
+        a two-column text file (energy eV, a); or an Urbach step a = 1 above the gap and
+        exp((E − E_g)/E_U) below it, ``{"urbach_gap_ev": Eg}`` with E_U fitted per pixel
+        (``urbach_energy``, eV, with ``_err``; the window must reach below the gap) or
+        ``{"urbach_gap_ev": Eg, "urbach_energy_ev": Eu}`` given.
     photon_flux_per_count : float, array or DataArray on ``energy``, optional
         Absolute calibration of a ``counts/eV`` (or ``counts/s/eV``) cube: photons s⁻¹ m⁻²
         per count (per count/s), a number or a calibration spectrum; default the cube's
@@ -260,9 +342,11 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
         medium = str(cube.attrs.get("wavelength_medium", "air"))
         energy_range_ev = window_nm_to_ev(wavelength_range_nm, medium=medium)
     cube, how = _absolute(cube, photon_flux_per_count)
-    if not absorptivity > 0:
-        raise StepError(f"absorptivity must be > 0, got {absorptivity}")
     e_all = np.asarray(cube["energy"].values, float)
+    if isinstance(absorptivity, xr.DataArray) and "energy" in absorptivity.coords:
+        absorptivity = np.interp(e_all, *(np.asarray(v, float) for v in (
+            absorptivity["energy"].values, absorptivity.values)))  # on the cube's axis
+    a_all, urbach_gap, a_text = _absorptivity(absorptivity, e_all)
     if energy_range_ev is None:
         from .steps import whole_map_values  # phase one of a pipeline run
 
@@ -277,7 +361,12 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
                         "need at least 4")
     sub = cube.isel(energy=np.flatnonzero(sel))
     e = e_all[sel]
-    law = _planck_law(absorptivity)
+    if urbach_gap is not None and not (e < urbach_gap).sum() >= 2:
+        raise StepError(f"the Urbach energy can be fitted only with channels below the gap "
+                        f"({urbach_gap:g} eV) in the window {lo:.4f}–{hi:.4f} eV")
+    law = _planck_law(a_all[sel] if np.ndim(a_all) else a_all, urbach_gap)
+    k = law.n_params
+    p_fallback = [[float(e[0]), 300.0] + ([0.015] if urbach_gap is not None else [])]
     weighted = sigma is not None
     model = get_noise_model(cube) if not weighted else None
     use_noise = model is not None and model.valid
@@ -302,7 +391,7 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
             p, pe, cr, st = lm_fit(law, e, v2, sd_of(v2), max_iter=max_iter, weighted=True)
             good = np.all(np.isfinite(p), axis=1)
             with np.errstate(all="ignore"):
-                m = law.model(e, np.where(good[:, None], p, [[float(e[0]), 300.0]]))
+                m = law.model(e, np.where(good[:, None], p, p_fallback))
             m = np.where(good[:, None] & np.isfinite(m), m, v2)
             p, pe, cr, st = lm_fit(law, e, v2, sd_of(m), max_iter=max_iter, weighted=True)
             if not poisson:
@@ -313,7 +402,7 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
             if not weighted:
                 pe = pe * np.sqrt(cr)[:, None]
         return np.concatenate([p, pe, cr[:, None], st[:, None].astype(float)],
-                              axis=1).reshape(*shape, 6)
+                              axis=1).reshape(*shape, 2 * k + 2)
 
     if hasattr(sub.data, "dask"):
         sub = sub.chunk({"energy": -1})
@@ -332,24 +421,29 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
                          input_core_dims=[["energy"]] * 4,
                          output_core_dims=[["_planck"]], dask="parallelized",
                          output_dtypes=[float],
-                         dask_gufunc_kwargs={"output_sizes": {"_planck": 6}})
+                         dask_gufunc_kwargs={"output_sizes": {"_planck": 2 * k + 2}})
     out = out.transpose(*[d for d in sub.dims if d != "energy"], "_planck")
     ds = xr.Dataset()
     ds["qfls"] = out.isel(_planck=0).assign_attrs(units="eV",
                                                  long_name="quasi-Fermi-level splitting")
-    ds["qfls_err"] = out.isel(_planck=2).assign_attrs(units="eV", long_name="1-sigma of qfls")
+    ds["qfls_err"] = out.isel(_planck=k).assign_attrs(units="eV", long_name="1-sigma of qfls")
     ds["carrier_temperature"] = out.isel(_planck=1).assign_attrs(units="K",
                                                                 long_name="carrier temperature")
-    ds["carrier_temperature_err"] = out.isel(_planck=3).assign_attrs(
+    if urbach_gap is not None:
+        ds["urbach_energy"] = out.isel(_planck=2).assign_attrs(
+            units="eV", long_name="Urbach energy of the absorptivity step")
+        ds["urbach_energy_err"] = out.isel(_planck=k + 2).assign_attrs(
+            units="eV", long_name="1-sigma of urbach_energy")
+    ds["carrier_temperature_err"] = out.isel(_planck=k + 1).assign_attrs(
         units="K", long_name="1-sigma of carrier_temperature")
     # implied Voc = Δμ/q: the same number in V as Δμ in eV
     ds["implied_voc"] = ds["qfls"].copy().assign_attrs(units="V",
                                                       long_name="implied open-circuit voltage")
     ds["implied_voc_err"] = ds["qfls_err"].copy().assign_attrs(units="V",
                                                               long_name="1-sigma of implied_voc")
-    ds["planck_chi2_red"] = out.isel(_planck=4).assign_attrs(
+    ds["planck_chi2_red"] = out.isel(_planck=2 * k).assign_attrs(
         units="1", long_name="reduced chi-square of the Planck fit")
-    ds["planck_status"] = out.isel(_planck=5).fillna(4).astype(np.int8).assign_attrs(
+    ds["planck_status"] = out.isel(_planck=2 * k + 1).fillna(4).astype(np.int8).assign_attrs(
         units="1", long_name="Planck fit status", legend=str(STATUS_LEGEND).replace("'", '"'),
         flag_values=np.array(STATUS_FLAG_VALUES, np.int8), flag_meanings=STATUS_FLAG_MEANINGS)
     exc = excitation_photon_flux if excitation_photon_flux is not None \
@@ -358,7 +452,9 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
         ds = ds.merge(_plqy(cube, float(exc), sigma, model if poisson else None))
     ds = ds.drop_vars([c for c in ds.coords if c.startswith("noise_")], errors="ignore")
     cal = photon_flux_per_count
-    params = {"energy_range_ev": [lo, hi], "absorptivity": absorptivity, "max_iter": max_iter}
+    a_param = (absorptivity if isinstance(absorptivity, (int, float, dict, str))
+               else "spectrum")
+    params = {"energy_range_ev": [lo, hi], "absorptivity": a_param, "max_iter": max_iter}
     if wavelength_range_nm is not None:
         params["wavelength_range_nm"] = [float(v) for v in wavelength_range_nm]
     if exc is not None:
@@ -384,8 +480,8 @@ def fit_planck(cube: xr.DataArray, *, energy_range_ev: tuple[float, float] | Non
     attrs["planck_window_ev"] = [lo, hi]
     attrs["planck_flux"] = how
     attrs["planck_assumptions"] = (
-        f"generalized Planck law (Würfel 1982) with absorptivity a = {absorptivity:g} on the "
-        "window (assumed, not fitted); parabolic bands, quasi-Fermi levels flat over the "
-        "probed depth, one carrier temperature; Boltzmann tail window above the maximum")
+        f"generalized Planck law (Würfel 1982) with absorptivity {a_text} on the window; "
+        "parabolic bands, quasi-Fermi levels flat over the probed depth, one carrier "
+        "temperature; Boltzmann tail window above the maximum")
     ds.attrs = attrs
     return ds
