@@ -355,7 +355,7 @@ def _colormap(cmap):
 
 def _draw_map(
     ax, da: xr.DataArray, *, cmap=None, robust=True, scale_bar=True, norm=None, vlim=None,
-    discrete: bool = True,
+    discrete: bool = True, note: str | None = None,
 ) -> _MapArtists:
     """Draw a (y, x) map on ``ax``: image, colour bar, scale bar, NaN note. Returns the artists.
 
@@ -431,14 +431,24 @@ def _draw_map(
             fmt.set_useOffset(False)
         cb.set_label(_label(da, "value") + clip_note, fontsize=8.5 if clip_note else None)
     n_nan = int(np.sum(~np.isfinite(values)))
-    note = _style.ORIENTATION_NOTE
+    footer = _style.ORIENTATION_NOTE
     if n_nan:
-        note += f" · {_style.NAN_TEXT}: {n_nan} px"
-    ax.figure.supxlabel(note, fontsize=7.5, color="0.3")
+        footer += f" · {_style.NAN_TEXT}: {n_nan} px"
+    if note:  # what the map assumes (e.g. the Planck fit's), under the orientation note
+        import textwrap
+
+        footer += "\n" + "\n".join(textwrap.wrap(str(note), 110))
+    ax.figure.supxlabel(footer, fontsize=7.5 if not note else 6.5, color="0.3")
     length = None
     if scale_bar and xunit == "um" and x_ext[1] > x_ext[0]:
         length = _draw_scale_bar(ax, x_ext, y_ext)
     return _MapArtists(im, cb, length, levels, n_nan)
+
+
+#: Maps of the Planck fit: their figures state the fit's assumptions under the map.
+_PLANCK_MAPS = ("qfls", "qfls_err", "carrier_temperature", "carrier_temperature_err",
+                "implied_voc", "implied_voc_err", "plqy", "plqy_err", "urbach_energy",
+                "urbach_energy_err", "planck_chi2_red")
 
 
 # --------------------------------------------------------------------------- public
@@ -453,6 +463,7 @@ def plot_map(
     robust: bool = True,
     scale_bar: bool = True,
     vlim: tuple[float, float] | None = None,
+    note: str | None = None,
 ) -> Path:
     """Save one 2-D map (y, x in µm) as a PNG with colour bar and scale bar.
 
@@ -478,6 +489,9 @@ def plot_map(
     vlim : (float, float), optional
         Colour limits in the map's units (overrides ``robust``); values beyond
         them are counted on the colour bar.
+    note : str, optional
+        Text printed under the map (what the map assumes, e.g. the Planck fit's
+        assumptions).
 
     Returns
     -------
@@ -487,7 +501,8 @@ def plot_map(
     da = _as_map(da)
     fig = _new_figure(da.sizes["y"] / da.sizes["x"])
     ax = fig.add_subplot()
-    art = _draw_map(ax, da, cmap=cmap, robust=robust, scale_bar=scale_bar, vlim=vlim)
+    art = _draw_map(ax, da, cmap=cmap, robust=robust, scale_bar=scale_bar, vlim=vlim,
+                    note=note)
     title_text = _set_title(ax, title if title is not None else _title(da))
     return _save(
         fig,
@@ -507,6 +522,7 @@ def plot_map(
             "extent": [float(v) for v in art.image.get_extent()],
             "axes_px": _axes_px(ax),
             "scale_bar_um": art.scale_bar_um,
+            "note": note,
         },
     )
 
@@ -955,7 +971,8 @@ def write_figures(
             else:
                 if no_value is not None and sl.dtype.kind == "f" and name != "background_offset":
                     sl = sl.where(~no_value)
-                written.append(plot_map(sl, path))
+                note = ds.attrs.get("planck_assumptions") if name in _PLANCK_MAPS else None
+                written.append(plot_map(sl, path, note=note))
     if "peak_energy" in ds.data_vars and (variables is None or "peak_energy" in names):
         pe = ds["peak_energy"]
         extra = [d for d in pe.dims if d not in ("y", "x") and pe.sizes[d] > 1]

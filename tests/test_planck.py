@@ -343,3 +343,23 @@ def test_urbach_step_with_fitted_energy(rng):
                    absorptivity={"urbach_gap_ev": gap})
     with pytest.raises(StepError, match=r"\(0, 1\]"):
         fit_planck(cube, absorptivity=np.full(e.size, 1.5))
+
+
+def test_planck_figures_state_the_assumptions(tmp_path, rng):
+    """The figures of the Planck maps carry the fit's assumptions under the map (issue 15:
+    "state the assumptions in the figures and the store attrs")."""
+    import json as _json
+
+    from PIL import Image
+
+    from pmap.report import write_figures
+
+    cube, sigma = _cube(1.05, 300.0, rng, shape=(6, 8))
+    cube = cube.assign_coords(y=("y", np.arange(6.0), {"units": "um"}),
+                              x=("x", np.arange(8.0), {"units": "um"}))
+    out = fit_planck(cube, sigma=sigma, energy_range_ev=(1.58, 1.75)).compute()
+    figs = {p.name: p for p in write_figures(out, tmp_path / "figs")}
+    for name in ("qfls.png", "carrier_temperature.png", "implied_voc.png"):
+        with Image.open(figs[name]) as im:
+            info = _json.loads(im.text["Description"])
+        assert "parabolic bands" in info["note"] and "a = 1" in info["note"], name
