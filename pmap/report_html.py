@@ -541,8 +541,10 @@ def _find_count(results: Mapping[str, Any], words: Sequence[str]) -> str | None:
     return None
 
 
-def _qc_counts(steps: Sequence[Mapping[str, Any]]) -> list[tuple[str, Any]]:
-    """Spikes, hot channels and calibration residuals as recorded by the steps, or why not."""
+def _qc_counts(steps: Sequence[Mapping[str, Any]],
+               whole_map: Sequence[Mapping[str, Any]] = ()) -> list[tuple[str, Any]]:
+    """Spikes, hot channels and calibration residuals as recorded by the steps (and by the
+    run's whole-map pass, ``whole_map_pass`` in the provenance), or why not."""
     by: dict[str, list] = {}
     for st in steps:
         by.setdefault(str(st.get("step", "")), []).append(st)
@@ -557,6 +559,12 @@ def _qc_counts(steps: Sequence[Mapping[str, Any]]) -> list[tuple[str, Any]]:
     bp = by.get("mask_bad_pixels")
     if bp:
         got = _find_count(bp[-1].get("results", {}), ("hot", "dead", "saturat", "channel"))
+        passed = [r.get("values", {}) for r in whole_map if r.get("step") == "mask_bad_pixels"]
+        hot = passed[-1].get("hot_channels") if passed else None
+        if isinstance(hot, dict) and "count" in hot:
+            where = ", ".join(str(i) for i in hot.get("true_at", [])[:20])
+            got = (f"{hot['count']} hot channel(s) masked in every spectrum"
+                   + (f" (channel index {where})" if where else ""))
         rows.append(("hot / dead channels, saturated values", got or "not recorded in the "
                      "store (masked pixels are counted above)"))
     cal = [st for name, sts in by.items() if "calib" in name for st in sts]
@@ -719,8 +727,9 @@ def _section_qc(ds: xr.Dataset, figs: list[Path]) -> str:
     for v in ds.data_vars:
         if v.endswith("_mask") and {"y", "x"} <= set(ds[v].dims):
             rows.append((f"{v} (true values)", int(np.asarray(ds[v].values).sum())))
-    steps = get_provenance(ds.attrs).get("steps", [])
-    rows.extend(_qc_counts(steps))
+    prov = get_provenance(ds.attrs)
+    steps = prov.get("steps", [])
+    rows.extend(_qc_counts(steps, prov.get("whole_map_pass", [])))
     for step in steps:
         name = step.get("step", "")
         if name in ("mask_bad_pixels", "remove_spikes", "remove_dark", "remove_baseline",

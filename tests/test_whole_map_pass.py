@@ -75,3 +75,13 @@ def test_pipeline_file_cannot_set_the_pass(cube, tmp_path):
     bad.write_text('[[steps]]\nstep = "mask_bad_pixels"\nwhole_map = 1\n')
     with pytest.raises(pmap.errors.StepError, match="whole_map"):
         load_pipeline(bad)
+
+
+def test_report_states_the_hot_channels_found(cube, tmp_path):
+    """The HTML report's quality control names the hot channel the whole-map pass found
+    (channel 17, injected above)."""
+    from pmap.report_html import write_html_report
+
+    res = pmap.process(cube, tmp_path / "r.zarr", progress=False)
+    html = write_html_report(res, tmp_path / "r.html").read_text(encoding="utf-8")
+    assert "1 hot channel(s) masked in every spectrum (channel index 17)" in html
