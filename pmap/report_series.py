@@ -29,7 +29,7 @@ import xarray as xr
 from . import _style
 from ._version import __version__
 from .errors import StepError
-from .report import MAX_SLICES, plot_labels, plot_map
+from .report import MAX_SLICES, _label_names, plot_labels, plot_map
 from .series import LAW_TITLES, LAWS, POWER_CLASS_LEGEND, evaluate_law
 
 __all__ = ["write_series_figures", "plot_series_by_region", "region_series", "is_series_store",
@@ -98,14 +98,8 @@ def _region_groups(ds: xr.Dataset, sl: dict) -> tuple[list[tuple[int, str, np.nd
 
 
 def _region_names(r: xr.DataArray) -> dict[int, str]:
-    raw = r.attrs.get("region_names")
-    if raw:
-        try:
-            got = json.loads(raw) if isinstance(raw, str) else dict(raw)
-            return {int(k): str(v) for k, v in got.items()}
-        except (ValueError, TypeError):
-            pass
-    return _style.flag_names(r.attrs) or {}
+    """Names of the regions of a region map (its names attr or CF flags), as the figures."""
+    return _label_names(r, np.array([], dtype=int), None)
 
 
 def region_series(ds: xr.Dataset, *, index: Mapping[str, int] | None = None) -> dict[str, Any]:
