@@ -84,6 +84,14 @@ def _axis(da: xr.DataArray, dim: str) -> tuple[np.ndarray, str]:
     return np.arange(da.sizes[dim], dtype=float), "pixel"
 
 
+def _yx(da: xr.DataArray) -> tuple[xr.DataArray, np.ndarray, str, np.ndarray, str]:
+    """The map as (y, x) with its y and x values and their units."""
+    da = da.transpose("y", "x")
+    yv, yu = _axis(da, "y")
+    xv, xu = _axis(da, "x")
+    return da, yv, yu, xv, xu
+
+
 def _units(da: xr.DataArray) -> str:
     u = str(da.attrs.get("units", "")).strip()
     return u if u not in ("", "none") else "1"
@@ -104,9 +112,7 @@ def export_csv(da: xr.DataArray, path: str | Path) -> Path:
     Path
         The file written.
     """
-    da = da.transpose("y", "x")
-    yv, yu = _axis(da, "y")
-    xv, xu = _axis(da, "x")
+    da, yv, yu, xv, xu = _yx(da)
     vals = np.asarray(da.values)
     name = str(da.name or "value")
     yy, xx = np.meshgrid(yv, xv, indexing="ij")
@@ -147,9 +153,7 @@ def export_tiff(da: xr.DataArray, path: str | Path) -> Path:
     """
     import tifffile
 
-    da = da.transpose("y", "x")
-    yv, yu = _axis(da, "y")
-    xv, xu = _axis(da, "x")
+    da, yv, yu, xv, xu = _yx(da)
     img = np.asarray(da.values, dtype=np.float32)
     if yv.size > 1 and yv[1] < yv[0]:
         img, yv = img[::-1], yv[::-1]
