@@ -66,11 +66,11 @@ def _half_block(n: int, real):
 
 def arm(point: str, n: int) -> None:
     """Install the kill at ``point`` (its n-th arrival)."""
-    import matplotlib.figure
     import zarr
 
     import pmap.decomposition as decomposition
     import pmap.pipeline as pipeline
+    import pmap.report as report
     import pmap.report_html as report_html
     import pmap.results as results
     import pmap.steps as steps
@@ -98,8 +98,8 @@ def arm(point: str, n: int) -> None:
         results.mark_complete = _counting(n, results.mark_complete)
     elif point == "consolidate":  # done-record removed, metadata being consolidated
         zarr.consolidate_metadata = _counting(n, zarr.consolidate_metadata)
-    elif point == "figure":  # the n-th PNG figure
-        matplotlib.figure.Figure.savefig = _counting(n, matplotlib.figure.Figure.savefig)
+    elif point == "figure":  # writing the n-th PNG figure
+        report._save = _counting(n, report._save)
     elif point == "html":
         report_html.write_html_report = _counting(n, report_html.write_html_report)
     else:
