@@ -3,4 +3,4 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 bash scripts/setup.sh
-exec .venv/bin/pmap demo --out "${PMAP_DEMO_OUT:-pmap_demo_output}" --overwrite "$@"
+exec .venv/bin/plcube demo --out "${PMAP_DEMO_OUT:-pmap_demo_output}" --overwrite "$@"

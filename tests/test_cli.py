@@ -101,3 +101,15 @@ def test_report_on_a_result_store(tmp_path):
     assert "peak_energy_peak0.png" in names or any(n.startswith("peak_energy") for n in names)
     msg = _one_line_error(run_cli("report", tmp_path / "missing.zarr"))
     assert "missing.zarr" in msg
+
+
+def test_readme_scripts_call_the_installed_command():
+    """scripts/demo.sh (command 1 of the README) runs the console script pyproject installs."""
+    import re
+    import tomllib
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    scripts = tomllib.loads((root / "pyproject.toml").read_text())["project"]["scripts"]
+    called = re.findall(r"\.venv/bin/([\w-]+)", (root / "scripts" / "demo.sh").read_text())
+    assert called and all(c in scripts or c == "python" for c in called), (called, scripts)
