@@ -396,6 +396,62 @@ def test_narrow_instrument_two_spikes_side_by_side_and_emitters():
     assert (m & ~truth).sum() / (~truth).sum() <= 1e-5
 
 
+def test_narrow_instrument_spike_on_an_emitter_flank_spares_the_emitter():
+    # an instrument 1.28 channels wide (the bank's TMD scene): a bright 1-channel spike
+    # (100-400 s.d.) on the flank of a single-pixel emitter of exactly the instrument
+    # width (channel-integrated Gaussian, random sub-channel position, 40-300 s.d. at its
+    # peak) one channel from its peak. Where the line-shape test's box takes in the
+    # emitter's channels, a joint fit (a line of at least the instrument width on a
+    # straight or quadratic level, plus a free box; each box channel must lower chi2 by
+    # 25) keeps only the spike's channels and replaces them by the fitted line (choice
+    # between nested models by their chi2 difference: Wilks, Ann. Math. Stat. 9, 60
+    # (1938)). Against the clean truth: every spike value is replaced; the emitter keeps
+    # its other values and its area (spike channel left out) within 1 % (issue 12), and
+    # the spike value is restored within 5 s.d., each in >= 20 of n = 30 (observed 25
+    # and 23, ~2.5 binomial s.e. below; before the joint fit: 0 of 30 and 0 of 30, the
+    # box took the emitter's peak and both flanks, 37-95 s.d. off). Not yet every one: a
+    # 1-channel box is replaced from the prediction as before, and then the emitter's
+    # peak, judged again beside it, can look like a spike of its own.
+    from scipy.special import erf
+
+    rng = np.random.default_rng(29)
+    fwhm = 0.128
+    wl, expected = _band_map(5.0)
+    s = fwhm / 2.3548200450309493
+    part = np.zeros_like(expected)
+    em = [(int(p) // 21, int(p) % 21) for p in rng.permutation(21 * 21)[:30]]
+    peaks = []
+    for iy, ix in em:
+        c = rng.uniform(715.0, 745.0)
+        prof = 0.5 * (erf((wl + 0.05 - c) / (s * np.sqrt(2))) - erf((wl - 0.05 - c) / (s * np.sqrt(2))))
+        k = int(np.argmax(prof))
+        part[iy, ix] = np.exp(rng.uniform(np.log(40), np.log(300))) * _sigma(expected[iy, ix, k]) * prof / prof.max()
+        peaks.append(k)
+    expected = expected + part
+    noisy = _render(rng, expected)
+    spike_at = []
+    for (iy, ix), k in zip(em, peaks):
+        cc = k + (1 if rng.random() < 0.5 else -1)
+        noisy[iy, ix, cc] += rng.uniform(100.0, 400.0) * _sigma(expected[iy, ix, cc])
+        spike_at.append(cc)
+    cube = _cube(noisy, wl, attrs={"instrument_fwhm_nm": fwhm})
+    cleaned, mask = remove_spikes(cube, return_mask=True)
+    m = mask.values
+    after = cleaned.values.astype(float)
+    kept = restored = 0
+    for (iy, ix), k, cc in zip(em, peaks, spike_at):
+        assert m[iy, ix, cc], (iy, ix)
+        restored += abs(after[iy, ix, cc] - expected[iy, ix, cc]) <= 5 * _sigma(expected[iy, ix, cc])
+        win = np.zeros(wl.size, bool)
+        win[k - 6 : k + 7] = True
+        win[cc] = False
+        area = part[iy, ix].sum()
+        kept += (not m[iy, ix][win].any()
+                 and abs((after[iy, ix] - noisy[iy, ix])[win].sum()) <= 0.01 * area)
+    assert kept >= 20, kept
+    assert restored >= 20, restored
+
+
 # --------------------------------------------------------------------------- (f) scene bank
 
 

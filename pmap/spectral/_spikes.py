@@ -52,7 +52,12 @@ three stages, in one compiled pass per spectrum (:func:`_map_kernel`,
    narrowest box holding 80 % of the best statistic (a wider box can win by taking in
    the flank of emission beside the spike), widened by a neighbouring channel only when
    that channel is a spike of its own once the box is bridged (a spike on or beside an
-   emitter does not take the emitter with it). A candidate beside a removed spike is
+   emitter does not take the emitter with it). With an instrument under 2 channels wide
+   a box of more than one channel is then checked by a joint fit (:func:`_lr_extent`):
+   a line of at least the instrument width on a straight or quadratic level plus a free
+   box, with the noise law's variance at the fitted level, over every narrower box
+   holding the candidate; each channel of the box must lower χ² by 25, so a spike on an
+   emitter's flank takes only its own channels, which get the fitted line. A candidate beside a removed spike is
    judged again against the spectrum so cleaned (two spikes side by side). The end
    channels of the axis are candidates too (above each of the next channels inward).
 
@@ -72,6 +77,7 @@ statistic has no room, single spectra use the three-point curvature bound
 from __future__ import annotations
 
 import functools
+import math
 from dataclasses import replace
 from functools import partial
 from typing import Any
@@ -118,6 +124,19 @@ _FIT_ONE_PASS_FROM = 254
 _FWHM_TO_SD = 1.0 / (2.0 * np.sqrt(2.0 * np.log(2.0)))
 #: The narrowest spike box whose statistic is at least this share of the best is taken.
 _NARROW_SHARE = 0.8
+#: Joint fit of a spike's extent (:func:`_lr_extent`): each channel a spike box takes in
+#: beyond the narrowest that explains the window must lower χ² by this much (5 s.d.)².
+_LR_CHAN_CHI2 = 25.0
+#: ... used for instruments narrower than this FWHM (channels), where a box of spike and
+#: the flank of a line beside it look alike to the cone test; wider instruments keep
+#: the cone's box (no emitter lost area there on any scene of the bank).
+_LR_FWHM_MAX_CH = 2.0
+#: χ² drop for which the joint fit takes a quadratic level instead of a straight one.
+_LR_QUAD_CHI2 = 9.0
+#: Room for the model inside a box in the joint fit (mb[_MB_EX] holds the box's excess).
+_MB_EX = 15
+#: Widths of the line in the joint fit, in units of the instrument's s.d.
+_LR_WIDTHS = (1.0, 1.3, 1.7, 2.3)
 
 
 def spike_candidates(x: np.ndarray, threshold: float = 6.0) -> tuple[np.ndarray, np.ndarray]:
@@ -587,6 +606,246 @@ def _best_box(x, n, r, cnt, sf2, lo, hi, resid, blo, bhi, ca, maxw, bank, ms, bi
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
+def _solve_small(mat, y, k0, k):  # pragma: no cover - compiled
+    """Solve mat[k0:k, k0:k] θ = y[k0:k] in place (θ into y[k0:k]) by Gaussian elimination
+    with partial pivoting; returns False when the system is degenerate."""
+    for i in range(k0, k):
+        piv = i
+        for q in range(i + 1, k):
+            if abs(mat[q, i]) > abs(mat[piv, i]):
+                piv = q
+        if not abs(mat[piv, i]) > 1e-12 * (abs(mat[i, i]) + 1e-300):
+            return False
+        if piv != i:
+            for q in range(k0, k):
+                tmp = mat[i, q]
+                mat[i, q] = mat[piv, q]
+                mat[piv, q] = tmp
+            tmp = y[i]
+            y[i] = y[piv]
+            y[piv] = tmp
+        for q in range(i + 1, k):
+            fac = mat[q, i] / mat[i, i]
+            for r in range(i, k):
+                mat[q, r] -= fac * mat[i, r]
+            y[q] -= fac * y[i]
+    for i in range(k - 1, k0 - 1, -1):
+        acc = y[i]
+        for q in range(i + 1, k):
+            acc -= mat[i, q] * y[q]
+        y[i] = acc / mat[i, i]
+    return True
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, law, nz, skip, g, v, mb, nb):  # pragma: no cover
+    """χ² of e_j ≈ A·g_j(μ, σ) + B(j) over channels w0 … w1 (box [s, s + w − 1] left out
+    when ``skip``), A ≥ 0 and the polynomial B of nb − 1 terms (quadratic: what a broader
+    band under the line adds over a few channels; linear for a residual) by weighted least
+    squares (:func:`_lr_chi2`); mb[0:w] the model
+    in the box, mb[_MB_EX] the box's mean excess over it. g, v: work."""
+    nw = w1 - w0 + 1
+    h = 1.0 / (sig * np.sqrt(2.0))
+    mid = 0.5 * (w0 + w1)
+    hw = 0.5 * (w1 - w0)
+    for k in range(nw):
+        j = w0 + k
+        g[k] = 0.5 * (math.erf((j + 0.5 - mu) * h) - math.erf((j - 0.5 - mu) * h))
+        v[k] = max(_var_at(j, lvl[k] + max(e[k], 0.0), law, nz) * vf[k], sf2)
+    mat = np.empty((4, 4))
+    th = np.zeros(4)
+    f = np.empty(4)
+    for it in range(2):
+        for k0 in range(2):  # all four terms; then without the line when A < 0
+            for i in range(4):
+                th[i] = 0.0
+                for q in range(4):
+                    mat[i, q] = 0.0
+            for k in range(nw):
+                j = w0 + k
+                if skip and s <= j < s + w:
+                    continue
+                tt = (j - mid) / hw
+                f[0] = g[k]
+                f[1] = 1.0
+                f[2] = tt
+                f[3] = tt * tt
+                q = 1.0 / v[k]
+                for i in range(k0, nb):
+                    th[i] += q * f[i] * e[k]
+                    for r in range(k0, nb):
+                        mat[i, r] += q * f[i] * f[r]
+            ok = _solve_small(mat, th, k0, nb)
+            if not ok:
+                for i in range(4):
+                    th[i] = 0.0
+            if k0 == 1:
+                th[0] = 0.0
+                break
+            if ok and th[0] >= 0.0:
+                break
+        if it == 0:
+            for k in range(nw):
+                j = w0 + k
+                tt = (j - mid) / hw
+                mk = th[0] * g[k] + th[1] + th[2] * tt + th[3] * tt * tt
+                tl = _LINE_TOLERANCE * max(mk, 0.0)
+                v[k] = max(_var_at(j, lvl[k] + max(mk, 0.0), law, nz) * vf[k], sf2) + tl * tl
+    chi = 0.0
+    ex = 0.0
+    for k in range(nw):
+        j = w0 + k
+        tt = (j - mid) / hw
+        mk = th[0] * g[k] + th[1] + th[2] * tt + th[3] * tt * tt
+        d = e[k] - mk
+        if skip and s <= j < s + w:
+            ex += d
+            mb[j - s] = mk
+            continue
+        chi += d * d / v[k]
+    mb[_MB_EX] = ex / w if w > 0 else 0.0
+    return chi
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _lr_chi2(e, lvl, vf, sf2, w0, w1, s, w, sd, law, nz, skip, mb, nb):  # pragma: no cover
+    """Least χ² over line positions μ and widths σ ≥ sd (the instrument's s.d., channels)
+    of e_j ≈ A·g_j(μ, σ) + C (A ≥ 0; g the Gaussian integrated over channel j), channels
+    w0 … w1 (e, lvl indexed from w0), leaving out the box [s, s + w − 1] when ``skip``: a
+    grid (μ every 0.1 channel over the window, σ = _LR_WIDTHS × sd), then μ and σ refined
+    by ternary search (a bright line needs its position to a few hundredths of a channel).
+    The variance of channel j is the noise law at lvl_j + the model (first pass at
+    lvl_j + max(e_j, 0)), times vf_j, at least sf2, plus (2 % of the model)². Returns
+    (χ², the box's mean excess over the best model); mb[0:w] that model in the box."""
+    nw = w1 - w0 + 1
+    g = np.empty(nw)
+    v = np.empty(nw)
+    best = np.inf
+    bmu = float(w0)
+    bsig = sd
+    nmu = int((w1 - w0) * 10) + 1
+    for iw in range(len(_LR_WIDTHS)):
+        sig = _LR_WIDTHS[iw] * sd
+        for im in range(nmu):
+            mu = w0 + 0.1 * im
+            chi = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, law, nz, skip, g, v, mb, nb)
+            if chi < best:
+                best = chi
+                bmu = mu
+                bsig = sig
+    gmu = bmu
+    gsig = bsig
+    for rnd in range(2):
+        a0 = bmu - 0.1
+        b0 = bmu + 0.1
+        for _ in range(10):
+            m1 = a0 + (b0 - a0) / 3.0
+            m2 = b0 - (b0 - a0) / 3.0
+            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m1, bsig, law, nz, skip, g, v, mb, nb)
+            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m2, bsig, law, nz, skip, g, v, mb, nb)
+            if f1 < f2:
+                b0 = m2
+            else:
+                a0 = m1
+        bmu = 0.5 * (a0 + b0)
+        if rnd == 1:
+            break
+        a0 = max(sd, bsig / 1.3)
+        b0 = bsig * 1.3
+        for _ in range(10):
+            m1 = a0 + (b0 - a0) / 3.0
+            m2 = b0 - (b0 - a0) / 3.0
+            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, bmu, m1, law, nz, skip, g, v, mb, nb)
+            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, bmu, m2, law, nz, skip, g, v, mb, nb)
+            if f1 < f2:
+                b0 = m2
+            else:
+                a0 = m1
+        bsig = 0.5 * (a0 + b0)
+    chi = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, law, nz, skip, g, v, mb, nb)
+    if chi < best:
+        best = chi
+    else:  # (the grid point was better: its model in the box)
+        best = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, gmu, gsig, law, nz, skip, g, v, mb, nb)
+    return best, mb[_MB_EX]
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _lr_extent(x, n, r, cnt, sf2, lo, hi, resid, e0, e1, cb, kb, ms, sds, law, nz, res,
+               rep):  # pragma: no cover - compiled
+    """The spike's channels within the box e0 … e1 found by the line-shape test, by a joint
+    fit: over the boxes B ⊆ [e0, e1] holding ``cb``, the least χ² of a line of at least
+    the instrument width on a quadratic level plus a free box B (:func:`_lr_chi2`; the
+    noise law's variance at the fitted level), over the window e0 − m … e1 + m, of the
+    residual r (``resid``) or of x less the window floor; each channel of B costs
+    _LR_CHAN_CHI2. A spike on the flank of an emitter then takes only its own channels,
+    not the emitter's, which the line explains, and its values are replaced by the line
+    fitted beside it (not interpolated across an emitter's peak). Returns whether a box
+    was fitted (an instrument under _LR_FWHM_MAX_CH channels, the window inside the
+    axis): then res[0:2] = its start and width, rep[0:W] its replacement (the window's
+    level plus the fitted line and quadratic)."""
+    if not sds[kb] < _LR_FWHM_MAX_CH * _FWHM_TO_SD:
+        return False
+    m = ms[kb] + 1
+    w0 = e0 - m
+    w1 = e1 + m
+    if resid:
+        if w0 < lo or w1 > hi:
+            return False
+    elif w0 < 1 or w1 >= n - 1:
+        return False
+    nw = w1 - w0 + 1
+    e = np.empty(nw)
+    lvl = np.empty(nw)
+    vf = np.empty(nw)
+    c0 = 0.0
+    if not resid:
+        c0 = _window_floor(x, n, w0, w1, 0.5 * (e0 + e1), law, nz)
+    for k in range(nw):
+        j = w0 + k
+        if resid:
+            e[k] = r[j - lo]
+            lvl[k] = x[j] - r[j - lo]
+            vf[k] = 1.0 + 1.5708 / max(cnt[j - lo], 1)
+        else:
+            e[k] = x[j] - c0
+            lvl[k] = c0
+            vf[k] = 1.0
+        if not (e[k] == e[k] and lvl[k] == lvl[k]):
+            return False
+    mb = np.empty(_MB_EX + 1)
+    mb3 = np.empty(_MB_EX + 1)
+    sf = sf2 if resid else 0.0
+    sd = sds[kb]
+    best = np.inf
+    found = False
+    for w in range(e1 - e0 + 1, 0, -1):
+        for s in range(max(e0, cb - w + 1), min(cb, e1 - w + 1) + 1):
+            # a straight level, or a quadratic one where that lowers χ² by more than
+            # _LR_QUAD_CHI2 (a broader band under the line that differs between pixels)
+            chi, ex = _lr_chi2(e, lvl, vf, sf, w0, w1, s, w, sd, law, nz, True, mb, 3)
+            for k in range(w):
+                mb3[k] = mb[k]
+            chi4, ex4 = _lr_chi2(e, lvl, vf, sf, w0, w1, s, w, sd, law, nz, True, mb, 4)
+            if chi4 + _LR_QUAD_CHI2 < chi:
+                chi = chi4 + _LR_QUAD_CHI2
+                ex = ex4
+            else:
+                for k in range(w):
+                    mb[k] = mb3[k]
+            if not ex > 0.0:
+                continue
+            if chi + _LR_CHAN_CHI2 * w < best - 1e-9 and chi == chi:
+                best = chi + _LR_CHAN_CHI2 * w
+                found = True
+                res[0] = s
+                res[1] = w
+                for k in range(w):
+                    rep[k] = lvl[s + k - w0] + mb[k]
+    return found
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def _alone_z(x, n, r, cnt, sf2, lo, hi, resid, s, w, j, kb, bank, ms, law, nz):  # pragma: no cover
     """Line-shape statistic of the one-channel box at j (next to the box [s, s + w − 1])
     with the box bridged by a straight line from its outer neighbours (as if it were
@@ -1028,6 +1287,23 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
                 return True
             _grow_box(x, n, rbuf, cnt, sf2, lo, hi, resid, zs, maxw, bank, ms, bin_of, law,
                       nz, sres, t_shape)
+            e0 = int(sres[0])
+            e1 = e0 + int(sres[1]) - 1
+            # a box wider than one channel may hold the flank of an emitter beside the
+            # spike: the joint fit of line and spike keeps only the spike's channels
+            rep = np.empty(maxw)
+            if e1 > e0 and _lr_extent(x, n, rbuf, cnt, sf2, lo, hi, resid, e0, e1, cb,
+                                      bin_of[cb], ms, sds, law, nz, sres, rep) \
+                    and int(sres[1]) < e1 - e0 + 1:
+                # the spike's own channels only, replaced by the fitted line and level
+                e0 = int(sres[0])
+                e1 = e0 + int(sres[1]) - 1
+                for c in range(e0, e1 + 1):
+                    out[c] = rep[c - e0]
+                sres[3] = e0
+                sres[4] = e1
+                sres[5] = 1.0
+                return True
             e0 = int(sres[0])
             e1 = e0 + int(sres[1]) - 1
             # the box's ends that stand out of the prediction by less than 2 s.d. are not
