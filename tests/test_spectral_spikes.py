@@ -407,11 +407,12 @@ def test_narrow_instrument_spike_on_an_emitter_flank_spares_the_emitter():
     # between nested models by their chi2 difference: Wilks, Ann. Math. Stat. 9, 60
     # (1938)). Against the clean truth: every spike value is replaced; the emitter keeps
     # its other values and its area (spike channel left out) within 1 % (issue 12), and
-    # the spike value is restored within 5 s.d., each in >= 20 of n = 30 (observed 25
-    # and 23, ~2.5 binomial s.e. below; before the joint fit: 0 of 30 and 0 of 30, the
-    # box took the emitter's peak and both flanks, 37-95 s.d. off). Not yet every one: a
-    # 1-channel box is replaced from the prediction as before, and then the emitter's
-    # peak, judged again beside it, can look like a spike of its own.
+    # the spike value is restored within 5 s.d., in >= 25 and >= 23 of n = 30 (observed
+    # 29 and 27, ~3 binomial s.e. below; before the joint fit: 0 of 30 and 0 of 30, the
+    # box took the emitter's peak and both flanks, 37-95 s.d. off). A 1-channel box
+    # beside a steep side of the pixel's own emission gets the fitted line too (an
+    # interpolation across it would cut the line and leave its peak looking like a
+    # spike of its own).
     from scipy.special import erf
 
     rng = np.random.default_rng(29)
@@ -448,8 +449,8 @@ def test_narrow_instrument_spike_on_an_emitter_flank_spares_the_emitter():
         area = part[iy, ix].sum()
         kept += (not m[iy, ix][win].any()
                  and abs((after[iy, ix] - noisy[iy, ix])[win].sum()) <= 0.01 * area)
-    assert kept >= 20, kept
-    assert restored >= 20, restored
+    assert kept >= 25, kept
+    assert restored >= 23, restored
 
 
 # --------------------------------------------------------------------------- (f) scene bank

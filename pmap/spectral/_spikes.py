@@ -57,7 +57,8 @@ three stages, in one compiled pass per spectrum (:func:`_map_kernel`,
    a line of at least the instrument width on a straight or quadratic level plus a free
    box, with the noise law's variance at the fitted level, over every narrower box
    holding the candidate; each channel of the box must lower χ² by 25, so a spike on an
-   emitter's flank takes only its own channels, which get the fitted line. A candidate beside a removed spike is
+   emitter's flank takes only its own channels, which get the fitted line (as does a
+   1-channel spike beside a steep side of the pixel's own emission). A candidate beside a removed spike is
    judged again against the spectrum so cleaned (two spikes side by side). The end
    channels of the axis are candidates too (above each of the next channels inward).
 
@@ -840,6 +841,8 @@ def _lr_extent(x, n, r, cnt, sf2, lo, hi, resid, e0, e1, cb, kb, ms, sds, law, n
                 found = True
                 res[0] = s
                 res[1] = w
+                dof = nw - w - 6.0
+                res[2] = chi - dof - 3.0 * np.sqrt(2.0 * max(dof, 1.0))  # > 0: a poor fit
                 for k in range(w):
                     rep[k] = lvl[s + k - w0] + mb[k]
     return found
@@ -1291,10 +1294,25 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
             e1 = e0 + int(sres[1]) - 1
             # a box wider than one channel may hold the flank of an emitter beside the
             # spike: the joint fit of line and spike keeps only the spike's channels
+            # a 1-channel box beside a steep side of this pixel's own emission (the
+            # higher neighbour over twice the other and, with the channel beyond it,
+            # significant: the flank of a line, not a spike's own second channel), where
+            # the replacement interpolated across the box would cut the line and leave
+            # its peak looking like a spike, gets the joint fit's line
+            own = False
+            if e1 == e0 and e0 - 1 >= lo and e1 + 1 <= hi:
+                ra = rbuf[e0 - 1 - lo]
+                rb = rbuf[e1 + 1 - lo]
+                ja = e0 - 1 if ra > rb else e1 + 1  # the higher side, and one further out
+                jb = ja - 1 if ra > rb else ja + 1
+                own = lo <= jb <= hi \
+                    and _excess_z(rbuf, p, cnt, ja, lo, sf2, law, nz) > _EXTEND_SIGMA \
+                    and _excess_z(rbuf, p, cnt, jb, lo, sf2, law, nz) > _EXTEND_SIGMA \
+                    and max(ra, rb) > 2.0 * max(min(ra, rb), 0.0)
             rep = np.empty(maxw)
-            if e1 > e0 and _lr_extent(x, n, rbuf, cnt, sf2, lo, hi, resid, e0, e1, cb,
-                                      bin_of[cb], ms, sds, law, nz, sres, rep) \
-                    and int(sres[1]) < e1 - e0 + 1:
+            if (e1 > e0 or own) and _lr_extent(x, n, rbuf, cnt, sf2, lo, hi, resid, e0, e1,
+                                               cb, bin_of[cb], ms, sds, law, nz, sres, rep) \
+                    and (int(sres[1]) < e1 - e0 + 1 or (own and sres[2] <= 0.0)):
                 # the spike's own channels only, replaced by the fitted line and level
                 e0 = int(sres[0])
                 e1 = e0 + int(sres[1]) - 1
