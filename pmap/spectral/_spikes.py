@@ -1430,6 +1430,32 @@ def _next_candidate(cand, z, n):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
+def _settle(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, sds, bin_of,
+            law, nz, p, cnt, vbuf, abuf, rbuf, ls, sres, cand, out):  # pragma: no cover
+    """Judge candidate ``ca`` (against ``nref`` references when there are ``min_refs``,
+    else on its own spectrum), retire it, and apply a replacement to ``x`` so later
+    judgements see the spectrum cleaned so far; shared by the map and frames kernels."""
+    kl = ca > 0 and cand[ca - 1]
+    kr = ca < n - 1 and cand[ca + 1]
+    done = False
+    if nref >= min_refs:
+        done = _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, sds,
+                      bin_of, law, nz, p, cnt, vbuf, abuf, rbuf, ls, sres, cand, out)
+    if not done:
+        _judge_single(x, n, ca, t, maxw, bank, ms, sds, bin_of, law, nz, cnt, sres, out)
+    _retire(cand, n, ca, maxw if not done else 1, sres)
+    if sres[5] > 0:
+        for k in range(int(sres[3]), int(sres[4]) + 1):
+            x[k] = out[k]
+        # a candidate beside the removed spike is judged again (a second spike next to
+        # it; emission beside it then passes)
+        if kl and ca - 1 < sres[3]:
+            cand[ca - 1] = True
+        if kr and ca + 1 > sres[4]:
+            cand[ca + 1] = True
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def _retire(cand, n, ca, half, sres):  # pragma: no cover - compiled
     """Drop the candidates a judgement at ``ca`` settled: ca ± half, and the replaced
     channels sres[3] … sres[4] when a spike was removed."""
@@ -1495,26 +1521,8 @@ def _map_kernel(b, t, min_refs, maxw, bank, ms, sds, bin_of, law, g_default, out
                             for k in range(lo, hi + 1):
                                 refs[nref, k - lo] = b[ib, iy + dy, ix + dx, k]
                             nref += 1
-                    kl = ca > 0 and cand[ca - 1]
-                    kr = ca < n - 1 and cand[ca + 1]
-                    done = False
-                    if nref >= min_refs:
-                        done = _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw,
-                                      bank, ms, sds, bin_of, law, nz, p, cnt, vbuf, abuf, rbuf,
-                                      ls, sres, cand, o)
-                    if not done:
-                        _judge_single(x, n, ca, t, maxw, bank, ms, sds, bin_of, law, nz, cnt,
-                                      sres, o)
-                    _retire(cand, n, ca, maxw if not done else 1, sres)
-                    if sres[5] > 0:  # later judgements see the spectrum cleaned so far
-                        for k in range(int(sres[3]), int(sres[4]) + 1):
-                            x[k] = o[k]
-                        # and a candidate beside the removed spike is judged again (a
-                        # second spike next to it; emission beside it then passes)
-                        if kl and ca - 1 < sres[3]:
-                            cand[ca - 1] = True
-                        if kr and ca + 1 > sres[4]:
-                            cand[ca + 1] = True
+                    _settle(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms,
+                            sds, bin_of, law, nz, p, cnt, vbuf, abuf, rbuf, ls, sres, cand, o)
     return out
 
 
@@ -1641,26 +1649,8 @@ def _frames_kernel(b, t, maxw, bank, ms, sds, bin_of, law, g_default, out):
                         for k in range(lo, hi + 1):
                             refs[nref, k - lo] = b[ib, f2, s, k]
                         nref += 1
-                    kl = ca > 0 and cand[ca - 1]
-                    kr = ca < n - 1 and cand[ca + 1]
-                    done = False
-                    if nref >= 1:
-                        done = _judge(x, n, ca, lo, hi, refs, nref, 1, 0.0, t, maxw, bank, ms,
-                                      sds, bin_of, law, nz, p, cnt, vbuf, abuf, rbuf, ls, sres,
-                                      cand, o)
-                    if not done:
-                        _judge_single(x, n, ca, t, maxw, bank, ms, sds, bin_of, law, nz, cnt,
-                                      sres, o)
-                    _retire(cand, n, ca, maxw if not done else 1, sres)
-                    if sres[5] > 0:  # later judgements see the spectrum cleaned so far
-                        for k in range(int(sres[3]), int(sres[4]) + 1):
-                            x[k] = o[k]
-                        # and a candidate beside the removed spike is judged again (a
-                        # second spike next to it; emission beside it then passes)
-                        if kl and ca - 1 < sres[3]:
-                            cand[ca - 1] = True
-                        if kr and ca + 1 > sres[4]:
-                            cand[ca + 1] = True
+                    _settle(x, n, ca, lo, hi, refs, nref, 1, 0.0, t, maxw, bank, ms, sds,
+                            bin_of, law, nz, p, cnt, vbuf, abuf, rbuf, ls, sres, cand, o)
     return out
 
 
