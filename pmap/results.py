@@ -31,6 +31,7 @@ import numpy as np
 import xarray as xr
 
 from .errors import FormatError, InputFileError, OutputExistsError
+from .io._write import partial_name
 from .noise import describe_noise_coords
 from .provenance import PROVENANCE_ATTR
 
@@ -152,11 +153,10 @@ def mark_complete(path: str | Path) -> None:
     import zarr
 
     g = zarr.open_group(str(path), mode="r+")
-    if DONE_ARRAY in g and not g.attrs.get(BLOCKS_WRITTEN_ATTR):  # (a store written in one
-        # go, without blocks, has no done-record)
-        raise FormatError(f"{path}: not every block is written; the store cannot be marked "
-                          "complete")
-    if DONE_ARRAY in g:
+    if DONE_ARRAY in g:  # (a store written in one go, without blocks, has none)
+        if not g.attrs.get(BLOCKS_WRITTEN_ATTR):
+            raise FormatError(f"{path}: not every block is written; the store cannot be "
+                              "marked complete")
         del g[DONE_ARRAY]
     with warnings.catch_warnings():
         # consolidated metadata is not (yet) in the Zarr v3 spec; xarray and zarr-python read it
@@ -377,7 +377,8 @@ def write_result(
     Metadata (and the small non-spatial variables) are written first with
     ``pmap_complete = False``; then each aligned spatial block is computed and written
     into its region of the Zarr arrays by one task, which then sets the block's element
-    of the done-record inside the store (array ``pmap_blocks_done``, one chunk per block). All blocks form one graph, so
+    of the done-record inside the store (array ``pmap_blocks_done``, one chunk per
+    block). All blocks form one graph, so
     chunks that neighbouring blocks share are computed once. ``resume=True`` on an
     existing incomplete store recomputes only the blocks not marked done.
     ``concurrency`` is the number of threads; ``client`` is a dask.distributed Client
@@ -408,11 +409,12 @@ def write_result(
     streaming = streaming or client is not None
     ds = _grow_write_blocks(ds, spatial, strips=streaming)
     others = [k for k in ds.data_vars if k not in spatial]
-    names = [_block_name(ys, xs) for ys, xs in _spatial_blocks(ds)]
+    blocks = _spatial_blocks(ds)
+    names = [_block_name(ys, xs) for ys, xs in blocks]
     if fresh:  # metadata built under a temporary name: the store exists whole or not at all
         for stale in p.parent.glob(f".{p.name}.partial-*"):  # left by an earlier kill
             shutil.rmtree(stale, ignore_errors=True)
-        tmp = p.with_name(f".{p.name}.partial-{os.getpid()}")
+        tmp = partial_name(p)
         base = ds[others] if others else xr.Dataset()
         base.attrs = dict(ds.attrs)
         base.to_zarr(str(tmp), mode="w", consolidated=False)  # small global variables, in full
@@ -424,7 +426,7 @@ def write_result(
         os.replace(tmp, p)
     done = _done_blocks(p, names)
     maps = {k: ds[k].variable for k in spatial}
-    todo = [(i, ys, xs) for i, (ys, xs) in enumerate(_spatial_blocks(ds))
+    todo = [(i, ys, xs) for i, (ys, xs) in enumerate(blocks)
             if names[i] not in done]
     total = len(names)
     from tqdm import tqdm
@@ -433,7 +435,7 @@ def write_result(
                file=sys.stderr, disable=not progress, dynamic_ncols=True, mininterval=0.5)
     import dask
 
-    pieces = _block_pieces(maps, _spatial_blocks(ds))
+    pieces = _block_pieces(maps, blocks)
 
     def task(i, ys, xs):
         name = _block_name(ys, xs)
