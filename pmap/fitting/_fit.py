@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import threading
 import warnings
 from dataclasses import dataclass
 
@@ -163,6 +164,10 @@ def _build_spec(x, *, model, peaks, background, bounds, fixed, shared, init) -> 
     code = K.MODEL_CODES[model]
     npp = K.N_PEAK_PARAMS[code]
     nbg = _BACKGROUNDS[background]
+    # a private writable copy: the kernels are compiled once for this array type (a
+    # read-only coordinate would get its own compilation, whose vectorised loops may
+    # round differently in the last bit)
+    x = np.array(x, dtype=np.float64, order="C", copy=True)
     span = float(x[-1] - x[0])
     step = float(np.min(np.diff(x))) if x.size > 1 else span
     kind, peak = [], []
@@ -401,6 +406,27 @@ def _d2_peaks(x, y, K, fw1):
     return out
 
 
+_TEMPLATES: dict = {}
+_TEMPLATES_LOCK = threading.Lock()
+
+
+def _template_once(mean, spec):
+    """:func:`_template`, computed once per (mean spectrum, model) and reused by every
+    block of a map (the blocks of one fit share the whole-map mean)."""
+    m = np.ascontiguousarray(mean, dtype=np.float64)
+    key = (m.tobytes(), spec.x.tobytes(), spec.model, spec.K, spec.nbg, spec.init,
+           spec.start.tobytes())
+    with _TEMPLATES_LOCK:
+        hit = _TEMPLATES.get(key)
+    if hit is None:
+        hit = _template(m, spec)
+        with _TEMPLATES_LOCK:
+            if len(_TEMPLATES) >= 16:
+                _TEMPLATES.clear()
+            _TEMPLATES[key] = hit
+    return hit
+
+
 def _template(mean, spec):
     """Fit the mean spectrum with K peaks: the best of several starts (lowest χ²).
 
@@ -463,13 +489,80 @@ def _template(mean, spec):
     return np.asarray(best, dtype=float), float(height[0]), float(e_max[0])
 
 
+def _place_template(Yr, b, spec, tp):
+    """Place the K-peak template ``tp`` on each row of Yr (m, n): (shift eV (m,), areas
+    (m, K), background (m, nbg)).
+
+    The shift maximises the cross-correlation of the row (less its base ``b``) with
+    the template's peaks (searched over ± the template's span or widest FWHM, whichever
+    is larger, in steps of one channel, refined by a parabola through the best three);
+    a pixel's maximum alone is a poor anchor when the relative heights of the lines
+    change across the map (it may sit on another line than the template's). With the
+    line shapes fixed at that position the areas and the background are linear: least
+    squares gives them; an area ≤ 0 starts at 2 % of the row's largest.
+    """
+    x = spec.x
+    n, K_, npp = x.size, spec.K, spec.npp
+    cen, fwhm = tp[0:K_ * npp:npp], tp[1:K_ * npp:npp]
+    step = float(np.median(np.abs(np.diff(x))))
+    ns = int(np.ceil(max(float(np.ptp(cen)), float(np.max(fwhm))) / step))
+    shifts = np.arange(-ns, ns + 1) * step
+    B = np.empty((shifts.size, K_, n))
+    f, J = np.empty(n), np.zeros((n, npp))
+    for k in range(K_):
+        q = np.array(tp[k * npp:(k + 1) * npp], dtype=np.float64)
+        c0, q[2] = q[0], 1.0
+        for i, s in enumerate(shifts):
+            q[0] = c0 + s
+            K.eval_model(spec.code, x, spec.xref, q, 1, 0, f, J, False)
+            B[i, k] = f
+    a_t = np.asarray(tp[2:K_ * npp:npp], dtype=np.float64)
+    cols = np.array([np.ones(n), x - spec.xref][: spec.nbg]).reshape(spec.nbg, n)
+    # projections of every row on every peak at every shift: M[k] (m, shifts)
+    M = [Yr @ B[:, k].T for k in range(K_)]
+    C = sum(a_t[k] * (M[k] - b[:, None] * B[:, k].sum(axis=1)) for k in range(K_))
+    best = np.argmax(C, axis=1)
+    m = Yr.shape[0]
+    r = np.arange(m)
+    inner = (best > 0) & (best < shifts.size - 1)
+    cm, c0_, cp = (C[r, np.clip(best + d, 0, shifts.size - 1)] for d in (-1, 0, 1))
+    curv = cm - 2.0 * c0_ + cp
+    with np.errstate(invalid="ignore", divide="ignore"):
+        frac = np.where(inner & (curv < 0), 0.5 * (cm - cp) / curv, 0.0)
+    shift = shifts[best] + np.clip(np.nan_to_num(frac), -0.5, 0.5) * step
+    # linear least squares for the areas and background at the best shift: normal
+    # equations from the projections above and the Gram matrix of each shift's basis
+    D = np.concatenate([B, np.broadcast_to(cols, (shifts.size, spec.nbg, n))], axis=1)
+    G = np.einsum("spn,sqn->spq", D, D)[best]  # (m, K + nbg, K + nbg)
+    rhs = np.concatenate([np.stack([M[k][r, best] for k in range(K_)], axis=1),
+                          Yr @ cols.T], axis=1)
+    G += np.eye(G.shape[1]) * (1e-12 * np.trace(G, axis1=1, axis2=2))[:, None, None]
+    coef = np.linalg.solve(G, rhs[..., None])[..., 0]
+    areas, bg = coef[:, :K_], coef[:, K_:]
+    top = np.max(areas, axis=1, keepdims=True)
+    areas = np.where(areas > 0.02 * top, areas, 0.02 * np.maximum(top, 0.0))
+    return shift, areas, bg
+
+
 def _starts(Y, rows, desc, spec, template):
     """Starting values (len(rows), n_full) for rows ``rows`` of Y, ``desc`` of those rows."""
     m = rows.size
     b, e_max, height, fw = desc
     P0 = np.zeros((m, spec.nfull))
     npp = spec.npp
-    if template is not None:
+    placed = None
+    if template is not None and spec.K > 1:
+        placed = _place_template(_filled(np.asarray(Y[rows], dtype=np.float64))[0], b, spec,
+                                 template[0])
+    if placed is not None:
+        # several peaks: the template slid to the pixel by cross-correlation, its peak
+        # areas (and the background) by linear least squares at that position
+        shift, areas, bg0 = placed
+        P0[:] = template[0]
+        for k in range(spec.K):
+            P0[:, k * npp] += shift
+            P0[:, k * npp + 2] = areas[:, k]
+    elif template is not None:
         tp, t_height, t_centre = template
         scale = np.where(t_height > 0, np.maximum(height, 0.0) / t_height, 1.0)
         # the template moved to the pixel: its centres shift with the pixel's maximum
@@ -487,6 +580,8 @@ def _starts(Y, rows, desc, spec, template):
         P0[:, ob] = b
     if spec.nbg == 2:
         P0[:, ob + 1] = 0.0
+    if placed is not None and spec.nbg >= 1:
+        P0[:, ob:ob + spec.nbg] = bg0
     given = np.isfinite(spec.start)
     if np.any(given):
         P0[:, given] = spec.start[given]
@@ -538,7 +633,7 @@ def _fit_rows(Y, mean, spec, nz, max_iter, min_snr, VS=_ONE, VP=_ZERO):
     if fit_rows.size:
         template = None
         if spec.K > 1 or spec.init == "mean":
-            template = _template(mean, spec)
+            template = _template_once(mean, spec)
         sel = tuple(v[fit_rows] for v in start)
         P0 = _starts(Y, fit_rows, sel, spec, template)
         P, COV, chi2, st, niter = _run(Y, spec, P0, nz, max_iter, fit_rows, VS=VS, VP=VP)
