@@ -128,10 +128,17 @@ def _add_read_options(p: argparse.ArgumentParser) -> None:
 
 # ---------------------------------------------------------------- subcommands
 def cmd_info(args: argparse.Namespace) -> int:
-    from .io import cube_info, format_cube_info
+    from ._cubeinfo import format_cube_info, quick_zarr_info
 
-    info = cube_info(args.path, value_range=not args.no_range, full_range=args.full_range,
-                     **_read_options(args))
+    opts = _read_options(args)
+    # a canonical Zarr store is summarised without importing xarray/dask (~1 s)
+    info = None if opts else quick_zarr_info(args.path, value_range=not args.no_range,
+                                             full_range=args.full_range)
+    if info is None:
+        from .io import cube_info
+
+        info = cube_info(args.path, value_range=not args.no_range,
+                         full_range=args.full_range, **opts)
     print(format_cube_info(info))
     return 0
 

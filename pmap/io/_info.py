@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import os
 from typing import Any
 
@@ -10,23 +9,14 @@ import dask
 import dask.array as da
 import numpy as np
 
+from .. import _cubeinfo
+from .._cubeinfo import axis_summary, finish_info, format_cube_info, stored_range  # noqa: F401 (re-export)
 from ..conventions import SPECTRAL_DIMS, length_to_um_factor
 from ..cube import METADATA_ATTRS, spectral_dim
 from ..provenance import PROVENANCE_ATTR, get_provenance
 from ._api import open_cube
-from ._common import check_input, detect_format, path_size_bytes
+from ._common import check_input, detect_format
 from ._text import TEXT_OPTIONS, inspect_text, scan_text
-
-
-def _axis_summary(vals: np.ndarray, unit: str) -> dict[str, Any]:
-    step = float(np.median(np.diff(vals))) if vals.size > 1 else None
-    return {
-        "min": float(vals[0]),
-        "max": float(vals[-1]),
-        "n": int(vals.size),
-        "step": step,
-        "units": unit,
-    }
 
 
 def _stored_chunks(cube) -> Any:
@@ -40,19 +30,12 @@ def _stored_chunks(cube) -> Any:
 
 
 #: cubes up to this many bytes (in memory) get a full min/max scan by default
-FULL_SCAN_BYTES = 64 * 2**20
+FULL_SCAN_BYTES = _cubeinfo.FULL_SCAN_BYTES
 #: the sampled value range reads about this many bytes, spread over the map
-SAMPLE_BYTES = 32 * 2**20
+SAMPLE_BYTES = _cubeinfo.SAMPLE_BYTES
 
 
-def _stored_range(attrs: dict) -> tuple[float, float] | None:
-    """(min, max) stated in the file: the CF ``actual_range`` attribute, if well formed."""
-    v = attrs.get("actual_range")
-    try:
-        lo, hi = (float(t) for t in np.asarray(v, dtype=float).ravel())
-    except (TypeError, ValueError):
-        return None
-    return (lo, hi) if np.isfinite(lo) and np.isfinite(hi) and lo <= hi else None
+_stored_range = stored_range
 
 
 def _value_range(cube, full: bool) -> dict[str, Any]:
@@ -68,7 +51,7 @@ def _value_range(cube, full: bool) -> dict[str, Any]:
         return {"value_min": stored[0], "value_max": stored[1], "value_range_source": "stored"}
     data = cube.data
     if full or not isinstance(data, da.Array) or data.nbytes <= FULL_SCAN_BYTES:
-        lo, hi = dask.compute(da.nanmin(data), da.nanmax(data)) if isinstance(
+        lo, hi = dask.compute(da.nanmin(data), da.nanmax(data), scheduler="threads") if isinstance(
             data, da.Array) else (np.nanmin(data), np.nanmax(data))
         return {"value_min": float(lo), "value_max": float(hi), "value_range_source": "full"}
     # sample units: the stored chunks (a read touches only those), else the dask chunks
@@ -86,7 +69,7 @@ def _value_range(cube, full: bool) -> dict[str, Any]:
     for p in picks:
         idx = np.unravel_index(int(p), grid)
         parts.append(data[tuple(slice(i * u, (i + 1) * u) for i, u in zip(idx, unit))])
-    mins_maxs = dask.compute(*[(da.nanmin(b), da.nanmax(b)) for b in parts])
+    mins_maxs = dask.compute(*[(da.nanmin(b), da.nanmax(b)) for b in parts], scheduler="threads")
     lo = np.nanmin([m[0] for m in mins_maxs])
     hi = np.nanmax([m[1] for m in mins_maxs])
     read = sum(int(np.prod(b.shape)) for b in parts)
@@ -108,9 +91,9 @@ def _text_info(path, fmt: str, value_range: bool, options: dict[str, Any]) -> di
         "shape": list(shape),
         "dtype": "float32",
         "spectral_dim": spec.spectral_dim,
-        "spectral": _axis_summary(layout.spectral, spec.spectral_units),
-        "y": _axis_summary(layout.y.values * fac, unit),
-        "x": _axis_summary(layout.x.values * fac, unit),
+        "spectral": axis_summary(layout.spectral, spec.spectral_units),
+        "y": axis_summary(layout.y.values * fac, unit),
+        "x": axis_summary(layout.x.values * fac, unit),
         "chunks": None,
         "stored_chunks": None,
         "layout": f"{spec.layout} table",
@@ -152,6 +135,10 @@ def cube_info(
     **read_options
         Read options of :func:`pmap.io.open_cube`.
 
+    A Zarr store already in canonical form, read without options, is summarised
+    by :func:`pmap._cubeinfo.quick_zarr_info` (zarr and numpy only, no xarray or
+    dask imports; same dict); anything else goes through :func:`open_cube`.
+
     Returns
     -------
     dict
@@ -166,6 +153,12 @@ def cube_info(
         acquisition attrs), ``attrs`` (the rest), ``provenance`` (decoded record).
     """
     p = check_input(path)
+    if not read_options:
+        quick = _cubeinfo.quick_zarr_info(p, value_range=value_range, full_range=full_range,
+                                          full_scan_bytes=FULL_SCAN_BYTES,
+                                          sample_bytes=SAMPLE_BYTES)
+        if quick is not None:
+            return quick
     fmt = detect_format(p)
     if fmt == "text":
         opts = {k: v for k, v in read_options.items() if k in (*TEXT_OPTIONS, "chunk_rows")}
@@ -181,9 +174,9 @@ def cube_info(
             "shape": list(cube.shape),
             "dtype": str(cube.dtype),
             "spectral_dim": sdim,
-            "spectral": _axis_summary(cube[sdim].values, SPECTRAL_DIMS[sdim]),
-            "y": _axis_summary(cube["y"].values, cube["y"].attrs.get("units", "pixel")),
-            "x": _axis_summary(cube["x"].values, cube["x"].attrs.get("units", "pixel")),
+            "spectral": axis_summary(cube[sdim].values, SPECTRAL_DIMS[sdim]),
+            "y": axis_summary(cube["y"].values, cube["y"].attrs.get("units", "pixel")),
+            "x": axis_summary(cube["x"].values, cube["x"].attrs.get("units", "pixel")),
             "chunks": {d: int(c[0]) for d, c in zip(cube.dims, cube.chunks)},
             "stored_chunks": _stored_chunks(cube),
             "value_min": None,
@@ -213,92 +206,5 @@ def cube_info(
         info["metadata"] = {k: attrs.pop(k) for k in list(attrs) if k in METADATA_ATTRS}
         info["attrs"] = attrs
         info["provenance"] = get_provenance(cube.attrs)
-    for dim in ("y", "x"):
-        ax = info[dim]
-        ax["extent"] = (ax["max"] - ax["min"]) + (ax["step"] or 0.0)
-    um = info["x"]["units"] == "um" and info["y"]["units"] == "um"
-    info["pixel_size_um"] = {"y": info["y"]["step"], "x": info["x"]["step"]} if um else None
-    info["extent_um"] = {"y": info["y"]["extent"], "x": info["x"]["extent"]} if um else None
-    info.update(path=str(p), format=fmt, file_size_bytes=path_size_bytes(p))
+    finish_info(info, p, fmt)
     return info
-
-
-def _human_bytes(n: float) -> str:
-    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
-        if n < 1024 or unit == "TiB":
-            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
-        n /= 1024
-    return f"{n} B"
-
-
-_MEDIUM_SOURCE_TEXT = {
-    "data": "stated in the file",
-    "sidecar": "stated in the sidecar",
-    "option": "stated by an option",
-    "assumed": "ASSUMED, not stated; give -O wavelength_medium=air|vacuum",
-}
-
-
-def _medium_text(medium: dict[str, str]) -> str:
-    src = medium.get("source", "assumed")
-    return f"{medium.get('medium', 'air')} wavelengths ({_MEDIUM_SOURCE_TEXT.get(src, src)})"
-
-
-def _range_source_text(info: dict[str, Any]) -> str:
-    src = info.get("value_range_source", "full")
-    if src == "stored":
-        return "stated in the file (actual_range); --full-range to scan every chunk"
-    if src == "sample":
-        k, n = info["value_range_chunks"]
-        return (f"SAMPLE of {k} of {n} chunks, {100 * info['value_range_sample']:.2g} % of the "
-                "spectra; --full-range to scan every chunk")
-    return "full scan"
-
-
-def format_cube_info(info: dict[str, Any]) -> str:
-    """Human-readable text of a :func:`cube_info` dict (for ``plcube info``)."""
-    lines = [
-        f"{info['path']}",
-        f"  format        {info['format']}"
-        + (f" ({info['layout']})" if info.get("layout") else ""),
-        f"  file size     {_human_bytes(info['file_size_bytes'])}",
-    ]
-    shape = " x ".join(f"{d}={n}" for d, n in zip(info["dims"], info["shape"]))
-    lines.append(f"  shape         {shape}  ({info['dtype']}, {info.get('units')})")
-    s = info["spectral"]
-    step = f", step {s['step']:.6g}" if s["step"] else ""
-    lines.append(
-        f"  {info['spectral_dim']:<13} {s['min']:.6g} .. {s['max']:.6g} {s['units']}"
-        f" ({s['n']} channels{step})"
-    )
-    for dim in ("y", "x"):
-        a = info[dim]
-        st = f", step {a['step']:.6g}" if a["step"] else ""
-        lines.append(
-            f"  {dim:<13} {a['min']:.6g} .. {a['max']:.6g} {a['units']} ({a['n']} pixels{st})"
-        )
-    if info.get("pixel_size_um"):
-        ps, ex = info["pixel_size_um"], info["extent_um"]
-        fmt_ps = "/".join(f"{v:.4g}" if v else "-" for v in (ps["y"], ps["x"]))
-        lines.append(f"  pixel size    {fmt_ps} um (y/x); extent {ex['y']:.4g} x {ex['x']:.4g} um")
-    if info.get("chunks"):
-        lines.append("  chunks        " + ", ".join(f"{k}={v}" for k, v in info["chunks"].items()))
-    if info.get("stored_chunks"):
-        lines.append(
-            "  stored chunks " + ", ".join(f"{k}={v}" for k, v in info["stored_chunks"].items())
-        )
-    if info.get("medium"):
-        lines.append(f"  medium        {_medium_text(info['medium'])}")
-    if info.get("rows") is not None:
-        lines.append(f"  rows          {info['rows']}")
-    if info.get("value_min") is not None:
-        lines.append(f"  values        {info['value_min']:.6g} .. {info['value_max']:.6g}"
-                     f" ({_range_source_text(info)})")
-    for k, v in {**info.get("metadata", {}), **info.get("attrs", {})}.items():
-        lines.append(f"  {k:<13} {v}")
-    prov = info.get("provenance") or {}
-    if prov.get("steps"):
-        lines.append("  steps         " + ", ".join(s.get("step", "?") for s in prov["steps"]))
-    if prov.get("input"):
-        lines.append(f"  read from     {json.dumps(prov['input'].get('path'))}")
-    return "\n".join(lines)

@@ -184,10 +184,50 @@ def save_cube(
     cube = validate_cube(cube) if cube.name != CUBE_NAME or cube.chunks is None else cube
     out = prepare_output(out, overwrite=overwrite, attrs=cube.attrs, remove=False)
     ds = cube_dataset(cube)
+    # a range read from the input may be stale after processing: never pass it on
+    for k in STATS_ATTRS:
+        ds[CUBE_NAME].attrs.pop(k, None)
     writer = FORMATS[kind].function("writer")
     with atomic_output(out) as tmp:
-        writer(ds, tmp, **({"zarr_format": zarr_format} if kind == "zarr" else {}))
+        if kind == "zarr":
+            _write_zarr_with_stats(ds, tmp, zarr_format=zarr_format)
+        else:
+            writer(ds, tmp)
     return out
+
+
+#: value statistics save_cube stores with a Zarr cube (``plcube info`` shows them as stored)
+STATS_ATTRS = ("actual_range", "pmap_finite_count")
+
+
+def _write_zarr_with_stats(ds: xr.Dataset, out: Path, *, zarr_format: int) -> None:
+    """Write a Zarr cube and store its value range in the same read of the data.
+
+    The writes and the min / max / finite count share one dask graph, so every
+    chunk is read (or computed) once. ``actual_range`` (CF conventions 1.10,
+    section 2.5.1: [min, max] of the stored values, NaN excluded) and
+    ``pmap_finite_count`` are added to the variable's attrs after the data; a
+    cube without a finite value gets neither.
+    """
+    import dask
+    import dask.array as da
+    import zarr
+
+    data = ds[CUBE_NAME].data
+    if not isinstance(data, da.Array) or data.dtype.kind not in "iuf":
+        write_zarr(ds, out, zarr_format=zarr_format)
+        return
+    delayed = write_zarr(ds, out, zarr_format=zarr_format, compute=False)
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="All-NaN slice", category=RuntimeWarning)
+        _, lo, hi, n = dask.compute(delayed, da.nanmin(data), da.nanmax(data),
+                                    da.isfinite(data).sum())
+    if int(n) == 0:
+        return
+    array = zarr.open_array(str(out / CUBE_NAME), mode="r+")
+    array.attrs.update({"actual_range": [float(lo), float(hi)], "pmap_finite_count": int(n)})
+    if zarr_format == 2:
+        zarr.consolidate_metadata(str(out))
 
 
 def _write_netcdf(ds: xr.Dataset, out: Path) -> None:
