@@ -109,6 +109,8 @@ class TextLayout:
     n_rows: int
     value_min: float | None = None
     value_max: float | None = None
+    #: hash sets of the distinct x, y and spectral values when the compiled reader was used
+    fast: Any = field(default=None, repr=False, compare=False)
 
 
 def _split_name(name: str) -> tuple[str, str | None]:
@@ -330,7 +332,46 @@ def _grid_step(options: Mapping[str, Any], dim: str, unit: str) -> float | None:
 def scan_text(
     spec: TextSpec, *, chunk_rows: int = 1_000_000, value_range: bool = False, **options: Any
 ) -> TextLayout:
-    """First pass: distinct positions and channel values, grids, rows, value range."""
+    """First pass: distinct positions and channel values, grids, rows, value range.
+
+    A plain numeric table is read by the compiled reader (:mod:`pmap.io._text_fast`);
+    anything else (quotes, comments, missing or non-numeric values...) by pandas.
+    """
+    if _fast_delimiter(spec) is not None:
+        try:
+            return _scan_fast(spec, chunk_rows, value_range, options)
+        except _NotPlain:
+            pass
+    return _scan_pandas(spec, chunk_rows, value_range, options)
+
+
+def _layout(
+    spec: TextSpec, ux: np.ndarray, uy: np.ndarray, spectral: np.ndarray, n: int,
+    vmin: float, vmax: float, value_range: bool, options: Mapping[str, Any],
+) -> TextLayout:  # fmt: skip
+    """Grids from the distinct positions; the TextLayout of a finished first pass."""
+    tol = float(options.get("grid_tolerance", DEFAULT_TOLERANCE))
+    fill = float(options.get("min_fill", 0.5))
+    gx = infer_grid(
+        ux, step=_grid_step(options, "x", spec.xy_units), tolerance=tol, min_fill=fill, axis="x"
+    )
+    gy = infer_grid(
+        uy, step=_grid_step(options, "y", spec.xy_units), tolerance=tol, min_fill=fill, axis="y"
+    )
+    return TextLayout(
+        gy,
+        gx,
+        spectral,
+        n,
+        vmin if value_range and np.isfinite(vmin) else None,
+        vmax if value_range and np.isfinite(vmax) else None,
+    )
+
+
+def _scan_pandas(
+    spec: TextSpec, chunk_rows: int, value_range: bool, options: Mapping[str, Any]
+) -> TextLayout:
+    """First pass with pandas.read_csv (any table pandas reads)."""
     xs: list[np.ndarray] = []
     ys: list[np.ndarray] = []
     sv = np.empty(0)
@@ -364,23 +405,255 @@ def scan_text(
         raise FormatError(f"{spec.path.name}: the table has a header but no data rows")
     ux = np.unique(np.concatenate([ux, *xs]))
     uy = np.unique(np.concatenate([uy, *ys]))
-    tol = float(options.get("grid_tolerance", DEFAULT_TOLERANCE))
-    fill = float(options.get("min_fill", 0.5))
-    gx = infer_grid(
-        ux, step=_grid_step(options, "x", spec.xy_units), tolerance=tol, min_fill=fill, axis="x"
-    )
-    gy = infer_grid(
-        uy, step=_grid_step(options, "y", spec.xy_units), tolerance=tol, min_fill=fill, axis="y"
-    )
     spectral = sv if long else np.asarray(spec.channel_values)
-    return TextLayout(
-        gy,
-        gx,
-        spectral,
-        n,
-        vmin if value_range and np.isfinite(vmin) else None,
-        vmax if value_range and np.isfinite(vmax) else None,
-    )
+    return _layout(spec, ux, uy, spectral, n, vmin, vmax, value_range, options)
+
+
+# ---- compiled reader for plain numeric tables ---------------------------------------------
+
+#: Bytes read from the file at a time by the compiled reader.
+_FAST_READ_BYTES = 4 << 20
+_NOT_DELIMITERS = set(b'0123456789+-.eE"#\r\n')
+
+
+class _NotPlain(Exception):
+    """The table is not plain numeric text: read it with pandas instead."""
+
+
+def _fast_delimiter(spec: TextSpec) -> int | None:
+    """Delimiter byte for the compiled reader (0: runs of blanks), None if it cannot read it."""
+    if spec.delimiter == r"\s+":
+        return 0
+    d = spec.delimiter.encode("utf-8", errors="replace")
+    if len(d) != 1 or d[0] in _NOT_DELIMITERS or d == b" ":
+        return None
+    return d[0]
+
+
+def _fast_blocks(
+    spec: TextSpec, cols: list[int], chunk_rows: int, *, by_row: bool
+) -> Iterator[tuple[int, np.ndarray]]:
+    """Yield (first row number, values) blocks parsed by the compiled reader.
+
+    ``values[k, i]`` is column ``cols[k]`` of row i (float64; rows contiguous in memory
+    when ``by_row``). The array is reused: use a block before asking for the next.
+    Raises _NotPlain at the first line the reader does not take.
+    """
+    from . import _text_fast as tf
+
+    delim = _fast_delimiter(spec)
+    if delim is None or len(set(cols)) != len(cols):
+        raise _NotPlain
+    ncols = len(spec.names)
+    slot = np.full(ncols, -1, dtype=np.int64)
+    slot[cols] = np.arange(len(cols))
+    cap = max(1, min(int(chunk_rows), _FAST_READ_BYTES // (2 * ncols) + 1))
+    out = np.empty((cap, len(cols))).T if by_row else np.empty((len(cols), cap))
+    with open(spec.path, "rb") as fh:
+        for _ in range(spec.skiprows):
+            line = fh.readline()
+            if b'"' in line or b"\r" in line.rstrip(b"\n").removesuffix(b"\r"):
+                raise _NotPlain
+        buf = np.empty(_FAST_READ_BYTES, dtype=np.uint8)
+        carry, row, n, eof = 0, 0, 0, False
+        while True:
+            if carry == buf.size:  # one line longer than the buffer
+                buf = np.concatenate([buf, np.empty_like(buf)])
+            got = fh.readinto(memoryview(buf)[carry:])
+            eof = not got
+            end = carry + got
+            pos = 0
+            while True:
+                status, pos, n = tf.parse_block(
+                    buf, pos, end, eof, delim, ncols, slot, out, n, tf.POW10
+                )
+                if status == tf.BAIL:
+                    raise _NotPlain
+                if status == tf.DONE:
+                    break
+                yield row, out[:, :n]
+                row, n = row + n, 0
+            if eof:
+                break
+            carry = end - pos
+            buf[:carry] = buf[pos:end]
+        if n:
+            yield row, out[:, :n]
+
+
+def _bits(values: np.ndarray) -> np.ndarray:
+    """The int64 bit patterns of a row of float64 values (contiguous copy if needed)."""
+    return np.ascontiguousarray(values).view(np.int64)
+
+
+class _DistinctSet:
+    """Distinct float64 values (by bit pattern, -0.0 as 0.0) in a growing hash table."""
+
+    def __init__(self, size: int = 1 << 12) -> None:
+        from . import _text_fast as tf
+
+        self.tf = tf
+        self.table = np.full(size, tf.EMPTY, dtype=np.int64)
+        self.count = np.zeros(1, dtype=np.int64)
+
+    def add(self, bits: np.ndarray) -> None:
+        start = 0
+        while True:
+            start = self.tf.add_distinct(bits, bits.size, self.table, self.count, start)
+            if start == bits.size:
+                return
+            old = self.keys().view(np.int64)
+            self.table = np.full(2 * self.table.size, self.tf.EMPTY, dtype=np.int64)
+            self.count[0] = 0
+            self.tf.add_distinct(old, old.size, self.table, self.count, 0)
+
+    @property
+    def n(self) -> int:
+        return int(self.count[0])
+
+    def keys(self) -> np.ndarray:
+        return self.table[self.table != self.tf.EMPTY].view(np.float64)
+
+    def index(self, index_of_keys) -> np.ndarray:
+        """Per table slot, the index ``index_of_keys(keys)`` gives each key (-1: empty)."""
+        idx = np.full(self.table.size, -1, dtype=np.int64)
+        occ = self.table != self.tf.EMPTY
+        idx[occ] = index_of_keys(self.table[occ].view(np.float64))
+        return idx
+
+
+def _scan_fast(
+    spec: TextSpec, chunk_rows: int, value_range: bool, options: Mapping[str, Any]
+) -> TextLayout:
+    """First pass with the compiled reader; raises _NotPlain for tables it does not take.
+
+    Every column the second pass needs is parsed here, so that a table taken by this
+    pass is taken by the second one too.
+    """
+    long = spec.layout == "long"
+    cols = [spec.x, spec.y] + ([spec.spectral, spec.value] if long else spec.channel_cols)
+    nv = 3 if long else 2
+    sets = [_DistinctSet() for _ in range(nv)]
+    n = 0
+    vmin, vmax = np.inf, -np.inf
+    for _row0, block in _fast_blocks(spec, cols, chunk_rows, by_row=not long):
+        for k in range(nv):
+            sets[k].add(_bits(block[k]))
+        if long and sets[2].n > _MAX_CHANNELS:
+            raise FormatError(
+                f"{spec.path.name}: more than {_MAX_CHANNELS} distinct spectral values; "
+                "the spectral column must repeat the same channel values for every pixel"
+            )
+        if value_range and block.shape[1]:
+            v = block[nv:]
+            vmin, vmax = min(vmin, float(v.min())), max(vmax, float(v.max()))
+        n += block.shape[1]
+    if n == 0:
+        raise FormatError(f"{spec.path.name}: the table has a header but no data rows")
+    ux, uy = np.unique(sets[0].keys()), np.unique(sets[1].keys())
+    spectral = np.unique(sets[2].keys()) if long else np.asarray(spec.channel_values)
+    layout = _layout(spec, ux, uy, spectral, n, vmin, vmax, value_range, options)
+    layout.fast = sets
+    return layout
+
+
+def _fill_fast(
+    spec: TextSpec,
+    layout: TextLayout,
+    array: zarr.Array,
+    *,
+    chunk_rows: int,
+    tolerance: float,
+    buffer_mib: float,
+) -> None:
+    """Second pass with the compiled reader: values into a pool of whole chunks.
+
+    The pool holds ``buffer_mib`` of chunks (at least one); when a row needs a chunk
+    not in it, the least recently used one is written out, and a chunk written
+    before is read back when needed again. A cell given twice raises FormatError.
+    """
+    from . import _text_fast as tf
+
+    long = spec.layout == "long"
+    sx, sy = layout.fast[0], layout.fast[1]
+    xi = sx.index(lambda v: layout.x.index(v, tolerance=tolerance, axis="x"))
+    yi = sy.index(lambda v: layout.y.index(v, tolerance=tolerance, axis="y"))
+    if long:
+        ss = layout.fast[2]
+        st, si = ss.table, ss.index(lambda v: np.searchsorted(layout.spectral, v))
+    else:
+        st, si = np.full(1, tf.EMPTY, dtype=np.int64), np.zeros(1, dtype=np.int64)
+    cy, cx, ns = array.chunks
+    ny, nx, _ = array.shape
+    nbx, nby = -(-nx // cx), -(-ny // cy)
+    chunk_bytes = cy * cx * ns * array.dtype.itemsize
+    n_slots = int(max(1, min(nby * nbx, int(buffer_mib * 2**20) // chunk_bytes)))
+    pool = np.empty((n_slots, cy, cx, ns), dtype=array.dtype)
+    slot_of = np.full(nby * nbx, -1, dtype=np.int64)
+    key_of = np.full(n_slots, -1, dtype=np.int64)
+    stamp = np.zeros(n_slots, dtype=np.int64)
+    clock = np.ones(1, dtype=np.int64)
+    res = np.zeros(3, dtype=np.int64)
+    written: set[int] = set()
+
+    def where(key: int) -> tuple[slice, slice]:
+        by, bx = divmod(key, nbx)
+        return slice(by * cy, min((by + 1) * cy, ny)), slice(bx * cx, min((bx + 1) * cx, nx))
+
+    def evict(s: int) -> None:
+        key = int(key_of[s])
+        ys, xs = where(key)
+        array[ys, xs, :] = pool[s, : ys.stop - ys.start, : xs.stop - xs.start]
+        written.add(key)
+        slot_of[key], key_of[s] = -1, -1
+
+    def load(key: int) -> None:
+        free = np.flatnonzero(key_of < 0)
+        s = int(free[0]) if free.size else int(np.argmin(stamp))
+        if key_of[s] >= 0:
+            evict(s)
+        pool[s] = np.nan
+        if key in written:
+            ys, xs = where(key)
+            pool[s, : ys.stop - ys.start, : xs.stop - xs.start] = array[ys, xs, :]
+        slot_of[key], key_of[s] = s, key
+
+    def describe(iy: int, ix: int, ic: int | None) -> str:
+        at = f"x={layout.x.values[ix]:g}, y={layout.y.values[iy]:g}"
+        if ic is not None:
+            at += f", {spec.spectral_dim}={layout.spectral[ic]:g}"
+        return f"{spec.path.name}: duplicate position ({at} {spec.xy_units}): two rows give it"
+
+    cols = [spec.x, spec.y] + ([spec.spectral, spec.value] if long else spec.channel_cols)
+    none = np.empty(0, dtype=np.int64)
+    try:
+        blocks = _fast_blocks(spec, cols, chunk_rows, by_row=not long)
+        for _row0, block in blocks:
+            n = block.shape[1]
+            xb, yb = _bits(block[0]), _bits(block[1])
+            sb, vals = (_bits(block[2]), block[3:]) if long else (none, block[2:])
+            start = 0
+            while True:
+                status, start = tf.scatter(
+                    xb, yb, sb, vals, n, start, sx.table, xi, sy.table, yi, st, si,
+                    cy, cx, nbx, slot_of, pool, stamp, clock, res,
+                )  # fmt: skip
+                if status == tf.DONE:
+                    break
+                if status == tf.NEED_CHUNK:
+                    load(int(res[0]))
+                elif status == tf.DUPLICATE:
+                    ic = int(res[2])
+                    raise FormatError(describe(int(res[0]), int(res[1]), ic if ic >= 0 else None))
+                else:
+                    raise _NotPlain
+    except _NotPlain:
+        raise FormatError(
+            f"{spec.path.name}: the file changed between the two passes of the conversion"
+        ) from None
+    for s in range(n_slots):
+        if key_of[s] >= 0:
+            evict(s)
 
 
 class _ChunkBuffer:
@@ -595,7 +868,8 @@ def text_to_zarr(
     with zarr.config.set({"array.write_empty_chunks": True}):
         array = zarr.open_group(target, mode="r+")[CUBE_NAME]
         # grids and channel values ascend, so validate_cube kept the index order
-        _fill(
+        plain = layout.fast is not None and array.dtype in (np.float32, np.float64)
+        (_fill_fast if plain else _fill)(
             spec,
             layout,
             array,

@@ -1,0 +1,305 @@
+"""Compiled kernels for streaming plain numeric text tables (used by :mod:`pmap.io._text`).
+
+A "plain" table has one record per line, fields separated by one delimiter byte
+(or runs of spaces/tabs), and numbers written as ``[+-]digits[.digits][e[+-]digits]``.
+:func:`parse_block` turns such lines into float64 values, each correctly rounded
+(as pandas' C parser and Python's ``float`` give them) by Clinger's exact case: a
+mantissa of at most 53 bits times or divided by a power of ten up to 1e22, both
+exact doubles, so that one IEEE multiplication or division rounds once (W. D.
+Clinger, "How to read floating point numbers accurately", PLDI 1990). Any line
+outside that (quotes, comments, missing or non-numeric values, field count
+changes, more than 15-16 significant digits, large exponents...) makes the
+kernel give up, and the caller reads the whole file with pandas instead: every
+message and corner case then stays pandas'.
+
+Distinct values are gathered in open-addressing hash sets keyed by the float64
+bit pattern (``-0.0`` folded onto ``0.0``); the second pass looks each value up
+there to get its grid index, and scatters the value into a pool of whole Zarr
+chunks (``pool[slot, y, x, channel]``) with a duplicate check on every cell.
+"""
+
+from __future__ import annotations
+
+import numba as nb
+import numpy as np
+
+#: Marks an empty hash-table slot: a NaN payload that parsing never produces.
+EMPTY = np.int64(0x7FF8DEADBEEF0001)
+_NEG_ZERO = np.int64(-(2**63))
+#: Powers of ten 1e0 .. 1e22: the ones that are exact doubles.
+POW10 = np.array([float(f"1e{k}") for k in range(23)])
+
+# parse_block status codes
+DONE, FULL, BAIL = 0, 1, 2
+# scatter status codes (DONE as above)
+NEED_CHUNK, DUPLICATE, UNKNOWN = 1, 2, 3
+
+#: Integers below 2**53 are exact doubles.
+_EXACT = 2.0**53
+_NL, _CR, _SP, _TAB = 10, 13, 32, 9
+_QUOTE, _HASH = 34, 35
+_PLUS, _MINUS, _DOT, _E, _e = 43, 45, 46, 69, 101
+
+
+@nb.njit(cache=True, nogil=True)
+def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
+    """Parse whole lines of ``buf[pos:end]`` into ``out[slot[j], row]`` (float64).
+
+    ``delim`` is the delimiter byte, 0 for runs of spaces/tabs (leading and trailing
+    ones allowed); ``slot[j]`` is the row of ``out`` for field j, or -1 to skip it
+    (any text but quotes, ``#`` and NUL). Blank lines are skipped; ``\r\n`` ends a line
+    like ``\n``. An unterminated last line counts only when ``final``. Returns
+    (status, pos, nrow): DONE (all whole lines read; pos is where the unfinished rest
+    starts), FULL (``out`` has no room left; pos is the next line) or BAIL (a line
+    outside the plain grammar).
+
+    One loop over the bytes; a number's digits accumulate as ``number * 10 + digit``
+    (exact while below 2**53), then one multiplication or division by
+    ``pow10[|exponent|]`` (exact up to 1e22) rounds it correctly.
+    """
+    cap = out.shape[1]
+    ws = delim == 0
+    line = pos
+    if nrow >= cap and pos < end:
+        return FULL, pos, nrow
+    # per line: fields done; per field: start, state and digits
+    j = 0
+    fstart = pos
+    infield = False  # whitespace mode: inside a field
+    blanks = False  # whitespace mode: the line has leading blanks
+    number, nd, ndec = 0.0, 0, 0
+    phase, neg, eneg, epos, en, ed, bad = 0, False, False, -2, 0, 0, False
+    while True:
+        if pos < end:
+            c = np.int64(buf[pos])
+        elif final and (pos > line):
+            c = _NL  # the unterminated last line of the file
+        else:
+            return DONE, line, nrow
+        d = c - 48
+        if 0 <= d <= 9:
+            if phase < 2:
+                number = number * 10.0 + d
+                nd += 1
+                ndec += phase
+            elif ed < 17:
+                en = en * 10 + d
+                ed += 1
+            else:
+                bad = True
+            infield = True
+            pos += 1
+            continue
+        sep = (c == _SP or c == _TAB) if ws else c == delim
+        if c == _CR:
+            if pos + 1 < end:
+                if buf[pos + 1] != _NL:
+                    return BAIL, line, nrow
+                pos += 1
+                c = _NL
+            elif not final:
+                return DONE, line, nrow
+            else:
+                c = _NL
+        if sep or c == _NL:
+            if ws and not infield:
+                if c == _NL:
+                    if j == 0:
+                        if blanks:
+                            return BAIL, line, nrow  # a line of blanks: leave it to pandas
+                        pos += 1  # blank line
+                        line = pos
+                        fstart = pos
+                        if nrow >= cap and pos < end:
+                            return FULL, pos, nrow
+                        continue
+                else:
+                    if j == 0:
+                        blanks = True
+                    pos += 1
+                    fstart = pos
+                    continue
+            elif c == _NL and j == 0 and pos == fstart:
+                pos += 1  # blank line
+                line = pos
+                fstart = pos
+                if nrow >= cap and pos < end:
+                    return FULL, pos, nrow
+                continue
+            # end of field j
+            if not (ws and not infield):
+                if j >= ncols:
+                    return BAIL, line, nrow  # too many fields
+                k = slot[j]
+                if k >= 0:
+                    if bad or nd == 0 or (phase == 2 and ed == 0):
+                        return BAIL, line, nrow
+                    if number != 0.0:
+                        # exact integer mantissa and power of ten: one correctly rounded step
+                        exponent = (-en if eneg else en) - ndec
+                        if not number < _EXACT or exponent > 22 or exponent < -22:
+                            return BAIL, line, nrow
+                        if exponent > 0:
+                            number *= pow10[exponent]
+                        elif exponent < 0:
+                            number /= pow10[-exponent]
+                    out[k, nrow] = -number if neg else number
+                j += 1
+                number, nd, ndec = 0.0, 0, 0
+                phase, neg, eneg, epos, en, ed, bad = 0, False, False, -2, 0, 0, False
+                infield = False
+            pos += 1
+            fstart = pos
+            if c == _NL:
+                if j != ncols:
+                    return BAIL, line, nrow  # too few fields
+                nrow += 1
+                j = 0
+                blanks = False
+                line = pos
+                if nrow >= cap and pos < end:
+                    return FULL, pos, nrow
+                if pos >= end and final:
+                    return DONE, pos, nrow
+            continue
+        infield = True
+        if c == _DOT:
+            if phase == 0:
+                phase = 1
+            else:
+                bad = True
+        elif c == _E or c == _e:
+            if phase < 2 and nd > 0:
+                phase = 2
+                epos = pos
+            else:
+                bad = True
+        elif c == _MINUS or c == _PLUS:
+            if pos == fstart:
+                neg = c == _MINUS
+            elif phase == 2 and pos == epos + 1:
+                eneg = c == _MINUS
+            else:
+                bad = True
+        elif c == _QUOTE or c == _HASH or c == 0:
+            return BAIL, line, nrow
+        else:
+            bad = True
+        pos += 1
+
+
+@nb.njit(cache=True, nogil=True)
+def _home(bits, mask):
+    # splitmix64 finaliser: every input bit reaches the low bits (float keys end in zeros)
+    z = np.uint64(bits)
+    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    z = z ^ (z >> np.uint64(31))
+    return np.int64(z & np.uint64(mask))
+
+
+@nb.njit(cache=True, nogil=True)
+def add_distinct(bits, n, table, count, start):
+    """Add bits[start:n] (float64 bit patterns) to the hash set ``table``.
+
+    ``count[0]`` holds the number of keys. Returns the index where it stopped:
+    n when done, less when the table is half full and must grow first.
+    """
+    mask = table.size - 1
+    limit = table.size // 2
+    last = EMPTY
+    for i in range(start, n):
+        b = bits[i]
+        if b == _NEG_ZERO:
+            b = 0
+        if b == last:
+            continue
+        last = b
+        h = _home(b, mask)
+        while True:
+            t = table[h]
+            if t == b:
+                break
+            if t == EMPTY:
+                if count[0] >= limit:
+                    return i
+                table[h] = b
+                count[0] += 1
+                break
+            h = (h + 1) & mask
+    return n
+
+
+@nb.njit(cache=True, nogil=True)
+def _find(table, b):
+    if b == _NEG_ZERO:
+        b = 0
+    mask = table.size - 1
+    h = _home(b, mask)
+    while True:
+        t = table[h]
+        if t == b:
+            return h
+        if t == EMPTY:
+            return -1
+        h = (h + 1) & mask
+
+
+@nb.njit(cache=True, nogil=True)
+def _index(table, index, b):
+    h = _find(table, b)
+    return -1 if h < 0 else index[h]
+
+
+@nb.njit(cache=True, nogil=True)
+def scatter(
+    xbits, ybits, sbits, vals, n, start,
+    xt, xi, yt, yi, st, si,
+    cy, cx, nbx, slot_of, pool, stamp, clock, res,
+):  # fmt: skip
+    """Put rows start..n-1 into the chunk pool; long table when ``sbits`` has n values.
+
+    Long table: row i is value ``vals[0, i]`` at (y, x, channel) looked up from the
+    bit patterns of its y, x and spectral values. Wide table: row i is the whole
+    spectrum ``vals[:, i]`` at (y, x). Returns (status, row) with status DONE,
+    NEED_CHUNK (``res[0]`` = chunk key not in the pool), DUPLICATE (``res[:3]`` =
+    y, x, channel index of a cell given twice; channel -1 for a whole spectrum)
+    or UNKNOWN (a value not seen by the first pass: the file changed).
+    """
+    long = sbits.size == n and n > 0
+    ns = pool.shape[3]
+    lx_b, lx_i = EMPTY, -1
+    ly_b, ly_i = EMPTY, -1
+    for i in range(start, n):
+        if xbits[i] != lx_b:
+            lx_b, lx_i = xbits[i], _index(xt, xi, xbits[i])
+        if ybits[i] != ly_b:
+            ly_b, ly_i = ybits[i], _index(yt, yi, ybits[i])
+        ix, iy = lx_i, ly_i
+        if ix < 0 or iy < 0:
+            return UNKNOWN, i
+        key = (iy // cy) * nbx + ix // cx
+        s = slot_of[key]
+        if s < 0:
+            res[0] = key
+            return NEED_CHUNK, i
+        stamp[s] = clock[0]
+        clock[0] += 1
+        ly = iy - (iy // cy) * cy
+        lx = ix - (ix // cx) * cx
+        if long:
+            ic = _index(st, si, sbits[i])
+            if ic < 0:
+                return UNKNOWN, i
+            if not np.isnan(pool[s, ly, lx, ic]):
+                res[0], res[1], res[2] = iy, ix, ic
+                return DUPLICATE, i
+            pool[s, ly, lx, ic] = vals[0, i]
+        else:
+            for c in range(ns):
+                if not np.isnan(pool[s, ly, lx, c]):
+                    res[0], res[1], res[2] = iy, ix, -1
+                    return DUPLICATE, i
+            for c in range(ns):
+                pool[s, ly, lx, c] = vals[c, i]
+    return DONE, n
