@@ -240,6 +240,8 @@ def cmd_process(args: argparse.Namespace) -> int:
             raise PmapError(f"--memory-limit {args.memory_limit} is below the "
                             f"{MIN_MEMORY_BYTES // 2**20} MiB pmap needs to run at all")
     client = _make_client(args)
+    if pipe.output.get("figures", True) and not args.no_figures:
+        _import_in_background(_FIGURE_MODULES)
     summaries = []
     try:
         for i, (src, out) in enumerate(zip(inputs, outputs)):
@@ -282,6 +284,28 @@ def cmd_process(args: argparse.Namespace) -> int:
 
             print(f"summary report: {write_summary_html(summaries, out_dir / 'summary.html')}")
     return 0
+
+
+#: Modules the figures and the HTML report need (matplotlib alone is ~1 s of imports).
+_FIGURE_MODULES = ("matplotlib.figure", "matplotlib.backends.backend_agg", "matplotlib.colors",
+                   "PIL.PngImagePlugin", "pmap.report", "pmap.report_html")
+
+
+def _import_in_background(modules: Sequence[str]) -> None:
+    """Import ``modules`` on a daemon thread, while the compute (numba kernels that
+    release the GIL) runs: the figures afterwards find them loaded. An import that
+    fails here fails again, with its message, where the module is used."""
+    import importlib
+    import threading
+
+    def run() -> None:
+        for m in modules:
+            try:
+                importlib.import_module(m)
+            except Exception:  # noqa: BLE001 - reported at the real import
+                return
+
+    threading.Thread(target=run, name="pmap-preload", daemon=True).start()
 
 
 def _write_html(store: Path, figures, run_time_s: float | None = None) -> Path:

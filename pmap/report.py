@@ -24,6 +24,7 @@ import contextlib
 import json
 import math
 import re
+import threading
 import warnings
 from collections.abc import Iterator, Mapping, Sequence
 from pathlib import Path
@@ -251,9 +252,38 @@ def _save(fig, path: str | Path, info: Mapping[str, Any]) -> Path:
     png.add_text("Software", f"pmap {__version__}")
     png.add_text("Description", json.dumps(info))
     # the chosen dpi goes into the file, so the PNG prints at its size
-    Image.fromarray(np.asarray(fig.canvas.buffer_rgba())).save(
-        p, format="png", dpi=(_OUTPUT["dpi"], _OUTPUT["dpi"]), pnginfo=png)
+    image = Image.fromarray(np.array(fig.canvas.buffer_rgba()))
+    dpi = (_OUTPUT["dpi"], _OUTPUT["dpi"])
+    pending = getattr(_SAVES, "pending", None)
+    if pending is None:
+        image.save(p, format="png", dpi=dpi, pnginfo=png)
+    else:  # inside _deferred_saves: PNG encoding (zlib, GIL released) beside the next drawing
+        pending.append(_SAVES.pool.submit(image.save, p, format="png", dpi=dpi, pnginfo=png))
     return p
+
+
+_SAVES = threading.local()
+
+
+@contextlib.contextmanager
+def _deferred_saves() -> Iterator[None]:
+    """Within the block, :func:`_save` encodes and writes PNGs on one background thread
+    (the same bytes), so the next figure is drawn meanwhile; every file is written (or
+    its error raised) when the block ends."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    if getattr(_SAVES, "pending", None) is not None:  # nested: the outer block waits
+        yield
+        return
+    _SAVES.pending, _SAVES.pool = [], ThreadPoolExecutor(1, thread_name_prefix="pmap-png")
+    try:
+        yield
+    finally:
+        pending, pool = _SAVES.pending, _SAVES.pool
+        _SAVES.pending = _SAVES.pool = None
+        pool.shutdown(wait=True)
+        for f in pending:
+            f.result()
 
 
 def _output_key() -> tuple:
@@ -939,8 +969,15 @@ def write_figures(
     missing = [n for n in names if n not in ds.data_vars]
     if missing:
         raise StepError(f"variables {missing} are not in the dataset ({list(ds.data_vars)})")
+    with _deferred_saves():
+        return _write_figures(ds, out, names, variables, prefix)
+
+
+def _write_figures(ds: xr.Dataset, out: Path, names: list[str],
+                   variables: Sequence[str] | None, prefix: str) -> list[Path]:
     written: list[Path] = []
     no_value = _no_value_mask(ds)
+    maps = []
     for name in names:
         v = ds[name]
         extra = [d for d in v.dims if d not in ("y", "x") and v.sizes[d] > 1]
@@ -954,6 +991,9 @@ def write_figures(
             if variables is not None:
                 raise StepError(f"variable {name!r} with dims {v.dims} is not a map")
             continue
+        maps.append(name)
+    for name, v in _maps_loaded(ds, maps):
+        extra = [d for d in v.dims if d not in ("y", "x") and v.sizes[d] > 1]
         if extra:
             d = extra[0]
             labels = _slice_labels(ds, v, d)
@@ -989,6 +1029,30 @@ def write_figures(
     if variables is None:
         written.extend(_spectra_figures(ds, out, prefix))
     return written
+
+
+#: Maps read from the store together (one parallel read) hold at most this many bytes.
+LOAD_GROUP_BYTES = 96 * 2**20
+
+
+def _maps_loaded(ds: xr.Dataset, names: Sequence[str]) -> Iterator[tuple[str, xr.DataArray]]:
+    """(name, map in memory) for ``names``, read in groups of up to LOAD_GROUP_BYTES bytes.
+
+    One dask compute per group reads its maps' chunks in parallel (instead of one
+    sequential read per map, and a second for the NaN check); memory stays bounded by
+    a group, whatever the map size.
+    """
+    import dask
+
+    group: list[str] = []
+    size = 0
+    for i, name in enumerate(names):
+        group.append(name)
+        size += ds[name].nbytes
+        nxt = ds[names[i + 1]].nbytes if i + 1 < len(names) else 0
+        if i + 1 == len(names) or size + nxt > LOAD_GROUP_BYTES:
+            yield from zip(group, dask.compute(*[ds[n] for n in group]))
+            group, size = [], 0
 
 
 def _no_value_mask(ds: xr.Dataset) -> xr.DataArray | None:

@@ -497,15 +497,28 @@ _MAPS_NOTE = ("<p>Every map: y up with the origin (smallest x and y) at the lowe
               "no value (NaN, masked or no signal).</p>")
 
 
+def _any_finite(block):
+    """Whether an array (numpy or dask, lazily) holds a finite value."""
+    return np.isfinite(block).any()
+
+
 def _skipped_maps(ds: xr.Dataset) -> str:
     """A note naming the float maps that have no figure because every pixel is NaN."""
-    empty = []
-    for name, v in ds.data_vars.items():
-        if v.dtype.kind != "f" or not {"y", "x"} <= set(v.dims) or v.ndim > 3 \
-                or any(d in v.dims for d in ("energy", "wavelength")):
-            continue
-        if not bool(np.isfinite(np.asarray(v.values)).any()):
-            empty.append(f"{name} ({v.attrs.get('long_name', '')})".replace(" ()", ""))
+    import dask
+
+    from .cube import spread_blocks
+
+    maps = [(name, v) for name, v in ds.data_vars.items()
+            if v.dtype.kind == "f" and {"y", "x"} <= set(v.dims) and v.ndim <= 3
+            and not any(d in v.dims for d in ("energy", "wavelength"))]
+    # a finite value in one of a few chunks settles a map; only the others are read
+    # whole; each stage is one parallel read of every map concerned
+    seen = dask.compute(*[[_any_finite(b) for b in spread_blocks(v.data, 2)]
+                          for _, v in maps])
+    rest = [(name, v) for (name, v), s in zip(maps, seen) if not any(bool(x) for x in s)]
+    whole = dask.compute(*[np.isfinite(v.data).any() for _, v in rest])
+    empty = [f"{name} ({v.attrs.get('long_name', '')})".replace(" ()", "")
+             for (name, v), ok in zip(rest, whole) if not bool(ok)]
     if not empty:
         return ""
     return _box("note", "<b>Not drawn, every pixel is NaN:</b> " + _e("; ".join(empty)))

@@ -77,8 +77,13 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
           f"{side * side * args.channels * 4 / 1e9:.2f} GB in memory; memory limit "
           f"{args.memory_limit}; load average {_load()}", flush=True)
     t = time.perf_counter()
-    paths = write_demo_cube(work, shape=(side, side), n_channels=args.channels, seed=1,
-                            workers=os.cpu_count() or 1, overwrite=True, name=f"bench_{side}")
+    name = f"bench_{side}"
+    if args.reuse and (work / f"{name}.zarr").is_dir() and (work / f"{name}_truth.zarr").is_dir():
+        paths = {"cube": work / f"{name}.zarr", "truth": work / f"{name}_truth.zarr"}
+    else:
+        paths = write_demo_cube(work, shape=(side, side), n_channels=args.channels, seed=1,
+                                workers=os.cpu_count() or 1, overwrite=True, name=name)
+        paths = {"cube": paths.cube, "truth": paths.truth}
     gen = time.perf_counter() - t
     disk = sum(f.stat().st_size for f in Path(paths["cube"]).rglob("*") if f.is_file())
     n = side * side
@@ -86,6 +91,8 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
     py = sys.executable
     startup = min(_run_child([py, "-m", "pmap", "--version"])[0] for _ in range(3))
     print(f"startup:     {startup:.2f} s (plcube --version, best of 3)")
+    info_s = min(_run_child([py, "-m", "pmap", "info", str(paths["cube"])])[0] for _ in range(3))
+    print(f"info:        {info_s:.2f} s (plcube info, best of 3, whole command)")
     wall_r, rss_r, out, _ = _run_child([py, "-c", READ, str(paths["cube"])])
     read = json.loads(out.strip().splitlines()[-1])
     print(f"read floor:  {read['seconds']:.1f} s, {n / read['seconds']:,.0f} spectra/s, "
@@ -115,7 +122,7 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
         for p in (paths["cube"], paths["truth"], res, work / f"bench_{side}_result_figures"):
             shutil.rmtree(p, ignore_errors=True)
     return {"gb": side * side * args.channels * 4 / 1e9, "read": read["seconds"],
-            "process": work_s, "startup": startup, "rss_read": rss_r, "rss_process": rss_p}
+            "process": work_s, "startup": startup, "info": info_s, "rss_read": rss_r, "rss_process": rss_p}
 
 
 def main() -> None:
@@ -128,6 +135,8 @@ def main() -> None:
     ap.add_argument("--memory-limit", default="1GB")
     ap.add_argument("--workdir", default=None, help="folder for the cubes (default: a temp dir)")
     ap.add_argument("--keep", action="store_true", help="keep the generated files")
+    ap.add_argument("--reuse", action="store_true", help="reuse a cube of the same size left "
+                    "in --workdir by an earlier --keep run instead of generating it again")
     ap.add_argument("--regions", action="store_true",
                     help="also NMF (3 components) and 3 regions, as `plcube demo` does")
     ap.add_argument("--no-figures", action="store_true",
