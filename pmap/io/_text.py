@@ -27,8 +27,10 @@ import csv
 import io
 import os
 import re
+import tempfile
 from collections import OrderedDict
 from collections.abc import Iterator, Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -337,12 +339,7 @@ def scan_text(
     A plain numeric table is read by the compiled reader (:mod:`pmap.io._text_fast`);
     anything else (quotes, comments, missing or non-numeric values...) by pandas.
     """
-    if _fast_delimiter(spec) is not None:
-        try:
-            return _scan_fast(spec, chunk_rows, value_range, options)
-        except _NotPlain:
-            pass
-    return _scan_pandas(spec, chunk_rows, value_range, options)
+    return _scan(spec, chunk_rows, value_range, options)
 
 
 def _layout(
@@ -412,7 +409,7 @@ def _scan_pandas(
 # ---- compiled reader for plain numeric tables ---------------------------------------------
 
 #: Bytes read from the file at a time by the compiled reader.
-_FAST_READ_BYTES = 4 << 20
+_FAST_READ_BYTES = 8 << 20
 _NOT_DELIMITERS = set(b'0123456789+-.eE"#\r\n')
 
 
@@ -436,7 +433,8 @@ def _fast_blocks(
     """Yield (first row number, values) blocks parsed by the compiled reader.
 
     ``values[k, i]`` is column ``cols[k]`` of row i (float64; rows contiguous in memory
-    when ``by_row``). The array is reused: use a block before asking for the next.
+    when ``by_row``). Arrays are reused: use a block before asking for the next.
+    Each read of the file is cut at a line end into two halves parsed by two threads.
     Raises _NotPlain at the first line the reader does not take.
     """
     from . import _text_fast as tf
@@ -447,38 +445,61 @@ def _fast_blocks(
     ncols = len(spec.names)
     slot = np.full(ncols, -1, dtype=np.int64)
     slot[cols] = np.arange(len(cols))
-    cap = max(1, min(int(chunk_rows), _FAST_READ_BYTES // (2 * ncols) + 1))
-    out = np.empty((cap, len(cols))).T if by_row else np.empty((len(cols), cap))
-    with open(spec.path, "rb") as fh:
-        for _ in range(spec.skiprows):
-            line = fh.readline()
-            if b'"' in line or b"\r" in line.rstrip(b"\n").removesuffix(b"\r"):
-                raise _NotPlain
-        buf = np.empty(_FAST_READ_BYTES, dtype=np.uint8)
-        carry, row, n, eof = 0, 0, 0, False
-        while True:
-            if carry == buf.size:  # one line longer than the buffer
-                buf = np.concatenate([buf, np.empty_like(buf)])
-            got = fh.readinto(memoryview(buf)[carry:])
-            eof = not got
-            end = carry + got
-            pos = 0
-            while True:
-                status, pos, n = tf.parse_block(
-                    buf, pos, end, eof, delim, ncols, slot, out, n, tf.POW10
-                )
-                if status == tf.BAIL:
+    nthreads = 2 if (os.cpu_count() or 1) > 1 else 1
+    cap = max(1, min(int(chunk_rows), _FAST_READ_BYTES // nthreads // (2 * ncols) + 1))
+    outs = [
+        np.empty((cap, len(cols))).T if by_row else np.empty((len(cols), cap))
+        for _ in range(nthreads)
+    ]
+    helper = ThreadPoolExecutor(1) if nthreads > 1 else None
+    try:
+        with open(spec.path, "rb") as fh:
+            for _ in range(spec.skiprows):
+                line = fh.readline()
+                if b'"' in line or b"\r" in line.rstrip(b"\n").removesuffix(b"\r"):
                     raise _NotPlain
-                if status == tf.DONE:
+            buf = np.empty(_FAST_READ_BYTES, dtype=np.uint8)
+            carry, row = 0, 0
+            while True:
+                if carry == buf.size:  # one line longer than the buffer
+                    buf = np.concatenate([buf, np.empty_like(buf)])
+                got = fh.readinto(memoryview(buf)[carry:])
+                eof = not got
+                end = carry + got
+                cuts = [0, end]
+                if helper is not None and end > 1 << 20:
+                    mid = end // 2
+                    k = bytes(buf[mid:end]).find(b"\n")
+                    if k >= 0:
+                        cuts.insert(1, mid + k + 1)
+                spans = [(a, b, eof and b == end) for a, b in zip(cuts[:-1], cuts[1:])]
+
+                def parse(i: int, pos: int, buf=buf, spans=spans) -> tuple[int, int, int]:
+                    _a, b, final = spans[i]
+                    return tf.parse_block(
+                        buf, pos, b, final, delim, ncols, slot, outs[i], 0, tf.POW10
+                    )
+
+                later = [helper.submit(parse, i, spans[i][0]) for i in range(1, len(spans))]
+                done = [parse(0, spans[0][0])] + [f.result() for f in later]
+                pos = 0
+                for i, (status, pos, n) in enumerate(done):
+                    while True:
+                        if status == tf.BAIL:
+                            raise _NotPlain
+                        if n:
+                            yield row, outs[i][:, :n]
+                            row += n
+                        if status == tf.DONE:
+                            break
+                        status, pos, n = parse(i, pos)
+                if eof:
                     break
-                yield row, out[:, :n]
-                row, n = row + n, 0
-            if eof:
-                break
-            carry = end - pos
-            buf[:carry] = buf[pos:end]
-        if n:
-            yield row, out[:, :n]
+                carry = end - pos
+                buf[:carry] = buf[pos:end]
+    finally:
+        if helper is not None:
+            helper.shutdown(wait=True)
 
 
 def _bits(values: np.ndarray) -> np.ndarray:
@@ -486,44 +507,82 @@ def _bits(values: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(values).view(np.int64)
 
 
-class _DistinctSet:
-    """Distinct float64 values (by bit pattern, -0.0 as 0.0) in a growing hash table."""
+class _Interner:
+    """Distinct float64 values numbered in order of first appearance (hash table by bit
+    pattern, -0.0 taken as 0.0)."""
 
     def __init__(self, size: int = 1 << 12) -> None:
         from . import _text_fast as tf
 
         self.tf = tf
-        self.table = np.full(size, tf.EMPTY, dtype=np.int64)
+        self._alloc(size)
+
+    def _alloc(self, size: int) -> None:
+        self.table = np.full(size, self.tf.EMPTY, dtype=np.int64)
+        self.ids = np.zeros(size, dtype=np.int64)
+        self.order = np.empty(size // 2, dtype=np.int64)
         self.count = np.zeros(1, dtype=np.int64)
 
-    def add(self, bits: np.ndarray) -> None:
+    def add(self, bits: np.ndarray, out: np.ndarray) -> None:
+        """Number the values (``out[i]``: the number of bits[i]), adding new ones."""
         start = 0
         while True:
-            start = self.tf.add_distinct(bits, bits.size, self.table, self.count, start)
+            start = self.tf.intern(
+                bits, bits.size, self.table, self.ids, self.order, self.count, out, start
+            )
             if start == bits.size:
                 return
-            old = self.keys().view(np.int64)
-            self.table = np.full(2 * self.table.size, self.tf.EMPTY, dtype=np.int64)
-            self.count[0] = 0
-            self.tf.add_distinct(old, old.size, self.table, self.count, 0)
+            keys = self.order[: self.n].copy()
+            self._alloc(2 * self.table.size)
+            scratch = np.empty(keys.size, dtype=np.int32)
+            self.tf.intern(
+                keys, keys.size, self.table, self.ids, self.order, self.count, scratch, 0
+            )
+
+    def lookup(self, bits: np.ndarray, out: np.ndarray) -> None:
+        """``out[i]``: the number of bits[i], -1 where it is not known."""
+        self.tf.lookup(bits, bits.size, self.table, self.ids, out)
 
     @property
     def n(self) -> int:
         return int(self.count[0])
 
     def keys(self) -> np.ndarray:
-        return self.table[self.table != self.tf.EMPTY].view(np.float64)
+        """The values, in the order they are numbered."""
+        return self.order[: self.n].view(np.float64)
 
-    def index(self, index_of_keys) -> np.ndarray:
-        """Per table slot, the index ``index_of_keys(keys)`` gives each key (-1: empty)."""
-        idx = np.full(self.table.size, -1, dtype=np.int64)
-        occ = self.table != self.tf.EMPTY
-        idx[occ] = index_of_keys(self.table[occ].view(np.float64))
-        return idx
+
+def _scan(
+    spec: TextSpec,
+    chunk_rows: int,
+    value_range: bool,
+    options: Mapping[str, Any],
+    spill: Any = None,
+    spill_dtype: Any = None,
+) -> TextLayout:
+    """First pass by the compiled reader when it takes the table, else by pandas.
+
+    With ``spill`` (a binary file) and a long table read by the compiled reader, every
+    row is also written there as numbers of its x, y and spectral values and its value
+    (``spill_dtype``), so that the second pass reads that instead of the text.
+    """
+    if _fast_delimiter(spec) is not None:
+        try:
+            return _scan_fast(spec, chunk_rows, value_range, options, spill, spill_dtype)
+        except _NotPlain:
+            if spill is not None:
+                spill.seek(0)
+                spill.truncate()
+    return _scan_pandas(spec, chunk_rows, value_range, options)
 
 
 def _scan_fast(
-    spec: TextSpec, chunk_rows: int, value_range: bool, options: Mapping[str, Any]
+    spec: TextSpec,
+    chunk_rows: int,
+    value_range: bool,
+    options: Mapping[str, Any],
+    spill: Any = None,
+    spill_dtype: Any = None,
 ) -> TextLayout:
     """First pass with the compiled reader; raises _NotPlain for tables it does not take.
 
@@ -533,21 +592,31 @@ def _scan_fast(
     long = spec.layout == "long"
     cols = [spec.x, spec.y] + ([spec.spectral, spec.value] if long else spec.channel_cols)
     nv = 3 if long else 2
-    sets = [_DistinctSet() for _ in range(nv)]
+    sets = [_Interner() for _ in range(nv)]
+    ids = np.empty((nv, 0), dtype=np.int32)
     n = 0
     vmin, vmax = np.inf, -np.inf
+    spill = spill if long else None
     for _row0, block in _fast_blocks(spec, cols, chunk_rows, by_row=not long):
+        m = block.shape[1]
+        if ids.shape[1] < m:
+            ids = np.empty((nv, m), dtype=np.int32)
         for k in range(nv):
-            sets[k].add(_bits(block[k]))
+            sets[k].add(_bits(block[k]), ids[k, :m])
         if long and sets[2].n > _MAX_CHANNELS:
             raise FormatError(
                 f"{spec.path.name}: more than {_MAX_CHANNELS} distinct spectral values; "
                 "the spectral column must repeat the same channel values for every pixel"
             )
-        if value_range and block.shape[1]:
+        if value_range and m:
             v = block[nv:]
             vmin, vmax = min(vmin, float(v.min())), max(vmax, float(v.max()))
-        n += block.shape[1]
+        if spill is not None:
+            spill.write(np.int64(m).tobytes())
+            for k in range(nv):
+                spill.write(ids[k, :m])
+            spill.write(np.ascontiguousarray(block[nv], dtype=spill_dtype))
+        n += m
     if n == 0:
         raise FormatError(f"{spec.path.name}: the table has a header but no data rows")
     ux, uy = np.unique(sets[0].keys()), np.unique(sets[1].keys())
@@ -555,6 +624,21 @@ def _scan_fast(
     layout = _layout(spec, ux, uy, spectral, n, vmin, vmax, value_range, options)
     layout.fast = sets
     return layout
+
+
+def _spilled(spill: Any, dtype: Any) -> Iterator[tuple[np.ndarray, ...]]:
+    """Blocks (x, y, spectral numbers; values as a 1-row array) written by _scan_fast."""
+    spill.seek(0)
+    while True:
+        head = spill.read(8)
+        if len(head) < 8:
+            return
+        m = int(np.frombuffer(head, dtype=np.int64)[0])
+        parts = [np.empty(m, dtype=np.int32) for _ in range(3)] + [np.empty(m, dtype=dtype)]
+        for a in parts:
+            if spill.readinto(memoryview(a).cast("B")) != a.nbytes:
+                raise InputFileError("the conversion's temporary file was cut short")
+        yield parts[0], parts[1], parts[2], parts[3].reshape(1, m)
 
 
 def _fill_fast(
@@ -565,8 +649,11 @@ def _fill_fast(
     chunk_rows: int,
     tolerance: float,
     buffer_mib: float,
+    spill: Any = None,
+    spill_dtype: Any = None,
 ) -> None:
-    """Second pass with the compiled reader: values into a pool of whole chunks.
+    """Second pass: values into a pool of whole chunks, from ``spill`` (long tables) or
+    the text again (compiled reader).
 
     The pool holds ``buffer_mib`` of chunks (at least one); when a row needs a chunk
     not in it, the least recently used one is written out, and a chunk written
@@ -575,14 +662,10 @@ def _fill_fast(
     from . import _text_fast as tf
 
     long = spec.layout == "long"
-    sx, sy = layout.fast[0], layout.fast[1]
-    xi = sx.index(lambda v: layout.x.index(v, tolerance=tolerance, axis="x"))
-    yi = sy.index(lambda v: layout.y.index(v, tolerance=tolerance, axis="y"))
-    if long:
-        ss = layout.fast[2]
-        st, si = ss.table, ss.index(lambda v: np.searchsorted(layout.spectral, v))
-    else:
-        st, si = np.full(1, tf.EMPTY, dtype=np.int64), np.zeros(1, dtype=np.int64)
+    sets = layout.fast
+    xmap = layout.x.index(sets[0].keys(), tolerance=tolerance, axis="x")
+    ymap = layout.y.index(sets[1].keys(), tolerance=tolerance, axis="y")
+    smap = np.searchsorted(layout.spectral, sets[2].keys()) if long else np.zeros(1, np.int64)
     cy, cx, ns = array.chunks
     ny, nx, _ = array.shape
     nbx, nby = -(-nx // cx), -(-ny // cy)
@@ -624,18 +707,27 @@ def _fill_fast(
             at += f", {spec.spectral_dim}={layout.spectral[ic]:g}"
         return f"{spec.path.name}: duplicate position ({at} {spec.xy_units}): two rows give it"
 
-    cols = [spec.x, spec.y] + ([spec.spectral, spec.value] if long else spec.channel_cols)
-    none = np.empty(0, dtype=np.int64)
+    def reparsed() -> Iterator[tuple[np.ndarray, ...]]:
+        cols = [spec.x, spec.y] + ([spec.spectral, spec.value] if long else spec.channel_cols)
+        nv = 3 if long else 2
+        ids = np.empty((nv, 0), dtype=np.int32)
+        for _row0, block in _fast_blocks(spec, cols, chunk_rows, by_row=not long):
+            m = block.shape[1]
+            if ids.shape[1] < m:
+                ids = np.empty((nv, m), dtype=np.int32)
+            for k in range(nv):
+                sets[k].lookup(_bits(block[k]), ids[k, :m])
+            sid = ids[2, :m] if long else ids[2:, :0].ravel()
+            yield ids[0, :m], ids[1, :m], sid, block[nv:]
+
     try:
-        blocks = _fast_blocks(spec, cols, chunk_rows, by_row=not long)
-        for _row0, block in blocks:
-            n = block.shape[1]
-            xb, yb = _bits(block[0]), _bits(block[1])
-            sb, vals = (_bits(block[2]), block[3:]) if long else (none, block[2:])
+        blocks = _spilled(spill, spill_dtype) if spill is not None else reparsed()
+        for xid, yid, sid, vals in blocks:
+            n = xid.size
             start = 0
             while True:
                 status, start = tf.scatter(
-                    xb, yb, sb, vals, n, start, sx.table, xi, sy.table, yi, st, si,
+                    xid, yid, sid, vals, n, start, xmap, ymap, smap,
                     cy, cx, nbx, slot_of, pool, stamp, clock, res,
                 )  # fmt: skip
                 if status == tf.DONE:
@@ -861,20 +953,48 @@ def text_to_zarr(
     target: Any = out
     if isinstance(out, str | os.PathLike):
         target = prepare_output(out, overwrite=overwrite, attrs=attrs)
-    layout = scan_text(spec, chunk_rows=chunk_rows, **options)
-    skel = _skeleton(spec, layout, attrs, str(options.get("dtype", "float32")), target_chunk_mib)
-    write_zarr(cube_dataset(skel), target, zarr_format=zarr_format, compute=False)
-    # every chunk is stored, all-NaN ones too (a missing chunk then means a damaged store)
-    with zarr.config.set({"array.write_empty_chunks": True}):
-        array = zarr.open_group(target, mode="r+")[CUBE_NAME]
-        # grids and channel values ascend, so validate_cube kept the index order
-        plain = layout.fast is not None and array.dtype in (np.float32, np.float64)
-        (_fill_fast if plain else _fill)(
-            spec,
-            layout,
-            array,
-            chunk_rows=chunk_rows,
-            tolerance=float(options.get("grid_tolerance", DEFAULT_TOLERANCE)),
-            buffer_mib=buffer_mib,
-        )
+    dtype = str(options.get("dtype", "float32"))
+    try:
+        plain = np.dtype(dtype) in (np.float32, np.float64)
+    except TypeError:
+        plain = False
+    # a long table read by the compiled reader is parsed once: the first pass writes
+    # its rows as numbers to a nameless temporary file (about 16 bytes a row) that the
+    # second pass reads instead of the text
+    spill = None
+    if plain and spec.layout == "long" and _fast_delimiter(spec) is not None:
+        where = Path(target).parent if isinstance(target, Path) else None
+        spill = tempfile.TemporaryFile(prefix="pmap-text-", dir=where)
+    try:
+        layout = _scan(spec, chunk_rows, False, options, spill, np.dtype(dtype) if plain else None)
+        skel = _skeleton(spec, layout, attrs, dtype, target_chunk_mib)
+        write_zarr(cube_dataset(skel), target, zarr_format=zarr_format, compute=False)
+        # every chunk is stored, all-NaN ones too (a missing chunk then means a damaged store)
+        with zarr.config.set({"array.write_empty_chunks": True}):
+            array = zarr.open_group(target, mode="r+")[CUBE_NAME]
+            # grids and channel values ascend, so validate_cube kept the index order
+            tolerance = float(options.get("grid_tolerance", DEFAULT_TOLERANCE))
+            if layout.fast is not None and array.dtype in (np.float32, np.float64):
+                _fill_fast(
+                    spec,
+                    layout,
+                    array,
+                    chunk_rows=chunk_rows,
+                    tolerance=tolerance,
+                    buffer_mib=buffer_mib,
+                    spill=spill if spill is not None and spill.tell() > 0 else None,
+                    spill_dtype=np.dtype(dtype) if plain else None,
+                )
+            else:
+                _fill(
+                    spec,
+                    layout,
+                    array,
+                    chunk_rows=chunk_rows,
+                    tolerance=tolerance,
+                    buffer_mib=buffer_mib,
+                )
+    finally:
+        if spill is not None:
+            spill.close()
     return target

@@ -35,7 +35,7 @@ DONE, FULL, BAIL = 0, 1, 2
 NEED_CHUNK, DUPLICATE, UNKNOWN = 1, 2, 3
 
 #: Integers below 2**53 are exact doubles.
-_EXACT = 2.0**53
+_EXACT = 2**53
 _NL, _CR, _SP, _TAB = 10, 13, 32, 9
 _QUOTE, _HASH = 34, 35
 _PLUS, _MINUS, _DOT, _E, _e = 43, 45, 46, 69, 101
@@ -53,8 +53,9 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
     starts), FULL (``out`` has no room left; pos is the next line) or BAIL (a line
     outside the plain grammar).
 
-    One loop over the bytes; a number's digits accumulate as ``number * 10 + digit``
-    (exact while below 2**53), then one multiplication or division by
+    One loop over the bytes; a number's digits accumulate as an integer
+    ``mantissa * 10 + digit`` (a double holds it exactly below 2**53), then one
+    multiplication or division by
     ``pow10[|exponent|]`` (exact up to 1e22) rounds it correctly.
     """
     cap = out.shape[1]
@@ -67,8 +68,8 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
     fstart = pos
     infield = False  # whitespace mode: inside a field
     blanks = False  # whitespace mode: the line has leading blanks
-    number, nd, ndec = 0.0, 0, 0
-    phase, neg, eneg, epos, en, ed, bad = 0, False, False, -2, 0, 0, False
+    mant, nd, ndec = 0, 0, 0
+    phase, neg, eneg, en, ed, bad = 0, False, False, 0, 0, False
     while True:
         if pos < end:
             c = np.int64(buf[pos])
@@ -78,15 +79,11 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
             return DONE, line, nrow
         d = c - 48
         if 0 <= d <= 9:
-            if phase < 2:
-                number = number * 10.0 + d
-                nd += 1
-                ndec += phase
-            elif ed < 17:
-                en = en * 10 + d
-                ed += 1
-            else:
+            if phase == 2:  # a digit after the exponent's: leave it to pandas
                 bad = True
+            mant = mant * 10 + d
+            nd += 1
+            ndec += phase
             infield = True
             pos += 1
             continue
@@ -134,10 +131,13 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
                 if k >= 0:
                     if bad or nd == 0 or (phase == 2 and ed == 0):
                         return BAIL, line, nrow
-                    if number != 0.0:
+                    if nd > 18:  # the integer mantissa may have wrapped
+                        return BAIL, line, nrow
+                    number = np.float64(mant)
+                    if mant != 0:
                         # exact integer mantissa and power of ten: one correctly rounded step
                         exponent = (-en if eneg else en) - ndec
-                        if not number < _EXACT or exponent > 22 or exponent < -22:
+                        if mant >= _EXACT or exponent > 22 or exponent < -22:
                             return BAIL, line, nrow
                         if exponent > 0:
                             number *= pow10[exponent]
@@ -145,8 +145,8 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
                             number /= pow10[-exponent]
                     out[k, nrow] = -number if neg else number
                 j += 1
-                number, nd, ndec = 0.0, 0, 0
-                phase, neg, eneg, epos, en, ed, bad = 0, False, False, -2, 0, 0, False
+                mant, nd, ndec = 0, 0, 0
+                phase, neg, eneg, en, ed, bad = 0, False, False, 0, 0, False
                 infield = False
             pos += 1
             fstart = pos
@@ -170,15 +170,21 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
                 bad = True
         elif c == _E or c == _e:
             if phase < 2 and nd > 0:
+                # the exponent: optional sign, then up to 17 digits, read here
                 phase = 2
-                epos = pos
-            else:
-                bad = True
+                pos += 1
+                if pos < end and (buf[pos] == _MINUS or buf[pos] == _PLUS):
+                    eneg = buf[pos] == _MINUS
+                    pos += 1
+                while pos < end and 48 <= buf[pos] <= 57 and ed < 17:
+                    en = en * 10 + (np.int64(buf[pos]) - 48)
+                    ed += 1
+                    pos += 1
+                continue
+            bad = True
         elif c == _MINUS or c == _PLUS:
             if pos == fstart:
                 neg = c == _MINUS
-            elif phase == 2 and pos == epos + 1:
-                eneg = c == _MINUS
             else:
                 bad = True
         elif c == _QUOTE or c == _HASH or c == 0:
@@ -199,98 +205,102 @@ def _home(bits, mask):
 
 
 @nb.njit(cache=True, nogil=True)
-def add_distinct(bits, n, table, count, start):
-    """Add bits[start:n] (float64 bit patterns) to the hash set ``table``.
+def intern(bits, n, table, ids, order, count, out, start):
+    """Number the distinct values of bits[start:n] (float64 bit patterns) in order of
+    first appearance: ``out[i]`` is the number of value i.
 
-    ``count[0]`` holds the number of keys. Returns the index where it stopped:
-    n when done, less when the table is half full and must grow first.
+    ``table``/``ids`` are the hash table (keys, their numbers), ``order[k]`` the key
+    numbered k, ``count[0]`` how many there are. Returns the index where it stopped:
+    n when done, less when the table is half full or ``order`` full (grow, go on).
     """
     mask = table.size - 1
-    limit = table.size // 2
-    last = EMPTY
+    limit = min(table.size // 2, order.size)
+    last, last_id = EMPTY, -1
     for i in range(start, n):
         b = bits[i]
         if b == _NEG_ZERO:
             b = 0
-        if b == last:
-            continue
-        last = b
-        h = _home(b, mask)
-        while True:
-            t = table[h]
-            if t == b:
-                break
-            if t == EMPTY:
-                if count[0] >= limit:
-                    return i
-                table[h] = b
-                count[0] += 1
-                break
-            h = (h + 1) & mask
+        if b != last:
+            h = _home(b, mask)
+            while True:
+                t = table[h]
+                if t == b:
+                    last_id = ids[h]
+                    break
+                if t == EMPTY:
+                    if count[0] >= limit:
+                        return i
+                    k = count[0]
+                    table[h], ids[h], order[k] = b, k, b
+                    count[0] = k + 1
+                    last_id = k
+                    break
+                h = (h + 1) & mask
+            last = b
+        out[i] = last_id
     return n
 
 
 @nb.njit(cache=True, nogil=True)
-def _find(table, b):
-    if b == _NEG_ZERO:
-        b = 0
+def lookup(bits, n, table, ids, out):
+    """``out[i]``: the number of value bits[i] in the hash table, -1 if it is not there."""
     mask = table.size - 1
-    h = _home(b, mask)
-    while True:
-        t = table[h]
-        if t == b:
-            return h
-        if t == EMPTY:
-            return -1
-        h = (h + 1) & mask
-
-
-@nb.njit(cache=True, nogil=True)
-def _index(table, index, b):
-    h = _find(table, b)
-    return -1 if h < 0 else index[h]
+    last, last_id = EMPTY, -1
+    for i in range(n):
+        b = bits[i]
+        if b == _NEG_ZERO:
+            b = 0
+        if b != last:
+            last_id = -1
+            h = _home(b, mask)
+            while True:
+                t = table[h]
+                if t == b:
+                    last_id = ids[h]
+                    break
+                if t == EMPTY:
+                    break
+                h = (h + 1) & mask
+            last = b
+        out[i] = last_id
 
 
 @nb.njit(cache=True, nogil=True)
 def scatter(
-    xbits, ybits, sbits, vals, n, start,
-    xt, xi, yt, yi, st, si,
+    xid, yid, sid, vals, n, start, xmap, ymap, smap,
     cy, cx, nbx, slot_of, pool, stamp, clock, res,
 ):  # fmt: skip
-    """Put rows start..n-1 into the chunk pool; long table when ``sbits`` has n values.
+    """Put rows start..n-1 into the chunk pool; a long table when ``sid`` has n values.
 
-    Long table: row i is value ``vals[0, i]`` at (y, x, channel) looked up from the
-    bit patterns of its y, x and spectral values. Wide table: row i is the whole
-    spectrum ``vals[:, i]`` at (y, x). Returns (status, row) with status DONE,
-    NEED_CHUNK (``res[0]`` = chunk key not in the pool), DUPLICATE (``res[:3]`` =
-    y, x, channel index of a cell given twice; channel -1 for a whole spectrum)
-    or UNKNOWN (a value not seen by the first pass: the file changed).
+    Row i sits at grid (``ymap[yid[i]]``, ``xmap[xid[i]]``). Long table: its value
+    ``vals[0, i]`` goes to channel ``smap[sid[i]]``; wide table: the whole spectrum
+    ``vals[:, i]``. Returns (status, row) with status DONE, NEED_CHUNK (``res[0]`` =
+    chunk key not in the pool), DUPLICATE (``res[:3]`` = y, x, channel index of a
+    cell given twice; channel -1 for a whole spectrum) or UNKNOWN (a value the
+    first pass did not see: the file changed).
     """
-    long = sbits.size == n and n > 0
+    long = sid.size == n and n > 0
     ns = pool.shape[3]
-    lx_b, lx_i = EMPTY, -1
-    ly_b, ly_i = EMPTY, -1
     for i in range(start, n):
-        if xbits[i] != lx_b:
-            lx_b, lx_i = xbits[i], _index(xt, xi, xbits[i])
-        if ybits[i] != ly_b:
-            ly_b, ly_i = ybits[i], _index(yt, yi, ybits[i])
-        ix, iy = lx_i, ly_i
-        if ix < 0 or iy < 0:
+        if xid[i] < 0 or yid[i] < 0:
             return UNKNOWN, i
-        key = (iy // cy) * nbx + ix // cx
+        ix = xmap[xid[i]]
+        iy = ymap[yid[i]]
+        by = iy // cy
+        bx = ix // cx
+        key = by * nbx + bx
         s = slot_of[key]
         if s < 0:
             res[0] = key
             return NEED_CHUNK, i
         stamp[s] = clock[0]
         clock[0] += 1
-        ly = iy - (iy // cy) * cy
-        lx = ix - (ix // cx) * cx
+        ly = iy - by * cy
+        lx = ix - bx * cx
         if long:
-            ic = _index(st, si, sbits[i])
-            if ic < 0:
+            if sid[i] < 0:
                 return UNKNOWN, i
+            ic = smap[sid[i]]
             if not np.isnan(pool[s, ly, lx, ic]):
                 res[0], res[1], res[2] = iy, ix, ic
                 return DUPLICATE, i
