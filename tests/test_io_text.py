@@ -257,3 +257,183 @@ def test_streaming_memory_bound(tmp_path):
     c = open_cube(tmp_path / "big.zarr")
     assert c.shape == shape
     assert float(c.isel(y=0, x=0).max()) > 1000  # the generated peak is there
+
+
+# --- the compiled reader of plain tables (pmap.io._text_fast) ---------------------------------
+
+
+def _store_bytes(path) -> dict[str, bytes]:
+    """Every array of a Zarr store as raw bytes (dtype and shape included)."""
+    g = zarr.open_group(path, mode="r")
+    return {
+        k: (str(g[k].dtype), g[k].shape, g[k].chunks, g[k][...].tobytes())
+        for k in sorted(g.array_keys())
+    }
+
+
+def _pandas_only(monkeypatch):
+    """Make text_to_zarr read every table with pandas (the reader before the compiled one)."""
+    from pmap.io import _text
+
+    monkeypatch.setattr(_text, "_fast_delimiter", lambda spec: None)
+
+
+def _plain_long_table(path, *, seed=0, ny=7, nx=9, ns=23, drop=0.1, shuffle=True):
+    """A long table written with numpy's own formatting, some pixels missing, rows
+    shuffled; returns (rows as an (n, 4) float array parsed back by Python's float)."""
+    rng = np.random.default_rng(seed)
+    wl = 500.0 + 0.37 * np.arange(ns)
+    yy, xx, ww = np.meshgrid(np.arange(ny), np.arange(nx), wl, indexing="ij")
+    keep = np.repeat(rng.random(ny * nx) >= drop, ns)
+    vals = rng.normal(1000.0, 300.0, yy.size)
+    lines = [
+        f"{x * 0.25 - 1.0:.2f},{y * 0.25 + 2.0:.2f},{w:.2f},{v:.4f}"
+        for x, y, w, v, k in zip(xx.ravel(), yy.ravel(), ww.ravel(), vals, keep)
+        if k
+    ]
+    if shuffle:
+        lines = [lines[i] for i in rng.permutation(len(lines))]
+    path.write_text("x_um,y_um,wavelength_nm,intensity\n" + "\n".join(lines) + "\n")
+    return np.array([[float(f) for f in ln.split(",")] for ln in lines])
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_conversion_matches_an_independent_reading(tmp_path, seed):
+    """Every (y, x, channel) of the cube holds float32 of the row that names it (rows
+    read by Python's float, positions put on the grid by hand); all other cells are
+    NaN. Reference: the file's own rows (common practice)."""
+    src = tmp_path / "t.csv"
+    rows = _plain_long_table(src, seed=seed)
+    out = text_to_zarr(
+        src, tmp_path / "t.zarr", chunk_rows=101, buffer_mib=1e-6, target_chunk_mib=2e-3
+    )
+    from pmap.io import _text
+
+    assert _text.scan_text(_text.inspect_text(src)).fast is not None  # compiled reader used
+    cube = open_cube(out)
+    assert zarr.open_group(out)["intensity"].chunks[0] < cube.shape[0]  # several chunks
+    x0, y0 = rows[:, 0].min(), rows[:, 1].min()
+    ix = np.rint((rows[:, 0] - x0) / 0.25).astype(int)
+    iy = np.rint((rows[:, 1] - y0) / 0.25).astype(int)
+    wl = np.unique(rows[:, 2])
+    ic = np.searchsorted(wl, rows[:, 2])
+    expect = np.full((iy.max() + 1, ix.max() + 1, wl.size), np.nan, dtype=np.float32)
+    expect[iy, ix, ic] = rows[:, 3].astype(np.float32)
+    assert cube.shape == expect.shape
+    np.testing.assert_array_equal(cube.values, expect)  # NaN where no row, bit for bit
+    np.testing.assert_array_equal(cube.wavelength.values, wl)
+    np.testing.assert_allclose(cube.x.values, x0 + 0.25 * np.arange(expect.shape[1]), atol=1e-9)
+
+
+@pytest.mark.parametrize(
+    "name, text, fast",
+    [
+        # plain tables the compiled reader takes
+        ("crlf.csv", "x,y,wavelength,intensity\r\n{rows_crlf}", True),
+        ("blank.csv", "x,y,wavelength,intensity\n\n{rows}\n\n", True),
+        ("ws.txt", "# stage scan\nx y wavelength intensity\n{rows_ws}", True),
+        ("exp.csv", "x,y,wavelength,intensity\n{rows_exp}", True),
+        ("noeol.csv", "x,y,wavelength,intensity\n{rows_noeol}", True),
+        # tables it leaves to pandas
+        ("comment.csv", "x,y,wavelength,intensity\n{rows_comment}", False),
+        ("quoted.csv", "x,y,wavelength,intensity\n{rows_quoted}", False),
+        ("long_digits.csv", "x,y,wavelength,intensity\n{rows_digits}", False),
+        ("padded.csv", "x,y,wavelength,intensity\n{rows_padded}", False),
+    ],
+)
+def test_compiled_reader_gives_the_pandas_cube(tmp_path, monkeypatch, name, text, fast):
+    """The same store, bit for bit, whether the compiled reader or pandas reads the
+    table (pandas is the reference: the reader used before, common practice)."""
+    rng = np.random.default_rng(7)
+    rows = [
+        (x, y, 600.0 + 0.5 * c, float(np.round(rng.uniform(0, 5e4), 3)))
+        for y in range(3)
+        for x in range(4)
+        for c in range(6)
+    ]
+    csv_rows = [f"{x},{y},{w},{v}" for x, y, w, v in rows]
+    parts = {
+        "rows": "\n".join(csv_rows),
+        "rows_crlf": "".join(r + "\r\n" for r in csv_rows),
+        "rows_ws": "".join(f"  {x}\t{y}  {w} {v}  \n" for x, y, w, v in rows),
+        "rows_exp": "".join(f"{x:.1e},{y}E0,{w:.6e},{v:.9e}\n" for x, y, w, v in rows),
+        "rows_noeol": "\n".join(csv_rows),
+        "rows_comment": "\n".join(csv_rows[:30] + ["# pause"] + csv_rows[30:]) + "\n",
+        "rows_quoted": "".join(f'{x},{y},"{w}",{v}\n' for x, y, w, v in rows),
+        "rows_digits": "".join(f"{x},{y},{w},{v:.12f}\n" for x, y, w, v in rows),
+        "rows_padded": "".join(f"{x}, {y},{w},{v}\n" for x, y, w, v in rows),
+    }
+    src = tmp_path / name
+    src.write_bytes(text.format(**parts).encode())
+    from pmap.io import _text
+
+    layout = _text.scan_text(_text.inspect_text(src))
+    assert (layout.fast is not None) == fast
+    assert layout.n_rows == len(rows)
+    out_fast = text_to_zarr(src, tmp_path / "fast.zarr", chunk_rows=5, target_chunk_mib=1e-3)
+    with monkeypatch.context() as m:
+        _pandas_only(m)
+        out_pd = text_to_zarr(src, tmp_path / "pd.zarr", chunk_rows=5, target_chunk_mib=1e-3)
+    assert _store_bytes(out_fast) == _store_bytes(out_pd)
+    expect = np.array([v for *_, v in rows], dtype=np.float32).reshape(3, 4, 6)
+    np.testing.assert_array_equal(open_cube(out_fast).values, expect)
+
+
+def test_compiled_reader_wide_table_and_float64(tmp_path, monkeypatch, data):
+    """Wide tables and a float64 cube: same store as pandas gives (common practice)."""
+    src = tmp_path / "w.csv"
+    wide_frame(data, reverse=True).sample(frac=1.0, random_state=1).to_csv(src, index=False)
+    for dtype in ("float32", "float64"):
+        a = text_to_zarr(src, tmp_path / f"a{dtype}.zarr", dtype=dtype, target_chunk_mib=1e-3)
+        with monkeypatch.context() as m:
+            _pandas_only(m)
+            b = text_to_zarr(src, tmp_path / f"b{dtype}.zarr", dtype=dtype, target_chunk_mib=1e-3)
+        assert _store_bytes(a) == _store_bytes(b)
+        np.testing.assert_array_equal(open_cube(a).values, data.astype(dtype))
+
+
+def test_compiled_reader_names_the_duplicate(tmp_path):
+    """A row given twice is named by its position (the row repeated by hand, last)."""
+    src = tmp_path / "d.csv"
+    rows = _plain_long_table(src, seed=4, drop=0.0, shuffle=False)
+    lines = src.read_text().splitlines()
+    src.write_text("\n".join(lines + [lines[5]]) + "\n")  # row 5 again, at the end
+    x, y, w = rows[4, :3]
+    with pytest.raises(FormatError, match="duplicate position") as err:
+        text_to_zarr(src, tmp_path / "d.zarr", buffer_mib=1e-6, target_chunk_mib=1e-3)
+    assert f"x={x:g}, y={y:g}, wavelength={w:g}" in str(err.value)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    st.lists(
+        st.one_of(
+            st.floats(allow_nan=False, allow_infinity=False).map(repr),
+            st.floats(-1e6, 1e6, allow_nan=False).map(lambda v: f"{v:.4f}"),
+            st.floats(-1e6, 1e6, allow_nan=False).map(lambda v: f"{v:.5e}"),
+            st.integers(-(10**18), 10**18).map(str),
+            st.from_regex(
+                r"[+-]?[0-9]{0,12}(\.[0-9]{0,10})?([eE][+-]?[0-9]{1,3})?", fullmatch=True
+            ),
+        ),
+        min_size=1,
+        max_size=40,
+    )
+)
+def test_compiled_number_reading_is_correctly_rounded(texts):
+    """Each number the compiled reader accepts is the correctly rounded double that
+    Python's float gives (IEEE 754 round to nearest; W. D. Clinger, PLDI 1990: an exact
+    mantissa below 2**53 scaled once by an exact power of ten up to 1e22 rounds once)."""
+    from pmap.io import _text_fast as tf
+
+    for t in texts:
+        raw = np.frombuffer((t + "\n").encode(), dtype=np.uint8)
+        out = np.empty((1, 1))
+        status, _, n = tf.parse_block(raw, 0, raw.size, True, 44, 1, np.zeros(1, np.int64),
+                                      out, 0, tf.POW10)  # fmt: skip
+        if status == tf.BAIL:
+            continue  # left to pandas
+        assert n == (1 if t else 0)  # an empty line is a blank line, skipped
+        if not t:
+            continue
+        assert out[0, 0].tobytes() == np.float64(float(t)).tobytes(), t
