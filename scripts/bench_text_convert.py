@@ -5,10 +5,14 @@ pixel and channel) of about ``--size`` bytes, converts it with
 :func:`pmap.io.text_to_zarr` in a child process, and reports the child's peak
 RSS and throughput next to a baseline measured in the same run: a plain
 chunked ``pandas.read_csv`` over the same file (one pass, no processing).
+It does so at two sizes (``--small``, by default a quarter of ``--size``, then
+``--size``) to show that peak RSS does not grow with the file, prints the load
+average, and ends with ``convert_vs_pandas: N`` (conversion time / pandas read
+time at ``--size``, measured in the same run).
 
     python scripts/bench_text_convert.py --size 2G --dir /tmp
 
-The file and the output store are deleted at the end unless ``--keep``.
+The files and the output stores are deleted at the end unless ``--keep``.
 """
 
 from __future__ import annotations
@@ -156,9 +160,52 @@ def _parse_size(text: str) -> float:
     return float(text[:-1] if text[-1:] in "KMG" else text) * mult
 
 
+def measure(size_bytes: float, work: Path, a: argparse.Namespace) -> dict:
+    """Generate a table of about ``size_bytes``, convert it and read it with pandas."""
+    src, out = work / "map_long.csv", work / "map.zarr"
+    t0 = time.perf_counter()
+    shape = write_long_table(src, size_bytes)
+    size = src.stat().st_size
+    print(f"generated {size / 1e9:.2f} GB, cube {shape} in {time.perf_counter() - t0:.1f} s")
+    common = [
+        "--chunk-rows",
+        str(a.chunk_rows),
+        "--buffer-mib",
+        str(a.buffer_mib),
+        "--chunk-mib",
+        str(a.chunk_mib),
+    ]
+    try:
+        conv = run_child("--child", "convert", str(src), str(out), *common)
+        base = run_child("--child", "baseline", str(src), *common)
+    finally:
+        if not a.keep:
+            src.unlink(missing_ok=True)
+            shutil.rmtree(out, ignore_errors=True)
+    mb = size / 1e6
+    ratio = conv["seconds"] / base["seconds"]
+    print(
+        f"  text_to_zarr : {conv['seconds']:.2f} s, {mb / conv['seconds']:.0f} MB/s, "
+        f"peak RSS {conv['rss_peak_mib']:.0f} MiB (after imports {conv['rss_before_mib']:.0f}, "
+        f"growth {conv['rss_peak_mib'] - conv['rss_before_mib']:.0f})"
+    )
+    print(
+        f"  pandas read  : {base['seconds']:.2f} s, {mb / base['seconds']:.0f} MB/s, "
+        f"peak RSS {base['rss_peak_mib']:.0f} MiB ({base['rows']} rows, one chunked pass)"
+    )
+    print(f"  ratio        : conversion takes {ratio:.2f}x the plain pandas read")
+    return {"size": size, "rows": base["rows"], "ratio": ratio, "conv": conv, "base": base}
+
+
 def main(argv: list[str] | None = None) -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
     ap.add_argument("--size", default="2G", help="text file size, e.g. 2G, 200M (default 2G)")
+    ap.add_argument(
+        "--small",
+        default=None,
+        help="a second, smaller size measured first to show that peak RSS does not grow "
+        "with the file (default: a quarter of --size; 0 to skip)",
+    )
     ap.add_argument("--dir", default=tempfile.gettempdir(), help="where to write (default /tmp)")
     ap.add_argument("--chunk-rows", type=int, default=1_000_000)
     ap.add_argument("--buffer-mib", type=float, default=256.0)
@@ -172,39 +219,25 @@ def main(argv: list[str] | None = None) -> None:
         else:
             _child_baseline(a.child[1], a.chunk_rows)
         return
+    big = _parse_size(a.size)
+    small = big / 4 if a.small is None else _parse_size(a.small)
+    print(f"load average at start: {' '.join(f'{v:.2f}' for v in os.getloadavg())}")
     work = Path(tempfile.mkdtemp(prefix="pmap_bench_", dir=a.dir))
-    src, out = work / "map_long.csv", work / "map.zarr"
     try:
-        t0 = time.perf_counter()
-        shape = write_long_table(src, _parse_size(a.size))
-        size = src.stat().st_size
-        print(f"generated {size / 1e9:.2f} GB, cube {shape} in {time.perf_counter() - t0:.1f} s")
-        common = [
-            "--chunk-rows",
-            str(a.chunk_rows),
-            "--buffer-mib",
-            str(a.buffer_mib),
-            "--chunk-mib",
-            str(a.chunk_mib),
-        ]
-        conv = run_child("--child", "convert", str(src), str(out), *common)
-        base = run_child("--child", "baseline", str(src), *common)
-        mb = size / 1e6
-        print(
-            f"text_to_zarr : {conv['seconds']:.1f} s, {mb / conv['seconds']:.0f} MB/s, "
-            f"peak RSS {conv['rss_peak_mib']:.0f} MiB (after imports {conv['rss_before_mib']:.0f})"
-        )
-        print(
-            f"pandas read  : {base['seconds']:.1f} s, {mb / base['seconds']:.0f} MB/s, "
-            f"peak RSS {base['rss_peak_mib']:.0f} MiB (baseline, one chunked pass)"
-        )
-        print(
-            f"ratio        : conversion takes {conv['seconds'] / base['seconds']:.2f}x the "
-            f"plain pandas read; peak RSS / file size = {conv['rss_peak_mib'] * 2**20 / size:.3f}"
-        )
+        runs = [measure(s, work, a) for s in ([small] if small > 0 else []) + [big]]
     finally:
         if not a.keep:
             shutil.rmtree(work, ignore_errors=True)
+    print(f"load average at end: {' '.join(f'{v:.2f}' for v in os.getloadavg())}")
+    if len(runs) == 2:
+        (s0, s1) = runs
+        g0 = s0["conv"]["rss_peak_mib"] - s0["conv"]["rss_before_mib"]
+        g1 = s1["conv"]["rss_peak_mib"] - s1["conv"]["rss_before_mib"]
+        print(
+            f"peak RSS growth: {g0:.0f} MiB at {s0['size'] / 1e9:.2f} GB, {g1:.0f} MiB at "
+            f"{s1['size'] / 1e9:.2f} GB (file {s1['size'] / s0['size']:.1f}x larger)"
+        )
+    print(f"convert_vs_pandas: {runs[-1]['ratio']:.2f}")
 
 
 if __name__ == "__main__":
