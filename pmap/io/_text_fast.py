@@ -66,7 +66,6 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
     # per line: fields done; per field: start, state and digits
     j = 0
     fstart = pos
-    infield = False  # whitespace mode: inside a field
     blanks = False  # whitespace mode: the line has leading blanks
     mant, nd, ndec = 0, 0, 0
     phase, neg, eneg, en, ed, bad = 0, False, False, 0, 0, False
@@ -79,12 +78,9 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
             return DONE, line, nrow
         d = c - 48
         if 0 <= d <= 9:
-            if phase == 2:  # a digit after the exponent's: leave it to pandas
-                bad = True
             mant = mant * 10 + d
             nd += 1
             ndec += phase
-            infield = True
             pos += 1
             continue
         sep = (c == _SP or c == _TAB) if ws else c == delim
@@ -92,6 +88,8 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
             if pos + 1 < end:
                 if buf[pos + 1] != _NL:
                     return BAIL, line, nrow
+                if fstart == pos:
+                    fstart += 1
                 pos += 1
                 c = _NL
             elif not final:
@@ -99,7 +97,7 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
             else:
                 c = _NL
         if sep or c == _NL:
-            if ws and not infield:
+            if ws and pos == fstart:
                 if c == _NL:
                     if j == 0:
                         if blanks:
@@ -124,7 +122,7 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
                     return FULL, pos, nrow
                 continue
             # end of field j
-            if not (ws and not infield):
+            if not (ws and pos == fstart):
                 if j >= ncols:
                     return BAIL, line, nrow  # too many fields
                 k = slot[j]
@@ -147,7 +145,6 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
                 j += 1
                 mant, nd, ndec = 0, 0, 0
                 phase, neg, eneg, en, ed, bad = 0, False, False, 0, 0, False
-                infield = False
             pos += 1
             fstart = pos
             if c == _NL:
@@ -162,7 +159,6 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
                 if pos >= end and final:
                     return DONE, pos, nrow
             continue
-        infield = True
         if c == _DOT:
             if phase == 0:
                 phase = 1
@@ -176,8 +172,11 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
                 if pos < end and (buf[pos] == _MINUS or buf[pos] == _PLUS):
                     eneg = buf[pos] == _MINUS
                     pos += 1
-                while pos < end and 48 <= buf[pos] <= 57 and ed < 17:
-                    en = en * 10 + (np.int64(buf[pos]) - 48)
+                while pos < end and 48 <= buf[pos] <= 57:
+                    if ed < 17:
+                        en = en * 10 + (np.int64(buf[pos]) - 48)
+                    else:
+                        bad = True  # pandas would stop reading there
                     ed += 1
                     pos += 1
                 continue
