@@ -46,6 +46,7 @@ from ._merge import (
     merge_history,
     mixed_groups,
     pair_score,
+    step_z,
 )
 
 FEATURE_SPACES = ("emission", "shape", "shape+intensity", "abundance", "parameters")
@@ -591,9 +592,11 @@ def _fit_merge(
         if continuum[piece_sizes > 0].all():
             continuum[:] = False
     emit = np.flatnonzero(~continuum & (piece_sizes > 0))
+    data.step_z = step_z(n0)
     if spectra is not None:
         data.spectra = spectra
         data.host_ok = ~continuum[lab]
+        data.piece = lab
         if continuum.any():
             data.continuum = np.array([_unit_area(m) for m in piece_means[continuum]])
     states = merge_history(data, lab, emit)
