@@ -30,6 +30,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from .conventions import SPECTRAL_DIMS
 from .errors import FormatError, InputFileError, OutputExistsError
 from .io._write import partial_name
 from .noise import describe_noise_coords
@@ -244,6 +245,26 @@ def _block_name(ys: slice, xs: slice) -> str:
 _DONE_KEY = "pmap-block-done-"
 
 
+#: zstd level of the spectra kept in a result (the processed cube): noisy float32
+#: spectra compress by ~8 % at level 1 and ~11 % at the default level 3, which costs
+#: 4x the CPU time (46 vs 11 ms per 8 MiB chunk), about 5 % of a whole run. Lossless:
+#: the values are the same.
+SPECTRA_ZSTD_LEVEL = 1
+
+
+def _fast_codec_for_spectra(ds: xr.Dataset) -> None:
+    """Set a fast lossless compressor (zstd, SPECTRA_ZSTD_LEVEL) on the variables with a
+    spectral dim (in place); the maps keep the default. Zarr v3 stores only."""
+    import zarr
+
+    if int(zarr.config.get("default_zarr_format", 3)) != 3:
+        return
+    for v in ds.data_vars.values():
+        if any(d in SPECTRAL_DIMS for d in v.dims) and "compressors" not in v.encoding \
+                and "compressor" not in v.encoding:
+            v.encoding["compressors"] = (zarr.codecs.ZstdCodec(level=SPECTRA_ZSTD_LEVEL),)
+
+
 def _metadata_template(ds: xr.Dataset) -> xr.Dataset:
     """``ds`` with every dask variable replaced by zeros of the same chunks: writing it with
     ``compute=False`` creates the Zarr arrays without building a store graph of the real maps."""
@@ -405,6 +426,8 @@ def write_result(
     for v in ds.variables.values():
         v.encoding.pop("chunks", None)
         v.encoding.pop("preferred_chunks", None)
+    if fresh:
+        _fast_codec_for_spectra(ds)
     spatial = [k for k, v in ds.data_vars.items() if "y" in v.dims and "x" in v.dims]
     streaming = streaming or client is not None
     ds = _grow_write_blocks(ds, spatial, strips=streaming)
