@@ -303,7 +303,7 @@ def test_conversion_matches_an_independent_reading(tmp_path, seed):
     read by Python's float, positions put on the grid by hand); all other cells are
     NaN. Reference: the file's own rows (common practice)."""
     src = tmp_path / "t.csv"
-    rows = _plain_long_table(src, seed=seed)
+    rows = _plain_long_table(src, seed=seed, shuffle=seed != 2)  # seed 2: raster order
     out = text_to_zarr(
         src, tmp_path / "t.zarr", chunk_rows=101, buffer_mib=1e-6, target_chunk_mib=2e-3
     )
@@ -437,3 +437,40 @@ def test_compiled_number_reading_is_correctly_rounded(texts):
         if not t:
             continue
         assert out[0, 0].tobytes() == np.float64(float(t)).tobytes(), t
+
+
+_NUMBER = st.one_of(
+    st.floats(-1e6, 1e6, allow_nan=False).map(lambda v: f"{v:.3f}"),
+    st.integers(-(10**6), 10**6).map(str),
+    st.from_regex(r"[+-]?[0-9]{1,5}(\.[0-9]{0,4})?", fullmatch=True),
+)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    st.lists(
+        st.tuples(st.booleans(), st.lists(_NUMBER, min_size=4, max_size=4)), min_size=1, max_size=30
+    ),
+    st.sampled_from([",", ";", "\t", " "]),
+)
+def test_compiled_lines_field_by_field(lines, sep):
+    """Lines that often repeat the first two fields of the line before (a long table's
+    x and y): every field is Python's float of its text (reference: the text itself)."""
+    from pmap.io import _text_fast as tf
+
+    fields, prev = [], None
+    for repeat, f in lines:
+        if repeat and prev is not None:
+            f = prev[:2] + f[2:]
+        fields.append(f)
+        prev = f
+    text = "".join(sep.join(f) + "\n" for f in fields)
+    raw = np.frombuffer(text.encode(), dtype=np.uint8)
+    out = np.empty((4, len(fields)))
+    delim = 0 if sep == " " else ord(sep)
+    status, _, n = tf.parse_block(raw, 0, raw.size, True, delim, 4, np.arange(4), out, 0, tf.POW10)
+    if status == tf.BAIL:
+        return  # a field it leaves to pandas
+    assert n == len(fields)
+    expect = np.array([[float(v) for v in f] for f in fields]).T
+    assert out.tobytes() == expect.tobytes()

@@ -69,6 +69,7 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
     blanks = False  # whitespace mode: the line has leading blanks
     mant, nd, ndec = 0, 0, 0
     phase, neg, eneg, en, ed, bad = 0, False, False, 0, 0, False
+    pstart, plen, pv0, pv1 = 0, 0, 0.0, 0.0  # the last line's first two fields
     while True:
         if pos < end:
             c = np.int64(buf[pos])
@@ -141,10 +142,17 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
                             number *= pow10[exponent]
                         elif exponent < 0:
                             number /= pow10[-exponent]
-                    out[k, nrow] = -number if neg else number
+                    val = -number if neg else number
+                    out[k, nrow] = val
+                    if j == 0:
+                        pv0 = val
+                    elif j == 1:
+                        pv1 = val
                 j += 1
                 mant, nd, ndec = 0, 0, 0
                 phase, neg, eneg, en, ed, bad = 0, False, False, 0, 0, False
+                if j == 2 and c != _NL:  # this line's first two fields, for the next line
+                    pstart, plen = line, pos + 1 - line
             pos += 1
             fstart = pos
             if c == _NL:
@@ -158,6 +166,20 @@ def parse_block(buf, pos, end, final, delim, ncols, slot, out, nrow, pow10):
                     return FULL, pos, nrow
                 if pos >= end and final:
                     return DONE, pos, nrow
+                # a line that starts with the same bytes as the last one (a long table's
+                # x and y for every channel of a pixel) has the same first two values
+                if plen > 0 and pos + plen <= end:
+                    t = 0
+                    while t < plen and buf[pos + t] == buf[pstart + t]:
+                        t += 1
+                    if t == plen:
+                        if slot[0] >= 0:
+                            out[slot[0], nrow] = pv0
+                        if slot[1] >= 0:
+                            out[slot[1], nrow] = pv1
+                        j = 2
+                        pos += plen
+                        fstart = pos
             continue
         if c == _DOT:
             if phase == 0:
