@@ -13,12 +13,19 @@ or brackets (``x (mm)``, ``wavelength [nm]``); ``x_col=``, ``y_col=``,
 ``spectral_col=``, ``value_col=`` (names or 0-based indices) override them.
 Lines starting with ``#`` before the header and elsewhere are ignored.
 
-Reading is two streaming passes with ``pandas.read_csv(chunksize=...)``: the
-first collects the distinct positions and channel values and infers the grid
-(:mod:`pmap.io._grid`); the second scatters values into Zarr chunks held in a
-bounded buffer (least recently used chunks are written out first), so memory
-stays near ``buffer_mib`` + one block of rows whatever the file size. Spectral
-values must repeat exactly (same text) for every pixel.
+Reading is two streaming passes: the first collects the distinct positions and
+channel values and infers the grid (:mod:`pmap.io._grid`); the second scatters
+values into Zarr chunks held in a bounded buffer (least recently used chunks are
+written out first), so memory stays near ``buffer_mib`` + one block of rows
+whatever the file size. Spectral values must repeat exactly (same text) for every
+pixel.
+
+A plain numeric table (one delimiter, numbers only, no quotes or comments) is read
+by a compiled reader (:mod:`pmap.io._text_fast`, two threads) that gives the same
+float64 values as pandas; for a long table its first pass also writes every row as
+numbers (x, y and spectral value numbers, value: 16 bytes a row) to a nameless
+temporary file beside the output, which the second pass reads instead of the text.
+Any other table is read with ``pandas.read_csv(chunksize=...)`` in both passes.
 """
 
 from __future__ import annotations
@@ -919,7 +926,8 @@ def text_to_zarr(
     out : str, path-like or zarr Store
         Output Zarr store (must not exist unless ``overwrite``).
     chunk_rows : int
-        Rows parsed per block (memory ≈ chunk_rows × columns × 8 bytes × a few).
+        Most rows parsed per block (memory ≈ chunk_rows × columns × 8 bytes × a few);
+        the compiled reader parses at most 8 MiB of text at a time.
     overwrite : bool
         Replace an existing output.
     zarr_format : {2, 3}

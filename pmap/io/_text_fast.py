@@ -12,10 +12,11 @@ changes, more than 15-16 significant digits, large exponents...) makes the
 kernel give up, and the caller reads the whole file with pandas instead: every
 message and corner case then stays pandas'.
 
-Distinct values are gathered in open-addressing hash sets keyed by the float64
-bit pattern (``-0.0`` folded onto ``0.0``); the second pass looks each value up
-there to get its grid index, and scatters the value into a pool of whole Zarr
-chunks (``pool[slot, y, x, channel]``) with a duplicate check on every cell.
+Distinct values are numbered in order of first appearance in open-addressing hash
+tables keyed by the float64 bit pattern (``-0.0`` folded onto ``0.0``); the grid
+index of each number is found once, and :func:`scatter` puts every row's value
+into a pool of whole Zarr chunks (``pool[slot, y, x, channel]``) with a
+duplicate check on every cell.
 """
 
 from __future__ import annotations
