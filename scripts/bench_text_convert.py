@@ -167,6 +167,7 @@ def measure(size_bytes: float, work: Path, a: argparse.Namespace) -> dict:
     shape = write_long_table(src, size_bytes)
     size = src.stat().st_size
     print(f"generated {size / 1e9:.2f} GB, cube {shape} in {time.perf_counter() - t0:.1f} s")
+    os.sync()  # write the new file out now, not while the timed runs go
     common = [
         "--chunk-rows",
         str(a.chunk_rows),
