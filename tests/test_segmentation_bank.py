@@ -236,11 +236,20 @@ def _scene_names():
     return scene_names()
 
 
-#: Scenes where a target is not met yet, and why (see the issue-12 report): none.
-KNOWN_GAPS: dict[str, str] = {}
+#: Scenes (name, or (name, seed)) where a target is not met yet, with the measured
+#: numbers and why (see the issue-12 report): none. Marked xfail strict: a gap that
+#: closes fails the run until it is taken off this list.
+KNOWN_GAPS: dict[str | tuple[str, int], str] = {}
 
 #: Seeds of the bank checked here (each scene's maps, noise and defects are redrawn).
-BANK_SEEDS = (0, 1, 2)
+#: 0-2: the seeds the method was developed on; 3 and 5 (and seed 4 of the QD film,
+#: where the aggregates were found by a margin of 2 pixels): added after a check on
+#: seeds nobody had tuned on found the QD film's 2 % aggregates missed on seed 5 (the
+#: spatial-trend merge test took up a minority-vs-host difference between groups in
+#: different places; see pmap.decomposition._merge.step_z). Seed 4 of the other
+#: scenes and seeds 6-8 pass too (issue-12 report) but are left out for run time.
+BANK_SEEDS = (0, 1, 2, 3, 5)
+EXTRA_CASES = (("qd_film_size_gradient", 4),)
 
 
 @pytest.fixture(scope="module")
@@ -272,17 +281,19 @@ def _regions(name, seed, n_regions, cache):
 
 
 def _cases():
-    return [(n, s) for s in BANK_SEEDS for n in _scene_names()]
+    names = _scene_names()
+    return [(n, s) for s in BANK_SEEDS for n in names] + [c for c in EXTRA_CASES if c[0] in names]
 
 
 @pytest.mark.slow
 @pytest.mark.parametrize(("name", "seed"), _cases())
 def test_bank_scene_targets(name, seed, bank_cache, request):
-    """Issue-12 targets on every scene of the bank (pmap.scenes), seeds 0, 1 and 2: ARI
+    """Issue-12 targets on every scene of the bank (pmap.scenes), seeds BANK_SEEDS: ARI
     >= 0.95 with the true K and >= 0.9 with automatic K, background one label in
     >= 99 % of its pixels, every minority region (>= 2 % of the pixels) found."""
-    if name in KNOWN_GAPS:
-        request.applymarker(pytest.mark.xfail(reason=KNOWN_GAPS[name], strict=False))
+    gap = KNOWN_GAPS.get((name, seed), KNOWN_GAPS.get(name))
+    if gap is not None:
+        request.applymarker(pytest.mark.xfail(reason=gap, strict=True))
     truth = _bank(name, seed, bank_cache)[1]
     t = truth["region"].values
     minority = list(np.atleast_1d(truth.attrs.get("minority_regions", [])))
