@@ -344,6 +344,38 @@ def _write_block(path: str, index: int, blocks: dict) -> int:
     return index
 
 
+def _write_tasks(path: str, todo: list, pieces: dict, maps: dict) -> list | None:
+    """One Delayed per write block, all in one graph layer built at once.
+
+    The same tasks as ``dask.delayed(_write_block)(path, i, pieces[name])`` per block,
+    without merging and culling the whole map graph once per block (1.4 s of serial
+    time before the compute on a 64-block map). None when dask lacks the task spec.
+    """
+    try:
+        from dask._task_spec import Dict, List, Task, TaskRef, Tuple
+        from dask.delayed import Delayed
+        from dask.highlevelgraph import HighLevelGraph
+    except ImportError:
+        return None
+    import dask
+
+    def ref(v):
+        return TaskRef(v.key) if isinstance(v, Delayed) else v
+
+    layer, keys = {}, []
+    for i, ys, xs in todo:
+        name = _block_name(ys, xs)
+        key = f"{_DONE_KEY}{name}"
+        blocks = Dict({k: List(*[Tuple(idx, ref(v)) for idx, v in lst])
+                       for k, lst in pieces[name].items()})
+        layer[key] = Task(key, _write_block, path, i, blocks)
+        keys.append(key)
+    deps = [v.data for v in maps.values() if dask.is_dask_collection(v.data)]
+    layer_name = f"{_DONE_KEY}layer-{os.getpid()}"
+    graph = HighLevelGraph.from_collections(layer_name, layer, dependencies=deps)
+    return [Delayed(k, graph, layer=layer_name) for k in keys]
+
+
 def _block_pieces(maps: dict, blocks: list[tuple[slice, slice]]) -> dict:
     """Per write block, per variable: the (region index, chunk) pieces inside it.
 
@@ -466,7 +498,9 @@ def write_result(
                                           dask_key_name=f"{_DONE_KEY}{name}")
 
     try:
-        tasks = [task(i, ys, xs) for i, ys, xs in todo]
+        tasks = _write_tasks(str(p), todo, pieces, maps)
+        if tasks is None:  # no task-spec API in this dask: one Delayed call per block
+            tasks = [task(i, ys, xs) for i, ys, xs in todo]
         if client is not None:
             from distributed import as_completed
 
