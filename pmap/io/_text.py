@@ -22,9 +22,11 @@ pixel.
 
 A plain numeric table (one delimiter, numbers only, no quotes or comments) is read
 by a compiled reader (:mod:`pmap.io._text_fast`, two threads) that gives the same
-float64 values as pandas; for a long table its first pass also writes every row as
-numbers (x, y and spectral value numbers, value: 16 bytes a row) to a nameless
-temporary file beside the output, which the second pass reads instead of the text.
+float64 values as pandas; for a long table its first pass also writes the rows to a
+nameless temporary file beside the output, as runs (x, y and first spectral value
+numbers of a pixel's consecutive channels) and values (4 bytes a row for float32
+in pixel order, up to 20 in random order), which the second pass reads instead of
+the text.
 Any other table is read with ``pandas.read_csv(chunksize=...)`` in both passes.
 """
 
@@ -601,6 +603,7 @@ def _scan_fast(
     nv = 3 if long else 2
     sets = [_Interner() for _ in range(nv)]
     ids = np.empty((nv, 0), dtype=np.int32)
+    runs = np.empty((4, 0), dtype=np.int32)
     n = 0
     vmin, vmax = np.inf, -np.inf
     spill = spill if long else None
@@ -619,9 +622,12 @@ def _scan_fast(
             v = block[nv:]
             vmin, vmax = min(vmin, float(v.min())), max(vmax, float(v.max()))
         if spill is not None:
-            spill.write(np.int64(m).tobytes())
-            for k in range(nv):
-                spill.write(ids[k, :m])
+            if runs.shape[1] < m:
+                runs = np.empty((4, m), dtype=np.int32)
+            nr = sets[0].tf.encode_runs(ids[0], ids[1], ids[2], m, *runs)
+            spill.write(np.array([m, nr], dtype=np.int64).tobytes())
+            for k in range(4):
+                spill.write(runs[k, :nr])
             spill.write(np.ascontiguousarray(block[nv], dtype=spill_dtype))
         n += m
     if n == 0:
@@ -634,18 +640,19 @@ def _scan_fast(
 
 
 def _spilled(spill: Any, dtype: Any) -> Iterator[tuple[np.ndarray, ...]]:
-    """Blocks (x, y, spectral numbers; values as a 1-row array) written by _scan_fast."""
+    """Blocks written by _scan_fast: runs (x, y, first spectral number, length; see
+    ``_text_fast.encode_runs``) and the rows' values."""
     spill.seek(0)
     while True:
-        head = spill.read(8)
-        if len(head) < 8:
+        head = spill.read(16)
+        if len(head) < 16:
             return
-        m = int(np.frombuffer(head, dtype=np.int64)[0])
-        parts = [np.empty(m, dtype=np.int32) for _ in range(3)] + [np.empty(m, dtype=dtype)]
+        m, nr = (int(v) for v in np.frombuffer(head, dtype=np.int64))
+        parts = [np.empty(nr, dtype=np.int32) for _ in range(4)] + [np.empty(m, dtype=dtype)]
         for a in parts:
             if spill.readinto(memoryview(a).cast("B")) != a.nbytes:
                 raise InputFileError("the conversion's temporary file was cut short")
-        yield parts[0], parts[1], parts[2], parts[3].reshape(1, m)
+        yield tuple(parts)
 
 
 def _fill_fast(
@@ -728,8 +735,21 @@ def _fill_fast(
             yield ids[0, :m], ids[1, :m], sid, block[nv:]
 
     try:
-        blocks = _spilled(spill, spill_dtype) if spill is not None else reparsed()
-        for xid, yid, sid, vals in blocks:
+        vpos = np.zeros(1, dtype=np.int64)
+        for rx, ry, rs, rl, vals in _spilled(spill, spill_dtype) if spill is not None else ():
+            vpos[0], start = 0, 0
+            while True:
+                status, start = tf.scatter_runs(
+                    rx, ry, rs, rl, rx.size, start, vals, vpos, xmap, ymap, smap,
+                    cy, cx, nbx, slot_of, pool, stamp, clock, res,
+                )  # fmt: skip
+                if status == tf.DONE:
+                    break
+                if status == tf.NEED_CHUNK:
+                    load(int(res[0]))
+                else:
+                    raise FormatError(describe(int(res[0]), int(res[1]), int(res[2])))
+        for xid, yid, sid, vals in reparsed() if spill is None else ():
             n = xid.size
             start = 0
             while True:
@@ -967,7 +987,7 @@ def text_to_zarr(
     except TypeError:
         plain = False
     # a long table read by the compiled reader is parsed once: the first pass writes
-    # its rows as numbers to a nameless temporary file (about 16 bytes a row) that the
+    # its rows as numbers to a nameless temporary file (4-20 bytes a row) that the
     # second pass reads instead of the text
     spill = None
     if plain and spec.layout == "long" and _fast_delimiter(spec) is not None:

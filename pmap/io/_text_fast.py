@@ -335,3 +335,53 @@ def scatter(
             for c in range(ns):
                 pool[s, ly, lx, c] = vals[c, i]
     return DONE, n
+
+
+@nb.njit(cache=True, nogil=True)
+def encode_runs(xid, yid, sid, n, rx, ry, rs, rl):
+    """Cut rows 0..n-1 into runs of the same x and y numbers whose spectral numbers go
+    up by one (a pixel's channels in a long table); run r is (``rx[r]``, ``ry[r]``,
+    first spectral number ``rs[r]``, ``rl[r]`` rows). Returns the number of runs."""
+    r = -1
+    for i in range(n):
+        if r >= 0 and xid[i] == rx[r] and yid[i] == ry[r] and sid[i] == rs[r] + rl[r]:
+            rl[r] += 1
+        else:
+            r += 1
+            rx[r], ry[r], rs[r], rl[r] = xid[i], yid[i], sid[i], 1
+    return r + 1
+
+
+@nb.njit(cache=True, nogil=True)
+def scatter_runs(
+    rx, ry, rs, rl, nr, start, vals, vpos, xmap, ymap, smap,
+    cy, cx, nbx, slot_of, pool, stamp, clock, res,
+):  # fmt: skip
+    """Put runs start..nr-1 (see :func:`encode_runs`) of a long table into the pool;
+    their values are ``vals[vpos[0]:]`` in order. Returns (status, run) as
+    :func:`scatter` does (DONE, NEED_CHUNK or DUPLICATE)."""
+    v = vpos[0]
+    for r in range(start, nr):
+        ix = xmap[rx[r]]
+        iy = ymap[ry[r]]
+        by = iy // cy
+        bx = ix // cx
+        key = by * nbx + bx
+        s = slot_of[key]
+        if s < 0:
+            res[0] = key
+            return NEED_CHUNK, r
+        stamp[s] = clock[0]
+        clock[0] += 1
+        ly = iy - by * cy
+        lx = ix - bx * cx
+        s0 = rs[r]
+        for t in range(rl[r]):
+            ic = smap[s0 + t]
+            if not np.isnan(pool[s, ly, lx, ic]):
+                res[0], res[1], res[2] = iy, ix, ic
+                return DUPLICATE, r
+            pool[s, ly, lx, ic] = vals[v + t]
+        v += rl[r]
+        vpos[0] = v
+    return DONE, nr
