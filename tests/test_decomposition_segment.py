@@ -288,6 +288,10 @@ def test_best_shift_recovers_a_drift():
     ref = _gauss(e, 2.05, 0.04)
     moved = _gauss(e, 2.05 - 0.037, 0.04)
     assert best_shift(ref, moved, e, 0.1) == pytest.approx(0.037, abs=0.0002)
+    # Searched within [lo, hi] (the host-aligned test: between 0 and the host's shift):
+    # found inside, the end of the range when the best shift lies beyond it.
+    assert best_shift(ref, moved, e, 0.1, lo=0.0, hi=0.05) == pytest.approx(0.037, abs=0.0002)
+    assert best_shift(ref, moved, e, 0.1, lo=0.0, hi=0.02) == pytest.approx(0.02, abs=1e-12)
 
 
 def test_template_snr_null_and_signal():
@@ -323,3 +327,46 @@ def test_template_snr_null_and_signal():
     assert np.mean(got) == pytest.approx(amp * np.linalg.norm(tp) / sigma, rel=0.05)
     # Rows without a label are not tested.
     assert np.all(np.isnan(template_snr(x[:3], -np.ones(3, dtype=int), tmpl[None])))
+
+
+def test_trend_merge_needs_a_determined_step():
+    """The spatial-trend merge test speaks only when the membership step is known.
+
+    Ground truth by construction (n = 20 seeds, noise s.d. 0.3): (a) one property that
+    drifts across the map (t = 10·x), cut in two at x = 0.5: one population, the trend
+    explains the cut (δ/σ < 6) on every seed; (b) a compact group A and two small spots
+    B far from it, B stepped by 5 (17 noise s.d.) beyond the same drift: two
+    populations. In (b) membership is almost a function of position, a quartic trend
+    can take up any step and δ/σ alone comes out below 6 on some seeds (2 of these 20;
+    the check that found the QD film's aggregates merged into a far part of the film);
+    with the equivalence bound (δ/σ plus z·SE(δ), Schuirmann, J. Pharmacokinet.
+    Biopharm. 15, 657 (1987)) the trend never speaks there. z is the two-sided
+    Bonferroni normal quantile for the 120 pairs of 16 clusters at α = 0.05:
+    Φ⁻¹(1 − 0.05/240) = 3.529 (standard normal table, from memory).
+    """
+    from pmap.decomposition._merge import MergeData, pair_score, step_z
+
+    assert step_z(16) == pytest.approx(3.529, abs=2e-3)
+    yy, xx = np.mgrid[0:40, 0:40] / 39.0
+    pos = np.column_stack([yy.ravel(), xx.ravel()])
+    a = np.hypot(pos[:, 0] - 0.25, pos[:, 1] - 0.2) < 0.15
+    b = ((np.hypot(pos[:, 0] - 0.75, pos[:, 1] - 0.8) < 0.06)
+         | (np.hypot(pos[:, 0] - 0.8, pos[:, 1] - 0.35) < 0.06))
+    no_pairs = np.empty((0, 2), dtype=int)
+    merged_far = merged_old = merged_drift = 0
+    for seed in range(20):
+        rng = np.random.default_rng(seed)
+        t = 10 * pos[:, 1] + 5.0 * b + rng.normal(0, 0.3, len(pos))
+        data = MergeData(np.column_stack([t, rng.normal(0, 1, len(pos))]), pos, no_pairs)
+        ra, rb = np.flatnonzero(a), np.flatnonzero(b)
+        merged_far += pair_score(data, ra, rb)[0] < 6
+        data.step_z = 0.0  # δ/σ alone, as before the bound
+        merged_old += pair_score(data, ra, rb)[0] < 6
+        t = 10 * pos[:, 1] + rng.normal(0, 0.3, len(pos))
+        data = MergeData(np.column_stack([t, rng.normal(0, 1, len(pos))]), pos, no_pairs)
+        score, sep, *_ = pair_score(data, np.flatnonzero(pos[:, 1] < 0.5),
+                                    np.flatnonzero(pos[:, 1] >= 0.5))
+        merged_drift += score < 6 and sep < 6
+    assert merged_drift == 20
+    assert merged_far == 0
+    assert merged_old >= 1  # the case exists: δ/σ alone merges two populations here
