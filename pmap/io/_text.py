@@ -770,8 +770,13 @@ def _fill_fast(
         raise FormatError(
             f"{spec.path.name}: the file changed between the two passes of the conversion"
         ) from None
-    for s in range(n_slots):
-        if key_of[s] >= 0:
+    # the chunks still in the pool: encoded and written by two threads at once
+    left = [s for s in range(n_slots) if key_of[s] >= 0]
+    if len(left) > 1 and (os.cpu_count() or 1) > 1:
+        with ThreadPoolExecutor(2) as writers:
+            list(writers.map(evict, left))
+    else:
+        for s in left:
             evict(s)
 
 

@@ -243,21 +243,24 @@ def intern(bits, n, table, ids, order, count, out, start):
         if b == _NEG_ZERO:
             b = 0
         if b != last:
-            h = _home(b, mask)
-            while True:
-                t = table[h]
-                if t == b:
-                    last_id = ids[h]
-                    break
-                if t == EMPTY:
-                    if count[0] >= limit:
-                        return i
-                    k = count[0]
-                    table[h], ids[h], order[k] = b, k, b
-                    count[0] = k + 1
-                    last_id = k
-                    break
-                h = (h + 1) & mask
+            if last_id + 1 < count[0] and order[last_id + 1] == b:
+                last_id += 1  # the value numbered after the last one (channels in order)
+            else:
+                h = _home(b, mask)
+                while True:
+                    t = table[h]
+                    if t == b:
+                        last_id = ids[h]
+                        break
+                    if t == EMPTY:
+                        if count[0] >= limit:
+                            return i
+                        k = count[0]
+                        table[h], ids[h], order[k] = b, k, b
+                        count[0] = k + 1
+                        last_id = k
+                        break
+                    h = (h + 1) & mask
             last = b
         out[i] = last_id
     return n
