@@ -396,7 +396,8 @@ def test_narrow_instrument_two_spikes_side_by_side_and_emitters():
     assert (m & ~truth).sum() / (~truth).sum() <= 1e-5
 
 
-def test_narrow_instrument_spike_on_an_emitter_flank_spares_the_emitter():
+@pytest.mark.parametrize("relative", [False, True])
+def test_narrow_instrument_spike_on_an_emitter_flank_spares_the_emitter(relative):
     # an instrument 1.28 channels wide (the bank's TMD scene): a bright 1-channel spike
     # (100-400 s.d.) on the flank of a single-pixel emitter of exactly the instrument
     # width (channel-integrated Gaussian, random sub-channel position, 40-300 s.d. at its
@@ -413,6 +414,10 @@ def test_narrow_instrument_spike_on_an_emitter_flank_spares_the_emitter():
     # beside a steep side of the pixel's own emission gets the fitted line too (an
     # interpolation across it would cut the line and leave its peak looking like a
     # spike of its own).
+    # relative=True: the spike is 0.3-0.9 of the emitter's peak excess, so that the
+    # emitter's peak, not the spike, is the most significant channel (the bank's TMD scene,
+    # seed 3: before the joint fit also tried boxes without that channel, the box took
+    # the peak and both flanks and the emitter lost 53 % of its area)
     from scipy.special import erf
 
     rng = np.random.default_rng(29)
@@ -433,15 +438,21 @@ def test_narrow_instrument_spike_on_an_emitter_flank_spares_the_emitter():
     spike_at = []
     for (iy, ix), k in zip(em, peaks):
         cc = k + (1 if rng.random() < 0.5 else -1)
-        noisy[iy, ix, cc] += rng.uniform(100.0, 400.0) * _sigma(expected[iy, ix, cc])
+        if relative:
+            noisy[iy, ix, cc] += rng.uniform(0.3, 0.9) * part[iy, ix, k]
+        else:
+            noisy[iy, ix, cc] += rng.uniform(100.0, 400.0) * _sigma(expected[iy, ix, cc])
         spike_at.append(cc)
     cube = _cube(noisy, wl, attrs={"instrument_fwhm_nm": fwhm})
     cleaned, mask = remove_spikes(cube, return_mask=True)
     m = mask.values
     after = cleaned.values.astype(float)
-    kept = restored = 0
+    kept = restored = found = 0
     for (iy, ix), k, cc in zip(em, peaks, spike_at):
-        assert m[iy, ix, cc], (iy, ix)
+        # a spike of a few tenths of the line beside its peak can pass for part of the
+        # line (a line a little wider than the instrument): then it must be left whole
+        assert m[iy, ix, cc] or relative, (iy, ix)
+        found += m[iy, ix, cc]
         restored += abs(after[iy, ix, cc] - expected[iy, ix, cc]) <= 5 * _sigma(expected[iy, ix, cc])
         win = np.zeros(wl.size, bool)
         win[k - 6 : k + 7] = True
@@ -449,8 +460,12 @@ def test_narrow_instrument_spike_on_an_emitter_flank_spares_the_emitter():
         area = part[iy, ix].sum()
         kept += (not m[iy, ix][win].any()
                  and abs((after[iy, ix] - noisy[iy, ix])[win].sum()) <= 0.01 * area)
-    assert kept >= 25, kept
-    assert restored >= 23, restored
+    if relative:  # observed: kept 29, found 22, restored 20 of 30; before: kept 21, restored 14
+        assert kept >= 27, kept
+        assert found >= 18 and restored >= found - 3, (found, restored)
+    else:
+        assert kept >= 25, kept
+        assert restored >= 23, restored
 
 
 # --------------------------------------------------------------------------- (f) scene bank

@@ -772,10 +772,11 @@ def _lr_chi2(e, lvl, vf, sf2, w0, w1, s, w, sd, law, nz, skip, mb, nb):  # pragm
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _lr_extent(x, n, r, cnt, sf2, lo, hi, resid, e0, e1, cb, kb, ms, sds, law, nz, res,
+def _lr_extent(x, n, r, cnt, sf2, lo, hi, resid, e0, e1, kb, ms, sds, law, nz, res,
                rep):  # pragma: no cover - compiled
     """The spike's channels within the box e0 … e1 found by the line-shape test, by a joint
-    fit: over the boxes B ⊆ [e0, e1] holding ``cb``, the least χ² of a line of at least
+    fit: over the boxes B ⊆ [e0, e1] (holding the candidate or not: the candidate may be
+    the peak of an emitter whose flank the spike sits on), the least χ² of a line of at least
     the instrument width on a quadratic level plus a free box B (:func:`_lr_chi2`; the
     noise law's variance at the fitted level), over the window e0 − m … e1 + m, of the
     residual r (``resid``) or of x less the window floor; each channel of B costs
@@ -821,7 +822,7 @@ def _lr_extent(x, n, r, cnt, sf2, lo, hi, resid, e0, e1, cb, kb, ms, sds, law, n
     best = np.inf
     found = False
     for w in range(e1 - e0 + 1, 0, -1):
-        for s in range(max(e0, cb - w + 1), min(cb, e1 - w + 1) + 1):
+        for s in range(e0, e1 - w + 2):
             # a straight level, or a quadratic one where that lowers χ² by more than
             # _LR_QUAD_CHI2 (a broader band under the line that differs between pixels)
             chi, ex = _lr_chi2(e, lvl, vf, sf, w0, w1, s, w, sd, law, nz, True, mb, 3)
@@ -1311,7 +1312,7 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
                     and max(ra, rb) > 2.0 * max(min(ra, rb), 0.0)
             rep = np.empty(maxw)
             if (e1 > e0 or own) and _lr_extent(x, n, rbuf, cnt, sf2, lo, hi, resid, e0, e1,
-                                               cb, bin_of[cb], ms, sds, law, nz, sres, rep) \
+                                               bin_of[cb], ms, sds, law, nz, sres, rep) \
                     and (int(sres[1]) < e1 - e0 + 1 or (own and sres[2] <= 0.0)):
                 # the spike's own channels only, replaced by the fitted line and level
                 e0 = int(sres[0])
