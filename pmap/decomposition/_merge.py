@@ -214,9 +214,12 @@ def pair_score(data: MergeData, ra: np.ndarray, rb: np.ndarray):
     # Biopharm. 15, 657 (1987)). Two groups in different places make membership nearly
     # a function of position: the step is then undetermined (a standard error of many
     # s.d.) and the trend, which could take up any difference between them, says
-    # nothing (the other tests still speak). The score stays δ/σ, so the order of the
-    # merges the trend can judge is unchanged.
-    scores = [sep] if sep + data.step_z * se_unit < data.separation else []
+    # nothing for merging (the other tests still speak). Its score stays δ/σ where the
+    # bound holds (the order of the merges it can judge is unchanged), and is the bound,
+    # at or above ``separation``, where it does not: finite, so that merging on to a
+    # given K still takes the least separated pairs first.
+    bound = sep + data.step_z * se_unit
+    scores = [sep if bound < data.separation else bound]
     r = valley(ta[sa], tb[sb])
     if r > data.valley_ratio and data.valley_ratio < 1:
         scores.append(data.separation * (1.0 - r) / (1.0 - data.valley_ratio))
@@ -230,7 +233,7 @@ def pair_score(data: MergeData, ra: np.ndarray, rb: np.ndarray):
         aligned = host_aligned_difference(data, ra, rb, data.min_difference)
         if np.isfinite(aligned):
             scores.append(data.separation * aligned / data.min_difference)
-    return (min(scores) if scores else float("inf")), sep, r, jump, diff, aligned
+    return min(scores), sep, r, jump, diff, aligned
 
 
 def border_jump(data: MergeData, ra: np.ndarray, rb: np.ndarray, t: np.ndarray):
