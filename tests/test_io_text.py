@@ -25,6 +25,15 @@ ROOT = Path(__file__).resolve().parents[1]
 WL = 600.0 + 2.5 * np.arange(8)
 
 
+@pytest.fixture(autouse=True)
+def _compiled_reader_for_small_files(monkeypatch):
+    """The compiled reader takes only large files; here it reads the small test tables
+    too (tests that want pandas alone say so)."""
+    from pmap.io import _text
+
+    monkeypatch.setattr(_text, "_FAST_MIN_BYTES", 0)
+
+
 @pytest.fixture
 def data() -> np.ndarray:
     return np.round(np.random.default_rng(2).random((5, 6, 8)) * 1000, 2)
@@ -543,6 +552,36 @@ def test_compiled_reader_and_pandas_agree_on_random_tables(tmp_path_factory, see
             _text._fast_delimiter = lambda spec: None
         try:
             text_to_zarr(src, out, **kw)
+            return _store_bytes(out)
+        except PmapError as exc:
+            return type(exc).__name__, str(exc)
+        finally:
+            _text._fast_delimiter = keep
+
+    assert convert_with(True, d / "a.zarr") == convert_with(False, d / "b.zarr")
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    body=st.text(alphabet='0123456789.,;-+eE \t\r\n#"x', max_size=300),
+    header=st.sampled_from(["x,y,wavelength,intensity", "x y wavelength intensity", "x,y,1,2"]),
+)
+def test_compiled_reader_on_random_text(tmp_path_factory, body, header):
+    """Random characters of the number grammar after a valid header: the same store or
+    the same error with and without the compiled reader (pandas is the reference)."""
+    from pmap.errors import PmapError
+    from pmap.io import _text
+
+    d = tmp_path_factory.mktemp("rx")
+    src = d / ("t.txt" if " " in header else "t.csv")
+    src.write_bytes((header + "\n" + body).encode())
+
+    def convert_with(fast: bool, out):
+        keep = _text._fast_delimiter
+        if not fast:
+            _text._fast_delimiter = lambda spec: None
+        try:
+            text_to_zarr(src, out, chunk_rows=4, target_chunk_mib=1e-4, buffer_mib=1e-6)
             return _store_bytes(out)
         except PmapError as exc:
             return type(exc).__name__, str(exc)

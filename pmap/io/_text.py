@@ -20,8 +20,8 @@ written out first), so memory stays near ``buffer_mib`` + one block of rows
 whatever the file size. Spectral values must repeat exactly (same text) for every
 pixel.
 
-A plain numeric table (one delimiter, numbers only, no quotes or comments) is read
-by a compiled reader (:mod:`pmap.io._text_fast`, two threads) that gives the same
+A plain numeric table (one delimiter, numbers only, no quotes or comments) of at
+least 32 MiB is read by a compiled reader (:mod:`pmap.io._text_fast`, two threads) that gives the same
 float64 values as pandas; for a long table its first pass also writes the rows to a
 nameless temporary file beside the output, as runs (x, y and first spectral value
 numbers of a pixel's consecutive channels) and values (4 bytes a row for float32
@@ -419,6 +419,9 @@ def _scan_pandas(
 
 #: Bytes read from the file at a time by the compiled reader.
 _FAST_READ_BYTES = 8 << 20
+#: Smaller files are read with pandas: loading the compiled kernels (about 0.6 s the
+#: first time in a process) costs more than it saves below a few tens of MB.
+_FAST_MIN_BYTES = 32 << 20
 _NOT_DELIMITERS = set(b'0123456789+-.eE"#\r\n')
 
 
@@ -427,7 +430,13 @@ class _NotPlain(Exception):
 
 
 def _fast_delimiter(spec: TextSpec) -> int | None:
-    """Delimiter byte for the compiled reader (0: runs of blanks), None if it cannot read it."""
+    """Delimiter byte for the compiled reader (0: runs of blanks), None if it cannot read it
+    (or the file is too small for it to pay)."""
+    try:
+        if spec.path.stat().st_size < _FAST_MIN_BYTES:
+            return None
+    except OSError:
+        return None
     if spec.delimiter == r"\s+":
         return 0
     d = spec.delimiter.encode("utf-8", errors="replace")
