@@ -827,8 +827,12 @@ def segment(
         ``"merge"`` (default): k-means cut into 16 (or 2 × max(k_range)) clusters,
         then clusters merged while they are one population — continuous across their
         shared border, no density valley between them on their discriminant axis, a
-        separation explained by a smooth (quartic) spatial trend, or spectra on the two
-        sides of their border within ``min_difference`` — see
+        separation explained by a smooth (quartic) spatial trend (the membership step
+        known to be small: its upper bound, z standard errors above it, Bonferroni over
+        the cluster pairs, under ``separation``), spectra on the two sides of their
+        border within ``min_difference``, or, for clusters without a shared border,
+        their spectra within ``min_difference`` once their surroundings are aligned —
+        see
         :mod:`pmap.decomposition._merge`; clusters of fewer than ``min_region_fraction``
         of the fitted pixels join the cluster they are least separated from; clusters
         of mixed pixels (mean spectrum a mix of two others) and clusters whose mean
@@ -1014,7 +1018,8 @@ def segment(
             f"k-means over-clustering merged while one population (after Hennig, Adv. "
             f"Data Anal. Classif. 4, 3 (2010)): border jump < {continuity} x the step "
             f"inside, density valley ratio > {valley_ratio}, membership step < "
-            f"{separation} residual s.d. beyond a quartic spatial trend, or border spectra "
+            f"{separation} residual s.d. beyond a quartic spatial trend (its upper bound at "
+            f"{data.step_z:.2f} standard errors, Bonferroni), or border spectra "
             f"within {min_difference:.0%}; groups under {min_pixels} fitted pixels joined "
             f"their nearest; mixed-pixel groups and peakless continua (no emission) dropped; "
             f"a pixel without its nearest cluster's spectrum at {MIN_TEMPLATE_SNR:g} sigma "
