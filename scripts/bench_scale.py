@@ -47,6 +47,11 @@ print(json.dumps({"seconds": dt, "n": int(cube.sizes["y"] * cube.sizes["x"])}))
 """
 
 
+#: CPU seconds (user + system) of the last child run by _run_child: on a shared machine
+#: (other jobs taking cores) CPU time compares two runs better than wall time does
+LAST_CPU_S = [0.0]
+
+
 def _run_child(cmd: list[str]) -> tuple[float, float, str, str]:
     """Run cmd; (wall seconds, peak RSS MiB of that child alone, stdout, stderr)."""
     with tempfile.TemporaryFile("w+") as fo, tempfile.TemporaryFile("w+") as fe:
@@ -54,6 +59,7 @@ def _run_child(cmd: list[str]) -> tuple[float, float, str, str]:
         proc = subprocess.Popen(cmd, stdout=fo, stderr=fe, text=True)
         _, status, ru = os.wait4(proc.pid, 0)  # the child's own rusage (ru_maxrss in KiB)
         wall = time.perf_counter() - t
+        LAST_CPU_S[0] = ru.ru_utime + ru.ru_stime
         proc.returncode = os.waitstatus_to_exitcode(status)
         fo.seek(0)
         fe.seek(0)
@@ -94,10 +100,11 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
     info_s = min(_run_child([py, "-m", "pmap", "info", str(paths["cube"])])[0] for _ in range(3))
     print(f"info:        {info_s:.2f} s (plcube info, best of 3, whole command)")
     wall_r, rss_r, out, _ = _run_child([py, "-c", READ, str(paths["cube"])])
+    cpu_r = LAST_CPU_S[0]
     read = json.loads(out.strip().splitlines()[-1])
     print(f"read floor:  {read['seconds']:.1f} s, {n / read['seconds']:,.0f} spectra/s, "
           f"{disk / 1e9 / read['seconds']:.2f} GB/s from disk, peak RSS {rss_r:.0f} MiB "
-          f"(process incl. startup {wall_r:.1f} s); load {_load()}", flush=True)
+          f"(process incl. startup {wall_r:.1f} s, {cpu_r:.1f} CPU s); load {_load()}", flush=True)
     res = work / f"bench_{side}_result.zarr"
     shutil.rmtree(res, ignore_errors=True)
     shutil.rmtree(work / f"bench_{side}_result_figures", ignore_errors=True)
@@ -113,9 +120,11 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
         cmd = ["py-spy", "record", "--rate", "50", "--format", "raw", "--threads", "-o",
                str(prof / f"process_{side}.txt"), "--", *cmd]
     wall_p, rss_p, out, err = _run_child(cmd)
+    cpu_p = LAST_CPU_S[0]
     summary = [ln for ln in err.splitlines() if "converged" in ln][:1]
     work_s = wall_p - startup
-    print(f"end to end:  {wall_p:.1f} s for the command ({work_s:.1f} s after startup), "
+    print(f"end to end:  {wall_p:.1f} s for the command ({work_s:.1f} s after startup, "
+          f"{cpu_p:.1f} CPU s), "
           f"{n / work_s:,.0f} spectra/s, peak RSS {rss_p:.0f} MiB (limit {args.memory_limit})"
           f"{'; ' + summary[0].strip() if summary else ''}; load {_load()}", flush=True)
     if not args.keep:
