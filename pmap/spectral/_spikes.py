@@ -786,7 +786,9 @@ def _lr_extent(x, n, r, cnt, sf2, lo, hi, resid, e0, e1, kb, ms, sds, law, nz, r
     was fitted (an instrument under _LR_FWHM_MAX_CH channels, the window inside the
     axis): then res[0:2] = its start and width, rep[0:W] its replacement (the window's
     level plus the fitted line and quadratic)."""
-    if not sds[kb] < _LR_FWHM_MAX_CH * _FWHM_TO_SD:
+    # (the bin's upper edge: an instrument of 2 channels, the default assumed where none
+    # is stated, is not under 2)
+    if not sds[kb] * _FWHM_BIN < _LR_FWHM_MAX_CH * _FWHM_TO_SD:
         return False
     m = ms[kb] + 1
     w0 = e0 - m
