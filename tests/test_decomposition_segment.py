@@ -370,3 +370,41 @@ def test_trend_merge_needs_a_determined_step():
     assert merged_drift == 20
     assert merged_far == 0
     assert merged_old >= 1  # the case exists: δ/σ alone merges two populations here
+
+
+def test_host_aligned_difference_with_a_fixed_band():
+    """Two spots of one minority type far apart in a host whose line drifts by 80 meV:
+    each spot holds its host's emission (which drifts) and a broad band of fixed energy
+    (which does not), so no single shift aligns them; compared by what is left once
+    each loses its best non-negative sum of the two hosts' spectra they agree (exact
+    by construction: spectra add linearly, common practice; no noise). A spot with a
+    different band in the same host stays different."""
+    from pmap.decomposition._merge import MergeData, host_aligned_difference
+
+    e = np.linspace(1.8, 3.1, 400)
+
+    def line(c, fwhm):  # Gaussian of the given FWHM (eV)
+        return _gauss(e, c, fwhm / 2.3548)
+
+    def host(c):  # a zero-phonon line and its LO replica 92 meV below
+        return line(c, 0.11) + 0.3 * line(c - 0.092, 0.11)
+
+    rows, pairs = [], []
+
+    def add(spot, around):  # 4 spot pixels, 10 host pixels, 10 spot-host neighbour pairs
+        s0 = len(rows)
+        rows.extend([spot] * 4)
+        h0 = len(rows)
+        rows.extend([around] * 10)
+        pairs.extend([(s0 + i % 4, h0 + i) for i in range(10)])
+        return np.arange(s0, s0 + 4)
+
+    band = 2.5 * line(2.20, 0.42)
+    ra = add(host(2.70) + band, host(2.70))
+    rb = add(host(2.78) + band, host(2.78))
+    rc = add(host(2.78) + 2.5 * line(2.45, 0.20), host(2.78))
+    sp = np.array(rows)
+    data = MergeData(np.zeros((len(sp), 1)), np.zeros((len(sp), 2)), np.array(pairs),
+                     spectra=sp, axis=e)
+    assert host_aligned_difference(data, ra, rb, 0.1) < 0.02  # 0.18 with one shift alone
+    assert host_aligned_difference(data, ra, rc, 0.1) > 0.5

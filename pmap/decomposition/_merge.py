@@ -30,7 +30,9 @@ s.d. 1):
   of one group's neighbours onto the other's, differs by less than
   ``min_difference`` (a minority red-shifted from a host whose line drifts across
   the map; :func:`host_aligned_difference`; over-cluster by over-cluster, so that a
-  group spread along a drift is not smeared).
+  group spread along a drift is not smeared), or after each loses its best
+  non-negative sum of the two hosts' spectra (a spot that holds some of its drifting
+  host beside a band of fixed energy).
 
 This is merging of mixture components by unimodality of the discriminant projection
 (Hennig, Adv. Data Anal. Classif. 4, 3 (2010), the "ridgeline"/"dip" family, with a
@@ -399,7 +401,12 @@ def _aligned_pair(data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: fl
     # (searched at the channel step and refined, as in :func:`best_shift`: a coarser
     # grid misses the best shift by a sizeable part of a line width).
     f = best_shift(own_a, own_b, axis, abs(d), lo=min(0.0, d), hi=max(0.0, d))
-    return emission_difference(own_a, np.interp(axis - f, axis, own_b))
+    shifted = emission_difference(own_a, np.interp(axis - f, axis, own_b))
+    # A spot that holds some of its host's emission (which drifts) beside its own
+    # lines (which may not: a defect band of fixed energy) is also compared by what is
+    # left once each loses its best non-negative sum of the two hosts' spectra (spectra
+    # add linearly; as a continuum is taken off in :func:`emission_difference`).
+    return min(shifted, emission_difference(own_a, own_b, np.stack([host_a, host_b])))
 
 
 def _mean_unit_area(rows: np.ndarray) -> np.ndarray:
