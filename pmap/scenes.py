@@ -816,7 +816,7 @@ def _gaas_algaas_qw_low_snr(seed: int, shape: tuple[int, int] | None) -> Scene:
     region = np.where(pad, 0, 1).astype(np.int16)
     oval = _top(_field(rng, shape, 1.2), ~pad, round(0.02 * ny * nx))
     region[oval] = 2
-    qw_area = np.where(pad, 0.0, 1400.0 * (1 + 0.2 * _field(rng, shape, 6.0)))
+    qw_area = np.where(pad, 0.0, 1400.0 * np.maximum(1 + 0.2 * _field(rng, shape, 6.0), 0.1))
     qw_e = 1.500 + 0.020 * yy / (ny - 1) + 0.002 * _field(rng, shape, 3.0)
     defect = np.where(oval, 2.5 * qw_area, 0.0)
     bulk = np.where(pad, 0.0, 0.6 * qw_area)
@@ -828,7 +828,9 @@ def _gaas_algaas_qw_low_snr(seed: int, shape: tuple[int, int] | None) -> Scene:
         _Line("oval_defect_band", defect, 1.36 + 0.005 * _field(rng, shape, 2.0),
               _fwhm_to_sigma(0.090)),
     ]
-    amp = 12.0 * (1 + 0.25 * _field(rng, shape, 10.0)) * np.where(pad, 2.0, 1.0)
+    # (a smooth field's rare deep minima on large maps must not make the stray light
+    # negative: the factor is kept above 0.1)
+    amp = 12.0 * np.maximum(1 + 0.25 * _field(rng, shape, 10.0), 0.1) * np.where(pad, 2.0, 1.0)
     background = amp[..., None] * (0.5 + (axis.centres - 780.0) / 160.0)
     spec = _Spec(
         name=name,
