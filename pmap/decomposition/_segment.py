@@ -160,7 +160,8 @@ def _detected(arr: xr.DataArray, core: str, false_alarm: float):
     sig = det["signal"]
     rule = (
         f"emission detected (pmap.spectral.detect_signal, false-alarm probability "
-        f"<= {false_alarm:g} per pixel, threshold {det.attrs['threshold_sigma']:.2f} sigma)"
+        f"<= {false_alarm:g} per pixel where the background is straight in channel, "
+        f"threshold {det.attrs['threshold_sigma']:.2f} sigma)"
     )
     return sig.transpose(*[d for d in arr.dims if d != core]), rule
 

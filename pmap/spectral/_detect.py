@@ -14,6 +14,13 @@ under "no emission" every box statistic is N(0, 1); the threshold for M boxes is
 the one-sided normal quantile at α/M (Bonferroni), so the false-alarm
 probability per pixel is at most α (the Bonferroni bound; boxes overlap, so the
 true rate is lower).
+
+Assumption behind that rate: without emission the spectrum is a straight line in
+channel index plus noise. Structured light that is not (a curved stray-light
+continuum, a laser tail, glass fluorescence) is "emission" to this test: over a
+quadratic continuum 26 % of noise-only pixels were flagged (tests/test_detect.py,
+recorded as a known gap). Segmentation therefore also requires each labelled pixel to
+carry its cluster's own spectrum at 5 σ.
 """
 
 from __future__ import annotations
