@@ -30,6 +30,7 @@ from typing import Any
 
 import numpy as np
 
+from ._layout import METADATA_ATTRS, STACK_DIMS, choose_spatial_chunks
 from .conventions import SPECTRAL_DIMS, normalise_intensity_unit, normalise_length_unit
 from .errors import PmapError
 from .provenance import PROVENANCE_ATTR, get_provenance, with_input
@@ -39,17 +40,6 @@ FULL_SCAN_BYTES = 64 * 2**20
 #: the sampled value range reads about this many bytes, spread over the map
 SAMPLE_BYTES = 32 * 2**20
 
-# mirrors of pmap.cube (that module imports dask.array and xarray); equality is tested
-_DEFAULT_CHUNK_MIB = 64.0
-_METADATA_KEYS = (
-    "excitation_wavelength_nm", "temperature_K", "exposure_s", "excitation_power_W",
-    "instrument_notes", "wavelength_medium", "saturation_counts", "read_noise_counts",
-    "gain_e_per_count",
-)
-_STACK_DIMS = (
-    "temperature", "excitation_power", "power", "time", "stack", "sample", "polarization",
-    "polarisation", "excitation_wavelength", "z", "frame", "map", "voltage", "field",
-)
 #: spectral units that need no conversion (factor 1 in pmap.cube's table)
 _SPECTRAL_UNITS_AS_IS = {
     "wavelength": ("nm", "nanometer", "nanometre"),
@@ -61,34 +51,6 @@ _MEDIUM_SOURCES = ("data", "sidecar", "option", "assumed")
 #: attrs that make xarray decode values (masking, scaling, times): the full path decides
 _DECODING_ATTRS = ("scale_factor", "add_offset", "missing_value", "calendar", "coordinates",
                    "dtype", "compression", "_Unsigned")
-
-
-def choose_spatial_chunks(shape_yx: tuple[int, int], n_spectral: int, itemsize: int, *,
-                          target_mib: float = _DEFAULT_CHUNK_MIB,
-                          align: tuple[int, int] | None = None) -> tuple[int, int]:
-    """Processing chunk (cy, cx) in pixels: the rule of :func:`pmap.cube.choose_spatial_chunks`."""
-    ny, nx = shape_yx
-    per_pixel = max(1, n_spectral * itemsize)
-    npix = max(1, int(target_mib * 2**20 // per_pixel))
-    if npix >= ny * nx:
-        return max(ny, 1), max(nx, 1)
-    if align is not None:
-        sy, sx = (max(1, min(int(a), n)) for a, n in zip(align, (ny, nx)))
-        tiles = npix // (sy * sx)
-        if tiles >= 1:
-            n_tiles_x = -(-nx // sx)
-            if tiles >= n_tiles_x:
-                return min(ny, (tiles // n_tiles_x) * sy), nx
-            side = max(1, math.isqrt(tiles))
-            return min(ny, side * sy), min(nx, (tiles // side) * sx)
-        parts = -(-sy * sx // npix)
-        py = min(sy, max(1, math.isqrt(parts)))
-        px = max(1, -(-parts // py))
-        return max(1, -(-sy // py)), max(1, -(-sx // px))
-    if nx <= npix:
-        return max(1, min(ny, npix // nx)), nx
-    side = max(1, int(math.isqrt(npix)))
-    return min(ny, side), min(nx, max(1, npix // side))
 
 
 def axis_summary(vals: np.ndarray, unit: str) -> dict[str, Any]:
@@ -246,7 +208,7 @@ def _quick(p: Path, value_range: bool, full_range: bool, full_scan_bytes: int,
         raise _NotCanonical("dims not (*stack, y, x, spectral)")
     sdim = sdims[0]
     stack = dims[:-3]
-    if any(d not in _STACK_DIMS for d in stack) or any(n == 0 for n in arr.shape):
+    if any(d not in STACK_DIMS for d in stack) or any(n == 0 for n in arr.shape):
         raise _NotCanonical("stack dims")
     if int(arr.nchunks_initialized) < int(arr.nchunks):
         raise _NotCanonical("missing chunks: the full path names them")
@@ -322,7 +284,7 @@ def _quick(p: Path, value_range: bool, full_range: bool, full_scan_bytes: int,
     if sdim == "wavelength":
         info["medium"] = {"medium": rest.pop("wavelength_medium", "air"),
                           "source": rest.pop("wavelength_medium_source", "assumed")}
-    info["metadata"] = {k: rest.pop(k) for k in list(rest) if k in _METADATA_KEYS}
+    info["metadata"] = {k: rest.pop(k) for k in list(rest) if k in METADATA_ATTRS}
     info["attrs"] = rest
     info["provenance"] = get_provenance(attrs)
     finish_info(info, p, "zarr")

@@ -193,20 +193,6 @@ def test_quick_path_declines_what_needs_the_full_path(tmp_path, monkeypatch):
         cube_info(path)
 
 
-def test_quick_path_mirrors_pmap_cube():
-    assert _cubeinfo._METADATA_KEYS == tuple(pmap.cube.METADATA_ATTRS)
-    assert _cubeinfo._STACK_DIMS == pmap.cube.STACK_DIMS
-    assert _cubeinfo._DEFAULT_CHUNK_MIB == pmap.cube.DEFAULT_CHUNK_MIB
-    rng = np.random.default_rng(0)
-    for _ in range(400):
-        shape = tuple(int(v) for v in rng.integers(1, 5000, 2))
-        nch, item = int(rng.integers(1, 2048)), int(rng.choice([2, 4, 8]))
-        align = None if rng.random() < 0.3 else tuple(int(v) for v in rng.integers(1, 300, 2))
-        mib = float(rng.choice([1.0, 16.0, 64.0, 256.0]))
-        assert _cubeinfo.choose_spatial_chunks(shape, nch, item, target_mib=mib, align=align) \
-            == pmap.cube.choose_spatial_chunks(shape, nch, item, target_mib=mib, align=align)
-
-
 def test_cli_info_imports_neither_xarray_nor_dask(stored):
     path, data = stored
     code = ("import sys; from pmap.cli import main; rc = main(['info', sys.argv[1]]); "

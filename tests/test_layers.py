@@ -12,8 +12,8 @@ PKG = Path(__file__).resolve().parents[1] / "pmap"
 # Lower number = lower layer. A module may import only from its own layer or below.
 LAYERS = {
     "errors": 0, "conventions": 0, "airvac": 0, "_version": 0, "provenance": 0, "steps": 0, "cube": 0,
-    "_progress": 0, "noise": 0, "_style": 0,
-    "io": 1, "synthetic": 1,
+    "_progress": 0, "noise": 0, "_style": 0, "_layout": 0,
+    "io": 1, "synthetic": 1, "_cubeinfo": 1,
     "scenes": 1,
     "spectral": 2, "stack": 2,
     "fitting": 3, "decomposition": 3, "series": 3, "planck": 3,
