@@ -290,6 +290,23 @@ def lookup(bits, n, table, ids, out):
         out[i] = last_id
 
 
+@nb.njit(cache=True, nogil=True, inline="always")
+def _slot(iy, ix, cy, cx, nbx, slot_of, stamp, clock, res):
+    """Pool slot of the chunk holding pixel (iy, ix) and the pixel's place in it:
+    (slot, ly, lx); slot −1 with res[0] = the chunk's key when it is not in the pool.
+    A found slot is stamped as used now (least recently used eviction)."""
+    by = iy // cy
+    bx = ix // cx
+    key = by * nbx + bx
+    s = slot_of[key]
+    if s < 0:
+        res[0] = key
+        return -1, 0, 0
+    stamp[s] = clock[0]
+    clock[0] += 1
+    return s, iy - by * cy, ix - bx * cx
+
+
 @nb.njit(cache=True, nogil=True)
 def scatter(
     xid, yid, sid, vals, n, start, xmap, ymap, smap,
@@ -311,17 +328,9 @@ def scatter(
             return UNKNOWN, i
         ix = xmap[xid[i]]
         iy = ymap[yid[i]]
-        by = iy // cy
-        bx = ix // cx
-        key = by * nbx + bx
-        s = slot_of[key]
+        s, ly, lx = _slot(iy, ix, cy, cx, nbx, slot_of, stamp, clock, res)
         if s < 0:
-            res[0] = key
             return NEED_CHUNK, i
-        stamp[s] = clock[0]
-        clock[0] += 1
-        ly = iy - by * cy
-        lx = ix - bx * cx
         if long:
             if sid[i] < 0:
                 return UNKNOWN, i
@@ -367,17 +376,9 @@ def scatter_runs(
     for r in range(start, nr):
         ix = xmap[rx[r]]
         iy = ymap[ry[r]]
-        by = iy // cy
-        bx = ix // cx
-        key = by * nbx + bx
-        s = slot_of[key]
+        s, ly, lx = _slot(iy, ix, cy, cx, nbx, slot_of, stamp, clock, res)
         if s < 0:
-            res[0] = key
             return NEED_CHUNK, r
-        stamp[s] = clock[0]
-        clock[0] += 1
-        ly = iy - by * cy
-        lx = ix - bx * cx
         s0 = rs[r]
         for t in range(rl[r]):
             ic = smap[s0 + t]
