@@ -59,6 +59,11 @@ def _encode(record: dict) -> str:
     return json.dumps(_jsonable(record), sort_keys=False)
 
 
+#: Statistics of the stored values (CF ``actual_range``; the finite count), written by
+#: ``save_cube``: every processing step drops them from the attrs it passes on.
+VALUE_STATS_ATTRS = ("actual_range", "pmap_finite_count")
+
+
 def with_step(attrs: dict, name: str, params: dict | None = None, **results: Any) -> dict:
     """Return a copy of ``attrs`` with one processing step appended to the provenance.
 
@@ -81,6 +86,8 @@ def with_step(attrs: dict, name: str, params: dict | None = None, **results: Any
     record["pmap_version"] = __version__
     out = dict(attrs)
     out[PROVENANCE_ATTR] = _encode(record)
+    for k in VALUE_STATS_ATTRS:  # the step may change the values: their stored range is stale
+        out.pop(k, None)
     return out
 
 

@@ -17,7 +17,7 @@ import xarray as xr
 from ..conventions import CUBE_NAME
 from ..cube import validate_cube
 from ..errors import FormatError, OutputExistsError
-from ..provenance import get_provenance
+from ..provenance import VALUE_STATS_ATTRS, get_provenance
 from ._common import FORMATS
 
 #: Formats pmap writes cubes in (those with a writer in the registry).
@@ -197,7 +197,7 @@ def save_cube(
 
 
 #: value statistics save_cube stores with a Zarr cube (``plcube info`` shows them as stored)
-STATS_ATTRS = ("actual_range", "pmap_finite_count")
+STATS_ATTRS = VALUE_STATS_ATTRS
 
 
 def _write_zarr_with_stats(ds: xr.Dataset, out: Path, *, zarr_format: int) -> None:
