@@ -498,7 +498,10 @@ def write_result(
                                           dask_key_name=f"{_DONE_KEY}{name}")
 
     try:
-        tasks = _write_tasks(str(p), todo, pieces, maps)
+        try:  # dask's task spec is not public API: any change there falls back
+            tasks = _write_tasks(str(p), todo, pieces, maps)
+        except (TypeError, AttributeError, ValueError):
+            tasks = None
         if tasks is None:  # no task-spec API in this dask: one Delayed call per block
             tasks = [task(i, ys, xs) for i, ys, xs in todo]
         if client is not None:
