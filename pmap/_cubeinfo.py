@@ -33,7 +33,7 @@ import numpy as np
 from ._layout import METADATA_ATTRS, STACK_DIMS, choose_spatial_chunks
 from .conventions import SPECTRAL_DIMS, normalise_intensity_unit, normalise_length_unit
 from .errors import PmapError
-from .provenance import PROVENANCE_ATTR, get_provenance, with_input
+from .provenance import PROVENANCE_ATTR, get_provenance, with_input, with_medium
 
 #: cubes up to this many bytes (in memory) get a full min/max scan by default
 FULL_SCAN_BYTES = 64 * 2**20
@@ -246,13 +246,8 @@ def _quick(p: Path, value_range: bool, full_range: bool, full_scan_bytes: int,
             source = stored if stored in _MEDIUM_SOURCES else "data"
         attrs["wavelength_medium"] = medium
     attrs = with_input(attrs, p, fmt="zarr")
-    if sdim == "wavelength":  # as pmap.io._api.with_medium
-        attrs["wavelength_medium_source"] = source
-        record = get_provenance(attrs)
-        if record.get("input"):
-            record["input"]["wavelength_medium"] = attrs.get("wavelength_medium", "air")
-            record["input"]["wavelength_medium_source"] = source
-            attrs[PROVENANCE_ATTR] = json.dumps(record)
+    if sdim == "wavelength":
+        attrs = with_medium(attrs, source)
 
     stored_chunks = {d: int(c) for d, c in zip(dims, arr.chunks)}
     cy, cx = choose_spatial_chunks((sizes["y"], sizes["x"]), sizes[sdim], arr.dtype.itemsize,

@@ -18,7 +18,8 @@ import numpy as np
 
 from ._version import __version__
 
-__all__ = ["PROVENANCE_ATTR", "get_provenance", "with_step", "with_input", "fingerprint_path"]
+__all__ = ["PROVENANCE_ATTR", "get_provenance", "with_step", "with_input", "with_medium",
+           "fingerprint_path"]
 
 PROVENANCE_ATTR = "pmap_provenance"
 
@@ -134,3 +135,20 @@ def fingerprint_path(path: str | os.PathLike, *, sample_bytes: int = 1 << 20) ->
                 fh.seek(size - sample_bytes)
                 h.update(fh.read(sample_bytes))
     return "sha256:" + h.hexdigest()[:32]
+
+
+def with_medium(attrs: dict, source: str) -> dict:
+    """Attrs with ``wavelength_medium_source`` set and the medium in the provenance input.
+
+    The provenance record's ``input`` gains ``wavelength_medium`` and
+    ``wavelength_medium_source``, so result stores keep whether the medium was
+    stated after the axis has become energy.
+    """
+    out = dict(attrs)
+    out["wavelength_medium_source"] = source
+    record = get_provenance(out)
+    if record.get("input"):
+        record["input"]["wavelength_medium"] = out.get("wavelength_medium", "air")
+        record["input"]["wavelength_medium_source"] = source
+        out[PROVENANCE_ATTR] = json.dumps(record)
+    return out

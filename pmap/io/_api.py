@@ -18,7 +18,7 @@ from ..conventions import CUBE_NAME, udunits
 from ..cube import DEFAULT_CHUNK_MIB
 from ..errors import InputFileError, OutputExistsError
 from ..noise import describe_noise_coords
-from ..provenance import PROVENANCE_ATTR, get_provenance
+from ..provenance import with_medium
 from ._common import check_input, detect_format, finish_cube, get_format, read_sidecar
 from ._text import text_to_zarr
 from ._write import _same_or_inside, atomic_output, output_format, prepare_output, save_cube
@@ -119,23 +119,6 @@ def _medium_source(raw: Any, path: Path, kind: str, options: Mapping[str, Any]) 
         return "assumed"
     stored = raw.attrs.get("wavelength_medium_source")
     return stored if stored in _MEDIUM_SOURCES else "data"
-
-
-def with_medium(attrs: dict, source: str) -> dict:
-    """Attrs with ``wavelength_medium_source`` set and the medium in the provenance input.
-
-    The provenance record's ``input`` gains ``wavelength_medium`` and
-    ``wavelength_medium_source``, so result stores keep whether the medium was
-    stated after the axis has become energy.
-    """
-    out = dict(attrs)
-    out["wavelength_medium_source"] = source
-    record = get_provenance(out)
-    if record.get("input"):
-        record["input"]["wavelength_medium"] = out.get("wavelength_medium", "air")
-        record["input"]["wavelength_medium_source"] = source
-        out[PROVENANCE_ATTR] = json.dumps(record)
-    return out
 
 
 def convert(
