@@ -226,6 +226,16 @@ def _home(bits, mask):
     return np.int64(z & np.uint64(mask))
 
 
+@nb.njit(cache=True, nogil=True, inline="always")
+def _probe(table, b, mask):
+    """Slot of value bits ``b`` in the open-addressing table: where it is, or the first
+    empty slot on its probe path (linear probing from :func:`_home`)."""
+    h = _home(b, mask)
+    while table[h] != b and table[h] != EMPTY:
+        h = (h + 1) & mask
+    return h
+
+
 @nb.njit(cache=True, nogil=True)
 def intern(bits, n, table, ids, order, count, out, start):
     """Number the distinct values of bits[start:n] (float64 bit patterns) in order of
@@ -246,21 +256,16 @@ def intern(bits, n, table, ids, order, count, out, start):
             if last_id + 1 < count[0] and order[last_id + 1] == b:
                 last_id += 1  # the value numbered after the last one (channels in order)
             else:
-                h = _home(b, mask)
-                while True:
-                    t = table[h]
-                    if t == b:
-                        last_id = ids[h]
-                        break
-                    if t == EMPTY:
-                        if count[0] >= limit:
-                            return i
-                        k = count[0]
-                        table[h], ids[h], order[k] = b, k, b
-                        count[0] = k + 1
-                        last_id = k
-                        break
-                    h = (h + 1) & mask
+                h = _probe(table, b, mask)
+                if table[h] == b:
+                    last_id = ids[h]
+                else:  # a new value: numbered next
+                    if count[0] >= limit:
+                        return i
+                    k = count[0]
+                    table[h], ids[h], order[k] = b, k, b
+                    count[0] = k + 1
+                    last_id = k
             last = b
         out[i] = last_id
     return n
@@ -276,16 +281,8 @@ def lookup(bits, n, table, ids, out):
         if b == _NEG_ZERO:
             b = 0
         if b != last:
-            last_id = -1
-            h = _home(b, mask)
-            while True:
-                t = table[h]
-                if t == b:
-                    last_id = ids[h]
-                    break
-                if t == EMPTY:
-                    break
-                h = (h + 1) & mask
+            h = _probe(table, b, mask)
+            last_id = ids[h] if table[h] == b else -1
             last = b
         out[i] = last_id
 

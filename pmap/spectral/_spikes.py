@@ -709,6 +709,27 @@ def _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, law, nz, skip, g, v, mb, nb
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
+def _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, over_mu, a0, b0, law, nz, skip, g, v,
+                mb, nb):  # pragma: no cover - compiled
+    """Ternary search (10 steps) of :func:`_lr_eval`'s χ² over the line's centre
+    (``over_mu``) or its width within [a0, b0], the other held; returns the midpoint."""
+    for _ in range(10):
+        m1 = a0 + (b0 - a0) / 3.0
+        m2 = b0 - (b0 - a0) / 3.0
+        if over_mu:
+            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m1, sig, law, nz, skip, g, v, mb, nb)
+            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m2, sig, law, nz, skip, g, v, mb, nb)
+        else:
+            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, m1, law, nz, skip, g, v, mb, nb)
+            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, m2, law, nz, skip, g, v, mb, nb)
+        if f1 < f2:
+            b0 = m2
+        else:
+            a0 = m1
+    return 0.5 * (a0 + b0)
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def _lr_chi2(e, lvl, vf, sf2, w0, w1, s, w, sd, law, nz, skip, mb, nb):  # pragma: no cover
     """Least χ² over line positions μ and widths σ ≥ sd (the instrument's s.d., channels)
     of e_j ≈ A·g_j(μ, σ) + C (A ≥ 0; g the Gaussian integrated over channel j), channels
@@ -737,32 +758,12 @@ def _lr_chi2(e, lvl, vf, sf2, w0, w1, s, w, sd, law, nz, skip, mb, nb):  # pragm
     gmu = bmu
     gsig = bsig
     for rnd in range(2):
-        a0 = bmu - 0.1
-        b0 = bmu + 0.1
-        for _ in range(10):
-            m1 = a0 + (b0 - a0) / 3.0
-            m2 = b0 - (b0 - a0) / 3.0
-            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m1, bsig, law, nz, skip, g, v, mb, nb)
-            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m2, bsig, law, nz, skip, g, v, mb, nb)
-            if f1 < f2:
-                b0 = m2
-            else:
-                a0 = m1
-        bmu = 0.5 * (a0 + b0)
+        bmu = _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, True, bmu - 0.1, bmu + 0.1,
+                          law, nz, skip, g, v, mb, nb)
         if rnd == 1:
             break
-        a0 = max(sd, bsig / 1.3)
-        b0 = bsig * 1.3
-        for _ in range(10):
-            m1 = a0 + (b0 - a0) / 3.0
-            m2 = b0 - (b0 - a0) / 3.0
-            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, bmu, m1, law, nz, skip, g, v, mb, nb)
-            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, bmu, m2, law, nz, skip, g, v, mb, nb)
-            if f1 < f2:
-                b0 = m2
-            else:
-                a0 = m1
-        bsig = 0.5 * (a0 + b0)
+        bsig = _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, False, max(sd, bsig / 1.3),
+                           bsig * 1.3, law, nz, skip, g, v, mb, nb)
     chi = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, law, nz, skip, g, v, mb, nb)
     if chi < best:
         best = chi
