@@ -495,7 +495,8 @@ def _place_template(Yr, b, spec, tp):
 
     The shift maximises the cross-correlation of the row (less its base ``b``) with
     the template's peaks (searched over ± the template's span or widest FWHM, whichever
-    is larger, in steps of one channel, refined by a parabola through the best three);
+    is larger, in steps of a quarter of the narrowest template FWHM but at least one
+    channel, refined by a parabola through the best three);
     a pixel's maximum alone is a poor anchor when the relative heights of the lines
     change across the map (it may sit on another line than the template's). With the
     line shapes fixed at that position the areas and the background are linear: least
@@ -505,6 +506,9 @@ def _place_template(Yr, b, spec, tp):
     n, K_, npp = x.size, spec.K, spec.npp
     cen, fwhm = tp[0:K_ * npp:npp], tp[1:K_ * npp:npp]
     step = float(np.median(np.abs(np.diff(x))))
+    # the correlation is as smooth as the narrowest line: a grid of a quarter of its
+    # FWHM (at least one channel) samples it densely enough for the parabola below
+    step *= max(1, int(float(np.min(fwhm)) / (4.0 * step)))
     ns = int(np.ceil(max(float(np.ptp(cen)), float(np.max(fwhm))) / step))
     shifts = np.arange(-ns, ns + 1) * step
     B = np.empty((shifts.size, K_, n))
