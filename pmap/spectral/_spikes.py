@@ -957,7 +957,7 @@ def _basis(p, j, lo, f):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _shift_residual(x, p, cnt, lo, hi, a, b, e0, e1, rho1, law, nz, r, ls):  # pragma: no cover
+def _shift_residual(x, p, cnt, lo, hi, a, b, e0, e1, rho1, law, nz, r, ls, ex):  # pragma: no cover
     """r[j − lo] = x − p − (α + γ·p + δ·p′ + ε·p″) over a … b: the spectrum less the
     neighbour prediction corrected for an offset (α), and for a change of the amplitude
     (γ), position (δ, first order) and width (ε, second order) of the features the
@@ -970,13 +970,15 @@ def _shift_residual(x, p, cnt, lo, hi, a, b, e0, e1, rho1, law, nz, r, ls):  # p
     ill-determined fit must not be extrapolated into the feature it left out); and its
     derivative terms are not used next to a channel where the prediction itself is
     narrower than the instrument allows (:func:`_artefact`, levels above the lowest p of
-    a … b: a hot channel, whose derivatives would only blow up noise). ``r`` holds x − p on entry; ``ls`` is (4, 5) work."""
+    a … b: a hot channel, whose derivatives would only blow up noise). Channels that ``ex``
+    marks (other spikes) are left out of the fit. ``r`` holds x − p on entry; ``ls`` is
+    (4, 5) work."""
     f = np.empty(4)
     for i in range(4):
         for k in range(5):
             ls[i, k] = 0.0
     for j in range(a, b + 1):
-        if e0 <= j <= e1:
+        if e0 <= j <= e1 or ex[j - lo]:
             continue
         _basis(p, j, lo, f)
         y = x[j] - p[j - lo]
@@ -1165,26 +1167,15 @@ def _robust_ratio(x, ref, off, lo, hi, g0, g1, a, law, nz, wb):  # pragma: no co
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, sds, bin_of,
-           law, nz, p, cnt, vbuf, abuf, rbuf, ls, sres, cand, out):  # pragma: no cover
-    """Judge the candidate ``ca`` of spectrum x against the reference spectra
-    refs[:nref, c − lo] (neighbours or other frames), channels lo … hi.
-
-    The prediction is the median of the references, each scaled to x by the ratio of sums
-    over the flanks (|c − ca| > max_width + 1; a reference needing a factor beyond 1/5 … 5
-    is another kind of spectrum and left out), corrected for a shift and a width change
-    (:func:`_shift_residual`). ``t_shape`` ≤ 0 skips the line-shape test (frames). Writes
-    the replacement into ``out`` when it is a spike (sres[3:6] = first, last channel, 1),
-    and clears the candidates of lo … hi that the references explain (excess below ``t``)
-    and ca ± 1. Returns False when too few references were valid (then the
-    single-spectrum rule applies)."""
-    sres[5] = 0.0
-    h = maxw + 1
+def _predict(x, ca, lo, hi, refs, nref, t_shape, h, law, nz, ex, p, cnt, vbuf, abuf):  # pragma: no cover
+    """The prediction p (median of the references, each scaled to x by the ratio of sums
+    over the flanks |c − ca| > h outside the channels ``ex`` marks) and its count of valid
+    references cnt, channels lo … hi (:func:`_judge`)."""
     sx = 0.0
     vs = 0.0
     nfl = 0
     for c in range(lo, hi + 1):
-        if (c < ca - h or c > ca + h) and x[c] == x[c]:
+        if (c < ca - h or c > ca + h) and x[c] == x[c] and not ex[c - lo]:
             sx += x[c]
             vs += _var_at(c, x[c], law, nz)
             nfl += 1
@@ -1192,7 +1183,7 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
         sr = 0.0
         ok = True
         for c in range(lo, hi + 1):
-            if (c < ca - h or c > ca + h) and x[c] == x[c]:
+            if (c < ca - h or c > ca + h) and x[c] == x[c] and not ex[c - lo]:
                 v = refs[k, c - lo]
                 if not v == v:
                     ok = False
@@ -1219,6 +1210,48 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
         p[c - lo] = median_of(vbuf, m) if m else np.nan
     for c in range(hi - lo + 1, cnt.size):  # (no stale entries beyond the window)
         cnt[c] = 0
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, sds, bin_of,
+           law, nz, p, cnt, vbuf, abuf, rbuf, ls, sres, cand, out):  # pragma: no cover
+    """Judge the candidate ``ca`` of spectrum x against the reference spectra
+    refs[:nref, c − lo] (neighbours or other frames), channels lo … hi.
+
+    The prediction is the median of the references, each scaled to x by the ratio of sums
+    over the flanks (|c − ca| > max_width + 1; a reference needing a factor beyond 1/5 … 5
+    is another kind of spectrum and left out), corrected for a shift and a width change
+    (:func:`_shift_residual`). ``t_shape`` ≤ 0 skips the line-shape test (frames). Writes
+    the replacement into ``out`` when it is a spike (sres[3:6] = first, last channel, 1),
+    and clears the candidates of lo … hi that the references explain (excess below ``t``)
+    and ca ± 1. Returns False when too few references were valid (then the
+    single-spectrum rule applies)."""
+    sres[5] = 0.0
+    h = maxw + 1
+    ex = np.zeros(cnt.size, dtype=np.bool_)
+    _predict(x, ca, lo, hi, refs, nref, t_shape, h, law, nz, ex, p, cnt, vbuf, abuf)
+    if cnt[ca - lo] < min_refs:
+        return False
+    # other spikes in the window (a spectrum often holds several; the less significant are
+    # judged later): channels beyond ca ± 2 within 2 of a pending candidate that stand 3
+    # s.d. above the plain prediction are left out of the scaling, the shift / width fit,
+    # the flanks' scatter and the replacement's fit, which they would bias
+    nex = 0
+    for c in range(lo, hi + 1):
+        if abs(c - ca) <= 2 or not cnt[c - lo] > 0:
+            continue
+        near = False
+        for k in range(max(c - 2, 0), min(c + 2, n - 1) + 1):
+            if cand[k] and abs(k - ca) > 2:
+                near = True
+                break
+        if near:
+            rbuf[c - lo] = x[c] - p[c - lo]
+            if _excess_z(rbuf, p, cnt, c, lo, 0.0, law, nz) > _EXTEND_SIGMA:
+                ex[c - lo] = True
+                nex += 1
+    if nex > 0:
+        _predict(x, ca, lo, hi, refs, nref, t_shape, h, law, nz, ex, p, cnt, vbuf, abuf)
     if cnt[ca - lo] < min_refs:
         return False
     # the excess over the plain prediction at the candidate: channels around it more than
@@ -1236,7 +1269,7 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
     if t_shape > 0 and hi - lo >= 4:  # (frames of one pixel neither move nor broaden)
         sd = sds[bin_of[ca]]
         _shift_residual(x, p, cnt, lo, hi, lo + 1, hi - 1, x0 - 1, x1 + 1,
-                        np.exp(-0.5 / (sd * sd)), law, nz, rbuf, ls)
+                        np.exp(-0.5 / (sd * sd)), law, nz, rbuf, ls, ex)
     # scatter of the residual over the flanks (what the prediction leaves of differences
     # between the spectra, beyond the noise): the smaller of the robust s.d. of the
     # residual and of its first differences / √2 (the latter ignores smooth leftovers,
@@ -1248,7 +1281,8 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
     for mode in range(0 if t_shape <= 0 and law[0, 0] == law[0, 0] else 2):
         m = 0
         for c in range(lo, hi):
-            if (c < ca - h or c >= ca + h) and not x0 - 2 <= c <= x1 + 1:
+            if (c < ca - h or c >= ca + h) and not x0 - 2 <= c <= x1 + 1 and not ex[c - lo] \
+                    and not ex[c + 1 - lo]:
                 r = rbuf[c + 1 - lo] - rbuf[c - lo] if mode else rbuf[c - lo]
                 if r == r:
                     vbuf[m] = r
