@@ -408,3 +408,120 @@ def test_host_aligned_difference_with_a_fixed_band():
                      spectra=sp, axis=e)
     assert host_aligned_difference(data, ra, rb, 0.1) < 0.02  # 0.18 with one shift alone
     assert host_aligned_difference(data, ra, rc, 0.1) > 0.5
+
+
+# ----------------------------------------------------------- compiled labelling pass
+
+
+def _fused_and_numpy(min_snr, weight=0.5, seed=3):
+    """A fitted emission space and nearest-centroid model on three synthetic line types
+    plus a rising continuum (a no-emission cluster), and rows to label: every case of the
+    labelling rule (below and above the channel-sum test and the 5 sigma template test,
+    all zero, all NaN, partly NaN, float32)."""
+    from pmap.decomposition._emission import EmissionSpace
+    from pmap.decomposition._segment import _FusedLabels, _Nearest
+
+    rng = np.random.default_rng(seed)
+    c = 200
+    u = np.arange(c, dtype=float)
+    shapes = np.array([_gauss(u, 60.0, 6.0), _gauss(u, 100.0, 8.0), _gauss(u, 140.0, 5.0),
+                       np.exp((u - c) / 60.0)])
+    n = 6000
+    kind = rng.integers(0, 4, n)
+    amp = np.exp(rng.uniform(np.log(2.0), np.log(400.0), n))  # SNR from ~0.5 to ~100
+    x = amp[:, None] * shapes[kind] * 10.0 + rng.normal(0.0, 2.0, (n, c)) + 3.0
+    space = EmissionSpace.fit(x[amp > 50], intensity_weight=weight)
+    feats = space.features(x)
+    cents = np.array([feats[(kind == j) & (amp > 50)].mean(axis=0) for j in range(4)])
+    templates = np.array([x[(kind == j) & (amp > 50)].mean(axis=0) for j in range(4)])
+    # two centroids per type (split by intensity) so that runner-ups are of either kind
+    cents2 = np.concatenate([cents, cents * 1.05])
+    region_of = np.array([0, 1, 2, -1, 0, 1, 2, -1])
+    model = _Nearest(cents2, region_of, np.concatenate([templates, templates]))
+    relabel = np.array([2, 0, 1], dtype=np.int32)
+    x[0] = 0.0
+    x[1] = np.nan
+    x[2, 5:9] = np.nan
+    x[3, -1] = np.inf
+    from pmap.decomposition._segment import _emission_features
+
+    tkw = {"space": space, "axis": u, "min_snr": min_snr}
+    kw = {"transform": _emission_features, "tkw": tkw, "mu": np.zeros(cents.shape[1]),
+          "sd": np.ones(cents.shape[1]), "model": model, "relabel": relabel}
+    fused = _FusedLabels(space=space, min_snr=min_snr, model=model, relabel=relabel,
+                         predict_kw=kw)
+    return fused, kw, x
+
+
+@pytest.mark.parametrize("min_snr", [None, 5.0])
+@pytest.mark.parametrize("weight", [0.5, 0.0])
+def test_fused_labels_equal_numpy_path(min_snr, weight):
+    """The compiled row pass gives the numpy path's labels and runner-ups row for row
+    (n = 6000 rows spanning the signal and template thresholds; float64 and float32
+    input; NaN rows, partly masked rows, an all-zero row)."""
+    from pmap.decomposition._segment import _predict_numpy
+
+    fused, kw, x = _fused_and_numpy(min_snr, weight)
+    want = _predict_numpy(x, second=True, **kw)
+    got = fused(x, second=True)
+    np.testing.assert_array_equal(got, want)
+    # the cases are all there: kept, rejected by the template test, no signal, runner-ups
+    assert {-1, 0, 1, 2} <= set(np.unique(want[:, 0]))
+    assert np.any(want[:, 1] >= 0) and np.any(want[:, 1] == -2)
+    assert want[1, 0] == -1 and want[0, 0] == -1
+    x32 = x.astype(np.float32)
+    np.testing.assert_array_equal(fused(x32, second=True),
+                                  _predict_numpy(x32.astype(np.float64), second=True, **kw))
+    np.testing.assert_array_equal(fused(x, second=False), want[:, 0])
+
+
+def test_template_decision_by_counting_matches_ratio():
+    """The MAD compared by counting (one selection) decides as proj / sig >= 5 with sig
+    from two numpy medians, also within a few ulps of the threshold (exact path)."""
+    from pmap.decomposition._label_kernel import _keeps_template
+
+    rng = np.random.default_rng(11)
+    for trial in range(3000):
+        nd = 254 + trial % 3
+        d = rng.standard_normal(nd) * rng.uniform(0.1, 10.0)
+        if trial % 7 == 0:
+            d = np.round(d)  # ties and a MAD of 0
+        sig = 1.4826 * np.median(np.abs(d - np.median(d))) / np.sqrt(6.0)
+        choice = trial % 4
+        if choice == 0:
+            proj = 5.0 * sig * (1.0 + (trial % 5 - 2) * 1e-16)  # at the threshold
+        elif choice == 1:
+            proj = 5.0 * sig * rng.uniform(0.5, 1.5)
+        elif choice == 2:
+            proj = -abs(rng.normal()) * sig
+        else:
+            proj = 0.0
+        with np.errstate(divide="ignore", invalid="ignore"):
+            want = bool((proj / sig if sig > 0 else np.inf) >= 5.0)
+        assert _keeps_template(d.copy(), nd, proj, 5.0) == want, (trial, proj, sig)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("seed", [0, 3])
+def test_fused_labels_identical_on_scene_bank(seed, monkeypatch):
+    """segment() with the compiled labelling pass and with the numpy path give the same
+    region map on every scene of pmap.scenes (true K on seed 0, automatic K on seed 3)."""
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    from test_segmentation_bank import _processed
+
+    import pmap.decomposition._segment as seg
+    from pmap.scenes import make_scene, scene_names
+
+    for name in scene_names():
+        scene = make_scene(name, seed=seed)
+        proc = _processed(scene.cube)
+        t = scene.truth["region"].values
+        k = len(np.unique(t[t > 0])) if seed == 0 else "auto"
+        fast = segment(proc, n_regions=k).values
+        monkeypatch.setattr(seg, "FUSED_LABELS", False)
+        slow = segment(proc, n_regions=k).values
+        monkeypatch.setattr(seg, "FUSED_LABELS", True)
+        np.testing.assert_array_equal(fast, slow, err_msg=name)

@@ -175,18 +175,20 @@ def map_pixels(
     out_size: int = 1,
     dtype: Any = np.float64,
     kwargs: Mapping[str, Any] | None = None,
+    in_dtype: Any = np.float64,
 ) -> xr.DataArray:
     """Apply a batched ``func((n, n_core) float64 array, **kwargs)`` to every pixel, lazily.
 
     ``func`` returns (n, out_size) when ``out_core`` is a name, else (n,). Dask-backed
     input gives a dask-backed output (one task per spatial chunk); nothing is computed.
+    ``in_dtype`` None passes each chunk in its stored dtype (no float64 copy).
     """
     kw = dict(kwargs or {})
     n_core = arr.sizes[core]
 
     def core_fn(block: np.ndarray) -> np.ndarray:
         lead = block.shape[:-1]
-        x = np.asarray(block, dtype=np.float64).reshape(-1, n_core)
+        x = np.asarray(block, dtype=in_dtype).reshape(-1, n_core)
         y = func(x, **kw)
         return y.reshape(*lead, out_size) if out_core else y.reshape(lead)
 

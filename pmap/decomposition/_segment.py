@@ -288,11 +288,7 @@ def template_snr(x: np.ndarray, which: np.ndarray, templates: np.ndarray) -> np.
     out = np.full(n, np.nan)
     if c < 8 or not np.any(which >= 0):
         return out
-    u = np.linspace(-1.0, 1.0, c)
-    q, _ = np.linalg.qr(np.stack([np.ones(c), u, u * u], axis=1))
-    tp = templates - (templates @ q) @ q.T
-    norm = np.linalg.norm(tp, axis=1)
-    tp = tp / np.where(norm > 0, norm, 1.0)[:, None]
+    q, tp = _template_basis(templates)
     for j in np.unique(which[which >= 0]):
         rows = np.flatnonzero(which == j)
         xs = x[rows]
@@ -306,6 +302,95 @@ def template_snr(x: np.ndarray, which: np.ndarray, templates: np.ndarray) -> np.
 
 
 def _predict(
+    x: np.ndarray,
+    *,
+    transform,
+    tkw: dict,
+    mu: np.ndarray,
+    sd: np.ndarray,
+    model,
+    relabel: np.ndarray,
+    second: bool = False,
+    fused: _FusedLabels | None = None,
+) -> np.ndarray:
+    """Labels (n,) int32 of the rows x (n, C), or (n, 2) with the runner-up label when
+    ``second``; with ``fused`` the compiled row pass (:mod:`._label_kernel`) labels the
+    rows and only rows with some non-finite channels take the numpy path below."""
+    if fused is not None:
+        return fused(x, second=second)
+    return _predict_numpy(x, transform=transform, tkw=tkw, mu=mu, sd=sd, model=model,
+                          relabel=relabel, second=second)
+
+
+#: Label with the compiled row pass where it applies (False: the numpy path only, for
+#: comparisons).
+FUSED_LABELS = True
+
+
+class _FusedLabels:
+    """The compiled labelling pass for the emission space and the merge model: the
+    constants of :func:`_predict` prepared once (picklable, plain arrays)."""
+
+    def __init__(self, *, space: EmissionSpace, min_snr: float | None, model: _Nearest,
+                 relabel: np.ndarray, predict_kw: dict):
+        self.predict_kw = predict_kw
+        self.min_snr = -1.0 if min_snr is None else float(min_snr)
+        self.projT = np.ascontiguousarray((space.comps * space.inv_noise) / space.scale)
+        self.offset = np.ascontiguousarray((space.mean @ space.comps.T) / space.scale)
+        self.floor = float(space.floor)
+        self.li_mu, self.li_sd, self.weight = float(space.li_mu), float(space.li_sd), \
+            float(space.weight)
+        self.centroids = np.ascontiguousarray(model.centroids)
+        self.c2 = np.ascontiguousarray(model.c2)
+        self.region_of = np.ascontiguousarray(model.region_of, dtype=np.int64)
+        self.relabel = np.ascontiguousarray(relabel, dtype=np.int32)
+        c = self.projT.shape[1]
+        self.use_templates = model.templates is not None
+        if self.use_templates:
+            q, tp = _template_basis(model.templates)
+        else:
+            q, tp = np.zeros((c, 3)), np.zeros((len(self.c2), c))
+        self.qT, self.tp = np.ascontiguousarray(q.T), np.ascontiguousarray(tp)
+        self.qtp = np.ascontiguousarray(self.tp @ q)
+
+    @staticmethod
+    def usable(transform, space, model, n_channels: int) -> bool:
+        """Whether the compiled pass applies (emission space, nearest-centroid model,
+        at least 8 channels: :func:`template_snr` gives NaN below)."""
+        return (FUSED_LABELS and transform is _emission_features and space is not None
+                and isinstance(model, _Nearest) and n_channels >= 8)
+
+    def __call__(self, x: np.ndarray, *, second: bool) -> np.ndarray:
+        from ._label_kernel import FALLBACK, label_rows
+
+        if x.dtype not in (np.float32, np.float64):
+            x = x.astype(np.float64)
+        x = np.ascontiguousarray(x)
+        lab, alt, status = label_rows(
+            x, self.min_snr, self.projT, self.offset, self.floor, self.li_mu, self.li_sd,
+            self.weight, self.centroids, self.c2, self.region_of, self.relabel,
+            AMBIGUOUS**2, self.qT, self.tp, self.qtp, self.use_templates, MIN_TEMPLATE_SNR,
+        )
+        rows = np.flatnonzero(status == FALLBACK)
+        if rows.size:
+            got = _predict_numpy(np.asarray(x[rows], dtype=np.float64), second=True,
+                                 **self.predict_kw)
+            lab[rows], alt[rows] = got[:, 0], got[:, 1]
+        return np.stack([lab, alt], axis=1) if second else lab
+
+
+def _template_basis(templates: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(q (C, 3) orthonormal basis of {1, u, u²} on u ∈ [−1, 1], templates (m, C) with
+    that baseline projected out, scaled to unit norm) as in :func:`template_snr`."""
+    c = templates.shape[1]
+    u = np.linspace(-1.0, 1.0, c)
+    q, _ = np.linalg.qr(np.stack([np.ones(c), u, u * u], axis=1))
+    tp = templates - (templates @ q) @ q.T
+    norm = np.linalg.norm(tp, axis=1)
+    return q, tp / np.where(norm > 0, norm, 1.0)[:, None]
+
+
+def _predict_numpy(
     x: np.ndarray,
     *,
     transform,
@@ -1045,13 +1130,20 @@ def segment(
 
     kwargs = {"transform": transform, "tkw": tkw, "mu": mu, "sd": sd, "model": model,
               "relabel": relabel}
+    in_dtype: Any = np.float64
+    if _FusedLabels.usable(transform, space, model, arr.sizes[core]):
+        # one compiled row pass per chunk, on the chunk as stored (no float64 copy)
+        kwargs["fused"] = _FusedLabels(space=space, min_snr=tkw["min_snr"], model=model,
+                                       relabel=relabel, predict_kw=dict(kwargs))
+        in_dtype = None
     if method == "merge" and min_region_px > 1:
         both = map_pixels(_predict, arr, core, out_core="choice", out_size=2, dtype=np.int32,
-                          kwargs={**kwargs, "second": True})
+                          kwargs={**kwargs, "second": True}, in_dtype=in_dtype)
         region = both.isel(choice=0, drop=True)
         region = _clean(region, int(min_region_px), both.isel(choice=1, drop=True))
     else:
-        region = map_pixels(_predict, arr, core, out_core=None, dtype=np.int32, kwargs=kwargs)
+        region = map_pixels(_predict, arr, core, out_core=None, dtype=np.int32, kwargs=kwargs,
+                            in_dtype=in_dtype)
         if min_region_px > 1:
             region = _clean(region, int(min_region_px))
     legend = {"-1": "no signal, NaN or masked"}
