@@ -160,12 +160,158 @@ def _robust_limits(values: np.ndarray, robust: bool) -> tuple[float, float] | No
     return lo, hi
 
 
-def _new_figure(nrows_over_ncols: float, *, width_in: float = 6.4, side_in: float = 1.9):
-    """A figure whose height fits a map of that aspect beside ``side_in`` of colour bar."""
+def _new_figure(nrows_over_ncols: float, *, width_in: float = 6.4, side_in: float = 1.9,
+                map_layout: bool = False):
+    """A figure whose height fits a map of that aspect beside ``side_in`` of colour bar.
+
+    ``map_layout``: one map with its colour bar or legend, placed by :func:`_map_layout`
+    (margins measured once from the texts, no constraint solver); else matplotlib's
+    constrained layout.
+    """
     from matplotlib.figure import Figure
 
-    height = min(max((width_in - side_in) * nrows_over_ncols + 1.3, 2.8), 9.0)
-    return Figure(figsize=(width_in, height), layout="constrained")
+    # a map figure is at least MAP_MIN_HEIGHT_IN high: room for a colour bar's label
+    # along its side beside a wide, flat map
+    height = min(max((width_in - side_in) * nrows_over_ncols + 1.3,
+                     MAP_MIN_HEIGHT_IN if map_layout else 2.8), 9.0)
+    return Figure(figsize=(width_in, height),
+                  layout=_map_layout()() if map_layout else "constrained")
+
+
+#: Least height (inches) of a one-map figure (a colour bar label of two lines of up to
+#: ~50 characters at 8.5 pt runs along the bar).
+MAP_MIN_HEIGHT_IN = 3.6
+#: Space (inches) kept between a figure's edge and its outermost text, and between the
+#: map and its colour bar, in the fixed map layout.
+LAYOUT_PAD_IN = 0.08
+COLORBAR_GAP_IN = 0.14
+#: Colour bar: this fraction of the map's height, and its width as a fraction of its
+#: height (within 0.12-0.22 in).
+COLORBAR_SHRINK = 0.9
+COLORBAR_ASPECT = 20.0
+
+_MAP_LAYOUT: list = []
+
+
+def _map_layout():
+    """The class of the fixed layout of a one-map figure (made on first use, so that
+    importing this module does not import matplotlib).
+
+    At every draw (so at any figure size or dpi set by :func:`figure_output`) it places
+    the map's axes at the largest box of the map's aspect that leaves room for the
+    outer texts, measured from the texts themselves: y tick labels and label on the
+    left, x tick labels, label and the footer note below, the title above, the colour
+    bar (with its tick labels and label) or the legend on the right. The texts are
+    measured with the map placed by a first guess, then again where that put it, and
+    the map is placed for good (cheaper than matplotlib's constrained layout, which
+    measures every artist while it solves).
+    """
+    if _MAP_LAYOUT:
+        return _MAP_LAYOUT[0]
+    from matplotlib.layout_engine import LayoutEngine
+
+    class MapLayout(LayoutEngine):
+        _adjust_compatible = False
+        _colorbar_gridspec = False
+
+        def __init__(self) -> None:
+            super().__init__()
+            self.ax = None  # the map
+            self.cax = None  # its colour bar (plot_map)
+            self.legend = None  # or its legend (plot_labels)
+            self._bar_label_in = 0.0  # length of the colour bar's label, inches
+
+        def execute(self, fig) -> None:
+            ax = self.ax
+            if ax is None:
+                return
+            renderer = fig._get_renderer()
+            w_in, h_in = (float(v) for v in fig.get_size_inches())
+            pad = LAYOUT_PAD_IN
+            # first guess: matplotlib's default font sizes; the right side from the
+            # colour bar or legend measured below
+            margins = [0.85, 1.3 if self.cax is not None else 0.3, 0.75, 0.45]
+            # measured twice: the second time with the colour bar at its length (the
+            # number of its ticks, so the width of their labels, follows the length)
+            for _ in range(2):
+                box = self._place(fig, w_in, h_in, margins)
+                margins = self._measure(fig, renderer, box, w_in, h_in, pad)
+            self._place(fig, w_in, h_in, margins)
+
+        def _place(self, fig, w_in, h_in, margins):
+            """Place the map (and colour bar) for margins (left, right, bottom, top), in
+            inches; returns the map's box (x0, y0, width, height) in inches."""
+            ax = self.ax
+            left, right, bottom, top = margins
+            avail_w = max(w_in - left - right, 0.2 * w_in)
+            avail_h = max(h_in - bottom - top, 0.2 * h_in)
+            x0, x1 = ax.get_xlim()
+            y0, y1 = ax.get_ylim()
+            aspect = abs((y1 - y0) / (x1 - x0)) if x1 != x0 and y1 != y0 else 1.0
+            if ax.get_aspect() != 1.0:  # not an equal-aspect map: fill the space
+                aspect = avail_h / avail_w
+            w = min(avail_w, avail_h / aspect)
+            h = w * aspect
+            # centred in the space left by the margins
+            bx = left + (avail_w - w) / 2
+            by = bottom + (avail_h - h) / 2
+            ax.set_position((bx / w_in, by / h_in, w / w_in, h / h_in))
+            if self.cax is not None:
+                # as long as its label (centred on the map), within the figure
+                ch = min(max(COLORBAR_SHRINK * h, self._bar_label_in + 0.1),
+                         h_in - 2 * LAYOUT_PAD_IN)
+                cw = min(max(ch / COLORBAR_ASPECT, 0.12), 0.22)
+                self.cax.set_position(((bx + w + COLORBAR_GAP_IN) / w_in,
+                                       (by + (h - ch) / 2) / h_in, cw / w_in, ch / h_in))
+            return bx, by, w, h
+
+        def _measure(self, fig, renderer, box, w_in, h_in, pad):
+            """Margins (inches) that the texts around the map at ``box`` need."""
+            dpi = fig.dpi
+            bx, by, w, h = box
+            lo_x, lo_y, hi_x, hi_y = bx, by, bx + w, by + h  # extents of all texts, inches
+
+            def grow(bb):
+                nonlocal lo_x, lo_y, hi_x, hi_y
+                if bb is None or bb.width == 0 and bb.height == 0:
+                    return
+                lo_x, lo_y = min(lo_x, bb.x0 / dpi), min(lo_y, bb.y0 / dpi)
+                hi_x, hi_y = max(hi_x, bb.x1 / dpi), max(hi_y, bb.y1 / dpi)
+
+            ax = self.ax
+            for axis in (ax.xaxis, ax.yaxis):
+                grow(axis.get_tightbbox(renderer))
+            if ax.title.get_text():
+                grow(ax.title.get_window_extent(renderer))
+            if self.cax is not None:
+                label = self.cax.yaxis.label
+                self._bar_label_in = (label.get_window_extent(renderer).height / dpi
+                                      if label.get_text() else 0.0)
+                grow(self.cax.get_tightbbox(renderer))
+            if self.legend is not None:
+                grow(self.legend.get_window_extent(renderer))
+            foot = getattr(fig, "_supxlabel", None)
+            foot_h = (foot.get_window_extent(renderer).height / dpi + 0.01 * h_in
+                      if foot is not None and foot.get_text() else 0.0)
+            return [bx - lo_x + pad, hi_x - (bx + w) + pad,
+                    by - lo_y + pad + foot_h, hi_y - (by + h) + pad]
+
+    _MAP_LAYOUT.append(MapLayout)
+    return MapLayout
+
+
+def _colorbar(ax, im, **kw):
+    """A colour bar beside the map ``ax``: in the fixed map layout, on its own axes
+    placed by the layout; else taken from ``ax`` (shrunk to 0.9 of its height)."""
+    fig = ax.figure
+    engine = fig.get_layout_engine()
+    if _MAP_LAYOUT and isinstance(engine, _MAP_LAYOUT[0]) and engine.ax is ax:
+        engine.cax = fig.add_axes((0.9, 0.1, 0.02, 0.8))
+        cb = fig.colorbar(im, cax=engine.cax, **kw)
+        # a multiplier ("1e-7") centred over the bar, not reaching back over the map
+        cb.ax.yaxis.get_offset_text().set(x=0.5, horizontalalignment="center")
+        return cb
+    return fig.colorbar(im, ax=ax, shrink=COLORBAR_SHRINK, **kw)
 
 
 def parse_size_cm(text: str) -> tuple[float, float]:
@@ -445,7 +591,7 @@ def _draw_map(
     ax.set_ylabel(f"y ({_unit_text(yunit)})")
     cb = None
     if levels is not None:
-        cb = ax.figure.colorbar(im, ax=ax, shrink=0.9, ticks=np.arange(len(levels)))
+        cb = _colorbar(ax, im, ticks=np.arange(len(levels)))
         names = _style.flag_names(da.attrs) or {}
         cb.ax.set_yticklabels([names.get(lv, str(lv)) for lv in levels], fontsize=8)
         cb.set_label(_label(da, "value"))
@@ -455,7 +601,7 @@ def _draw_map(
             lo_c, hi_c = np.nanmin(values) < kw["vmin"], np.nanmax(values) > kw["vmax"]
             extend = {(True, True): "both", (True, False): "min", (False, True): "max"}.get(
                 (bool(lo_c), bool(hi_c)), "neither")
-        cb = ax.figure.colorbar(im, ax=ax, shrink=0.9, extend=extend)
+        cb = _colorbar(ax, im, extend=extend)
         fmt = cb.ax.yaxis.get_major_formatter()
         if hasattr(fmt, "set_useOffset"):  # whole values on the bar, not "+1.576" and 0.0005
             fmt.set_useOffset(False)
@@ -529,8 +675,9 @@ def plot_map(
         The PNG written (dpi 120 unless :func:`figure_output` says otherwise).
     """
     da = _as_map(da)
-    fig = _new_figure(da.sizes["y"] / da.sizes["x"])
+    fig = _new_figure(da.sizes["y"] / da.sizes["x"], map_layout=True)
     ax = fig.add_subplot()
+    fig.get_layout_engine().ax = ax
     art = _draw_map(ax, da, cmap=cmap, robust=robust, scale_bar=scale_bar, vlim=vlim,
                     note=note)
     title_text = _set_title(ax, title if title is not None else _title(da))
@@ -887,8 +1034,10 @@ def plot_labels(
     norm = BoundaryNorm(np.arange(codes.size + 1) - 0.5, codes.size)
     longest = max((len(label_names.get(int(c), str(int(c)))) for c in codes), default=4)
     side = min(1.0 + 0.07 * (longest + 5), 4.2)
-    fig = _new_figure(da.sizes["y"] / da.sizes["x"], width_in=4.6 + side, side_in=side)
+    fig = _new_figure(da.sizes["y"] / da.sizes["x"], width_in=4.6 + side, side_in=side,
+                      map_layout=True)
     ax = fig.add_subplot()
+    fig.get_layout_engine().ax = ax
     mapped = da.copy(data=index)
     art = _draw_map(ax, mapped, cmap=cmap, scale_bar=scale_bar, norm=norm, discrete=False)
     handles = [
@@ -899,7 +1048,7 @@ def plot_labels(
         )
         for i, c in enumerate(codes)
     ]
-    ax.legend(
+    fig.get_layout_engine().legend = ax.legend(
         handles=handles,
         loc="upper left",
         bbox_to_anchor=(1.02, 1.0),
