@@ -397,3 +397,35 @@ def test_edges_sharper_than_the_instrument():
     assert flag.tolist() == [False, True]
     # A Gaussian of FWHM w has a steepest slope of exp(-1/2)/sigma relative to its maximum.
     assert inst[0] == pytest.approx(np.exp(-0.5) / (0.02 / (2 * np.sqrt(2 * np.log(2)))))
+
+
+def test_compiled_clipped_nnls_equals_numpy_nnls():
+    """The one-pass abundances (products of the clipped rows in a compiled pass) equal
+    nnls_rows on the clipped finite rows to rounding (relative to the largest abundance,
+    n = 4000 rows, k = 1..4 components incl. supports with zeros), with the same zero
+    pattern, NaN exactly for rows holding NaN or inf, float32 input as float64; and
+    scipy.optimize.nnls (Lawson & Hanson 1974) on a few rows."""
+    from pmap.decomposition._nnls import nnls_clipped_rows, nnls_rows
+
+    rng = np.random.default_rng(5)
+    c = 300
+    u = np.arange(c)
+    for k in (1, 2, 3, 4):
+        spectra = np.array([np.exp(-0.5 * ((u - 40 - 60 * j) / 15.0) ** 2) for j in range(k)])
+        w = rng.uniform(0, 50, (4000, k)) * (rng.random((4000, k)) > 0.3)
+        x = w @ spectra + rng.normal(0, 2.0, (4000, c))
+        x[7, 3] = np.nan
+        x[9, 100] = -np.inf
+        for arr in (x, x.astype(np.float32)):
+            got = nnls_clipped_rows(arr, spectra)
+            x64 = arr.astype(np.float64)
+            ok = np.isfinite(x64).all(axis=1)
+            want = np.full_like(got, np.nan)
+            want[ok] = nnls_rows(np.clip(x64[ok], 0.0, None), spectra)
+            np.testing.assert_array_equal(np.isnan(got), ~ok[:, None] & np.ones(k, bool))
+            assert np.nanmax(np.abs(got - want)) <= 1e-10 * np.nanmax(want)
+            np.testing.assert_array_equal(got[ok] == 0, want[ok] == 0)
+        for i in range(10, 15):
+            ref, _ = nnls(spectra.T, np.clip(x[i], 0, None))
+            np.testing.assert_allclose(nnls_clipped_rows(x[i:i + 1], spectra)[0], ref,
+                                       rtol=1e-7, atol=1e-8 * ref.max())

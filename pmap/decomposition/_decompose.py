@@ -29,7 +29,7 @@ from ._common import (
     sample_positions,
 )
 from ._components import align_rows, peak_offsets, sharp_edges, shifting_pairs
-from ._nnls import nnls_rows
+from ._nnls import nnls_clipped_rows, nnls_rows
 
 METHODS = ("nmf", "pca")
 NEGATIVE_POLICY = "values below 0 clipped to 0 before NMF fitting and unmixing"
@@ -181,6 +181,8 @@ def _pca_scores(x: np.ndarray, *, mean: np.ndarray, spectra: np.ndarray) -> np.n
 
 
 def _nmf_abundance(x: np.ndarray, *, spectra: np.ndarray, reference: float | None = None):
+    if reference is None:
+        return nnls_clipped_rows(x, spectra)
     out = np.full((len(x), len(spectra)), np.nan)
     ok = finite_rows(x)
     rows = x[ok]
@@ -424,7 +426,9 @@ def decompose(
     attrs = _result_attrs(cube, "decompose", params, n_fit_pixels=attrs["n_fit_pixels"]) | attrs
     attrs["seed"] = seed
 
-    abundance = map_pixels(fn, arr, sdim, out_core="component", out_size=len(spectra), kwargs=kw)
+    abundance = map_pixels(fn, arr, sdim, out_core="component", out_size=len(spectra), kwargs=kw,
+                           in_dtype=None if fn is _nmf_abundance and reference is None
+                           else np.float64)
     abundance = abundance.transpose("component", *[d for d in arr.dims if d != sdim])
     units = cube.attrs.get("units", "1")
     comp = np.arange(len(spectra))
