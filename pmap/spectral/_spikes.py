@@ -1167,6 +1167,107 @@ def _robust_ratio(x, ref, off, lo, hi, g0, g1, a, law, nz, wb):  # pragma: no co
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
+def _flank_var(x, y, cnt, lo, j, sf2, own, law, nz):  # pragma: no cover - compiled
+    """Variance of y at channel j in :func:`_flank_fit`: of the value itself (``own``), or
+    of a residual (the noise at the prediction's level, of the value and of the median of
+    cnt references, at least the flanks' scatter sf2)."""
+    if own:
+        return _var_at(j, x[j], law, nz)
+    return max(_var_at(j, x[j] - y[j - lo], law, nz) * (1.0 + 1.5708 / cnt[j - lo]), sf2)
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _flank_fit(x, y, cnt, lo, hi, e0, e1, sf2, own, law, nz, ex, th):  # pragma: no cover
+    """A straight line (or a quadratic where that lowers χ² by more than _LR_QUAD_CHI2)
+    fitted by weighted least squares to y (indexed from lo: the residual, or the spectrum
+    itself when ``own``) over the K = max(4, box width) channels either side of the box
+    e0 … e1 (channels ``ex`` marks left out), refitted once without the channels more than
+    4 s.d. off (a spike's tail beside the box). th[0:3] = the coefficients in
+    t = (c − (e0 + e1)/2)/K, th[3] the mean square misfit over the channels kept; returns
+    whether at least 2 channels were kept either side."""
+    k = max(4, e1 - e0 + 1)
+    mid = 0.5 * (e0 + e1)
+    keep = np.ones(2 * k, dtype=np.bool_)
+    mat = np.empty((3, 3))
+    c3 = np.empty(3)
+    f = np.empty(3)
+    for it in range(2):
+        best = np.inf
+        for nb in (2, 3):
+            for i in range(3):
+                c3[i] = 0.0
+                for q in range(3):
+                    mat[i, q] = 0.0
+            nl = 0
+            nr = 0
+            for i in range(2 * k):
+                j = e0 - k + i if i < k else e1 + 1 + i - k
+                if j < lo or j > hi or not keep[i] or ex[j - lo] or cnt[j - lo] == 0:
+                    continue
+                v = y[j - lo]
+                if not v == v:
+                    continue
+                w = 1.0 / _flank_var(x, y, cnt, lo, j, sf2, own, law, nz)
+                tt = (j - mid) / k
+                f[0] = 1.0
+                f[1] = tt
+                f[2] = tt * tt
+                for a in range(nb):
+                    c3[a] += w * f[a] * v
+                    for b in range(nb):
+                        mat[a, b] += w * f[a] * f[b]
+                if i < k:
+                    nl += 1
+                else:
+                    nr += 1
+            if nl < 2 or nr < 2:
+                return False
+            if not _solve_small(mat, c3, 0, nb):
+                continue
+            if nb == 2:
+                c3[2] = 0.0
+            chi = 0.0
+            ms = 0.0
+            for i in range(2 * k):
+                j = e0 - k + i if i < k else e1 + 1 + i - k
+                if j < lo or j > hi or not keep[i] or ex[j - lo] or cnt[j - lo] == 0:
+                    continue
+                v = y[j - lo]
+                if not v == v:
+                    continue
+                tt = (j - mid) / k
+                d = v - c3[0] - c3[1] * tt - c3[2] * tt * tt
+                chi += d * d / _flank_var(x, y, cnt, lo, j, sf2, own, law, nz)
+                ms += d * d
+            if nb == 2 or chi + _LR_QUAD_CHI2 < best:
+                best = chi
+                th[0] = c3[0]
+                th[1] = c3[1]
+                th[2] = c3[2]
+                th[3] = ms / max(nl + nr - nb, 1)
+        if not best < np.inf:
+            return False
+        if it == 1:
+            break
+        dropped = False
+        for i in range(2 * k):
+            j = e0 - k + i if i < k else e1 + 1 + i - k
+            if j < lo or j > hi or ex[j - lo] or cnt[j - lo] == 0:
+                continue
+            v = y[j - lo]
+            if not v == v:
+                continue
+            tt = (j - mid) / k
+            d = v - th[0] - th[1] * tt - th[2] * tt * tt
+            if d * d > 16.0 * _flank_var(x, y, cnt, lo, j, sf2, own, law, nz):
+                keep[i] = False
+                dropped = True
+        if not dropped:
+            break
+    return True
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def _predict(x, ca, lo, hi, refs, nref, t_shape, h, law, nz, ex, p, cnt, vbuf, abuf):  # pragma: no cover
     """The prediction p (median of the references, each scaled to x by the ratio of sums
     over the flanks |c − ca| > h outside the channels ``ex`` marks) and its count of valid
@@ -1380,6 +1481,32 @@ def _judge(x, n, ca, lo, hi, refs, nref, min_refs, t_shape, t, maxw, bank, ms, s
             both = (e0 - 1 >= lo and e1 + 1 <= hi
                     and _excess_z(rbuf, p, cnt, e0 - 1, lo, sf2, law, nz) > _EXTEND_SIGMA
                     and _excess_z(rbuf, p, cnt, e1 + 1, lo, sf2, law, nz) > _EXTEND_SIGMA)
+            # where the residual is not significant on both sides (or the prediction
+            # scatters: a pixel unlike its neighbours, whose median switches between
+            # them), a line or quadratic fitted to the residual over a few channels either
+            # side, or to the spectrum itself where that fits its flanks more closely
+            th = np.zeros(4)
+            to = np.zeros(4)
+            okr = _flank_fit(x, rbuf, cnt, lo, hi, e0, e1, sf2, False, law, nz, ex, th)
+            # (the spectrum itself only where the residual's scatter over the flanks is
+            # over twice the noise: otherwise the prediction holds the shape under the box)
+            vn = _var_at(e0, x[e0] - rbuf[e0 - lo], law, nz) * (1.0 + 1.5708 / max(
+                cnt[e0 - lo], 1))
+            own_fit = okr and sf2 > 4.0 * vn and _flank_fit(
+                x, x[lo:], cnt, lo, hi, e0, e1, 0.0, True, law, nz, ex, to) and to[3] < th[3]
+            if okr and (not both or own_fit):
+                kf = max(4, e1 - e0 + 1)
+                mid = 0.5 * (e0 + e1)
+                for c in range(e0, e1 + 1):
+                    tt = (c - mid) / kf
+                    if own_fit:
+                        out[c] = to[0] + to[1] * tt + to[2] * tt * tt
+                    else:
+                        out[c] = x[c] - rbuf[c - lo] + th[0] + th[1] * tt + th[2] * tt * tt
+                sres[3] = e0
+                sres[4] = e1
+                sres[5] = 1.0
+                return True
             if not both:
                 ma = 0.0
                 mb = 0.0
