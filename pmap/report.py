@@ -480,6 +480,7 @@ class _MapArtists(NamedTuple):
     scale_bar_um: float | None
     levels: list[int] | None = None
     n_nan: int = 0
+    n_value: int = 0  # pixels with a finite value
 
 
 def _draw_scale_bar(ax, x_ext, y_ext) -> float:
@@ -618,7 +619,7 @@ def _draw_map(
     length = None
     if scale_bar and xunit == "um" and x_ext[1] > x_ext[0]:
         length = _draw_scale_bar(ax, x_ext, y_ext)
-    return _MapArtists(im, cb, length, levels, n_nan)
+    return _MapArtists(im, cb, length, levels, n_nan, int(values.size) - n_nan)
 
 
 #: Maps of the Planck fit: their figures state the fit's assumptions under the map.
@@ -695,6 +696,7 @@ def plot_map(
             "colorbar_ticklabels": [t.get_text() for t in art.colorbar.ax.get_yticklabels()]
             if art.levels is not None else None,
             "n_no_value": art.n_nan,
+            "n_value": art.n_value,
             "origin": "lower",
             "extent": [float(v) for v in art.image.get_extent()],
             "axes_px": _axes_px(ax),
@@ -1069,6 +1071,7 @@ def plot_labels(
             "extent": [float(v) for v in art.image.get_extent()],
             "axes_px": _axes_px(ax),
             "codes": codes.tolist(),
+            "n_value": art.n_value,
             "names": [label_names.get(int(c), str(int(c))) for c in codes],
             "scale_bar_um": art.scale_bar_um,
         },

@@ -166,7 +166,38 @@ def _png_data_url(path: Path) -> str:
     return "data:image/png;base64," + base64.b64encode(Path(path).read_bytes()).decode("ascii")
 
 
+def _drawn_variables(figs: Sequence[Path]) -> set[str]:
+    """Variables shown with at least one finite value by the figures ``figs`` (from each
+    PNG's description: a map's ``n_value``, a histogram's ``n``)."""
+    out = set()
+    for f in figs:
+        info = _png_description(f)
+        if info.get("variable") is not None and (info.get("n_value") or info.get("n")):
+            out.add(str(info["variable"]))
+    return out
+
+
 def _png_description(path: Path) -> dict:
+    """The JSON ``Description`` of a PNG written by :mod:`pmap.report` ({} if none)."""
+    key = str(path)
+    try:
+        stamp = Path(path).stat().st_mtime_ns
+    except OSError:
+        return {}
+    hit = _DESCRIPTIONS.get(key)
+    if hit is not None and hit[0] == stamp:
+        return hit[1]
+    info = _read_png_description(path)
+    _DESCRIPTIONS[key] = (stamp, info)
+    return info
+
+
+#: PNG descriptions read, by path: (modification time ns, description); the maps'
+#: section and the skipped-map note read each figure's once.
+_DESCRIPTIONS: dict[str, tuple[int, dict]] = {}
+
+
+def _read_png_description(path: Path) -> dict:
     try:
         from PIL import Image
 
@@ -502,15 +533,18 @@ def _any_finite(block):
     return np.isfinite(block).any()
 
 
-def _skipped_maps(ds: xr.Dataset) -> str:
-    """A note naming the float maps that have no figure because every pixel is NaN."""
+def _skipped_maps(ds: xr.Dataset, drawn: Sequence[str] = ()) -> str:
+    """A note naming the float maps that have no figure because every pixel is NaN.
+
+    ``drawn``: variables with a figure (so with a finite value): not read again.
+    """
     import dask
 
     from .cube import spread_blocks
 
     maps = [(name, v) for name, v in ds.data_vars.items()
             if v.dtype.kind == "f" and {"y", "x"} <= set(v.dims) and v.ndim <= 3
-            and not any(d in v.dims for d in ("energy", "wavelength"))]
+            and not any(d in v.dims for d in ("energy", "wavelength")) and name not in drawn]
     # a finite value in one of a few chunks settles a map; only the others are read
     # whole; each stage is one parallel read of every map concerned
     seen = dask.compute(*[[_any_finite(b) for b in spread_blocks(v.data, 2)]
@@ -821,7 +855,7 @@ def _fit_quality_figures(ds: xr.Dataset, folder: Path, have: set[str]) -> list[P
     """The reduced χ² histogram (pixels with a fit), when the store has χ² and no such figure."""
     if "chi2_red" not in ds or "chi2_red_histogram" in have:
         return []
-    chi = ds["chi2_red"]
+    chi = ds["chi2_red"].load()  # read once: for the check and the histogram
     if not bool(np.isfinite(np.asarray(chi.values, float)).any()):
         return []
     from .report import plot_histogram
@@ -899,7 +933,7 @@ def write_html_report(
             ("caveats", "Warnings & caveats", _section_caveats(ds, warns)),
             ("maps", "Maps", ('<h2 id="maps">Maps</h2>' + _MAPS_NOTE + _grid(
                 [_figure(f) for f in groups.get("maps", []) + groups.get("other", [])])
-                + _skipped_maps(ds))
+                + _skipped_maps(ds, _drawn_variables(figs)))
              if groups.get("maps") or groups.get("other") else ""),
             ("physics", "Absolute PL", ('<h2 id="physics">Absolute PL (generalized Planck law)'
                                         '</h2>' + _grid([_figure(f) for f in

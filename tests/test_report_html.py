@@ -210,6 +210,37 @@ def test_all_text_is_escaped(demo_store, tmp_path):
     assert _outside_references(text) == []
 
 
+def test_skipped_map_note_with_and_without_the_figures(demo_store, tmp_path):
+    """The note names exactly the maps whose every pixel is NaN, whether the report reads
+    every map or knows from the figures passed which maps have values (``n_value`` in
+    each PNG's description)."""
+    from pmap.report import write_figures
+
+    ds = open_result(demo_store)
+    ds = ds.drop_vars([v for v in ds.data_vars if v == "intensity"])
+    # two all-NaN maps: one named like the prefix of a drawn one, one 3-D
+    ds["peak_energy_empty"] = ds["peak_energy"] * np.nan
+    ds["bic"] = ds["bic"] * np.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PmapNotice)
+        figs = write_figures(ds, tmp_path / "figs")
+        notes = []
+        for given in (figs, None):
+            out = write_html_report(ds, tmp_path / f"r{given is None}.html", figures=given)
+            text = out.read_text(encoding="utf-8")
+            m = re.search(r"Not drawn, every pixel is NaN:</b> ([^<]*)</div>", text)
+            notes.append(m.group(1) if m else "")
+    assert notes[0] == notes[1]
+    note = html.unescape(notes[0])
+    named = {n for n in ds.data_vars if re.search(rf"(^|; ){re.escape(n)}( \(|;|$)", note)}
+    finite = {n for n, v in ds.data_vars.items() if v.dtype.kind == "f" and {"y", "x"} <= set(
+        v.dims) and v.ndim <= 3 and not bool(np.isfinite(v.values).any())}
+    assert {"peak_energy_empty", "bic"} <= finite
+    assert named == finite  # computed here from the values, map by map
+    drawn = {json.loads(Image.open(f).text["Description"]).get("variable") for f in figs}
+    assert "peak_energy" in drawn and not named & {"peak_energy", "peak_energy_err"}
+
+
 # --------------------------------------------------------------------------- batch summary
 
 
