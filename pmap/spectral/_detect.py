@@ -36,6 +36,7 @@ from ..errors import PmapNotice, StepError
 from ..noise import get_noise_model, noise_coords
 from ..provenance import with_step
 from ._common import check_cube
+from ._continuum import estimate_continuum, scan_rows_basis
 
 __all__ = ["detect_signal", "box_scan_plan"]
 
@@ -65,12 +66,14 @@ def box_scan_max(Z: np.ndarray, plan) -> np.ndarray:
     N/sqrt(q), N = Σ_box residual, q = Var(N) from the hat matrix of {1, x}
     (compiled, one pass of cumulative sums per spectrum).
     """
-    from ._detect_kernel import scan_rows
+    from ._detect_scan import box_table, scan_rows_table
 
     Z = np.ascontiguousarray(Z, dtype=np.float64)
     widths = np.array([w for w, _ in plan], dtype=np.int64)
     strides = np.array([st for _, st in plan], dtype=np.int64)
-    return scan_rows(Z, widths, strides)
+    # the box terms that do not depend on the spectrum, once per call (bit-identical
+    # statistics to pmap.spectral._detect_kernel.scan_rows)
+    return scan_rows_table(Z, *box_table(Z.shape[1], widths, strides))
 
 
 def detect_signal(
@@ -78,6 +81,7 @@ def detect_signal(
     *,
     false_alarm: float = 1e-3,
     min_width_channels: int | None = None,
+    continuum: str = "auto",
 ) -> xr.Dataset:
     """Per-pixel emission test with a stated false-alarm probability (lazy).
 
@@ -92,6 +96,13 @@ def detect_signal(
     min_width_channels : int, optional
         Narrowest box (channels). Default: the instrument FWHM in channels when the
         attrs give it (``instrument_fwhm_nm`` / ``instrument_fwhm_ev``), at least 2.
+    continuum : {"auto", "line"}
+        Baseline under each box. ``"line"``: a straight line in channel index.
+        ``"auto"`` (default): the line plus the map's own smooth continuum (stray
+        light, laser tail, thermal glow), found in the quietest spectra of up to
+        4096 sampled pixels and accepted only where it is convex
+        (:mod:`pmap.spectral._continuum`); where none is found the result is the
+        same as ``"line"``. The attrs say which was used.
 
     Returns
     -------
@@ -135,8 +146,8 @@ def detect_signal(
     spatial = [d for d in cube.dims if d != sdim]
     s_full, p_full = xr.broadcast(s, p)
 
-    def core(v, sv, pv):
-        shp = v.shape[:-1]
+    def stabilised(v, sv, pv):
+        """(raw counts (m, n), their generalized-Anscombe transform z, usable rows)."""
         Y = np.asarray(v, dtype=np.float64).reshape(-1, n)
         S = np.broadcast_to(np.asarray(sv, dtype=np.float64), v.shape).reshape(-1, n)
         P = np.broadcast_to(np.asarray(pv, dtype=np.float64), v.shape).reshape(-1, n)
@@ -147,18 +158,39 @@ def detect_signal(
         for r in np.flatnonzero(ok & (n_ok < n)):  # masked channels: bridged linearly
             g = fin[r]
             raw[r, ~g] = np.interp(np.flatnonzero(~g), np.flatnonzero(g), raw[r, g])
-        out = np.full(Y.shape[0], np.nan)
-        if np.any(ok):
-            if a > 0:
-                z = (2.0 / a) * np.sqrt(np.maximum(a * raw[ok] + 0.375 * a * a + b, 0.0))
-            else:
-                z = raw[ok] / np.sqrt(max(b, model.floor_counts2))
-            out[ok] = box_scan_max(z, plan)
-        return out.reshape(shp)
+        raw = raw[ok]
+        return raw, to_z(raw), ok
+
+    def to_z(raw):
+        """The generalized Anscombe transform of raw counts (unit noise variance)."""
+        if a > 0:
+            return (2.0 / a) * np.sqrt(np.maximum(a * raw + 0.375 * a * a + b, 0.0))
+        return raw / np.sqrt(max(b, model.floor_counts2))
 
     def as_core(v):
         v = v if sdim in v.dims else v.expand_dims({sdim: 1})
         return v.transpose(*[d for d in v.dims if d != sdim], sdim)
+
+    if continuum not in ("auto", "line"):
+        raise StepError(f"continuum must be 'auto' or 'line', got {continuum!r}")
+    basis, cinfo = None, {"rank": 0, "quiet": 0, "rejected": ""}
+    if continuum == "auto":
+        sample = _sample_pixels(cube, sdim)
+        s_s, p_s = (_sample_pixels(xr.DataArray(v).broadcast_like(cube), sdim) for v in (s, p))
+        raw_s, z_s, _ = stabilised(sample, s_s, p_s)
+        widths = np.array([w for w, _ in plan], dtype=np.int64)
+        strides = np.array([st for _, st in plan], dtype=np.int64)
+        Qb, cinfo = estimate_continuum(z_s, raw_s, widths, strides, thr,
+                                       lambda r: a * np.maximum(r, 0.0) + b)
+        basis = Qb if cinfo["rank"] > 0 else None
+
+    def core(v, sv, pv):
+        shp = v.shape[:-1]
+        _, z, ok = stabilised(v, sv, pv)
+        out = np.full(ok.size, np.nan)
+        if np.any(ok):
+            out[ok] = box_scan_max(z, plan) if basis is None else box_scan_basis(z, basis, plan)
+        return out.reshape(shp)
 
     stat = xr.apply_ufunc(
         core,
@@ -177,8 +209,17 @@ def detect_signal(
         "threshold_sigma": thr,
         "n_tests": M,
         "min_width_channels": int(plan[0][0]) if plan else 0,
+        "continuum": continuum,
+        "continuum_rank": int(cinfo["rank"]),
+        "continuum_note": (
+            f"baseline: a straight line plus {cinfo['rank']} continuum vector(s), the convex "
+            f"continuum of {cinfo['quiet']} quiet sampled spectra"
+            if cinfo["rank"] else
+            "baseline: a straight line" + (f" ({cinfo['rejected']})" if cinfo["rejected"]
+                                           else "")),
         "method": (
-            "largest box-filter excess over a least-squares line (widths x sqrt2, stride w/4) on "
+            "largest box-filter excess over a least-squares baseline (a line, plus the map's "
+            "convex continuum where found; widths x sqrt2, stride w/4) on "
             "generalized-Anscombe-stabilised raw counts; Bonferroni threshold "
             "Phi^-1(1 - alpha/M): false-alarm probability per pixel <= alpha"
         ),
@@ -194,11 +235,37 @@ def detect_signal(
             ),
         },
         attrs=with_step({}, "detect_signal", {"false_alarm": float(false_alarm),
-                                              "min_width_channels": min_width_channels},
+                                              "min_width_channels": min_width_channels,
+                                              "continuum": continuum},
                         **{k: v for k, v in attrs.items() if k != "method"}),
     )
     ds.attrs.update(attrs)
     return ds
+
+
+def box_scan_basis(Z: np.ndarray, Q: np.ndarray, plan) -> np.ndarray:
+    """Largest standardised box excess per row of Z (m, n) over the least-squares fit of the
+    orthonormal baseline columns Q (n, r) (:func:`._continuum.scan_rows_basis`)."""
+    Z = np.ascontiguousarray(Z, dtype=np.float64)
+    widths = np.array([w for w, _ in plan], dtype=np.int64)
+    strides = np.array([st for _, st in plan], dtype=np.int64)
+    return scan_rows_basis(Z, np.ascontiguousarray(Q), widths, strides)
+
+
+#: pixels sampled for the continuum
+_N_SAMPLE = 4096
+
+
+def _sample_pixels(arr: xr.DataArray, sdim: str) -> np.ndarray:
+    """Spectra (m, n) of up to ``_N_SAMPLE`` pixels on a regular lattice of the map
+    (every pixel of a small map), computed in one pass."""
+    spatial = [d for d in arr.dims if d != sdim]
+    sizes = [arr.sizes[d] for d in spatial]
+    total = int(np.prod(sizes)) if sizes else 1
+    step = max(1, int(np.ceil((total / _N_SAMPLE) ** (1.0 / max(len(sizes), 1)))))
+    sub = arr.isel({d: slice(None, None, step) for d in spatial}) if step > 1 else arr
+    sub = sub.transpose(*spatial, sdim)
+    return np.asarray(sub.values, dtype=np.float64).reshape(-1, arr.sizes[sdim])
 
 
 def _instrument_channels(cube: xr.DataArray, sdim: str) -> int:
