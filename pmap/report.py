@@ -1144,51 +1144,175 @@ def _write_figures(ds: xr.Dataset, out: Path, names: list[str],
                 raise StepError(f"variable {name!r} with dims {v.dims} is not a map")
             continue
         maps.append(name)
-    for name, v in _maps_loaded(ds, maps):
-        extra = [d for d in v.dims if d not in ("y", "x") and v.sizes[d] > 1]
-        if extra:
-            d = extra[0]
-            labels = _slice_labels(ds, v, d)
-            slices = [(v.isel({d: i}), f"{name}_{lab}") for i, lab in enumerate(labels)]
-        else:
-            slices = [(v, name)]
-        for sl, stem in slices:
-            path = out / f"{prefix}{_safe_name(stem)}.png"
-            if sl.dtype.kind == "f" and not bool(np.isfinite(sl.values).any()):
-                warnings.warn(f"no figure of {stem}: every pixel is NaN", PmapNotice,
-                              stacklevel=2)
-                continue
-            if _is_label_map(v):
-                written.append(plot_labels(sl, path))
+    histogram = "peak_energy" in ds.data_vars and (variables is None or "peak_energy" in names)
+    histograms: list[Path] = []
+    for group in _map_groups(ds, maps):
+        # the figures of one group of maps in memory: drawn in two processes (_draw_jobs)
+        jobs: list[tuple[Path, Any]] = []
+        hist_jobs: list[tuple[Path, Any]] = []
+        for name, v in group:
+            extra = [d for d in v.dims if d not in ("y", "x") and v.sizes[d] > 1]
+            if extra:
+                d = extra[0]
+                labels = _slice_labels(ds, v, d)
+                slices = [(v.isel({d: i}), f"{name}_{lab}") for i, lab in enumerate(labels)]
             else:
-                if no_value is not None and sl.dtype.kind == "f" and name != "background_offset":
-                    sl = sl.where(~no_value)
-                note = ds.attrs.get("planck_assumptions") if name in _PLANCK_MAPS else None
-                written.append(plot_map(sl, path, note=note))
-    if "peak_energy" in ds.data_vars and (variables is None or "peak_energy" in names):
-        pe = ds["peak_energy"]
-        extra = [d for d in pe.dims if d not in ("y", "x") and pe.sizes[d] > 1]
-        if extra:
-            for i, lab in enumerate(_slice_labels(ds, pe, extra[0])):
-                written.append(
-                    plot_histogram(
-                        pe.isel({extra[0]: i}),
-                        out / f"{prefix}{_safe_name(f'peak_energy_{lab}_histogram')}.png",
-                    )
-                )
-        else:
-            written.append(plot_histogram(pe, out / f"{prefix}peak_energy_histogram.png"))
+                slices = [(v, name)]
+            for sl, stem in slices:
+                path = out / f"{prefix}{_safe_name(stem)}.png"
+                if sl.dtype.kind == "f" and not bool(np.isfinite(sl.values).any()):
+                    warnings.warn(f"no figure of {stem}: every pixel is NaN", PmapNotice,
+                                  stacklevel=3)
+                    continue
+                if _is_label_map(v):
+                    jobs.append((path, (plot_labels, (sl, path), {})))
+                else:
+                    if no_value is not None and sl.dtype.kind == "f" \
+                            and name != "background_offset":
+                        sl = sl.where(~no_value)
+                    note = ds.attrs.get("planck_assumptions") if name in _PLANCK_MAPS else None
+                    jobs.append((path, (plot_map, (sl, path), {"note": note})))
+            if histogram and name == "peak_energy":  # from the map in memory, not read again
+                hist_jobs = _histogram_jobs(ds, v, out, prefix)
+        done = _draw_jobs(jobs + hist_jobs)
+        written.extend(done[:len(jobs)])
+        histograms.extend(done[len(jobs):])
+    if histogram and "peak_energy" not in maps:  # asked for, though not drawn as a map
+        histograms.extend(_draw_jobs(_histogram_jobs(ds, ds["peak_energy"], out, prefix),
+                                     parallel=False))
+    written.extend(histograms)
     if variables is None:
         written.extend(_spectra_figures(ds, out, prefix))
     return written
+
+
+def _histogram_jobs(ds: xr.Dataset, pe: xr.DataArray, out: Path, prefix: str) -> list:
+    """(path, call) of the peak-energy histogram(s), one per peak."""
+    extra = [d for d in pe.dims if d not in ("y", "x") and pe.sizes[d] > 1]
+    if not extra:
+        path = out / f"{prefix}peak_energy_histogram.png"
+        return [(path, (plot_histogram, (pe, path), {}))]
+    jobs = []
+    for i, lab in enumerate(_slice_labels(ds, pe, extra[0])):
+        path = out / f"{prefix}{_safe_name(f'peak_energy_{lab}_histogram')}.png"
+        jobs.append((path, (plot_histogram, (pe.isel({extra[0]: i}), path), {})))
+    return jobs
+
+
+#: Figures are drawn in this many processes (the process itself and forked copies, on
+#: Linux, when there are at least FORK_MIN_FIGURES to draw and as many cores); drawing
+#: is single-threaded Python (matplotlib), so a second core halves the time. The
+#: environment variable ``PMAP_FIGURE_PROCESSES=1`` draws every figure here.
+FIGURE_PROCESSES = 2
+FORK_MIN_FIGURES = 4
+#: A forked drawer that has not finished after this many seconds plus FORK_TIMEOUT_FACTOR
+#: times the time the process took for its own share is stopped, and its figures are
+#: drawn here.
+FORK_TIMEOUT_S = 60.0
+FORK_TIMEOUT_FACTOR = 10.0
+
+
+def _figure_processes(n_jobs: int) -> int:
+    """How many processes draw ``n_jobs`` figures (1: no fork)."""
+    import os
+    import sys
+
+    if not sys.platform.startswith("linux") or not hasattr(os, "fork"):
+        return 1
+    try:
+        want = int(os.environ.get("PMAP_FIGURE_PROCESSES", FIGURE_PROCESSES))
+    except ValueError:
+        want = FIGURE_PROCESSES
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1
+    if n_jobs < FORK_MIN_FIGURES or getattr(_SAVES, "in_child", False):
+        return 1
+    return max(1, min(want, cores, n_jobs))
+
+
+def _draw_jobs(jobs: Sequence[tuple[Path, Any]], *, parallel: bool = True) -> list[Path]:
+    """Run the figure ``jobs`` ((path, (function, args, kwargs)) each) and return their
+    paths, in order.
+
+    With more than one process (:func:`_figure_processes`) the process forks: each
+    forked copy draws every n-th figure from the maps already in memory (numpy,
+    matplotlib and PIL only: no store is read there) and writes its PNG files, while
+    this process draws the rest. The same calls run in both, so the files are the same
+    bytes as drawn here. A copy that fails or overruns its time is stopped and its
+    figures are drawn here.
+    """
+    import os
+    import sys
+    import time
+
+    n = _figure_processes(len(jobs)) if parallel else 1
+    if n <= 1:
+        return [fn(*args, **kw) for _, (fn, args, kw) in jobs]
+    shares = [list(range(i, len(jobs), n)) for i in range(n)]
+    sys.stdout.flush()
+    sys.stderr.flush()
+    children: dict[int, list[int]] = {}
+    for share in shares[1:]:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", DeprecationWarning)  # fork with threads (3.12+)
+            pid = os.fork()
+        if pid == 0:  # the forked copy: draw its share, write the files, leave at once
+            code = 1
+            try:
+                _SAVES.pending = None  # the PNG thread was not copied: save in this thread
+                _SAVES.in_child = True
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    for i in share:
+                        fn, args, kw = jobs[i][1]
+                        fn(*args, **kw)
+                code = 0
+            except BaseException:  # noqa: BLE001 - the parent draws this share again
+                code = 1
+            finally:
+                os._exit(code)
+        children[pid] = share
+    t0 = time.perf_counter()
+    for i in shares[0]:
+        fn, args, kw = jobs[i][1]
+        fn(*args, **kw)
+    deadline = time.monotonic() + FORK_TIMEOUT_S + FORK_TIMEOUT_FACTOR * (
+        time.perf_counter() - t0)
+    redo: list[int] = []
+    for pid, share in children.items():
+        if not _wait_child(pid, deadline):
+            redo.extend(share)
+    for i in sorted(redo):  # a copy failed or overran: its figures drawn here
+        fn, args, kw = jobs[i][1]
+        fn(*args, **kw)
+    return [path for path, _ in jobs]
+
+
+def _wait_child(pid: int, deadline: float) -> bool:
+    """Wait for the forked drawer ``pid`` until ``deadline`` (monotonic seconds); True if
+    it finished with status 0, else it is stopped (SIGKILL) and False."""
+    import os
+    import signal
+    import time
+
+    pause = 0.002
+    while True:
+        done, status = os.waitpid(pid, os.WNOHANG)
+        if done:
+            return os.waitstatus_to_exitcode(status) == 0
+        if time.monotonic() > deadline:
+            os.kill(pid, signal.SIGKILL)
+            os.waitpid(pid, 0)
+            return False
+        time.sleep(pause)
+        pause = min(pause * 2, 0.05)
 
 
 #: Maps read from the store together (one parallel read) hold at most this many bytes.
 LOAD_GROUP_BYTES = 96 * 2**20
 
 
-def _maps_loaded(ds: xr.Dataset, names: Sequence[str]) -> Iterator[tuple[str, xr.DataArray]]:
-    """(name, map in memory) for ``names``, read in groups of up to LOAD_GROUP_BYTES bytes.
+def _map_groups(ds: xr.Dataset, names: Sequence[str]) -> Iterator[list[tuple[str, xr.DataArray]]]:
+    """Groups of (name, map in memory) for ``names``, each of up to LOAD_GROUP_BYTES bytes.
 
     One dask compute per group reads its maps' chunks in parallel (instead of one
     sequential read per map, and a second for the NaN check); memory stays bounded by
@@ -1203,7 +1327,7 @@ def _maps_loaded(ds: xr.Dataset, names: Sequence[str]) -> Iterator[tuple[str, xr
         size += ds[name].nbytes
         nxt = ds[names[i + 1]].nbytes if i + 1 < len(names) else 0
         if i + 1 == len(names) or size + nxt > LOAD_GROUP_BYTES:
-            yield from zip(group, dask.compute(*[ds[n] for n in group]))
+            yield list(zip(group, dask.compute(*[ds[n] for n in group])))
             group, size = [], 0
 
 

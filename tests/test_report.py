@@ -233,3 +233,51 @@ def test_slices_along_a_stack_dim_are_named_in_the_title(tmp_path):
     paths = [p for p in report.write_figures(ds, tmp_path) if "histogram" not in p.name]
     titles = [png_info(p)[1]["title"] for p in paths]
     assert titles == ["Peak energy (eV) — temperature 20 K", "Peak energy (eV) — temperature 300 K"]
+
+
+def test_figures_drawn_in_two_processes_are_the_same_files(tmp_path, tiny_demo, monkeypatch):
+    """write_figures in forked processes (Linux) writes the same PNG bytes, in the same
+    order, as drawing every figure in this process (the reference)."""
+    import hashlib
+    import sys
+
+    _, truth = tiny_demo
+    import os
+
+    digests = {}
+    forks = []
+    os_fork = os.fork
+    for n in ("1", "2"):
+        monkeypatch.setenv("PMAP_FIGURE_PROCESSES", n)
+        if n == "2":
+            monkeypatch.setattr(os, "fork", lambda: (forks.append(1), os_fork())[1])
+        paths = report.write_figures(truth, tmp_path / n)
+        digests[n] = [(p.name, hashlib.sha256(p.read_bytes()).hexdigest()) for p in paths]
+    assert len(digests["1"]) >= report.FORK_MIN_FIGURES
+    assert digests["2"] == digests["1"]
+    can_fork = sys.platform.startswith("linux") and len(os.sched_getaffinity(0)) >= 2
+    assert len(forks) == (1 if can_fork else 0) * len(list(report._map_groups(
+        truth, [n for n in truth.data_vars if {"y", "x"} <= set(truth[n].dims)
+                and not set(truth[n].dims) & {"energy", "wavelength"}])))
+
+
+def test_a_failed_forked_drawer_is_redrawn_here(tmp_path, monkeypatch):
+    """A figure job that fails in the forked copy is drawn again by this process: every
+    file is written, by this process (its pid in the file)."""
+    import os
+    import sys
+
+    if not (sys.platform.startswith("linux") and len(os.sched_getaffinity(0)) >= 2):
+        pytest.skip("figures are drawn in one process here")
+    monkeypatch.setenv("PMAP_FIGURE_PROCESSES", "2")
+
+    def job(path):
+        if getattr(report._SAVES, "in_child", False):
+            raise RuntimeError("fails in the forked copy")
+        path.write_text(str(os.getpid()))
+        return path
+
+    paths = [tmp_path / f"f{i}.txt" for i in range(6)]
+    done = report._draw_jobs([(p, (job, (p,), {})) for p in paths])
+    assert done == paths
+    assert [p.read_text() for p in paths] == [str(os.getpid())] * 6
