@@ -15,12 +15,17 @@ the one-sided normal quantile at α/M (Bonferroni), so the false-alarm
 probability per pixel is at most α (the Bonferroni bound; boxes overlap, so the
 true rate is lower).
 
-Assumption behind that rate: without emission the spectrum is a straight line in
-channel index plus noise. Structured light that is not (a curved stray-light
-continuum, a laser tail, glass fluorescence) is "emission" to this test: over a
-quadratic continuum 26 % of noise-only pixels were flagged (tests/test_detect.py,
-recorded as a known gap). Segmentation therefore also requires each labelled pixel to
-carry its cluster's own spectrum at 5 σ.
+Assumption behind that rate: without emission the spectrum lies in the span of
+the baseline. With ``continuum="line"`` that is a straight line in channel index,
+and structured light that is not (a curved stray-light continuum, a laser tail, a
+thermal glow) is "emission" to the test: over a quadratic continuum 26 % of
+noise-only pixels were flagged, over the laser tails of the scene bank all of them.
+The default ``continuum="auto"`` adds the map's own convex continuum, taken from its
+quietest spectra (:mod:`._continuum`), which restores the rate on those maps
+(tests/test_detect_continuum.py). A continuum that is not convex (a broad glass
+fluorescence band, say) cannot be told from emission and is still flagged.
+Segmentation also requires each labelled pixel to carry its cluster's own spectrum
+at 5 σ.
 """
 
 from __future__ import annotations
@@ -212,8 +217,8 @@ def detect_signal(
         "continuum": continuum,
         "continuum_rank": int(cinfo["rank"]),
         "continuum_note": (
-            f"baseline: a straight line plus {cinfo['rank']} continuum vector(s), the convex "
-            f"continuum of {cinfo['quiet']} quiet sampled spectra"
+            f"baseline: a straight line plus {cinfo['rank']} continuum vector(s) from the "
+            f"convex continuum of the {cinfo['seed']} quietest sampled spectra"
             if cinfo["rank"] else
             "baseline: a straight line" + (f" ({cinfo['rejected']})" if cinfo["rejected"]
                                            else "")),
