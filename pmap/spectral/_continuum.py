@@ -73,13 +73,36 @@ def orthonormal_basis(n: int, extra: np.ndarray | None = None) -> np.ndarray:
 @nb.njit(cache=True, nogil=True)
 def scan_rows_basis(Z, Q, widths, strides):  # pragma: no cover - compiled
     """Per row of Z (m, n): max over boxes of (Σ_box e)/sqrt(q), e the residual of the
-    least-squares fit of the orthonormal columns Q (n, r), q = Var(Σ_box e) = w − ‖Σ_box Q‖²."""
+    least-squares fit of the orthonormal columns Q (n, r), q = Var(Σ_box e) = w − ‖Σ_box Q‖².
+
+    The box terms that do not depend on the spectrum (ends, Σ_box Q, 1/sqrt(q)) are
+    tabled once per call."""
     m, n = Z.shape
     r = Q.shape[1]
     cq = np.zeros((n + 1, r))
     for i in range(n):
         for j in range(r):
             cq[i + 1, j] = cq[i, j] + Q[i, j]
+    nb_ = 0
+    for k in range(widths.size):
+        nb_ += (n - widths[k]) // strides[k] + 1 if n >= widths[k] else 0
+    lo = np.empty(nb_, np.int64)
+    hi = np.empty(nb_, np.int64)
+    bq = np.empty((nb_, r))
+    inv = np.empty(nb_)
+    t = 0
+    for k in range(widths.size):
+        w = widths[k]
+        for i in range(0, n - w + 1, strides[k]):
+            q = float(w)
+            for j in range(r):
+                v = cq[i + w, j] - cq[i, j]
+                bq[t, j] = v
+                q -= v * v
+            lo[t] = i
+            hi[t] = i + w
+            inv[t] = 1.0 / math.sqrt(q) if q > 1e-12 else 0.0
+            t += 1
     out = np.empty(m)
     c = np.empty(n + 1)
     coef = np.empty(r)
@@ -93,21 +116,15 @@ def scan_rows_basis(Z, Q, widths, strides):  # pragma: no cover - compiled
             for j in range(r):
                 coef[j] += v * Q[i, j]
         best = -np.inf
-        for k in range(widths.size):
-            w = widths[k]
-            st = strides[k]
-            for i in range(0, n - w + 1, st):
-                num = c[i + w] - c[i]
-                q = float(w)
-                for j in range(r):
-                    bq = cq[i + w, j] - cq[i, j]
-                    num -= coef[j] * bq
-                    q -= bq * bq
-                if q <= 1e-12:
-                    continue
-                t = num / math.sqrt(q)
-                if t > best:
-                    best = t
+        for b in range(nb_):
+            if inv[b] == 0.0:
+                continue
+            num = c[hi[b]] - c[lo[b]]
+            for j in range(r):
+                num -= coef[j] * bq[b, j]
+            tv = num * inv[b]
+            if tv > best:
+                best = tv
         out[row] = best
     return out
 
