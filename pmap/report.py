@@ -220,6 +220,9 @@ def _map_layout():
             self.cax = None  # its colour bar (plot_map)
             self.legend = None  # or its legend (plot_labels)
             self._bar_label_in = 0.0  # length of the colour bar's label, inches
+            self.image = None  # the map's image and its values at full resolution
+            self.values = None
+            self._extent = None  # the image's extent as drawn first (whole map)
 
         def execute(self, fig) -> None:
             ax = self.ax
@@ -236,7 +239,34 @@ def _map_layout():
             for _ in range(2):
                 box = self._place(fig, w_in, h_in, margins)
                 margins = self._measure(fig, renderer, box, w_in, h_in, pad)
-            self._place(fig, w_in, h_in, margins)
+            box = self._place(fig, w_in, h_in, margins)
+            self._decimate(box[2] * fig.dpi, box[3] * fig.dpi)
+
+        def _decimate(self, w_px: float, h_px: float) -> None:
+            """Give the image every k-th pixel of a map with over k times as many pixels
+            as the axes have along that side (nearest-pixel sampling, as the drawing does
+            anyway when it shrinks a map, on fewer values: colour mapping and resampling
+            cost follow the map's size). The statistics stated on the figure come from
+            the whole map."""
+            full = self.values
+            if self.image is None or full is None or full.ndim != 2:
+                return
+            ny, nx = full.shape
+            ky = max(int(ny // max(h_px, 1.0)), 1)
+            kx = max(int(nx // max(w_px, 1.0)), 1)
+            if self._extent is None:
+                self._extent = tuple(self.image.get_extent())
+            x0, x1, y0, y1 = self._extent
+            # each sampled pixel keeps the place and size of its k original pixels (the
+            # last row or column may reach past the map: the axes' limits clip it)
+            mx, my = -(-nx // kx), -(-ny // ky)
+            extent = (x0, x0 + (x1 - x0) * mx * kx / nx, y0, y0 + (y1 - y0) * my * ky / ny)
+            ax = self.ax
+            xlim, ylim = ax.get_xlim(), ax.get_ylim()
+            self.image.set_data(full[::ky, ::kx] if ky > 1 or kx > 1 else full)
+            self.image.set_extent(extent)
+            ax.set_xlim(xlim)
+            ax.set_ylim(ylim)
 
         def _place(self, fig, w_in, h_in, margins):
             """Place the map (and colour bar) for margins (left, right, bottom, top), in
@@ -578,8 +608,9 @@ def _draw_map(
                 if below or above:
                     how = "2–98 % limits" if (robust and vlim is None) else "limits"
                     clip_note = f"\n{how}; clipped: {below} px below, {above} above"
+    shown = np.ma.masked_invalid(values)
     im = ax.imshow(
-        np.ma.masked_invalid(values),
+        shown,
         origin="lower",
         cmap=cm,
         aspect="equal",
@@ -587,6 +618,9 @@ def _draw_map(
         interpolation="nearest",
         **kw,
     )
+    engine = ax.figure.get_layout_engine()
+    if _MAP_LAYOUT and isinstance(engine, _MAP_LAYOUT[0]) and engine.ax is ax:
+        engine.image, engine.values = im, shown  # sampled to the axes' size at drawing
     ax.set_facecolor(NAN_COLOUR)
     ax.set_xlabel(f"x ({_unit_text(xunit)})")
     ax.set_ylabel(f"y ({_unit_text(yunit)})")

@@ -281,3 +281,44 @@ def test_a_failed_forked_drawer_is_redrawn_here(tmp_path, monkeypatch):
     done = report._draw_jobs([(p, (job, (p,), {})) for p in paths])
     assert done == paths
     assert [p.read_text() for p in paths] == [str(os.getpid())] * 6
+
+
+def test_a_map_larger_than_its_axes_is_drawn_from_every_kth_pixel(tmp_path, monkeypatch):
+    """A map with over twice as many pixels as its axes is drawn from every k-th pixel:
+    at the centre of each 40 x 40-pixel block the colour is the one drawn from the whole
+    map (the reference: the same figure with sampling turned off), the image holds the
+    sampled values, and the figure's statistics come from the whole map."""
+    n, b = 1320, 40
+    rng = np.random.default_rng(3)
+    levels = rng.permutation(np.linspace(1.5, 1.7, (n // b) ** 2)).reshape(n // b, n // b)
+    v = np.kron(levels, np.ones((b, b)))
+    v[:b, :b] = np.nan
+    da = xr.DataArray(v, dims=("y", "x"), name="peak_energy",
+                      attrs={"units": "eV", "long_name": "peak energy"},
+                      coords={"y": ("y", np.arange(n) * 0.5, {"units": "um"}),
+                              "x": ("x", np.arange(n) * 0.5, {"units": "um"})})
+    shapes = []
+    cls = report._map_layout()
+    real = cls._decimate
+
+    def spy(self, w_px, h_px):
+        real(self, w_px, h_px)
+        shapes.append(self.image.get_array().shape)
+
+    monkeypatch.setattr(cls, "_decimate", spy)
+    _, info_s, a = png_info(report.plot_map(da, tmp_path / "sampled.png"))
+    monkeypatch.setattr(cls, "_decimate", lambda self, w_px, h_px: None)
+    _, info_f, f = png_info(report.plot_map(da, tmp_path / "full.png"))
+    x0, y0, x1, y1 = info_s["axes_px"]
+    assert info_f["axes_px"] == info_s["axes_px"]
+    k = int(n // (x1 - x0))
+    assert k >= 2 and shapes[-1] == (-(-n // k), -(-n // k))
+    for key in ("clim", "n_no_value", "n_value", "colorbar_label", "extent"):
+        assert info_s[key] == info_f[key]
+    assert info_s["n_no_value"] == b * b
+    a, f = a[..., :3], f[..., :3]
+    centres = (np.arange(n // b) + 0.5) / (n // b)
+    cols = np.round(x0 + centres * (x1 - x0)).astype(int)
+    rows = np.round(y1 - centres * (y1 - y0)).astype(int)  # y up
+    assert np.array_equal(a[np.ix_(rows, cols)], f[np.ix_(rows, cols)])
+    assert len(np.unique(f[np.ix_(rows, cols)].reshape(-1, 3), axis=0)) > 100
