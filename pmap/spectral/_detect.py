@@ -105,7 +105,8 @@ def detect_signal(
         Baseline under each box. ``"line"``: a straight line in channel index.
         ``"auto"`` (default): the line plus the map's own smooth continuum (stray
         light, laser tail, thermal glow), found in the quietest spectra of up to
-        4096 sampled pixels and accepted only where it is convex
+        4096 sampled pixels (from at most 16 chunks of a chunked cube: one extra
+        read of those) and accepted only where it is convex
         (:mod:`pmap.spectral._continuum`); where none is found the result is the
         same as ``"line"``. The attrs say which was used.
 
@@ -262,13 +263,20 @@ _N_SAMPLE = 4096
 
 
 def _sample_pixels(arr: xr.DataArray, sdim: str) -> np.ndarray:
-    """Spectra (m, n) of up to ``_N_SAMPLE`` pixels on a regular lattice of the map
-    (every pixel of a small map), computed in one pass."""
+    """Spectra (m, n) of up to ``_N_SAMPLE`` pixels on a regular lattice (every pixel of a
+    small map), computed in one pass. On a chunked cube the lattice is laid over at most
+    4 chunks per spatial dim (spread over the map), so at most 16 chunks are read."""
     spatial = [d for d in arr.dims if d != sdim]
-    sizes = [arr.sizes[d] for d in spatial]
-    total = int(np.prod(sizes)) if sizes else 1
-    step = max(1, int(np.ceil((total / _N_SAMPLE) ** (1.0 / max(len(sizes), 1)))))
-    sub = arr.isel({d: slice(None, None, step) for d in spatial}) if step > 1 else arr
+    chunks = dict(zip(arr.dims, arr.chunks)) if arr.chunks is not None else {}
+    cand = {}
+    for d in spatial:
+        bounds = np.cumsum((0,) + tuple(chunks.get(d, (arr.sizes[d],))))
+        pick = np.unique(np.linspace(0, bounds.size - 2, min(4, bounds.size - 1)).round()
+                         .astype(int))
+        cand[d] = np.concatenate([np.arange(bounds[k], bounds[k + 1]) for k in pick])
+    total = int(np.prod([c.size for c in cand.values()])) if cand else 1
+    step = max(1, int(np.ceil((total / _N_SAMPLE) ** (1.0 / max(len(cand), 1)))))
+    sub = arr.isel({d: c[::step] for d, c in cand.items()})
     sub = sub.transpose(*spatial, sdim)
     return np.asarray(sub.values, dtype=np.float64).reshape(-1, arr.sizes[sdim])
 
