@@ -13,7 +13,8 @@ For each scene of ``pmap.scenes`` (synthetic, with truth) and each seed this run
   scene's detector: Poisson photoelectrons, read noise), each of the scene's spiky
   pixels' spikes put into one random frame.
 
-and the cost of remove_spikes on the scene against summing the cube in the same run.
+and the cost of remove_spikes on the scene against summing the cube in the same run
+(``x sum``) and per spectrum (``us/spec``, wall time of the whole call on the scene).
 Not a test: a table to read.
 
     python scripts/bench_spikes.py [--scenes NAME ...] [--seeds 0 1 2] [--no-frames]
@@ -143,7 +144,7 @@ def main(argv=None) -> int:
     print(f"load average at start: {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores")
     head = (f"{'scene':28s} {'seed':>4s} {'recall':>7s} {'n>=10sd':>7s} {'found':>7s} {'top rec':>7s} {'n top':>6s} {'false':>9s} "
             f"{'dA max':>7s} {'F2 rec':>7s} {'F2 false':>9s} {'F3 rec':>7s} {'F3 false':>9s} "
-            f"{'x sum':>6s}")
+            f"{'x sum':>6s} {'us/spec':>7s}")
     print(head)
     print("-" * len(head))
     tot = {"top": 0, "thit": 0.0, "big": 0, "hit": 0.0, "fm": 0.0, "fn": 0, "f2": 0.0,
@@ -169,7 +170,7 @@ def main(argv=None) -> int:
                     tot[f"f{nf}"] += f * nc
                     tot[f"fn{nf}"] += nc
                     row += f" {r:7.4f} {f:9.2e}"
-            row += f" {dt / max(base, 1e-9):6.0f}"
+            row += f" {dt / max(base, 1e-9):6.0f} {1e6 * dt / (sc.cube.sizes['y'] * sc.cube.sizes['x']):7.1f}"
             print(row, flush=True)
     print(f"pooled: recall {tot['hit'] / max(tot['big'], 1):.4f} (n={tot['big']}), on tops "
           f"{tot['thit'] / max(tot['top'], 1):.4f} (n={tot['top']}), false "
