@@ -1155,6 +1155,7 @@ def write_figures(
     missing = [n for n in names if n not in ds.data_vars]
     if missing:
         raise StepError(f"variables {missing} are not in the dataset ({list(ds.data_vars)})")
+    _trim_heap()  # the maps and drawings reuse the memory the computation freed
     with _deferred_saves():
         return _write_figures(ds, out, names, variables, prefix)
 
@@ -1284,6 +1285,7 @@ def _draw_jobs(jobs: Sequence[tuple[Path, Any]], *, parallel: bool = True) -> li
     shares = [list(range(i, len(jobs), n)) for i in range(n)]
     sys.stdout.flush()
     sys.stderr.flush()
+    _trim_heap()  # a copy starts with the pages this process holds: hand back the free ones
     children: dict[int, list[int]] = {}
     for share in shares[1:]:
         with warnings.catch_warnings():
@@ -1319,6 +1321,17 @@ def _draw_jobs(jobs: Sequence[tuple[Path, Any]], *, parallel: bool = True) -> li
         fn, args, kw = jobs[i][1]
         fn(*args, **kw)
     return [path for path, _ in jobs]
+
+
+def _trim_heap() -> None:
+    """Return the C heap's free memory to the system (glibc ``malloc_trim``), if there."""
+    import ctypes
+    import ctypes.util
+
+    try:
+        ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):
+        pass
 
 
 def _wait_child(pid: int, deadline: float) -> bool:
