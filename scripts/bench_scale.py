@@ -10,7 +10,10 @@ then, each in a fresh process so that peak memory is its own:
    LIMIT`` with the default pipeline, figures on (read, clean, convert to energy,
    descriptors, one-peak fit, write the result store, draw the figures).
 
-Prints spectra/s and peak RSS (the child's own maximum resident set) of each, and
+Prints spectra/s and peak RSS (the child's own maximum resident set, or that of a
+process it forked and waited for, e.g. the figure drawer, whichever is larger) of each,
+the CPU seconds of the process run against those of the read floor (``cpu_vs_read``,
+steadier than wall time on a shared machine), and
 last ``end_to_end_vs_read: N``: the command's wall time less the startup time,
 divided by the read floor measured in the same run. With ``--sizes`` it repeats
 this for several sizes and prints the scaling table: seconds per GB and the
@@ -39,11 +42,11 @@ READ = r"""
 import json, sys, time, dask
 import pmap
 cube = pmap.open_cube(sys.argv[1])
-t = time.perf_counter()
+t, c = time.perf_counter(), time.process_time()
 with dask.config.set(scheduler="threads"):
     total = float(cube.data.sum(dtype="float64").compute())
-dt = time.perf_counter() - t
-print(json.dumps({"seconds": dt, "n": int(cube.sizes["y"] * cube.sizes["x"])}))
+dt, dc = time.perf_counter() - t, time.process_time() - c
+print(json.dumps({"seconds": dt, "cpu_seconds": dc, "n": int(cube.sizes["y"] * cube.sizes["x"])}))
 """
 
 
@@ -95,14 +98,18 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
     n = side * side
     print(f"generated in {gen:.1f} s ({n / gen:,.0f} spectra/s), {disk / 1e9:.2f} GB on disk")
     py = sys.executable
-    startup = min(_run_child([py, "-m", "pmap", "--version"])[0] for _ in range(3))
+    starts = []
+    for _ in range(3):
+        starts.append((_run_child([py, "-m", "pmap", "--version"])[0], LAST_CPU_S[0]))
+    startup, startup_cpu = min(starts)
     print(f"startup:     {startup:.2f} s (plcube --version, best of 3)")
     info_s = min(_run_child([py, "-m", "pmap", "info", str(paths["cube"])])[0] for _ in range(3))
     print(f"info:        {info_s:.2f} s (plcube info, best of 3, whole command)")
     wall_r, rss_r, out, _ = _run_child([py, "-c", READ, str(paths["cube"])])
     cpu_r = LAST_CPU_S[0]
     read = json.loads(out.strip().splitlines()[-1])
-    print(f"read floor:  {read['seconds']:.1f} s, {n / read['seconds']:,.0f} spectra/s, "
+    print(f"read floor:  {read['seconds']:.1f} s ({read['cpu_seconds']:.1f} CPU s), "
+          f"{n / read['seconds']:,.0f} spectra/s, "
           f"{disk / 1e9 / read['seconds']:.2f} GB/s from disk, peak RSS {rss_r:.0f} MiB "
           f"(process incl. startup {wall_r:.1f} s, {cpu_r:.1f} CPU s); load {_load()}", flush=True)
     res = work / f"bench_{side}_result.zarr"
@@ -123,6 +130,7 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
     cpu_p = LAST_CPU_S[0]
     summary = [ln for ln in err.splitlines() if "converged" in ln][:1]
     work_s = wall_p - startup
+    work_cpu = cpu_p - startup_cpu
     print(f"end to end:  {wall_p:.1f} s for the command ({work_s:.1f} s after startup, "
           f"{cpu_p:.1f} CPU s), "
           f"{n / work_s:,.0f} spectra/s, peak RSS {rss_p:.0f} MiB (limit {args.memory_limit})"
@@ -131,7 +139,7 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
         for p in (paths["cube"], paths["truth"], res, work / f"bench_{side}_result_figures"):
             shutil.rmtree(p, ignore_errors=True)
     return {"gb": side * side * args.channels * 4 / 1e9, "read": read["seconds"],
-            "process": work_s, "startup": startup, "info": info_s, "rss_read": rss_r, "rss_process": rss_p}
+            "read_cpu": read["cpu_seconds"], "process_cpu": work_cpu, "process": work_s, "startup": startup, "info": info_s, "rss_read": rss_r, "rss_process": rss_p}
 
 
 def main() -> None:
@@ -174,14 +182,21 @@ def main() -> None:
             sum((g - mx) ** 2 for g in gb), 1e-300)
         icpt = my - slope * mx
         print(f"scaling: process time = {icpt:.1f} s + {slope:.1f} s/GB x size (least squares)")
-        print(" GB      read s  process s  ratio  s/GB   off line  RSS read  RSS process")
+        print(" GB      read s  process s  ratio  s/GB   off line  RSS read  RSS process"
+              "  CPU ratio")
         for r in rows:
             line = icpt + slope * r["gb"]
             print(f"{r['gb']:5.2f}  {r['read']:8.1f}  {r['process']:9.1f}  "
                   f"{r['process'] / r['read']:5.1f}  {r['process'] / r['gb']:5.1f}  "
                   f"{100 * (r['process'] - line) / line:+7.1f} %  {r['rss_read']:6.0f} MiB"
-                  f"  {r['rss_process']:6.0f} MiB")
+                  f"  {r['rss_process']:6.0f} MiB"
+                  f"  {r['process_cpu'] / max(r['read_cpu'], 1e-9):9.1f}")
     last = rows[-1]
+    # CPU seconds compare better than wall time on a shared machine (other jobs taking
+    # cores stretch the wall time of both runs differently)
+    print(f"cpu_vs_read: {last['process_cpu'] / max(last['read_cpu'], 1e-9):.1f} "
+          f"(process {last['process_cpu']:.1f} CPU s after startup, read floor "
+          f"{last['read_cpu']:.1f} CPU s)")
     print(f"end_to_end_vs_read: {last['process'] / last['read']:.1f}")
 
 
