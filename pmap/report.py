@@ -164,7 +164,8 @@ def _new_figure(nrows_over_ncols: float, *, width_in: float = 6.4, side_in: floa
                 map_layout: bool = False):
     """A figure whose height fits a map of that aspect beside ``side_in`` of colour bar.
 
-    ``map_layout``: one map with its colour bar or legend, placed by :func:`_map_layout`
+    ``map_layout``: one map (or histogram) with its colour bar, legend or text panel,
+    placed by :func:`_map_layout`
     (margins measured once from the texts, no constraint solver); else matplotlib's
     constrained layout.
     """
@@ -185,6 +186,8 @@ MAP_MIN_HEIGHT_IN = 3.6
 #: map and its colour bar, in the fixed map layout.
 LAYOUT_PAD_IN = 0.08
 COLORBAR_GAP_IN = 0.14
+#: Gap (inches) between a histogram and the statistics written beside it.
+SIDE_GAP_IN = 0.25
 #: Colour bar: this fraction of the map's height, and its width as a fraction of its
 #: height (within 0.12-0.22 in).
 COLORBAR_SHRINK = 0.9
@@ -201,7 +204,8 @@ def _map_layout():
     the map's axes at the largest box of the map's aspect that leaves room for the
     outer texts, measured from the texts themselves: y tick labels and label on the
     left, x tick labels, label and the footer note below, the title above, the colour
-    bar (with its tick labels and label) or the legend on the right. The texts are
+    bar (with its tick labels and label), the legend or a panel of text (a histogram's
+    statistics) on the right; an axes without equal aspect fills the space. The texts are
     measured with the map placed by a first guess, then again where that put it, and
     the map is placed for good (cheaper than matplotlib's constrained layout, which
     measures every artist while it solves).
@@ -219,6 +223,7 @@ def _map_layout():
             self.ax = None  # the map
             self.cax = None  # its colour bar (plot_map)
             self.legend = None  # or its legend (plot_labels)
+            self.side = None  # or an axes of text on the right (plot_histogram)
             self._bar_label_in = 0.0  # length of the colour bar's label, inches
             self.image = None  # the map's image and its values at full resolution
             self.values = None
@@ -233,7 +238,8 @@ def _map_layout():
             pad = LAYOUT_PAD_IN
             # first guess: matplotlib's default font sizes; the right side from the
             # colour bar or legend measured below
-            margins = [0.85, 1.3 if self.cax is not None else 0.3, 0.75, 0.45]
+            margins = [0.85, 1.3 if self.cax is not None else 1.9 if self.side is not None
+                       else 0.3, 0.75, 0.45]
             # measured twice: the second time with the colour bar at its length (the
             # number of its ticks, so the width of their labels, follows the length)
             for _ in range(2):
@@ -293,6 +299,10 @@ def _map_layout():
                 cw = min(max(ch / COLORBAR_ASPECT, 0.12), 0.22)
                 self.cax.set_position(((bx + w + COLORBAR_GAP_IN) / w_in,
                                        (by + (h - ch) / 2) / h_in, cw / w_in, ch / h_in))
+            if self.side is not None:  # its texts hang from its top left corner
+                self.side.set_position(((bx + w + SIDE_GAP_IN) / w_in, by / h_in,
+                                        max(w_in - bx - w - SIDE_GAP_IN, 0.1) / w_in,
+                                        h / h_in))
             return bx, by, w, h
 
         def _measure(self, fig, renderer, box, w_in, h_in, pad):
@@ -320,6 +330,9 @@ def _map_layout():
                 grow(self.cax.get_tightbbox(renderer))
             if self.legend is not None:
                 grow(self.legend.get_window_extent(renderer))
+            if self.side is not None:
+                for t in self.side.texts:
+                    grow(t.get_window_extent(renderer))
             foot = getattr(fig, "_supxlabel", None)
             foot_h = (foot.get_window_extent(renderer).height / dpi + 0.01 * h_in
                       if foot is not None and foot.get_text() else 0.0)
@@ -781,9 +794,12 @@ def plot_histogram(
         raise StepError(f"bins must be a positive integer, got {bins}")
     values = np.asarray(da.values, dtype=float).ravel()
     finite = values[np.isfinite(values)]
-    fig = _new_figure(0.6, width_in=7.2)
-    ax, side = fig.subplots(1, 2, width_ratios=[3.2, 1.0])
+    fig = _new_figure(0.6, width_in=7.2, map_layout=True)
+    ax = fig.add_subplot()
+    side = fig.add_axes((0.8, 0.1, 0.15, 0.8))
     side.set_axis_off()
+    layout = fig.get_layout_engine()
+    layout.ax, layout.side = ax, side
     unit = _unit_text(da.attrs.get("units"))
     info: dict[str, Any] = {
         "variable": str(da.name),
