@@ -6,7 +6,6 @@ result does not depend on how the pixels are chunked.
 
 from __future__ import annotations
 
-import numba as nb
 import numpy as np
 
 #: Up to this many components the exact solution is found by enumerating supports.
@@ -52,6 +51,8 @@ def nnls_clipped_rows(x: np.ndarray, spectra: np.ndarray) -> np.ndarray:
     on the finite rows, with the products ``clip(x) · spectraᵀ`` taken in one compiled
     pass over x in its stored dtype (no float64, finite-row or clipped copies). The
     products are summed in another order than BLAS: abundances agree to rounding."""
+    from ._nnls_kernel import _clipped_products
+
     spectra = np.ascontiguousarray(spectra, dtype=np.float64)
     if x.dtype not in (np.float32, np.float64):
         x = x.astype(np.float64)
@@ -64,31 +65,6 @@ def nnls_clipped_rows(x: np.ndarray, spectra: np.ndarray) -> np.ndarray:
         out[ok] = _enumerate(g, bo) if k <= ENUMERATE_MAX else \
             _coordinate_descent(g, bo, max_iter=2000, tol=1e-12)
     return out
-
-
-@nb.njit(cache=True, nogil=True, fastmath={"reassoc"})
-def _clipped_products(x, spectra):  # pragma: no cover - compiled
-    """(b (n, k) = clip(x, 0) · spectraᵀ, ok (n,): row finite); b undefined where not ok."""
-    n, c = x.shape
-    k = spectra.shape[0]
-    b = np.zeros((n, k))
-    ok = np.zeros(n, dtype=np.bool_)
-    row = np.empty(c)
-    for r in range(n):
-        chk = 0.0
-        for i in range(c):
-            v = np.float64(x[r, i])
-            chk += v * 0.0  # NaN for inf or NaN
-            row[i] = v if v > 0.0 else 0.0
-        if not chk == 0.0:
-            continue
-        ok[r] = True
-        for j in range(k):
-            s = 0.0
-            for i in range(c):
-                s += row[i] * spectra[j, i]
-            b[r, j] = s
-    return b, ok
 
 
 def _enumerate(g: np.ndarray, b: np.ndarray) -> np.ndarray:
