@@ -21,9 +21,11 @@ Method (on variance-stabilised data, unit noise per channel):
 3. Basis: the seed's mean shape (beyond constant and slope), kept when its
    squared norm exceeds that of a mean of noise spectra by 5 s.d., and the
    singular vectors of the seed's spread about it above the noise edge
-   1.25·(√m + √n) of an m × n matrix of unit-variance noise (Marchenko & Pastur,
+   1.1·(√m + √n) of an m × n matrix of unit-variance noise (Marchenko & Pastur,
    Math. USSR-Sbornik 1, 457 (1967); the largest singular value of such a matrix is
-   close to √m + √n, Geman, Ann. Probab. 8, 252 (1980)): at most 3 vectors, each
+   close to √m + √n, Geman, Ann. Probab. 8, 252 (1980), with Tracy–Widom
+   fluctuations, Johnstone, Ann. Stat. 29, 295 (2001): for m = 24, n = 512 the
+   factor 1.1 is 9 of their s.d. above the edge): at most 3 vectors, each
    smoothed by a cubic Savitzky–Golay filter over n/16 channels (Savitzky & Golay,
    Anal. Chem. 36, 1627 (1964)). The spread carries the change of the continuum's
    shape with its level through the square-root transform.
@@ -52,7 +54,7 @@ _SEED_FRACTION = 0.02
 _SEED_MIN = 24
 _MAX_RANK = 3
 #: singular values above this many times √m + √n are structure, not noise
-_EDGE = 1.25
+_EDGE = 1.1
 #: the seed's baseline: polynomials up to this degree (curved continua are not excess)
 _SEED_DEGREE = 3
 #: second differences below −this many s.d. make a spectrum concave (a line's top)
