@@ -174,7 +174,7 @@ def zarr_ratios(cube, args, n_spec):
                    if f.is_file())
         print(f"--- from Zarr: written in {t_w:.1f} s, {size / 2**30:.2f} GiB on disk")
         ratios, vs_mem = [], []
-        for rep in range(args.repeat):
+        for _rep in range(args.repeat):
             _, t_mem = timed(lambda: float(cube.sum().compute()))
             _, t_read = timed(lambda: float(xr.open_zarr(path)["intensity"].sum().compute()))
             print(f"read floor, xarray.open_zarr(...).sum().compute(): {t_read:.2f} s "
