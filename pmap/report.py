@@ -1250,10 +1250,12 @@ def _histogram_jobs(ds: xr.Dataset, pe: xr.DataArray, out: Path, prefix: str) ->
     return jobs
 
 
-#: Figures are drawn in this many processes (the process itself and forked copies, on
-#: Linux, when there are at least FORK_MIN_FIGURES to draw and as many cores); drawing
-#: is single-threaded Python (matplotlib), so a second core halves the time. The
-#: environment variable ``PMAP_FIGURE_PROCESSES=1`` draws every figure here.
+#: Figures are drawn in up to this many processes (the process itself and forked copies,
+#: on Linux, when there are at least FORK_MIN_FIGURES to draw, and as many cores idle at
+#: that moment: a copy costs about 1 CPU s more in all, which only an idle core repays);
+#: drawing is single-threaded Python (matplotlib), so a second core nearly halves the
+#: time. The environment variable ``PMAP_FIGURE_PROCESSES=N`` sets the number whatever
+#: the load (1: every figure drawn here).
 FIGURE_PROCESSES = 2
 FORK_MIN_FIGURES = 4
 #: A forked drawer that has not finished after this many seconds plus FORK_TIMEOUT_FACTOR
@@ -1270,27 +1272,52 @@ def _figure_processes(n_jobs: int) -> int:
 
     if not sys.platform.startswith("linux") or not hasattr(os, "fork"):
         return 1
-    try:
-        want = int(os.environ.get("PMAP_FIGURE_PROCESSES", FIGURE_PROCESSES))
-    except ValueError:
-        want = FIGURE_PROCESSES
-    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1
     if n_jobs < FORK_MIN_FIGURES or getattr(_SAVES, "in_child", False):
         return 1
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1
+    stated = os.environ.get("PMAP_FIGURE_PROCESSES")
+    try:
+        want = int(stated) if stated is not None else FIGURE_PROCESSES
+    except ValueError:
+        want, stated = FIGURE_PROCESSES, None
+    if stated is None:  # only onto cores that are idle now: a copy on a busy machine
+        want = min(want, 1 + _idle_cores(cores))  # costs more CPU than it saves time
     return max(1, min(want, cores, n_jobs))
+
+
+def _idle_cores(cores: int) -> int:
+    """Cores with nothing to run now, besides this thread: ``cores`` less the tasks
+    running or runnable (/proc/loadavg, this thread included) at the least of three
+    looks 10 ms apart (a moment's work of another thread of this process, e.g. a PNG
+    being saved, does not count); 0 where unknown."""
+    import time
+
+    running = []
+    for k in range(3):
+        try:
+            with open("/proc/loadavg", encoding="ascii") as f:
+                running.append(int(f.read().split()[3].split("/")[0]))
+        except (OSError, ValueError, IndexError):
+            return 0
+        if k < 2:
+            time.sleep(0.01)
+    return max(cores - min(running), 0)
 
 
 def _draw_jobs(jobs: Sequence[tuple[Path, Any]], *, parallel: bool = True) -> list[Path]:
     """Run the figure ``jobs`` ((path, (function, args, kwargs)) each) and return their
     paths, in order.
 
-    With more than one process (:func:`_figure_processes`) the process forks: each
-    forked copy draws every n-th figure from the maps already in memory (numpy,
-    matplotlib and PIL only: no store is read there) and writes its PNG files, while
-    this process draws the rest. The same calls run in both, so the files are the same
-    bytes as drawn here. A copy that fails or overruns its time is stopped and its
-    figures are drawn here.
+    With more than one process (:func:`_figure_processes`) the process forks: the
+    forked copies and this process take the next figure to draw from one shared
+    counter until none is left (so the process that also saves PNGs on a thread and
+    read the maps does less), each drawing from the maps already in memory (numpy,
+    matplotlib and PIL only: no store is read in a copy) and writing its PNG files. The
+    same calls run everywhere, so the files are the same bytes as drawn here. Each copy
+    reports the figures it finished through a pipe; a copy that fails or overruns its
+    time is stopped and the figures it did not finish are drawn here.
     """
+    import multiprocessing
     import os
     import sys
     import time
@@ -1298,44 +1325,60 @@ def _draw_jobs(jobs: Sequence[tuple[Path, Any]], *, parallel: bool = True) -> li
     n = _figure_processes(len(jobs)) if parallel else 1
     if n <= 1:
         return [fn(*args, **kw) for _, (fn, args, kw) in jobs]
-    shares = [list(range(i, len(jobs), n)) for i in range(n)]
+    ctx = multiprocessing.get_context("fork")
+    counter, lock = ctx.RawValue("i", 0), ctx.Lock()  # shared by the copies
+
+    def take() -> int | None:
+        with lock:
+            i = counter.value
+            counter.value = i + 1
+        return i if i < len(jobs) else None
+
     sys.stdout.flush()
     sys.stderr.flush()
     _trim_heap()  # a copy starts with the pages this process holds: hand back the free ones
-    children: dict[int, list[int]] = {}
-    for share in shares[1:]:
+    children: dict[int, int] = {}  # pid -> read end of the pipe of its finished figures
+    for _ in range(n - 1):
+        read_fd, write_fd = os.pipe()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", DeprecationWarning)  # fork with threads (3.12+)
             pid = os.fork()
-        if pid == 0:  # the forked copy: draw its share, write the files, leave at once
+        if pid == 0:  # the forked copy: draw, write the files, report them, leave at once
             code = 1
             try:
+                os.close(read_fd)
                 _SAVES.pending = None  # the PNG thread was not copied: save in this thread
                 _SAVES.in_child = True
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore")
-                    for i in share:
+                    while (i := take()) is not None:
                         fn, args, kw = jobs[i][1]
                         fn(*args, **kw)
+                        os.write(write_fd, i.to_bytes(4, "little"))
                 code = 0
-            except BaseException:  # noqa: BLE001 - the parent draws this share again
+            except BaseException:  # noqa: BLE001 - the parent draws what is left
                 code = 1
             finally:
                 os._exit(code)
-        children[pid] = share
+        os.close(write_fd)
+        children[pid] = read_fd
     t0 = time.perf_counter()
-    for i in shares[0]:
+    done: set[int] = set()
+    while (i := take()) is not None:
         fn, args, kw = jobs[i][1]
         fn(*args, **kw)
+        done.add(i)
     deadline = time.monotonic() + FORK_TIMEOUT_S + FORK_TIMEOUT_FACTOR * (
         time.perf_counter() - t0)
-    redo: list[int] = []
-    for pid, share in children.items():
-        if not _wait_child(pid, deadline):
-            redo.extend(share)
-    for i in sorted(redo):  # a copy failed or overran: its figures drawn here
-        fn, args, kw = jobs[i][1]
-        fn(*args, **kw)
+    for pid, read_fd in children.items():
+        _wait_child(pid, deadline)
+        with os.fdopen(read_fd, "rb") as f:
+            raw = f.read()
+        done.update(int.from_bytes(raw[k:k + 4], "little") for k in range(0, len(raw) - 3, 4))
+    for i in range(len(jobs)):  # unfinished by a copy that failed or overran: drawn here
+        if i not in done:
+            fn, args, kw = jobs[i][1]
+            fn(*args, **kw)
     return [path for path, _ in jobs]
 
 

@@ -322,3 +322,21 @@ def test_a_map_larger_than_its_axes_is_drawn_from_every_kth_pixel(tmp_path, monk
     rows = np.round(y1 - centres * (y1 - y0)).astype(int)  # y up
     assert np.array_equal(a[np.ix_(rows, cols)], f[np.ix_(rows, cols)])
     assert len(np.unique(f[np.ix_(rows, cols)].reshape(-1, 3), axis=0)) > 100
+
+
+def test_a_drawer_is_forked_only_onto_an_idle_core(monkeypatch):
+    """Unless PMAP_FIGURE_PROCESSES says otherwise, a second drawing process starts only
+    when a core is idle (a copy costs CPU that only an idle core repays)."""
+    import os
+    import sys
+
+    if not (sys.platform.startswith("linux") and len(os.sched_getaffinity(0)) >= 2):
+        pytest.skip("figures are drawn in one process here")
+    monkeypatch.delenv("PMAP_FIGURE_PROCESSES", raising=False)
+    for idle, expected in ((0, 1), (1, 2), (5, report.FIGURE_PROCESSES)):
+        monkeypatch.setattr(report, "_idle_cores", lambda cores, k=idle: k)
+        assert report._figure_processes(20) == expected
+    assert report._figure_processes(report.FORK_MIN_FIGURES - 1) == 1
+    monkeypatch.setattr(report, "_idle_cores", lambda cores: 0)
+    monkeypatch.setenv("PMAP_FIGURE_PROCESSES", "2")  # stated: whatever the load
+    assert report._figure_processes(20) == 2
