@@ -146,6 +146,9 @@ _LR_QUAD_CHI2 = 9.0
 _MB_EX = 15
 #: Widths of the line in the joint fit, in units of the instrument's s.d.
 _LR_WIDTHS = (1.0, 1.3, 1.7, 2.3)
+#: Lorentzian FWHM of the joint fit's line (a Voigt line: the instrument's Gaussian and a
+#: homogeneous width), in units of the instrument's FWHM; 0 is a Gaussian line.
+_LR_LORENTZ = (0.0, 0.5, 1.2)
 
 
 def spike_candidates(x: np.ndarray, threshold: float = 6.0) -> tuple[np.ndarray, np.ndarray]:
@@ -647,19 +650,33 @@ def _solve_small(mat, y, k0, k):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, law, nz, skip, g, v, mb, nb):  # pragma: no cover
+def _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, lor, law, nz, skip, g, v, mb, nb):  # pragma: no cover
     """χ² of e_j ≈ A·g_j(μ, σ) + B(j) over channels w0 … w1 (box [s, s + w − 1] left out
     when ``skip``), A ≥ 0 and the polynomial B of nb − 1 terms (quadratic: what a broader
     band under the line adds over a few channels; linear for a residual) by weighted least
     squares (:func:`_lr_chi2`); mb[0:w] the model
     in the box, mb[_MB_EX] the box's mean excess over it. g, v: work."""
     nw = w1 - w0 + 1
-    h = 1.0 / (sig * np.sqrt(2.0))
+    eta = 0.0
+    sg = sig
+    hl = 0.0
+    if lor > 0.0:  # a Voigt line: pseudo-Voigt of the same FWHM (Thompson, Cox & Hastings)
+        fg = sig / _FWHM_TO_SD
+        f = (fg**5 + 2.69269 * fg**4 * lor + 2.42843 * fg**3 * lor**2
+             + 4.47163 * fg**2 * lor**3 + 0.07842 * fg * lor**4 + lor**5) ** 0.2
+        q = lor / f
+        eta = 1.36603 * q - 0.47719 * q * q + 0.11116 * q * q * q
+        sg = f * _FWHM_TO_SD
+        hl = 2.0 / f
+    h = 1.0 / (sg * np.sqrt(2.0))
     mid = 0.5 * (w0 + w1)
     hw = 0.5 * (w1 - w0)
     for k in range(nw):
         j = w0 + k
         g[k] = 0.5 * (math.erf((j + 0.5 - mu) * h) - math.erf((j - 0.5 - mu) * h))
+        if eta > 0.0:
+            gl = (math.atan((j + 0.5 - mu) * hl) - math.atan((j - 0.5 - mu) * hl)) / np.pi
+            g[k] = (1.0 - eta) * g[k] + eta * gl
         v[k] = max(_var_at(j, lvl[k] + max(e[k], 0.0), law, nz) * vf[k], sf2)
     mat = np.empty((4, 4))
     th = np.zeros(4)
@@ -717,7 +734,7 @@ def _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, law, nz, skip, g, v, mb, nb
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, over_mu, a0, b0, law, nz, skip, g, v,
+def _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, lor, over_mu, a0, b0, law, nz, skip, g, v,
                 mb, nb):  # pragma: no cover - compiled
     """Ternary search (10 steps) of :func:`_lr_eval`'s χ² over the line's centre
     (``over_mu``) or its width within [a0, b0], the other held; returns the midpoint."""
@@ -725,11 +742,11 @@ def _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, over_mu, a0, b0, law, nz
         m1 = a0 + (b0 - a0) / 3.0
         m2 = b0 - (b0 - a0) / 3.0
         if over_mu:
-            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m1, sig, law, nz, skip, g, v, mb, nb)
-            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m2, sig, law, nz, skip, g, v, mb, nb)
+            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m1, sig, lor, law, nz, skip, g, v, mb, nb)
+            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, m2, sig, lor, law, nz, skip, g, v, mb, nb)
         else:
-            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, m1, law, nz, skip, g, v, mb, nb)
-            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, m2, law, nz, skip, g, v, mb, nb)
+            f1 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, m1, lor, law, nz, skip, g, v, mb, nb)
+            f2 = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, m2, lor, law, nz, skip, g, v, mb, nb)
         if f1 < f2:
             b0 = m2
         else:
@@ -740,7 +757,11 @@ def _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, over_mu, a0, b0, law, nz
 @numba.njit(cache=True, nogil=True, error_model="numpy")
 def _lr_chi2(e, lvl, vf, sf2, w0, w1, s, w, sd, law, nz, skip, mb, nb):  # pragma: no cover
     """Least χ² over line positions μ and widths σ ≥ sd (the instrument's s.d., channels)
-    of e_j ≈ A·g_j(μ, σ) + C (A ≥ 0; g the Gaussian integrated over channel j), channels
+    of e_j ≈ A·g_j(μ, σ) + C (A ≥ 0; g the Gaussian integrated over channel j, or a Voigt
+    line: a pseudo-Voigt of the Gaussian and a Lorentzian of FWHM _LR_LORENTZ × the
+    instrument's, Thompson, Cox & Hastings, J. Appl. Cryst. 20, 79 (1987); a homogeneously
+    broadened emitter's wings are Lorentzian, and a Gaussian line that cannot follow them
+    makes the fit free the emitter's own top channel), channels
     w0 … w1 (e, lvl indexed from w0), leaving out the box [s, s + w − 1] when ``skip``: a
     grid (μ every 0.1 channel over the window, σ = _LR_WIDTHS × sd), then μ and σ refined
     by ternary search (a bright line needs its position to a few hundredths of a channel).
@@ -754,29 +775,35 @@ def _lr_chi2(e, lvl, vf, sf2, w0, w1, s, w, sd, law, nz, skip, mb, nb):  # pragm
     bmu = float(w0)
     bsig = sd
     nmu = int((w1 - w0) * 10) + 1
-    for iw in range(len(_LR_WIDTHS)):
-        sig = _LR_WIDTHS[iw] * sd
-        for im in range(nmu):
-            mu = w0 + 0.1 * im
-            chi = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, law, nz, skip, g, v, mb, nb)
-            if chi < best:
-                best = chi
-                bmu = mu
-                bsig = sig
+    blor = 0.0
+    for il in range(len(_LR_LORENTZ)):
+        lor = _LR_LORENTZ[il] * sd / _FWHM_TO_SD
+        for iw in range(len(_LR_WIDTHS)):
+            sig = _LR_WIDTHS[iw] * sd
+            for im in range(nmu):
+                mu = w0 + 0.1 * im
+                chi = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, mu, sig, lor, law, nz, skip, g, v,
+                               mb, nb)
+                if chi < best:
+                    best = chi
+                    bmu = mu
+                    bsig = sig
+                    blor = lor
     gmu = bmu
     gsig = bsig
     for rnd in range(2):
-        bmu = _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, True, bmu - 0.1, bmu + 0.1,
-                          law, nz, skip, g, v, mb, nb)
+        bmu = _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, blor, True, bmu - 0.1,
+                          bmu + 0.1, law, nz, skip, g, v, mb, nb)
         if rnd == 1:
             break
-        bsig = _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, False, max(sd, bsig / 1.3),
-                           bsig * 1.3, law, nz, skip, g, v, mb, nb)
-    chi = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, law, nz, skip, g, v, mb, nb)
+        bsig = _lr_ternary(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, blor, False,
+                           max(sd, bsig / 1.3), bsig * 1.3, law, nz, skip, g, v, mb, nb)
+    chi = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, bmu, bsig, blor, law, nz, skip, g, v, mb, nb)
     if chi < best:
         best = chi
     else:  # (the grid point was better: its model in the box)
-        best = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, gmu, gsig, law, nz, skip, g, v, mb, nb)
+        best = _lr_eval(e, lvl, vf, sf2, w0, w1, s, w, gmu, gsig, blor, law, nz, skip, g, v, mb,
+                        nb)
     return best, mb[_MB_EX]
 
 
