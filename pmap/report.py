@@ -228,6 +228,7 @@ def _map_layout():
             self.image = None  # the map's image and its values at full resolution
             self.values = None
             self._extent = None  # the image's extent as drawn first (whole map)
+            self._step = (1, 1)  # the image holds every ky-th row, kx-th column
 
         def execute(self, fig) -> None:
             ax = self.ax
@@ -240,12 +241,18 @@ def _map_layout():
             # colour bar or legend measured below
             margins = [0.85, 1.3 if self.cax is not None else 1.9 if self.side is not None
                        else 0.3, 0.75, 0.45]
-            # measured twice: the second time with the colour bar at its length (the
-            # number of its ticks, so the width of their labels, follows the length)
-            for _ in range(2):
-                box = self._place(fig, w_in, h_in, margins)
-                margins = self._measure(fig, renderer, box, w_in, h_in, pad)
+            # measured again only where the first placement was far off: the number of
+            # ticks (so the width of their labels) follows the lengths of the axes and of
+            # the colour bar (as long as its label beside a flat map)
             box = self._place(fig, w_in, h_in, margins)
+            bar = self._bar_in()
+            margins = self._measure(fig, renderer, box, w_in, h_in, pad)
+            placed = self._place(fig, w_in, h_in, margins)
+            if (abs(placed[2] - box[2]) > 0.1 * box[2] or abs(placed[3] - box[3]) > 0.1 * box[3]
+                    or abs(self._bar_in() - bar) > 0.1 * max(bar, 1e-9)):
+                margins = self._measure(fig, renderer, placed, w_in, h_in, pad)
+                placed = self._place(fig, w_in, h_in, margins)
+            box = placed
             self._decimate(box[2] * fig.dpi, box[3] * fig.dpi)
 
         def _decimate(self, w_px: float, h_px: float) -> None:
@@ -260,6 +267,9 @@ def _map_layout():
             ny, nx = full.shape
             ky = max(int(ny // max(h_px, 1.0)), 1)
             kx = max(int(nx // max(w_px, 1.0)), 1)
+            if (ky, kx) == self._step:  # as drawn already (the whole map at first)
+                return
+            self._step = (ky, kx)
             if self._extent is None:
                 self._extent = tuple(self.image.get_extent())
             x0, x1, y0, y1 = self._extent
@@ -273,6 +283,12 @@ def _map_layout():
             self.image.set_extent(extent)
             ax.set_xlim(xlim)
             ax.set_ylim(ylim)
+
+        def _bar_in(self) -> float:
+            """Length of the colour bar as placed, inches (0 without one)."""
+            if self.cax is None:
+                return 0.0
+            return float(self.cax.get_position().height * self.cax.figure.get_size_inches()[1])
 
         def _place(self, fig, w_in, h_in, margins):
             """Place the map (and colour bar) for margins (left, right, bottom, top), in
