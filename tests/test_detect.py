@@ -100,8 +100,9 @@ def test_false_alarm_rate_under_curved_stray_light():
 def test_tabled_box_scan_is_bit_identical_to_the_row_kernel():
     """box_scan_max (box terms tabled once per call) returns the statistics of the
     untabled compiled kernel bit for bit: noise and lines, several lengths and widths."""
+    from _detect_reference import scan_rows
+
     from pmap.spectral._detect import box_scan_max, box_scan_plan
-    from pmap.spectral._detect_kernel import scan_rows
 
     rng = np.random.default_rng(4)
     for n in (512, 301, 64, 9, 4):

@@ -77,7 +77,7 @@ def box_scan_max(Z: np.ndarray, plan) -> np.ndarray:
     widths = np.array([w for w, _ in plan], dtype=np.int64)
     strides = np.array([st for _, st in plan], dtype=np.int64)
     # the box terms that do not depend on the spectrum, once per call (bit-identical
-    # statistics to pmap.spectral._detect_kernel.scan_rows)
+    # statistics to the row kernel kept as the reference in tests/_detect_reference.py)
     return scan_rows_table(Z, *box_table(Z.shape[1], widths, strides))
 
 

@@ -2,9 +2,9 @@
 
 The variance q of a box's residual sum (hat matrix of {1, x}) and Σ_box x depend on
 the box only, not on the spectrum, so √q, Σ_box x and the box ends are computed once
-per plan (:func:`box_table`) with the operations and order of
-:func:`pmap.spectral._detect_kernel.scan_rows`; the scan over rows then does per box
-one subtraction chain and one division. Every statistic equals the untabled kernel's
+per plan (:func:`box_table`) with the operations and order of the row kernel (kept
+as the reference in tests/_detect_reference.py); the scan over rows then does per
+box one subtraction chain and one division. Every statistic equals the untabled kernel's
 bit for bit (same expressions on the same values; the maximum does not depend on the
 order of the boxes).
 """

@@ -1,4 +1,5 @@
-"""Compiled box scan of :mod:`pmap.spectral._detect` (numba, nogil)."""
+"""The straight-line box scan row by row, as first written (numba): the reference that
+pmap.spectral._detect_scan (the tabled scan) must match bit for bit (tests/test_detect.py)."""
 
 from __future__ import annotations
 
