@@ -7,7 +7,6 @@ from typing import Any
 import numba
 import numpy as np
 import xarray as xr
-from scipy import signal
 
 from ..errors import StepError
 from ..noise import noise_correlated, noise_subtracted
@@ -324,6 +323,8 @@ def smooth(cube: xr.DataArray, *, window: int = 5, order: int = 2) -> xr.DataArr
         raise StepError(f"order must be between 0 and window − 1, got {order}")
     if window > cube.sizes[sdim]:
         raise StepError(f"window {window} is longer than the spectrum ({cube.sizes[sdim]})")
+    from scipy import signal  # on use: scipy.signal (with scipy.stats) costs ~0.5 s to import
+
     out = map_spectra(
         signal.savgol_filter,
         cube,

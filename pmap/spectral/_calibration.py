@@ -41,7 +41,7 @@ from typing import Any
 
 import numpy as np
 import xarray as xr
-from scipy import ndimage, optimize, signal
+from scipy import ndimage, optimize
 
 from .._version import __version__
 from ..errors import InputFileError, PmapWarning, StepError
@@ -179,6 +179,8 @@ def _find_lines(
     with the spectrum's white-noise variance (4 pseudo degrees of freedom), so a fit
     window with few points neither collapses to zero nor ignores shot noise at the peak.
     """
+    from scipy import signal  # on use: scipy.signal (with scipy.stats) costs ~0.5 s to import
+
     y = np.asarray(spectrum, dtype=float).ravel()
     if y.size < 8 or not np.all(np.isfinite(y)):
         raise StepError("lamp spectrum must be finite with at least 8 channels")
