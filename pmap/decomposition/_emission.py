@@ -189,6 +189,15 @@ def _smooth(y: np.ndarray, sigma: float = 1.5) -> np.ndarray:
     return gaussian_filter1d(y, sigma, mode="nearest")
 
 
+def _smoothed_noise(raw: np.ndarray) -> float:
+    """White-noise s.d. of a spectrum after :func:`_smooth` (σ = 1.5 channels): the
+    median absolute second difference, 1.4826·MAD/√6, times 0.46 for the smoothing."""
+    if raw.size < 3:
+        return 0.0
+    d2 = raw[:-2] - 2 * raw[1:-1] + raw[2:]
+    return 1.4826 * float(np.median(np.abs(d2 - np.median(d2)))) / np.sqrt(6.0) * 0.46
+
+
 def has_emission_peak(
     mean: np.ndarray, *, prominence: float = 0.25, snr: float = 5.0, edge: float = 0.03
 ) -> bool:
@@ -210,10 +219,7 @@ def has_emission_peak(
     top = float(np.max(np.abs(y))) if y.size else 0.0
     if top <= 0:
         return False
-    noise = 0.0
-    if raw.size >= 3:
-        d2 = raw[:-2] - 2 * raw[1:-1] + raw[2:]
-        noise = 1.4826 * float(np.median(np.abs(d2 - np.median(d2)))) / np.sqrt(6.0) * 0.46
+    noise = _smoothed_noise(raw)
     peaks, _ = find_peaks(y, height=0.2 * top, prominence=max(prominence * top, snr * noise))
     margin = max(1, int(round(edge * len(y))))
     return bool(np.any((peaks >= margin) & (peaks < len(y) - margin)))
@@ -223,10 +229,16 @@ def describe_spectrum(mean: np.ndarray, axis: np.ndarray, sdim: str, units: str)
     """("1.63 eV band [+ 1.38 eV]", main position, FWHM) of a region's mean spectrum.
 
     Main peak: the maximum of the lightly smoothed mean spectrum (σ = 1.5 channels);
-    "line" when its FWHM is under 2 % of its position, else "band"; other local maxima
-    at least 25 % of the main one and one FWHM away are added with "+".
+    "line" when its FWHM is under 2 % of its position, else "band"; other maxima at
+    least 25 % of the main one, one FWHM away from it, and standing out from the
+    spectrum around them (prominence ≥ 10 % of the main peak and ≥ 5 noise s.d.;
+    noise ripples on the top of a broad band are not peaks) are added with "+", the
+    two largest.
     """
-    y = _smooth(np.nan_to_num(np.asarray(mean, dtype=float)))
+    from scipy.signal import find_peaks
+
+    raw = np.nan_to_num(np.asarray(mean, dtype=float))
+    y = _smooth(raw)
     if not np.any(y > 0):
         return "no clear peak", float("nan"), float("nan")
     i = int(np.argmax(y))
@@ -240,8 +252,9 @@ def describe_spectrum(mean: np.ndarray, axis: np.ndarray, sdim: str, units: str)
     fwhm = abs(float(axis[hi] - axis[lo]))
     kind = "line" if fwhm < 0.02 * abs(float(axis[i])) else "band"
     text = f"{_format_position(float(axis[i]), sdim, units)} {kind}"
-    interior = (y[1:-1] > y[:-2]) & (y[1:-1] >= y[2:]) & (y[1:-1] >= 0.25 * y[i])
-    others = [j + 1 for j in np.flatnonzero(interior) if abs(axis[j + 1] - axis[i]) > fwhm]
+    peaks, _ = find_peaks(y, height=0.25 * y[i],
+                          prominence=max(0.1 * y[i], 5.0 * _smoothed_noise(raw)))
+    others = [int(j) for j in peaks if abs(axis[j] - axis[i]) > fwhm]
     others = sorted(others, key=lambda j: -y[j])[:2]
     for j in others:
         text += f" + {_format_position(float(axis[j]), sdim, units)}"
