@@ -73,7 +73,8 @@ def spectral_descriptors(cube, *, window_ev=None, ratio_windows=None) -> xr.Data
         three-point parabola), ``centroid_energy`` (eV; ∫E·I dE / ∫I dE),
         ``integrated_intensity`` (intensity·eV, trapezoid), ``fwhm_interp`` (eV;
         full width at half the maximum, linear interpolation between channels,
-        NaN when the band is not closed within the axis), ``window_ratio`` (1).
+        NaN when the band is not closed within the axis), and with ``ratio_windows``
+        ``window_ratio`` (1).
 
     Notes
     -----
@@ -114,6 +115,8 @@ def spectral_descriptors(cube, *, window_ev=None, ratio_windows=None) -> xr.Data
     ]
     data_vars = {}
     for i, (name, u, long) in enumerate(spec):
+        if name == "window_ratio" and rwin is None:  # no windows stated: no map of NaN
+            continue
         v = arr.isel(descriptor=i, drop=True)
         v.attrs = {"units": u, "long_name": long}
         data_vars[name] = v
