@@ -58,6 +58,50 @@ def test_estimated_gain_matches_the_detector(gain, read, dark):
     ), est
 
 
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_estimated_gain_ignores_a_few_pixels_off_the_law(seed):
+    """Two of 1600 pixels that do not follow the detector law (common practice: an
+    electronic offset of +5000 counts without shot noise, and a saturated plateau at
+    the converter's 65535) plus 100 cosmic spikes must not move the estimate: before,
+    these two pixels pulled the slope 1/g down by 22 % while its stated error was
+    0.4 % (found on an invented scene outside the bank). Truth: the detector model
+    above; tolerance 3 s.e. of the estimate (n = 3 seeds)."""
+    gain, read, dark = 1.0, 2.5, 300.0
+    rng = np.random.default_rng(seed)
+    scale = rng.uniform(0.05, 0.3, (40, 40, 1))
+    raw = _detector(_line_e()[None, None] * scale, gain, read, dark, rng)
+    raw[5, 7] += 5000.0  # offset, no extra noise
+    raw[30, 30, 100:140] = 65535.0  # saturated plateau
+    for y, x, c in zip(rng.integers(0, 40, 100), rng.integers(0, 40, 100),
+                       rng.integers(0, LAM.size - 3, 100)):
+        raw[y, x, c:c + 2] += rng.uniform(300, 2000)
+    est = pmap.spectral.estimate_noise_parameters(raw.reshape(-1, LAM.size))
+    assert abs(est["a"] - 1.0 / gain) <= 3 * est["a_err"], est
+    assert abs(est["b"] - (read**2 - dark / gain)) <= 3 * est["b_err"] + 1e-9, est
+
+
+def test_estimated_gain_error_bars_are_honest():
+    """The stated 1σ of the slope a = 1/g and the intercept b match their scatter over
+    independent maps: n = 40 maps of 400 spectra (gain 0.5 e-/count, read noise 4,
+    dark 100; the detector model above). sd of (estimate − truth)/error within
+    3 s.e. of 1 (s.e. of an sd = 1/sqrt(2(n−1)) = 0.11), mean within 3/sqrt(n).
+    Before, the errors treated overlapping difference windows as independent and
+    were 1.9x too small (sd 1.91)."""
+    gain, read, dark = 0.5, 4.0, 100.0
+    za, zb = [], []
+    for seed in range(40):
+        rng = np.random.default_rng(100 + seed)
+        scale = rng.uniform(0.05, 0.3, (20, 20, 1))
+        raw = _detector(_line_e()[None, None] * scale / gain, gain, read, dark, rng)
+        est = pmap.spectral.estimate_noise_parameters(raw.reshape(-1, LAM.size))
+        za.append((est["a"] - 1.0 / gain) / est["a_err"])
+        zb.append((est["b"] - (read**2 - dark / gain)) / est["b_err"])
+    n = len(za)
+    for z in (za, zb):
+        assert abs(np.std(z, ddof=1) - 1.0) <= 3.0 / np.sqrt(2 * (n - 1)), z
+        assert abs(np.mean(z)) <= 3.0 / np.sqrt(n), z
+
+
 def test_stated_attrs_give_the_law_without_reading_data():
     def forbid(*a, **k):
         raise AssertionError("computed while building the graph")

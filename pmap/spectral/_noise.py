@@ -43,24 +43,66 @@ _MAX_REL_ERR = 0.05
 
 
 def _difference_samples(Y: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, ...]:
-    """(level, d²/Σc², proxy) for every interior channel of every finite spectrum row.
+    """(level, d²/Σc², proxy, row) for every interior channel of every finite spectrum row.
 
     ``d`` = Σ c_k y_{i+k}; ``level`` = Σ c_k² y_{i+k} / Σc² is the exact level whose
     linear variance law the difference obeys (E[d²]/Σc² = a·E[level] + b); ``proxy``
     = mean of the two channels either side just outside the filter sorts samples
-    into bins without selecting on the filter's own noise.
+    into bins without selecting on the filter's own noise; ``row`` = the sample's row
+    in ``Y`` (rows with NaN or no variation give no samples).
     """
     Y = np.asarray(Y, dtype=np.float64)
-    Y = Y[np.all(np.isfinite(Y), axis=1) & (np.ptp(Y, axis=1) > 0)]  # no NaN, no dead pixel
+    rows = np.flatnonzero(np.all(np.isfinite(Y), axis=1) & (np.ptp(Y, axis=1) > 0))
+    Y = Y[rows]  # no NaN, no dead pixel
     n, h = Y.shape[1], c.size // 2
     if Y.shape[0] == 0 or n < 4 * h + 4:
-        return np.empty(0), np.empty(0), np.empty(0)
+        return np.empty(0), np.empty(0), np.empty(0), np.empty(0, dtype=np.int64)
     i = np.arange(h + 2, n - h - 2)
     c2 = float(np.sum(c * c))
     d = sum(ck * Y[:, i + k - h] for k, ck in enumerate(c))
     lev = sum(ck * ck * Y[:, i + k - h] for k, ck in enumerate(c)) / c2
     proxy = 0.25 * (Y[:, i - h - 2] + Y[:, i - h - 1] + Y[:, i + h + 1] + Y[:, i + h + 2])
-    return lev.ravel(), (d * d / c2).ravel(), proxy.ravel()
+    return (lev.ravel(), (d * d / c2).ravel(), proxy.ravel(),
+            np.repeat(rows, i.size).astype(np.int64))
+
+
+def _plateau_rows(Y: np.ndarray) -> np.ndarray:
+    """Rows holding a saturated plateau: a run of ≥ 3 consecutive channels at exactly the
+    sample's largest value (a detector or converter limit; noise never repeats a value
+    three times running at the top of the range)."""
+    Y = np.asarray(Y)
+    fin = np.isfinite(Y)
+    if not fin.any():
+        return np.zeros(Y.shape[0], dtype=bool)
+    top = Y == np.max(Y[fin])
+    if top.sum() < 3:
+        return np.zeros(Y.shape[0], dtype=bool)
+    return np.any(top[:, :-2] & top[:, 1:-1] & top[:, 2:], axis=1)
+
+
+def _near(flag: np.ndarray, row: np.ndarray, width: int) -> np.ndarray:
+    """``flag`` widened to every sample of the same row within ``width`` − 1 positions
+    (samples of a row are consecutive channels, rows one after another)."""
+    out = flag.copy()
+    for k in range(1, width):
+        same_l = row[k:] == row[:-k]
+        out[k:] |= flag[:-k] & same_l
+        out[:-k] |= flag[k:] & same_l
+    return out
+
+
+def _row_noise_factor(c: np.ndarray) -> float:
+    """Var of the mean of n overlapping d²/σ² samples is ``factor``·2/n (Gaussian noise;
+    Cov(d_i², d_{i+k}²) = 2ρ_k²σ⁴ with ρ_k the filter's autocorrelation)."""
+    c2 = float(np.sum(c * c))
+    rho = [float(np.sum(c[:-k] * c[k:])) / c2 for k in range(1, c.size)]
+    return 1.0 + 2.0 * float(np.sum(np.square(rho)))
+
+
+#: A sampled spectrum whose differences disagree with the map's law by more than this
+#: many standard errors (its mean d²/var) is left out of the fit (see
+#: :func:`estimate_noise_parameters`).
+_ROW_Z = 6.0
 
 
 def estimate_noise_parameters(
@@ -88,14 +130,19 @@ def estimate_noise_parameters(
     -----
     Difference-based mean–variance estimate (see the module docstring): samples
     whose difference exceeds 6σ of the first-pass law (cosmic spikes, sharp lines)
-    are dropped and the fit repeated once. Raises StepError when there are too
-    few samples.
+    are dropped, and so are whole spectra whose mean d²/var differs from 1 by more
+    than 6 standard errors (a pixel with an offset but no shot noise, a line sharp
+    enough to reach the high-pass: one such spectrum far above the map's levels
+    would tilt the line) and spectra with a saturated plateau (a run of ≥ 3 channels
+    at exactly the largest value); the fit is repeated until the kept samples no
+    longer change (at most 4 fits). Raises StepError when there are too few samples.
     """
     Y = np.asarray(Y)
     if saturation_counts is not None:
         Y = Y[~np.any(Y >= 0.98 * float(saturation_counts), axis=1)]
-    lev, d2, proxy = _difference_samples(Y, _C6)
-    _, d2_4, _ = _difference_samples(Y, np.pad(_C4, 1))  # same samples, 4th difference
+    Y = Y[~_plateau_rows(Y)]  # a saturated plateau has no noise
+    lev, d2, proxy, row = _difference_samples(Y, _C6)
+    d2_4 = _difference_samples(Y, np.pad(_C4, 1))[1]  # same samples, 4th difference
     if lev.size < 200:
         raise StepError(
             f"too few samples ({lev.size}) to estimate the noise model; state the detector's "
@@ -103,11 +150,25 @@ def estimate_noise_parameters(
         )
     keep = np.ones(lev.size, dtype=bool)
     fixed_a = None if gain_e_per_count is None else 1.0 / float(gain_e_per_count)
+    factor = _row_noise_factor(_C6)
     res = None
-    for _ in range(3):
-        res = _binned_fit(lev[keep], d2[keep], proxy[keep], fixed_a, d2_4[keep])
+    for _ in range(4):
+        res = _binned_fit(lev[keep], d2[keep], proxy[keep], fixed_a, d2_4[keep], factor)
         var = np.maximum(res["a"] * lev + res["b"], res["floor"])
-        new_keep = d2 <= 36.0 * var  # |d| ≤ 6σ of the fitted law
+        ratio = d2 / var
+        # |d| ≤ 6σ of the fitted law, and no sample whose window shares a channel with
+        # one beyond it: a cosmic spike raises every difference that sees it
+        new_keep = ~_near(ratio > 36.0, row, _C6.size)
+        # whole spectra that do not follow the map's law (an offset without shot noise,
+        # a line sharp enough to reach the high-pass): their mean d²/var differs from 1
+        # by more than _ROW_Z standard errors
+        n_row = np.bincount(row, weights=new_keep, minlength=Y.shape[0])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r_row = np.bincount(row, weights=ratio * new_keep, minlength=Y.shape[0]) / n_row
+            z_row = (r_row - 1.0) / np.sqrt(2.0 * factor / n_row)
+        bad_row = (n_row >= 20) & (np.abs(z_row) > _ROW_Z)
+        if bad_row.mean() < 0.5:  # a rule for outliers, not for the bulk of the map
+            new_keep &= ~bad_row[row]
         if np.array_equal(new_keep, keep):
             break
         keep = new_keep
@@ -119,9 +180,11 @@ def estimate_noise_parameters(
     return res
 
 
-def _binned_fit(lev, d2, proxy, fixed_a, d2_4):
+def _binned_fit(lev, d2, proxy, fixed_a, d2_4, factor=1.0):
     """Weighted line through level-binned means; bins where the 4th- and 6th-difference
-    variances disagree (signal curvature leaking into the high-pass) are dropped."""
+    variances disagree (signal curvature leaking into the high-pass) are dropped.
+    ``factor``: the variance of a bin mean of overlapping difference samples over that
+    of independent ones (:func:`_row_noise_factor`), for the errors of a and b."""
     edges = np.unique(np.quantile(proxy, np.linspace(0.0, 1.0, _N_BINS + 1)))
     idx = np.clip(np.searchsorted(edges, proxy, side="right") - 1, 0, max(edges.size - 2, 0))
     nb = max(edges.size - 1, 1)
@@ -135,19 +198,31 @@ def _binned_fit(lev, d2, proxy, fixed_a, d2_4):
         ok = cnt >= 20
     mx = np.bincount(idx, weights=lev, minlength=nb)[ok] / cnt[ok]
     my = my_all[ok]
-    # s.e. of a bin mean of d²/Σc² ≈ sqrt(2/n)·E[d²/Σc²] (near-Gaussian differences)
-    se = np.sqrt(2.0 / cnt[ok]) * np.maximum(my, 1e-12)
-    w = 1.0 / se**2
-    if fixed_a is not None:
-        a = fixed_a
-        b = float(np.sum(w * (my - a * mx)) / np.sum(w))
-        a_err, b_err = 0.0, float(1.0 / np.sqrt(np.sum(w)))
-    elif mx.size >= 2 and np.ptp(mx) > 0:
-        A = np.stack([mx, np.ones_like(mx)], axis=1)
-        cov = np.linalg.inv(A.T @ (A * w[:, None]))
-        a, b = cov @ (A.T @ (w * my))
-        a_err, b_err = float(np.sqrt(cov[0, 0])), float(np.sqrt(cov[1, 1]))
-    else:
+    # s.e. of a bin mean of d²/Σc² ≈ sqrt(2·factor/n)·E[d²/Σc²] (near-Gaussian
+    # differences; overlapping windows of one spectrum are correlated: factor ≈ 3.2 for
+    # the 6th difference, so independent-sample errors would be 1.8x too small);
+    # weights from the observed bin means first, then from the fitted line (weights
+    # from the data themselves favour bins that came out low: a bias of ~0.4 s.e.)
+    expect = my
+    for _ in range(2):
+        se = np.sqrt(2.0 * factor / cnt[ok]) * np.maximum(expect, 1e-12)
+        w = 1.0 / se**2
+        if fixed_a is not None:
+            a = fixed_a
+            b = float(np.sum(w * (my - a * mx)) / np.sum(w))
+            a_err, b_err = 0.0, float(1.0 / np.sqrt(np.sum(w)))
+        elif mx.size >= 2 and np.ptp(mx) > 0:
+            A = np.stack([mx, np.ones_like(mx)], axis=1)
+            cov = np.linalg.inv(A.T @ (A * w[:, None]))
+            a, b = cov @ (A.T @ (w * my))
+            a_err, b_err = float(np.sqrt(cov[0, 0])), float(np.sqrt(cov[1, 1]))
+        else:
+            break
+        line = a * mx + b
+        if not np.all(line > 0):  # keep the observed weights where the line is not usable
+            break
+        expect = line
+    if not (fixed_a is not None or (mx.size >= 2 and np.ptp(mx) > 0)):
         a, b, a_err, b_err = 0.0, float(np.mean(my)), np.inf, 0.0
     floor = float(np.min(my)) if my.size else 1.0
     return {
