@@ -63,6 +63,25 @@ def test_all_nan_cube_refused(tmp_path, capsys):
     assert not out.exists()
 
 
+@pytest.mark.parametrize("case, words", [("constant", "every sampled spectrum is constant"),
+                                         ("short", "too short")])
+def test_unestimable_noise_says_why(tmp_path, capsys, case, words):
+    """A blank cube (every spectrum constant) or spectra of 8 channels: the noise model
+    cannot be estimated, and the message says why (not a bare sample count)."""
+    n = 8 if case == "short" else 64
+    lam = np.linspace(700.0, 800.0, n)
+    data = (np.zeros((4, 4, n)) if case == "constant"
+            else np.random.default_rng(1).poisson(100, (4, 4, n)))
+    cube = pmap.make_cube(data.astype(np.float32), wavelength_nm=lam, units="counts",
+                          attrs={"wavelength_medium": "air"})
+    p = tmp_path / "c.zarr"
+    pmap.save_cube(cube, p)
+    out = tmp_path / "r.zarr"
+    code, err = _run(capsys, "process", str(p), "-o", str(out), "-q")
+    assert code == 2 and words in err[-1] and "gain_e_per_count" in err[-1], err
+    assert not out.exists()
+
+
 def test_incomplete_store_points_to_resume(cube_path, tmp_path, capsys):
     out = tmp_path / "r.zarr"
     assert _run(capsys, "process", str(cube_path), "-o", str(out), "-q", "--no-figures")[0] == 0

@@ -144,8 +144,15 @@ def estimate_noise_parameters(
     lev, d2, proxy, row = _difference_samples(Y, _C6)
     d2_4 = _difference_samples(Y, np.pad(_C4, 1))[1]  # same samples, 4th difference
     if lev.size < 200:
+        fin = np.all(np.isfinite(Y), axis=1) if Y.ndim == 2 else np.zeros(0, bool)
+        why = (f"spectra of {Y.shape[-1]} channels are too short for it (at least "
+               f"{4 * (_C6.size // 2) + 4} needed)" if Y.ndim == 2 and Y.shape[-1] < 4 * (_C6.size // 2) + 4
+               else "every sampled spectrum is constant (no noise: dead or blank pixels?) or "
+               "holds NaN" if Y.ndim == 2 and not np.any(fin & (np.ptp(
+                   np.where(np.isfinite(Y), Y, 0), axis=1) > 0))
+               else f"too few samples ({lev.size})")
         raise StepError(
-            f"too few samples ({lev.size}) to estimate the noise model; state the detector's "
+            f"cannot estimate the noise model: {why}; state the detector's "
             "gain_e_per_count and read_noise_counts in the cube's attrs"
         )
     keep = np.ones(lev.size, dtype=bool)
