@@ -62,3 +62,28 @@ def test_shoulder_below_a_quarter_is_not_named():
     y = _gauss(E, 1.45, 0.01) + 0.15 * _gauss(E, 1.30, 0.01)
     text, _, _ = describe_spectrum(y, E, "energy", "eV")
     assert _positions(text) == [1.45], text
+
+
+def test_regions_at_one_energy_are_told_apart_by_width():
+    """Three regions emitting at 1.45 eV with FWHMs of 60, 90 and 200 meV: each name
+    carries its FWHM (within 3 channels, read on the channel grid after the σ = 1.5
+    channel smoothing), so a broad band is not described like the main film."""
+    from pmap.decomposition._emission import region_descriptions
+
+    fw = (0.060, 0.090, 0.200)
+    means = [_gauss(E, 1.45, f / 2.3548) for f in fw]
+    names = region_descriptions(means, [1.0, 1.0, 2.0], E, "energy", "eV")
+    for name, f in zip(names, fw):
+        got = float(re.search(r"FWHM (\d+) meV", name).group(1)) / 1000
+        assert got == pytest.approx(f, abs=3 * (E[1] - E[0])), name
+    assert names[2].endswith("bright") and "dim (0.5x)" in names[0]
+
+
+def test_same_width_regions_differ_by_brightness_only():
+    """Two regions with the same 1.45 eV band, one 4x brighter: no width in the names
+    (widths agree within 15 %), and the dim one says 0.25x."""
+    from pmap.decomposition._emission import region_descriptions
+
+    m = _gauss(E, 1.45, 0.03)
+    names = region_descriptions([m, 4 * m], [1.0, 4.0], E, "energy", "eV")
+    assert names == ["1.45 eV band, dim (0.25x)", "1.45 eV band, bright"], names

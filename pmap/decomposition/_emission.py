@@ -261,11 +261,21 @@ def describe_spectrum(mean: np.ndarray, axis: np.ndarray, sdim: str, units: str)
     return text, float(axis[i]), fwhm
 
 
+def _format_width(w: float, sdim: str, units: str) -> str:
+    if sdim == "energy":
+        return f"FWHM {w * 1000:.0f} meV"
+    if sdim == "wavelength":
+        return f"FWHM {w:.0f} nm"
+    return f"FWHM {w:.3g} {units}".rstrip()
+
+
 def region_descriptions(
     means: list[np.ndarray], intensities: list[float], axis: np.ndarray, sdim: str, units: str
 ) -> list[str]:
     """A description per region; regions whose main peaks lie within half a FWHM of each
-    other are told apart by their median intensity relative to the brightest of them."""
+    other are told apart by their widths (when those differ by more than 15 %: a broader
+    band or a shoulder is what sets such a region apart) and by their median intensity
+    relative to the brightest of them."""
     described = [describe_spectrum(m, axis, sdim, units) for m in means]
     out = []
     for j, (text, pos, fwhm) in enumerate(described):
@@ -273,6 +283,9 @@ def region_descriptions(
                 if k != j and np.isfinite(p) and np.isfinite(pos)
                 and abs(p - pos) < 0.5 * max(fwhm, f)]
         if near:
+            widths = [described[k][2] for k in [*near, j]]
+            if np.all(np.isfinite(widths)) and max(widths) > 1.15 * min(widths) > 0:
+                text += f" ({_format_width(fwhm, sdim, units)})"
             ref = max(intensities[k] for k in [*near, j])
             ratio = intensities[j] / ref if ref > 0 else float("nan")
             if np.isfinite(ratio) and ratio < 0.01:
