@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from ..conventions import SPECTRAL_DIMS
 from ..cube import METADATA_ATTRS
 from ..errors import PmapNotice, PmapWarning, StepError
 from ..provenance import PROVENANCE_ATTR, with_step
@@ -213,13 +214,14 @@ def _diagnose(spectra, w, sample, axis, attrs, sdim, aligned=False):
     """Sharp-edge flags, shifting-line pairs and the notice text (None when all is well)."""
     flag, slope, data_slope, inst = sharp_edges(spectra, sample, axis, attrs, sdim)
     pairs = shifting_pairs(spectra, w, sample, axis)
+    unit = SPECTRAL_DIMS.get(sdim, "axis units")
     parts = []
     if flag.any():
         ks = ", ".join(str(int(k)) for k in np.flatnonzero(flag))
         ref = "the instrument resolution or " if any(v is not None for v in inst) else ""
         parts.append(
             f"component(s) {ks} have edges sharper than {ref}any line in the data (steepest "
-            f"relative slope {np.nanmax(slope[flag]):.3g} vs {data_slope:.3g} per axis unit in "
+            f"relative slope {np.nanmax(slope[flag]):.3g} vs {data_slope:.3g} per {unit} in "
             f"the brightest spectra): a line cut into pieces, not an emission spectrum"
         )
     for p in pairs:
@@ -228,7 +230,7 @@ def _diagnose(spectra, w, sample, axis, attrs, sdim, aligned=False):
             f"components {a} and {b} look like one line shifting continuously across the map "
             f"({p['intermediate_share']:.0%} of their pixels are intermediate mixes, the "
             f"centroid follows the mix with r = {p['centroid_correlation']:.2f}, over "
-            f"{p['span']:.3g} axis units): their abundance maps show a gradient, not two phases"
+            f"{p['span']:.3g} {unit}): their abundance maps show a gradient, not two phases"
         )
     notice = None
     if parts:
