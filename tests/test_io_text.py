@@ -95,6 +95,34 @@ def test_wide_tables_tsv_and_whitespace(tmp_path, data):
         np.testing.assert_allclose(c.wavelength.values, WL)
 
 
+def test_european_exports_semicolon_and_decimal_comma(tmp_path, data):
+    """Tables exported under a European locale: ";" between fields and "," as the
+    decimal mark (pandas' decimal="," writer; common practice in spreadsheet exports).
+    Read without options, long (.csv) and wide (.txt, tab) alike, with the same values."""
+    csv_path = tmp_path / "m.csv"
+    long_frame(data).to_csv(csv_path, index=False, sep=";", decimal=",")
+    assert "0,5;" in csv_path.read_text()  # decimal commas really are in the file
+    txt = tmp_path / "w.txt"
+    frame = wide_frame(data)
+    frame.columns = [c.replace(".", ",") for c in frame.columns]  # "602,5" channel headers
+    frame.to_csv(txt, index=False, sep="\t", decimal=",")
+    for path in (csv_path, txt):
+        c = open_cube(path)
+        np.testing.assert_array_equal(c.values, data.astype("float32"))
+        np.testing.assert_allclose(c.wavelength.values, WL)
+        np.testing.assert_allclose(c.x.values, (3.0 if path == csv_path else 0.0)
+                                   + 0.5 * np.arange(6))
+
+
+def test_stated_decimal_mark_checked(tmp_path, data):
+    path = tmp_path / "m.csv"
+    long_frame(data).to_csv(path, index=False)
+    with pytest.raises(FormatError, match="decimal"):
+        open_cube(path, decimal=";")
+    with pytest.raises(FormatError, match="both"):
+        open_cube(path, decimal=",")  # "," is this file's delimiter
+
+
 def test_column_options_units_and_energy(tmp_path, data):
     path = tmp_path / "c.csv"
     df = long_frame(data, names=("Stage X (mm)", "Stage Y (mm)", "E (eV)", "PL"))

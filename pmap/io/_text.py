@@ -65,6 +65,7 @@ TEXT_OPTIONS = (
     "value_col",
     "columns",
     "delimiter",
+    "decimal",
     "layout",
     "spectral_dim",
     "spectral_units",
@@ -108,6 +109,8 @@ class TextSpec:
     spectral_dim: str = "wavelength"
     spectral_units: str = "nm"
     xy_units: str = "um"
+    #: decimal mark of the numbers ("." or "," as in exports made under a European locale)
+    decimal: str = "."
 
 
 @dataclass
@@ -137,8 +140,29 @@ def _split_name(name: str) -> tuple[str, str | None]:
     return low, None
 
 
-def _read_header(path: Path, delimiter: str | None) -> tuple[str, int, list[str]]:
-    """Delimiter, number of lines up to and including the header, and the header fields."""
+def _split_fields(line: str, delimiter: str) -> list[str]:
+    if delimiter == r"\s+":
+        return line.split()
+    return next(csv.reader(io.StringIO(line), delimiter=delimiter))
+
+
+_DECIMAL_COMMA = re.compile(r"^\s*[-+]?\d+,\d+([eE][-+]?\d+)?\s*$")
+_PLAIN_NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
+
+
+def _read_header(
+    path: Path, delimiter: str | None, decimal: str | None = None
+) -> tuple[str, int, list[str], str]:
+    """Delimiter, number of lines up to and including the header, the header fields and
+    the decimal mark.
+
+    Without a stated delimiter, the one of tab, ";" and "," that splits the header and
+    the first data row into the same number (≥ 3) of fields, most fields first (the
+    file's extension breaks ties: "," for .csv, tab for .tsv), else runs of blanks.
+    Without a stated decimal mark, "," when the delimiter is not "," and every field of
+    the first data row that is a number with a comma reads as one ("0,5"; exports made
+    under a European locale), else ".".
+    """
     with open(path, encoding="utf-8", errors="replace", newline="") as fh:
         n = 0
         for line in fh:
@@ -147,30 +171,47 @@ def _read_header(path: Path, delimiter: str | None) -> tuple[str, int, list[str]
                 break
         else:
             raise FormatError(f"{path.name}: no header line found (empty text file)")
-    line = line.rstrip("\r\n")
+        data = next((ln for ln in fh if ln.strip() and not ln.lstrip().startswith("#")), "")
+    line, data = line.rstrip("\r\n"), data.rstrip("\r\n")
     if delimiter is None:
         ext = path.suffix.lower()
-        if ext == ".csv":
-            delimiter = ","
-        elif ext == ".tsv":
-            delimiter = "\t"
+        prefer = {".csv": ",", ".tsv": "\t"}.get(ext)
+        counts = {}
+        for d in ("\t", ";", ","):
+            nh = len(_split_fields(line, d))
+            if nh >= 3 and (not data or len(_split_fields(data, d)) == nh):
+                counts[d] = nh
+        if counts:
+            best = max(counts.values())
+            tied = [d for d in counts if counts[d] == best]
+            delimiter = prefer if prefer in tied else tied[0]
+        elif prefer is not None and len(_split_fields(line, prefer)) >= 3:
+            delimiter = prefer
         else:
-            delimiter = next((d for d in ("\t", ",", ";") if d in line), r"\s+")
+            delimiter = r"\s+"
     elif delimiter in ("tab", "\\t"):
         delimiter = "\t"
     elif delimiter in ("whitespace", "space", " "):
         delimiter = r"\s+"
-    if delimiter == r"\s+":
-        fields = line.split()
-    else:
-        fields = next(csv.reader(io.StringIO(line), delimiter=delimiter))
-    fields = [f.strip() for f in fields]
+    fields = [f.strip() for f in _split_fields(line, delimiter)]
     if len(fields) < 3:
         raise FormatError(
             f"{path.name}: header has {len(fields)} field(s) with delimiter {delimiter!r}; "
-            "a map table needs x, y and spectral columns"
+            "a map table needs x, y and spectral columns (state the delimiter with "
+            "delimiter=';' or delimiter=tab)"
         )
-    return delimiter, n, fields
+    if decimal is None:
+        decimal = "."
+        if delimiter != "," and data:
+            cells = [c for c in _split_fields(data, delimiter) if c.strip()]
+            comma = [bool(_DECIMAL_COMMA.match(c)) for c in cells]
+            if any(comma) and all(c or _PLAIN_NUMBER.match(v) for c, v in zip(comma, cells)):
+                decimal = ","
+    elif decimal not in (".", ","):
+        raise FormatError(f"decimal must be '.' or ',', got {decimal!r}")
+    if decimal == delimiter:
+        raise FormatError(f"{path.name}: the decimal mark and the delimiter are both {decimal!r}")
+    return delimiter, n, fields, decimal
 
 
 def _find_col(fields: list[str], bases: list[str], given: Any, role: str, path: Path) -> int | None:
@@ -190,7 +231,8 @@ def _find_col(fields: list[str], bases: list[str], given: Any, role: str, path: 
 def inspect_text(path: str | os.PathLike, **options: Any) -> TextSpec:
     """Read the header of a text map and decide layout, column roles and units."""
     p = check_input(path)
-    delimiter, skip, fields = _read_header(p, options.get("delimiter"))
+    delimiter, skip, fields, decimal = _read_header(
+        p, options.get("delimiter"), options.get("decimal"))
     if len(set(fields)) != len(fields):
         dup = sorted({f for f in fields if fields.count(f) > 1})
         raise FormatError(f"{p.name}: duplicate column name(s) {dup} in the header")
@@ -239,7 +281,8 @@ def inspect_text(path: str | os.PathLike, **options: Any) -> TextSpec:
         xy_units = normalise_length_unit(xy_units)
     except CubeValidationError as exc:
         raise FormatError(f"{p.name}: {exc}") from exc
-    spec = TextSpec(p, delimiter, skip, fields, layout, ix, iy, xy_units=xy_units)
+    spec = TextSpec(p, delimiter, skip, fields, layout, ix, iy, xy_units=xy_units,
+                    decimal=decimal)
     if layout == "long":
         if isp is None or ival is None:
             raise FormatError(
@@ -254,7 +297,7 @@ def inspect_text(path: str | os.PathLike, **options: Any) -> TextSpec:
         for i in rest:
             base = re.sub(r"\s*(nm|ev|mev|cm-1)$", "", fields[i].strip().lower())
             try:
-                vals.append(float(base))
+                vals.append(float(base.replace(",", ".") if decimal == "," else base))
             except ValueError:
                 raise FormatError(
                     f"{p.name}: cannot read the table layout: column {fields[i]!r} is neither a "
@@ -301,6 +344,7 @@ def _blocks(spec: TextSpec, cols: list[int], chunk_rows: int) -> Iterator[tuple[
         reader = pd.read_csv(
             spec.path,
             sep=spec.delimiter,
+            decimal=spec.decimal,
             header=None,
             names=names,
             usecols=sorted(set(want)),
@@ -436,6 +480,8 @@ def _fast_delimiter(spec: TextSpec) -> int | None:
         if spec.path.stat().st_size < _FAST_MIN_BYTES:
             return None
     except OSError:
+        return None
+    if spec.decimal != ".":  # decimal commas: pandas reads them
         return None
     if spec.delimiter == r"\s+":
         return 0
