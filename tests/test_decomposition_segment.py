@@ -501,6 +501,42 @@ def test_template_decision_by_counting_matches_ratio():
         assert _keeps_template(d.copy(), nd, proj, 5.0) == want, (trial, proj, sig)
 
 
+def test_template_check_by_bracket_matches_selection():
+    """The template decision of the labelling pass made by counting around 0 (median of
+    the second differences bracketed, no selection) is the one of the median-selection
+    path, row for row: n = 6000 spectra (white noise, a curved background that moves
+    the median out of the bracket, integer counts with ties), matched-filter values
+    spread over 0.3-3 x the threshold and within a few ulps of it (from memory: the
+    bracket argument |d - median| <= |d| + |median|)."""
+    from pmap.decomposition._label_kernel import (
+        _keeps_template,
+        _second_differences,
+        _template_check,
+    )
+
+    rng = np.random.default_rng(5)
+    decided = 0
+    for trial in range(6000):
+        c = 256 + trial % 3
+        x = rng.standard_normal(c) * rng.uniform(0.1, 10.0)
+        if trial % 5 == 1:  # strong curvature: the median of d leaves [-eps, eps]
+            x = x + rng.uniform(5, 50) * np.linspace(-1, 1, c) ** 2 * c
+        if trial % 7 == 0:
+            x = np.round(x)  # ties, a MAD of 0
+        nd = c - 2
+        buf = np.empty(nd)
+        _second_differences(x, buf, nd)
+        d = buf.copy()
+        sig = 1.4826 * np.median(np.abs(d - np.median(d))) / np.sqrt(6.0)
+        factor = (1.0 + (trial % 5 - 2) * 1e-16) if trial % 3 == 0 else rng.uniform(0.3, 3.0)
+        proj = 5.0 * sig * factor if trial % 11 else -abs(rng.normal())
+        want = _keeps_template(buf, nd, proj, 5.0)
+        got = _template_check(x, np.empty(nd), nd, proj, 5.0)
+        assert got == want, (trial, proj, sig)
+        decided += want
+    assert 1000 < decided < 5000  # both answers are well represented
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("seed", [0, 3])
 def test_fused_labels_identical_on_scene_bank(seed, monkeypatch):

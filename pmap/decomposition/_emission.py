@@ -92,16 +92,20 @@ class EmissionSpace:
     @classmethod
     def fit(cls, x: np.ndarray, *, intensity_weight: float) -> EmissionSpace:
         """Fit on the (filled, finite) spectra of sampled pixels with signal."""
+        from ._fit_kernel import second_difference_ratio_medians
+
         l1 = np.abs(x).sum(axis=1)
         pos = l1[l1 > 0]
         floor = 1e-6 * float(np.median(pos)) if pos.size else 1e-300
-        s, area = unit_area(x, floor)
+        # as unit_area(x, floor), its absolute sum taken from l1 (the same values)
+        area = np.maximum(np.maximum(x.sum(axis=1), 0.5 * l1), floor)
+        s = x / area[:, None]
         # Per-channel noise of unit-area spectra from second differences: for white
         # noise Var(x[i-1] - 2x[i] + x[i+1]) = 6 sigma^2 (median of squares / 0.4549
         # for the mean of a chi^2_1: robust to the curvature of lines in a few pixels).
         if s.shape[1] >= 3:
-            d2 = s[:, :-2] - 2 * s[:, 1:-1] + s[:, 2:]
-            few = d2[:: max(1, len(d2) // 5000)]  # at most ~5000 rows for the channel noise
+            sf = s[:: max(1, len(s) // 5000)]  # at most ~5000 rows for the channel noise
+            few = sf[:, :-2] - 2 * sf[:, 1:-1] + sf[:, 2:]
             var = np.median(few * few, axis=0) / 0.4549 / 6.0
             var = np.concatenate([[var[0]], var, [var[-1]]])
         else:
@@ -110,25 +114,26 @@ class EmissionSpace:
         ref = float(np.median(pos_var)) if pos_var.size else 1.0
         var = np.maximum(var, 1e-3 * ref)
         inv_noise = 1.0 / np.sqrt(var)
-        w = s * inv_noise
         # Rows far noisier than the rest (a hot read-out, a missed spike) would fill
         # every principal direction: the fit leaves out rows whose median squared second
         # difference, in units of the channel noise, exceeds OUTLIER_NOISE times the
-        # typical one.
-        fit_rows = np.ones(len(w), dtype=bool)
+        # typical one (one compiled pass over the rows, no (n, C) temporaries).
+        fit_rows = np.ones(len(s), dtype=bool)
         if s.shape[1] >= 3:
-            ratio = np.median(d2 * d2 / var[1:-1], axis=1) / (0.4549 * 6.0)
+            ratio = second_difference_ratio_medians(
+                np.ascontiguousarray(s), np.ascontiguousarray(var[1:-1])) / (0.4549 * 6.0)
             fit_rows = ratio < OUTLIER_NOISE
-            if fit_rows.sum() < max(2, len(w) // 2):
+            if fit_rows.sum() < max(2, len(s) // 2):
                 fit_rows[:] = True
-        mean = w[fit_rows].mean(axis=0)
-        wc = w[fit_rows] - mean
-        m = min(20, wc.shape[1], max(len(wc) - 1, 1))
+        w = np.multiply(s, inv_noise, out=s)  # s is not needed any more
+        wf = w if fit_rows.all() else w[fit_rows]
+        mean = wf.mean(axis=0)
+        m = min(20, wf.shape[1], max(len(wf) - 1, 1))
         # Principal axes from the channel covariance (C x C): cheaper than an SVD of the
         # sample when it has more rows than channels.
         from scipy.linalg import eigh
 
-        few = wc[:: max(1, len(wc) // 10000)]  # at most ~10000 rows for the covariance
+        few = wf[:: max(1, len(wf) // 10000)] - mean  # at most ~10000 rows for the covariance
         cov = (few.T @ few) / max(len(few) - 1, 1)
         c = cov.shape[0]
         evals, evecs = eigh(cov, subset_by_index=[c - m, c - 1])  # the m largest only
@@ -142,7 +147,7 @@ class EmissionSpace:
         # directions (a high-SNR gradient) still count most, but a small population's
         # direction is not drowned by them (dynamic range of s.d. compressed to its root).
         comps = vt[:keep] / ev[:keep, None] ** 0.25
-        z = (w - mean) @ comps.T
+        z = np.subtract(w, mean, out=w) @ comps.T  # w is not needed any more
         scale = float(np.sqrt(z.var(axis=0).sum())) or 1.0
         li = np.log(area)
         li_sd = float(li.std()) or 1.0

@@ -90,6 +90,54 @@ def _keeps_template(buf, nd, proj_t, min_snr):  # pragma: no cover - compiled
     return snr >= min_snr
 
 
+#: Half-width of the interval around 0 in which the median of a row's second
+#: differences is confirmed by counting, as a share of the MAD threshold (see
+#: :func:`_template_check`).
+_MEDIAN_BRACKET = 0.25
+
+
+@nb.njit(cache=True, nogil=True)
+def _template_check(x, buf, nd, proj_t, min_snr):  # pragma: no cover - compiled
+    """What ``_second_differences(x, buf, nd)`` then ``_keeps_template(buf, nd, proj_t,
+    min_snr)`` return, most rows decided by counting alone (no median selection).
+
+    With t the MAD threshold and ε = ``_MEDIAN_BRACKET``·t, one pass over the second
+    differences d counts d < −ε, d ≤ ε, |d| ≤ t − ε and |d| ≤ t + ε (t with the 1e-9
+    margins of :func:`_keeps_template`, widened to 2e-9 for rounding). When the counts
+    place the median of d inside [−ε, ε], every deviation |d − median| lies within ε of
+    |d|, so the MAD is below the threshold when enough |d| lie within t − ε, and above
+    it when too few lie within t + ε: :func:`_keeps_template` then answers the same
+    from its counts. Otherwise (median outside the bracket, MAD within ε of t) its
+    exact path decides."""
+    if proj_t > 0.0:
+        t = proj_t * math.sqrt(6.0) / (min_snr * 1.4826)
+        eps = _MEDIAN_BRACKET * t
+        lo2 = t * (1.0 - 2e-9) - eps
+        hi2 = t * (1.0 + 2e-9) + eps
+        n_below = 0
+        n_upto = 0
+        c_lo = 0
+        c_hi = 0
+        for i in range(nd):
+            d = x[i] - 2.0 * x[i + 1] + x[i + 2]
+            buf[i] = d
+            n_below += d < -eps
+            n_upto += d <= eps
+            a = abs(d)
+            c_lo += a <= lo2
+            c_hi += a <= hi2
+        k = nd // 2
+        lower_mid = k - 1 if nd % 2 == 0 else k
+        if n_below <= lower_mid and n_upto >= k + 1:  # median within [-eps, eps]
+            if c_lo >= k + 1:
+                return True
+            if c_hi < (k if nd % 2 == 0 else k + 1):
+                return False
+    else:
+        _second_differences(x, buf, nd)
+    return _keeps_template(buf, nd, proj_t, min_snr)
+
+
 @nb.njit(cache=True, nogil=True, fastmath=_FAST)
 def label_rows(
     X, min_snr, projT, offset, floor, li_mu, li_sd, weight,
@@ -195,7 +243,6 @@ def label_rows(
             + _dot(xr, qT[1], C) * qtp[near, 1]
             + _dot(xr, qT[2], C) * qtp[near, 2]
         )
-        _second_differences(xr, buf, nd)
-        if not _keeps_template(buf, nd, proj_t, min_template_snr):
+        if not _template_check(xr, buf, nd, proj_t, min_template_snr):
             lab[r] = -1
     return lab, alt, status

@@ -315,7 +315,10 @@ def best_shift(
     else:
         n = max(int(np.ceil((hi - lo) / step)), 1)
         shifts = np.linspace(lo, hi, n + 1)
-    cost = np.array([np.sum((ref - np.interp(axis - d, axis, s)) ** 2) for d in shifts])
+    # every shift's interpolation at once (elementwise, as one call per shift) and each
+    # row's sum of squares over the channels (the same pairwise sum as a 1-D np.sum)
+    moved = np.interp((axis[None, :] - shifts[:, None]).ravel(), axis, s).reshape(len(shifts), -1)
+    cost = np.sum((ref - moved) ** 2, axis=1)
     i = int(np.argmin(cost))
     if 0 < i < len(cost) - 1:
         den = cost[i - 1] - 2 * cost[i] + cost[i + 1]
@@ -357,7 +360,8 @@ def host_aligned_difference(
         for j in pb:
             key = (int(min(i, j)), int(max(i, j)), float(tolerance))
             if key not in data.aligned_cache:
-                data.aligned_cache[key] = _aligned_pair(data, rows[int(i)], rows[int(j)], tolerance)
+                data.aligned_cache[key] = _aligned_pair(data, rows[int(i)], rows[int(j)], tolerance,
+                                                        pieces=(int(i), int(j)))
             v = data.aligned_cache[key]
             if np.isfinite(v):
                 w = float(len(rows[int(i)]) * len(rows[int(j)]))
@@ -365,7 +369,30 @@ def host_aligned_difference(
     return num / den if den > 0 else _aligned_pair(data, ra, rb, tolerance)
 
 
-def _aligned_pair(data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: float) -> float:
+def _mean_rows(x: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """``x[rows].mean(axis=0)`` (the same values), without copying the rows where x is a
+    C-ordered float64 array of at least 2 columns (the compiled sum)."""
+    rows = np.asarray(rows)
+    if (len(rows) == 0 or x.ndim != 2 or x.shape[1] < 2 or x.dtype != np.float64
+            or not x.flags.c_contiguous or rows.dtype.kind not in "iu"):
+        return x[rows].mean(axis=0)
+    from ._fit_kernel import mean_of_rows
+
+    return mean_of_rows(x, rows.astype(np.int64, copy=False))
+
+
+def _own_spectrum(data: MergeData, rows: np.ndarray, piece: int | None) -> np.ndarray:
+    """Unit-area mean spectrum of the rows (of over-cluster ``piece``: cached)."""
+    if piece is None:
+        return _unit_area(_mean_rows(data.spectra, rows))
+    key = ("own", piece)
+    if key not in data.aligned_cache:
+        data.aligned_cache[key] = _unit_area(_mean_rows(data.spectra, rows))
+    return data.aligned_cache[key]
+
+
+def _aligned_pair(data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: float,
+                  pieces: tuple[int, int] | None = None) -> float:
     """Host-aligned spectral difference of the rows ``ra`` and ``rb`` (NaN when it
     cannot be judged).
 
@@ -380,7 +407,8 @@ def _aligned_pair(data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: fl
     0 and Δ (:func:`emission_difference` at :func:`best_shift` within [0, Δ]: lines
     that follow the host move by Δ, a defect band of fixed energy by 0). Spectra add linearly
     and a gradient moves host and minority together, so two spots of one minority type
-    agree; two different minority types in one host do not.
+    agree; two different minority types in one host do not. ``pieces``: the
+    over-clusters that ``ra`` and ``rb`` are (their own spectra are then cached).
     """
     if data.spectra is None or data.axis is None:
         return float("nan")
@@ -388,14 +416,14 @@ def _aligned_pair(data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: fl
     if len(ha) < MIN_BORDER_PAIRS or len(hb) < MIN_BORDER_PAIRS:
         return float("nan")
     sp, axis = data.spectra, np.asarray(data.axis, dtype=float)
-    host_a = _unit_area(sp[np.unique(ha)].mean(axis=0))
-    host_b = _unit_area(sp[np.unique(hb)].mean(axis=0))
+    host_a = _unit_area(_mean_rows(sp, np.unique(ha)))
+    host_b = _unit_area(_mean_rows(sp, np.unique(hb)))
     span = float(abs(axis[-1] - axis[0]))
     d = best_shift(host_a, host_b, axis, MAX_HOST_SHIFT * span)
     if emission_difference(host_a, np.interp(axis - d, axis, host_b)) >= HOST_AGREEMENT * tolerance:
         return float("nan")
-    own_a = _unit_area(sp[ra].mean(axis=0))
-    own_b = _unit_area(sp[rb].mean(axis=0))
+    own_a = _own_spectrum(data, ra, None if pieces is None else pieces[0])
+    own_b = _own_spectrum(data, rb, None if pieces is None else pieces[1])
     # Lines that follow the host's drift move by Δ, lines that do not (a defect band
     # of fixed energy) by 0: the groups are compared at the best shift between the two
     # (searched at the channel step and refined, as in :func:`best_shift`: a coarser

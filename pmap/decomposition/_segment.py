@@ -115,8 +115,11 @@ def _emission_features(
     axis: np.ndarray,
     min_snr: float | None,
     with_property: bool = True,
+    signal_rows: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-    signal, xs = _signal_rows(x, min_snr)
+    """(features, signal, centroid); ``signal_rows``: what :func:`_signal_rows` gave
+    for these rows and ``min_snr``, when the caller has it already."""
+    signal, xs = _signal_rows(x, min_snr) if signal_rows is None else signal_rows
     m = (space.n_components + (space.weight > 0)) if space is not None else 1
     feats = np.zeros((len(xs), m))
     if space is not None and signal.any():
@@ -1076,7 +1079,12 @@ def segment(
         if sig0.sum() >= 2:
             space = EmissionSpace.fit(filled[sig0], intensity_weight=float(intensity_weight))
         tkw["space"] = space
-    feats, signal, prop = transform(raw, **tkw)
+        feats, signal, prop = transform(raw, **tkw, signal_rows=(sig0, filled))
+        # the signal rows with masked channels filled (as fill_nan_channels(raw[signal]))
+        sig_spectra = filled[signal]
+    else:
+        feats, signal, prop = transform(raw, **tkw)
+        sig_spectra = fill_nan_channels(raw[signal]) if spectral else raw[signal]
     n_sampled = len(raw)
     feats, prop, pos = feats[signal], prop[signal], pos_all[signal]
     if method == "merge":
@@ -1095,7 +1103,7 @@ def segment(
     merge_info: dict[str, Any] = {}
     if method == "merge":
         min_pixels = max(10, int(np.ceil(min_region_fraction * len(z))))
-        spectra = fill_nan_channels(raw[signal]) if spectral else None
+        spectra = sig_spectra if spectral else None
         data = MergeData(z, pos, neighbour_pairs(arr, core, positions, signal),
                          separation=float(separation), valley_ratio=float(valley_ratio),
                          continuity=float(continuity),
@@ -1160,7 +1168,7 @@ def segment(
             + f"; {counts[src]} of {len(z)} fitted pixels"
         )
     descriptions = _descriptions(
-        features, feature_space, arr, core, raw[signal], lab, order, k, prop_name, means
+        features, feature_space, arr, core, sig_spectra, lab, order, k, prop_name, means
     )
     share = 100.0 / max(n_sampled, 1)
     n_none = n_sampled - len(z) + n_continuum
