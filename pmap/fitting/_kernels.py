@@ -389,13 +389,14 @@ def _normal_eq(Jf, y, f, w, A, g, wj):
 
 
 @nb.njit(cache=True, error_model="numpy", inline="always", fastmath=FM)
-def _bg_sums(y, w, wn, b0, jb0, model_w, sa, q, fl):
-    """Channels (slices) where the peak is below 2.2e-16 of its maximum: offset terms only.
+def _bg_sums(a, b, y, w, wn, b0, model_w, sa, q, fl):
+    """Channels a ≤ i < b (unsigned indices: no wrap-around code, SIMD) where the peak is
+    below 2.2e-16 of its maximum: offset terms only.
 
-    Returns (Σ w r², Σ wn r², h33, g3) in the slots of :func:`_gauss1_pass`.
+    Returns (Σ w r², Σ wn r², Σ wn, Σ wn r) with r = y − b0.
     """
     c_old = c_new = h33 = g3 = 0.0
-    for i in range(y.size):
+    for i in range(a, b):
         r = y[i] - b0
         wo = w[i]
         wv = 1.0 / max(sa[i] * b0 + q[i], fl[i]) if model_w else wo
@@ -404,7 +405,7 @@ def _bg_sums(y, w, wn, b0, jb0, model_w, sa, q, fl):
         c_new += wv * r * r
         h33 += wv
         g3 += wv * r
-    return c_old, c_new, h33 * jb0 * jb0, g3 * jb0
+    return c_old, c_new, h33, g3
 
 
 @nb.njit(cache=True, error_model="numpy", inline="always")
@@ -423,8 +424,8 @@ def _phi_diff(t_lo, pos_lo, t_hi, pos_hi):
     return 1.0 - t_lo - t_hi
 
 
-@nb.njit(cache=True, error_model="numpy", fastmath=FM)
-def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv, gb):
+@nb.njit(cache=True, error_model="numpy", _nrt=False, fastmath=FM)
+def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, sa, q, fl, wn, H, gv, g_, d0, d1):
     """One Gaussian + constant offset: costs, new weights and normal equations in one pass.
 
     Slots [centre, fwhm, area, offset] (without a background the offset column is
@@ -437,9 +438,12 @@ def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv, gb):
     (Σ w r², Σ wn r²): the cost under the old and the new weights. The Gaussian and
     its derivatives are evaluated only within ±9σ of the centre (beyond, they are
     below 2.2e-16, the double-precision epsilon, times their maximum); the offset
-    terms use every channel. ``gb`` (3, n): work rows for the model and its two
-    derivatives over the window (filled first, then summed in a second loop, so that
-    both loops vectorise).
+    terms use every channel. ``g_``, ``d0``, ``d1`` (n,): work rows for the model and
+    its two derivatives over the window (filled first, then summed in a second loop,
+    so that both loops vectorise). ``sa``, ``q``, ``fl``: the noise law (see
+    :func:`_set_weights`). Loops run over unsigned channel indices: no wrap-around
+    code (SIMD) and no array views (whose reference counts cost as much as the
+    arithmetic at this size).
     """
     c = p[0]
     fw = p[1]
@@ -450,48 +454,43 @@ def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv, gb):
     inv_s = 1.0 / sig
     norm = inv_s / math.sqrt(2.0 * math.pi)
     inv_fw = 1.0 / fw
-    sa, q, fl = nv
     model_w = var_mode == 1 or var_mode == 3
-    i0 = np.searchsorted(x, c - _CUT_SIGMA * sig)
-    i1 = max(np.searchsorted(x, c + _CUT_SIGMA * sig, side="right"), i0)
-    lo_ = _bg_sums(y[:i0], w[:i0], wn[:i0], b0, jb0, model_w, sa[:i0], q[:i0], fl[:i0])
-    hi_ = _bg_sums(y[i1:], w[i1:], wn[i1:], b0, jb0, model_w, sa[i1:], q[i1:], fl[i1:])
+    one = np.uint64(1)
+    i0 = np.uint64(np.searchsorted(x, c - _CUT_SIGMA * sig))
+    i1 = np.uint64(max(np.searchsorted(x, c + _CUT_SIGMA * sig, side="right"), i0))
+    lo_ = _bg_sums(np.uint64(0), i0, y, w, wn, b0, model_w, sa, q, fl)
+    hi_ = _bg_sums(i1, np.uint64(x.size), y, w, wn, b0, model_w, sa, q, fl)
     c_old = lo_[0] + hi_[0]
     c_new = lo_[1] + hi_[1]
-    h33 = lo_[2] + hi_[2]
-    g3 = lo_[3] + hi_[3]
+    h33 = (lo_[2] + hi_[2]) * jb0 * jb0
+    g3 = (lo_[3] + hi_[3]) * jb0
     h00 = h01 = h02 = h03 = h11 = h12 = h13 = h22 = h23 = 0.0
     g0 = g1 = g2 = 0.0
-    # the peak window as views, so loop indices are provably ≥ 0 (no wrap-around code)
-    x, y, w, wn = x[i0:i1], y[i0:i1], w[i0:i1], wn[i0:i1]
-    sa, q, fl, xe = sa[i0:i1], q[i0:i1], fl[i0:i1], xe[i0 : i1 + 1]
-    nw = x.size
-    g_, d0, d1 = gb[0, :nw], gb[1, :nw], gb[2, :nw]
     if sig < 2.0 * dmax:  # exact channel integrals (edges shared by neighbours)
-        v_lo = (xe[0] - c) * inv_s
+        v_lo = (xe[i0] - c) * inv_s
         t_lo, p_lo = _tail(v_lo)
         ph_lo = _exp_neg(-0.5 * v_lo * v_lo) * _INV_SQRT_2PI
-        for i in range(nw):
-            v_hi = (xe[i + 1] - c) * inv_s
+        for i in range(i0, i1):
+            v_hi = (xe[i + one] - c) * inv_s
             t_hi, p_hi = _tail(v_hi)
             ph_hi = _exp_neg(-0.5 * v_hi * v_hi) * _INV_SQRT_2PI
-            idw = 1.0 / (xe[i + 1] - xe[i])
+            idw = 1.0 / (xe[i + one] - xe[i])
             g_[i] = _phi_diff(t_lo, p_lo, t_hi, p_hi) * idw
             d0[i] = A * idw * (ph_lo - ph_hi) * inv_s
             d1[i] = A * idw * (ph_lo * v_lo - ph_hi * v_hi) * inv_fw
             v_lo, t_lo, p_lo, ph_lo = v_hi, t_hi, p_hi, ph_hi
     else:  # midpoint value plus its curvature term
-        for i in range(nw):
+        for i in range(i0, i1):
             u = (x[i] - c) * inv_s
             uu = u * u
             G = _exp_neg(-0.5 * uu) * norm
-            dw = (xe[i + 1] - xe[i]) * inv_s
+            dw = (xe[i + one] - xe[i]) * inv_s
             h = dw * dw * (1.0 / 24.0)
             T = 1.0 + h * (uu - 1.0)
             g_[i] = G * T
             d0[i] = A * G * u * inv_s * (T - 2.0 * h)
             d1[i] = A * G * inv_fw * ((uu - 1.0) * T - 2.0 * h * (2.0 * uu - 1.0))
-    for i in range(nw):
+    for i in range(i0, i1):
         gi, j0, j1 = g_[i], d0[i], d1[i]
         fi = A * gi + b0
         r = y[i] - fi
@@ -526,7 +525,7 @@ def _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv, gb):
     return c_old, c_new
 
 
-@nb.njit(cache=True, error_model="numpy")
+@nb.njit(cache=True, error_model="numpy", _nrt=False)
 def _collapse_normal(H, gv, free_idx, A, g):
     """Normal equations of the free parameters from those of the full ones (shared → summed)."""
     nf = g.size
@@ -545,7 +544,7 @@ def _collapse_normal(H, gv, free_idx, A, g):
                 A[fj, fk] += H[j, k]
 
 
-@nb.njit(cache=True, error_model="numpy")
+@nb.njit(cache=True, error_model="numpy", _nrt=False)
 def _cholesky(A, lam, L):
     """Factor A + lam·diag(A) = L Lᵀ (lower L); False when not positive definite."""
     n = A.shape[0]
@@ -565,7 +564,7 @@ def _cholesky(A, lam, L):
     return True
 
 
-@nb.njit(cache=True, error_model="numpy")
+@nb.njit(cache=True, error_model="numpy", _nrt=False)
 def _chol_solve(L, b, out):
     n = b.size
     for i in range(n):
@@ -580,7 +579,7 @@ def _chol_solve(L, b, out):
         out[i] = s / L[i, i]
 
 
-@nb.njit(cache=True, error_model="numpy")
+@nb.njit(cache=True, error_model="numpy", _nrt=False)
 def _spd_inverse(A, scale, L, e, d, cov):
     """cov = scale·A⁻¹ for symmetric positive definite A (one factorisation); NaN if singular."""
     nf = A.shape[0]
@@ -631,7 +630,37 @@ def _cov_inactive(A, p, lo, hi, free_idx, scale, L, e, d, cov, work):
             cov[a, a] = np.nan
 
 
-@nb.njit(cache=True, error_model="numpy")
+@nb.njit(cache=True, error_model="numpy", _nrt=False)
+def _cov_inactive_into(A, p, lo, hi, free_idx, scale, L, e, d, cov, work, act):
+    """:func:`_cov_inactive` with the mask ``act`` (nfree,) bool given (no allocation)."""
+    nf = A.shape[0]
+    for a in range(nf):
+        act[a] = False
+        for b in range(nf):
+            work[a, b] = A[a, b]
+    for j in range(free_idx.size):
+        fj = free_idx[j]
+        if fj >= 0 and (p[j] <= lo[j] or p[j] >= hi[j]):
+            act[fj] = True
+    for a in range(nf):
+        if not (A[a, a] > 0.0):  # an exactly zero column (e.g. a peak of zero area)
+            act[a] = True
+    for a in range(nf):
+        if act[a]:
+            for b in range(nf):
+                work[a, b] = 0.0
+                work[b, a] = 0.0
+            work[a, a] = 1.0
+    _spd_inverse(work, scale, L, e, d, cov)
+    for a in range(nf):
+        if act[a]:
+            for b in range(nf):
+                cov[a, b] = 0.0
+                cov[b, a] = 0.0
+            cov[a, a] = np.nan
+
+
+@nb.njit(cache=True, error_model="numpy", _nrt=False)
 def _predicted_drop(A, g, d):
     """Cost decrease the quadratic model predicts for step d: 2 d·g − d·A·d."""
     s = 0.0
@@ -681,7 +710,9 @@ def _evaluate(p, y, w, wk, fused, free_idx, ident, var_mode, nv, f, wn, A, g):
     """
     x, xref, model, K, nbg, J, Jf, H, gv, wj, xe, x3, f3, J3, dmax, gb = wk
     if fused:
-        c_old, c_new = _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, nv, wn, H, gv, gb)
+        sa, q, fl = nv
+        c_old, c_new = _gauss1_pass(p, nbg, x, xe, dmax, y, w, var_mode, sa, q, fl, wn, H, gv,
+                                    gb[0], gb[1], gb[2])
         _collapse_normal(H, gv, free_idx, A, g)
         return c_old, c_new
     _model_avg(model, x, x3, xref, p, K, nbg, f, J, f3, J3, _NARROW_CHANNELS * dmax)
@@ -794,6 +825,169 @@ def _fit_one(y, p, lo, hi, free_idx, ident, fused, var_mode, nv, max_iter, ftol,
     return status, chi2, it
 
 
+@nb.njit(cache=True, error_model="numpy", _nrt=False)
+def _fit_gauss1(y, p, lo, hi, free_idx, nbg, var_mode, sa, q, fl, x, xe, dmax, max_iter,
+                ftol, xtol, stol, W0, W1, g_, d0, d1, H, gv, A, An, L, cov, g, gn, d, e,
+                pn, act):  # fmt: skip
+    """:func:`_fit_one` for one Gaussian + constant (or no) background, in place (p).
+
+    The same iterations, tests and arithmetic as :func:`_fit_one` with the fused pass
+    (results bit-identical), written without tuples of arrays, array views or
+    allocations in the loop: their reference counting and allocation cost more than
+    the two passes over the channels themselves. The weights alternate between W0 and
+    W1 (which one is current: ``cur``) instead of swapping array variables. Returns
+    (status, chi2_red, n_iter); the covariance is left in ``cov``.
+    """
+    n = y.size
+    nfull = p.size
+    nfree = g.size
+    n_used = 0
+    for i in range(n):
+        if fl[i] < np.inf:
+            n_used += 1
+    dof = max(n_used - nfree, 1)
+    for j in range(nfull):
+        p[j] = min(max(p[j], lo[j]), hi[j])
+    if var_mode == 2:
+        for i in range(n):
+            W0[i] = 1.0 / max(sa[i] * y[i] + q[i], fl[i])
+    else:
+        for i in range(n):
+            W0[i] = 1.0 if fl[i] < np.inf else 0.0
+    _, cost = _gauss1_pass(p, nbg, x, xe, dmax, y, W0, var_mode, sa, q, fl, W1, H, gv,
+                           g_, d0, d1)  # fmt: skip
+    _collapse_normal(H, gv, free_idx, A, g)
+    cur = 1  # W1 holds the weights at p
+    status = STATUS_MAXITER
+    lam = 1e-3
+    it = 0
+    while it < max_iter:
+        it += 1
+        accepted = final = False
+        cost_trial = cost_new = cost
+        for _trial in range(12):
+            if not _cholesky(A, lam, L):
+                lam *= 10.0
+                continue
+            _chol_solve(L, g, d)
+            for j in range(nfull):
+                fj = free_idx[j]
+                pn[j] = p[j] if fj < 0 else min(max(p[j] + d[fj], lo[j]), hi[j])
+            drop_tol = stol * stol * (cost / dof if var_mode == 0 or var_mode == 3 else 1.0)
+            if lam <= 1e-2 and _predicted_drop(A, g, d) <= max(ftol * cost, drop_tol):
+                for j in range(nfull):
+                    p[j] = pn[j]
+                final = True
+                break
+            if cur == 1:
+                cost_trial, cost_new = _gauss1_pass(pn, nbg, x, xe, dmax, y, W1, var_mode, sa,
+                                                    q, fl, W0, H, gv, g_, d0, d1)  # fmt: skip
+            else:
+                cost_trial, cost_new = _gauss1_pass(pn, nbg, x, xe, dmax, y, W0, var_mode, sa,
+                                                    q, fl, W1, H, gv, g_, d0, d1)  # fmt: skip
+            _collapse_normal(H, gv, free_idx, An, gn)
+            if cost_trial <= cost and math.isfinite(cost_trial):
+                accepted = True
+                break
+            lam *= 10.0
+        if final:
+            status = STATUS_CONVERGED
+            break
+        if not accepted:
+            status = STATUS_CONVERGED  # no downhill step left: at a minimum
+            break
+        small = True
+        for j in range(nfull):
+            if abs(pn[j] - p[j]) > xtol * (abs(p[j]) + 1e-12):
+                small = False
+            p[j] = pn[j]
+        cur = 1 - cur
+        for a in range(nfree):
+            g[a] = gn[a]
+            for b in range(nfree):
+                A[a, b] = An[a, b]
+        lam = max(lam * 0.1, 1e-12)
+        done = cost - cost_trial <= ftol * cost_trial or small
+        cost = cost_new
+        if done:
+            status = STATUS_CONVERGED
+            break
+    chi2 = cost / dof
+    scaled = var_mode == 0 or var_mode == 3  # errors scaled by the residual
+    _cov_inactive_into(A, p, lo, hi, free_idx, chi2 if scaled else 1.0, L, e, d, cov, An, act)
+    for j in range(nfull):
+        if not math.isfinite(p[j]):
+            status = STATUS_FAILED
+    if not math.isfinite(chi2):
+        status = STATUS_FAILED
+    return status, chi2, it
+
+
+@nb.njit(cache=True, error_model="numpy")
+def _lm_gauss1_batch(Y, rows, x, xe, P0, lo, hi, free_idx, nfree, nbg, var_mode, VS, VP, va,
+                     vb, vfl, max_iter, ftol, xtol, stol, dmax, P, COV, chi2, status,
+                     niter):  # fmt: skip
+    """The rows loop of :func:`lm_batch` for one Gaussian + constant (or no) background.
+
+    Work arrays are allocated once; the noise law is set up once when it is the same
+    for every row (VS and VP of one row), and only masked channels' floors are then
+    changed and restored per row.
+    """
+    m = rows.size
+    n = Y.shape[1]
+    nfull = P0.shape[1]
+    y = np.empty(n)
+    sa, q, fl, fl0 = np.ones(n), np.zeros(n), np.ones(n), np.ones(n)
+    W0, W1 = np.empty(n), np.empty(n)
+    g_, d0, d1 = np.empty(n), np.empty(n), np.empty(n)
+    H, gv = np.zeros((4, 4)), np.zeros(4)
+    A, An, L, cov = (np.zeros((nfree, nfree)), np.zeros((nfree, nfree)),
+                     np.zeros((nfree, nfree)), np.zeros((nfree, nfree)))  # fmt: skip
+    g, gn, d, e = np.zeros(nfree), np.zeros(nfree), np.zeros(nfree), np.zeros(nfree)
+    pn, p = np.empty(nfull), np.empty(nfull)
+    act = np.zeros(nfree, dtype=np.bool_)
+    s_wide, p_wide = VS.shape[1] > 1, VP.shape[1] > 1
+    per_row = var_mode != 0 and (VS.shape[0] > 1 or VP.shape[0] > 1)
+    if var_mode != 0 and not per_row:
+        for c in range(n):
+            sc = VS[0, c if s_wide else 0]
+            pc = VP[0, c if p_wide else 0]
+            sa[c] = va * sc
+            q[c] = sc * sc * (va * pc + vb)
+            fl0[c] = sc * sc * vfl
+    for k in range(m):
+        i = rows[k]
+        if per_row:
+            si, pi = min(i, VS.shape[0] - 1), min(i, VP.shape[0] - 1)
+            for c in range(n):
+                sc = VS[si, c if s_wide else 0]
+                pc = VP[pi, c if p_wide else 0]
+                sa[c] = va * sc
+                q[c] = sc * sc * (va * pc + vb)
+                fl0[c] = sc * sc * vfl
+        for c in range(n):  # a masked (NaN) channel: infinite variance, weight 0
+            v = Y[i, c]
+            if math.isfinite(v):
+                y[c] = v
+                fl[c] = fl0[c]
+            else:
+                y[c] = 0.0
+                fl[c] = np.inf
+        for j in range(nfull):
+            p[j] = P0[k, j]
+        st, c2, it = _fit_gauss1(y, p, lo, hi, free_idx, nbg, var_mode, sa, q, fl, x, xe,
+                                 dmax, max_iter, ftol, xtol, stol, W0, W1, g_, d0, d1, H,
+                                 gv, A, An, L, cov, g, gn, d, e, pn, act)  # fmt: skip
+        for j in range(nfull):
+            P[k, j] = p[j]
+        for a in range(nfree):
+            for b in range(nfree):
+                COV[k, a, b] = cov[a, b]
+        chi2[k] = c2
+        status[k] = st
+        niter[k] = it
+
+
 @nb.njit(cache=True, error_model="numpy", nogil=True)
 def lm_batch(Y, rows, x, xe, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, var_mode,
              VS, VP, va, vb, vfl, max_iter, ftol, xtol, stol):  # fmt: skip
@@ -826,11 +1020,16 @@ def lm_batch(Y, rows, x, xe, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, v
         if free_idx[j] != j:
             ident = False
     fused = model == GAUSSIAN and K == 1 and nbg <= 1
-    y = np.empty(n)
-    vec = np.empty((4, n))
     dmax = 0.0
     for c in range(n):
         dmax = max(dmax, xe[c + 1] - xe[c])
+    if fused:
+        _lm_gauss1_batch(Y, rows, x, xe, P0, lo, hi, free_idx, nfree, nbg, var_mode, VS, VP,
+                         va, vb, vfl, max_iter, ftol, xtol, stol, dmax, P, COV, chi2, status,
+                         niter)  # fmt: skip
+        return P, COV, chi2, status, niter
+    y = np.empty(n)
+    vec = np.empty((4, n))
     x3 = np.empty(3 * n)
     for c in range(n):
         mid = 0.5 * (xe[c] + xe[c + 1])
