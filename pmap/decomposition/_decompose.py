@@ -112,15 +112,29 @@ def _fit_sample(
         model.fit(x)
         info = {"solver": model.svd_solver, "explained_variance": model.explained_variance_ratio_}
         return model.components_, model.mean_, info
+    from sklearn.decomposition import non_negative_factorization
+
     model = _nmf_model(k, seed=seed, init=init, solver=solver, max_iter=max_iter)
-    _catch_convergence(model.fit, np.clip(x, 0.0, None))
+    got = {}
+
+    def fit(xc):
+        # NMF.fit's own factorisation (the estimator's parameters, the same solver
+        # calls), without the reconstruction error it then computes over the whole
+        # sample, which nothing here reads: the same components, bit for bit
+        p = model.get_params()
+        got["w"], got["h"], got["n_iter"] = non_negative_factorization(
+            xc, **{key: p[key] for key in (
+                "n_components", "init", "solver", "beta_loss", "tol", "max_iter",
+                "random_state", "alpha_W", "alpha_H", "l1_ratio", "verbose", "shuffle")})
+
+    _catch_convergence(fit, np.clip(x, 0.0, None))
     info = {
         "solver": model.solver,
         "init": model.init,
         "max_iter": model.max_iter,
-        "n_iter": int(model.n_iter_),
+        "n_iter": int(got["n_iter"]),
     }
-    return model.components_, None, info
+    return got["h"], None, info
 
 
 def _fit_incremental(

@@ -26,6 +26,9 @@ MAX_COMPONENTS = 10
 COMPONENT_SNR = 4.0
 #: Rows noisier than this many times the typical row are left out of the PCA fit.
 OUTLIER_NOISE = 4.0
+#: At most this many rows (evenly spaced in the sample) form the channel covariance
+#: of the PCA fit.
+COV_ROWS = 10000
 
 
 def fill_nan_channels(x: np.ndarray) -> np.ndarray:
@@ -133,7 +136,9 @@ class EmissionSpace:
         # sample when it has more rows than channels.
         from scipy.linalg import eigh
 
-        few = wf[:: max(1, len(wf) // 10000)] - mean  # at most ~10000 rows for the covariance
+        # at most 10000 rows for the covariance (every ceil(n / 10000)-th row: before,
+        # every (n // 10000)-th, which took every row up to 19999 and cost twice as much)
+        few = wf[:: -(-len(wf) // COV_ROWS)] - mean
         cov = (few.T @ few) / max(len(few) - 1, 1)
         c = cov.shape[0]
         evals, evecs = eigh(cov, subset_by_index=[c - m, c - 1])  # the m largest only

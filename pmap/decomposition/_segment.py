@@ -579,13 +579,26 @@ def _cluster_model(
     return GaussianMixture(n_components=k, covariance_type=cov, random_state=seed, reg_covar=1e-6)
 
 
+def _one_openmp_thread():
+    """Context: scikit-learn's OpenMP loops (k-means) on one thread. A sample of ~10⁴
+    rows costs a few Mflop per Lloyd iteration, which threads do not speed up, while
+    on a busy machine each iteration's barrier waits for a descheduled thread (16
+    clusters of 18000 × 11 rows, 2 cores at load 4: 0.18-0.47 s on one thread, 0.49-1.73 s
+    on two); and with one thread the cluster sums are added in one fixed order (with
+    several, in the order the threads finish)."""
+    from threadpoolctl import threadpool_limits
+
+    return threadpool_limits(limits=1, user_api="openmp")
+
+
 def _choose_k(z: np.ndarray, method: str, ks: list[int], seed: int, cov: str | None):
     """Fit every k; return (models, scores, rule text, best k)."""
     from sklearn.metrics import silhouette_score
 
     models, scores = {}, []
     for k in ks:
-        model = _cluster_model(method, k, len(z), z.shape[1], seed, cov).fit(z)
+        with _one_openmp_thread():
+            model = _cluster_model(method, k, len(z), z.shape[1], seed, cov).fit(z)
         models[k] = model
         if method == "kmeans":
             lab = model.predict(z)
@@ -666,12 +679,14 @@ def _fit_merge(
     separation = data.separation
     kmax = max(ks)
     n0 = int(min(max(N_OVER_CLUSTERS, 2 * kmax), max(2, len(z) // 20), len(z)))
-    if len(z) > MINIBATCH_ABOVE:
-        km = MiniBatchKMeans(n_clusters=n0, random_state=seed, batch_size=4096, n_init=3).fit(z)
-        lab = km.predict(z)
-    else:
-        km = KMeans(n_clusters=n0, random_state=seed, n_init=2).fit(z)
-        lab = km.labels_
+    with _one_openmp_thread():
+        if len(z) > MINIBATCH_ABOVE:
+            km = MiniBatchKMeans(n_clusters=n0, random_state=seed, batch_size=4096,
+                                 n_init=3).fit(z)
+            lab = km.predict(z)
+        else:
+            km = KMeans(n_clusters=n0, random_state=seed, n_init=2).fit(z)
+            lab = km.labels_
     piece_sizes = np.bincount(lab, minlength=n0)
     base = spectra if spectra is not None else z
     from scipy import sparse
@@ -1132,7 +1147,8 @@ def segment(
         model = models[k]
     else:
         k, scores, rule = ks[0], [], "given by the user"
-        model = _cluster_model(method, k, len(z), z.shape[1], seed, covariance_type).fit(z)
+        with _one_openmp_thread():
+            model = _cluster_model(method, k, len(z), z.shape[1], seed, covariance_type).fit(z)
     lab = model.predict(z)
     n_continuum = int(np.sum(lab < 0))
     counts = np.bincount(lab[lab >= 0], minlength=k)
