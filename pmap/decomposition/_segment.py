@@ -48,6 +48,7 @@ from ._merge import (
     pair_score,
     step_z,
 )
+from ._stats import _share_text
 
 FEATURE_SPACES = ("emission", "shape", "shape+intensity", "abundance", "parameters")
 CLUSTER_METHODS = ("merge", "kmeans", "gmm")
@@ -1188,10 +1189,10 @@ def segment(
     )
     share = 100.0 / max(n_sampled, 1)
     n_none = n_sampled - len(z) + n_continuum
-    names = {"-1": f"no emission detected, {n_none * share:.0f} %"
-             if spectral else f"no data, {n_none * share:.0f} %"}
+    names = {"-1": f"no emission detected, {_share_text(n_none * share)}"
+             if spectral else f"no data, {_share_text(n_none * share)}"}
     for j in range(k):
-        names[str(j)] = f"{descriptions[j]}, {counts[order[j]] * share:.0f} %"
+        names[str(j)] = f"{descriptions[j]}, {_share_text(counts[order[j]] * share)}"
     base = (
         {PROVENANCE_ATTR: features.attrs[PROVENANCE_ATTR]}
         if PROVENANCE_ATTR in features.attrs

@@ -104,7 +104,16 @@ def _region_names(attrs: dict, counts: np.ndarray, n_pixels: int, k: int):
     if not isinstance(desc, list) or len(desc) != k:
         return None
     share = 100.0 / max(n_pixels, 1)
-    return np.array([f"{d}, {c * share:.0f} %" for d, c in zip(desc, counts)], dtype=object)
+    return np.array([f"{d}, {_share_text(c * share)}" for d, c in zip(desc, counts)],
+                    dtype=object)
+
+
+def _share_text(percent: float) -> str:
+    """"62 %"; under 1 % with one decimal ("0.4 %"), under 0.05 % "< 0.1 %" (a small
+    region is not shown as 0 %)."""
+    if percent >= 1 or percent == 0:
+        return f"{percent:.0f} %"
+    return f"{percent:.1f} %" if percent >= 0.05 else "< 0.1 %"
 
 
 def region_statistics(
