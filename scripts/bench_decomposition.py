@@ -5,7 +5,9 @@ lines in photon energy, Gaussian approximation of shot noise plus read noise, an
 off-sample strip), then held in memory (``--no-persist`` regenerates it on every
 pass instead). Baselines measured in the same run: the time to sum the whole
 cube (one read pass) and to generate it. Prints each time, its ratio to the
-sum pass, and the agreement with the truth (ARI, spectral correlation).
+sum pass, and the agreement with the truth (ARI, spectral correlation); then the
+median ratio of the wall times and of the CPU seconds (this process, all threads:
+steadier when other work shares the cores).
 
     python scripts/bench_decomposition.py [--ny 1000 --nx 1000 --channels 512] [--quick]
         [--repeat N] [--from-zarr [DIR]]
@@ -62,7 +64,7 @@ def timed(fn, name=""):
 
 def run_once(cube, args, n_spec, t_sum, label):
     """decompose + segment once; prints each time and its ratio to ``t_sum``; returns
-    (total seconds, labels, dataset, abundances)."""
+    (total seconds, labels, dataset, abundances, total CPU seconds of this process)."""
     ds, t_fit = timed(
         lambda: decompose(
             cube, method="nmf", n_components=3, sample_pixels=args.sample_pixels, seed=0
@@ -90,7 +92,7 @@ def run_once(cube, args, n_spec, t_sum, label):
         f"decompose + segment:         {total:8.2f} s   ({total / t_sum:.1f} x {label}; "
         f"{n_spec / total:,.0f} spectra/s)"
     )
-    return total, lab, ds, ab
+    return total, lab, ds, ab, cpu_dec + cpu_seg
 
 
 def main() -> None:
@@ -131,14 +133,15 @@ def main() -> None:
     if not args.no_persist:
         cube, t_gen = timed(lambda: cube.persist())
         print(f"generate (held in memory):   {t_gen:8.2f} s")
-    ratios, lab, ds, ab = [], None, None, None
+    ratios, cpu_ratios, lab, ds, ab = [], [], None, None, None
     for rep in range(args.repeat):
         if args.repeat > 1:
             print(f"--- repeat {rep + 1} of {args.repeat} (load average {os.getloadavg()[0]:.2f})")
         _, t_sum = timed(lambda: float(cube.sum().compute()), "sum")
         print(f"baseline, sum of the cube:   {t_sum:8.2f} s   (1.00 x; CPU {CPU_TIMES['sum']:.2f} s)")
-        total, lab, ds, ab = run_once(cube, args, n_spec, t_sum, "the sum pass")
+        total, lab, ds, ab, cpu = run_once(cube, args, n_spec, t_sum, "the sum pass")
         ratios.append(total / t_sum)
+        cpu_ratios.append(cpu / CPU_TIMES["sum"])
 
     from sklearn.metrics import adjusted_rand_score
 
@@ -153,6 +156,10 @@ def main() -> None:
     )
     print(f"decompose_segment_vs_sum: {np.median(ratios):.2f} "
           f"(median of {len(ratios)}: {', '.join(f'{r:.2f}' for r in ratios)}; cube in memory)")
+    # CPU seconds of this process (all its threads) over those of the sum pass: steadier
+    # than wall time when other work shares the cores
+    print(f"decompose_segment_cpu_vs_sum: {np.median(cpu_ratios):.2f} "
+          f"(median of {len(cpu_ratios)}: {', '.join(f'{r:.2f}' for r in cpu_ratios)})")
     if args.from_zarr is not None:
         zarr_ratios(cube, args, n_spec)
     print(f"load average at the end: {' '.join(f'{v:.2f}' for v in os.getloadavg())}")

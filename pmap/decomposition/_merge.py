@@ -360,8 +360,7 @@ def host_aligned_difference(
         for j in pb:
             key = (int(min(i, j)), int(max(i, j)), float(tolerance))
             if key not in data.aligned_cache:
-                data.aligned_cache[key] = _aligned_pair(data, rows[int(i)], rows[int(j)], tolerance,
-                                                        pieces=(int(i), int(j)))
+                data.aligned_cache[key] = _aligned_pair(data, rows[int(i)], rows[int(j)], tolerance)
             v = data.aligned_cache[key]
             if np.isfinite(v):
                 w = float(len(rows[int(i)]) * len(rows[int(j)]))
@@ -381,18 +380,20 @@ def _mean_rows(x: np.ndarray, rows: np.ndarray) -> np.ndarray:
     return mean_of_rows(x, rows.astype(np.int64, copy=False))
 
 
-def _own_spectrum(data: MergeData, rows: np.ndarray, piece: int | None) -> np.ndarray:
-    """Unit-area mean spectrum of the rows (of over-cluster ``piece``: cached)."""
-    if piece is None:
-        return _unit_area(_mean_rows(data.spectra, rows))
-    key = ("own", piece)
-    if key not in data.aligned_cache:
-        data.aligned_cache[key] = _unit_area(_mean_rows(data.spectra, rows))
-    return data.aligned_cache[key]
+def _unit_mean(data: MergeData, rows: np.ndarray) -> np.ndarray:
+    """Unit-area mean spectrum of the rows ``rows`` of ``data.spectra``, cached by the
+    exact row list (the same rows in the same order give the same values): a group's
+    hosts are mostly the same whichever other group it is compared with, and an
+    over-cluster is compared with every other."""
+    rows = np.ascontiguousarray(rows, dtype=np.int64)
+    key = ("unit_mean", rows.tobytes())
+    got = data.aligned_cache.get(key)
+    if got is None:
+        got = data.aligned_cache[key] = _unit_area(_mean_rows(data.spectra, rows))
+    return got
 
 
-def _aligned_pair(data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: float,
-                  pieces: tuple[int, int] | None = None) -> float:
+def _aligned_pair(data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: float) -> float:
     """Host-aligned spectral difference of the rows ``ra`` and ``rb`` (NaN when it
     cannot be judged).
 
@@ -407,23 +408,22 @@ def _aligned_pair(data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: fl
     0 and Δ (:func:`emission_difference` at :func:`best_shift` within [0, Δ]: lines
     that follow the host move by Δ, a defect band of fixed energy by 0). Spectra add linearly
     and a gradient moves host and minority together, so two spots of one minority type
-    agree; two different minority types in one host do not. ``pieces``: the
-    over-clusters that ``ra`` and ``rb`` are (their own spectra are then cached).
+    agree; two different minority types in one host do not.
     """
     if data.spectra is None or data.axis is None:
         return float("nan")
     ha, hb = _hosts(data, ra, rb), _hosts(data, rb, ra)
     if len(ha) < MIN_BORDER_PAIRS or len(hb) < MIN_BORDER_PAIRS:
         return float("nan")
-    sp, axis = data.spectra, np.asarray(data.axis, dtype=float)
-    host_a = _unit_area(_mean_rows(sp, np.unique(ha)))
-    host_b = _unit_area(_mean_rows(sp, np.unique(hb)))
+    axis = np.asarray(data.axis, dtype=float)
+    host_a = _unit_mean(data, np.unique(ha))
+    host_b = _unit_mean(data, np.unique(hb))
     span = float(abs(axis[-1] - axis[0]))
     d = best_shift(host_a, host_b, axis, MAX_HOST_SHIFT * span)
     if emission_difference(host_a, np.interp(axis - d, axis, host_b)) >= HOST_AGREEMENT * tolerance:
         return float("nan")
-    own_a = _own_spectrum(data, ra, None if pieces is None else pieces[0])
-    own_b = _own_spectrum(data, rb, None if pieces is None else pieces[1])
+    own_a = _unit_mean(data, ra)
+    own_b = _unit_mean(data, rb)
     # Lines that follow the host's drift move by Δ, lines that do not (a defect band
     # of fixed energy) by 0: the groups are compared at the best shift between the two
     # (searched at the channel step and refined, as in :func:`best_shift`: a coarser
