@@ -1077,6 +1077,20 @@ def lm_batch(Y, rows, x, xe, xref, P0, lo, hi, free_idx, nfree, model, K, nbg, v
     return P, COV, chi2, status, niter
 
 
+@nb.njit(cache=True, error_model="numpy", nogil=True, fastmath=FM)
+def count_finite(Y):
+    """Number of finite values in each row of Y (m, n): (m,) int64."""
+    m, n = Y.shape
+    out = np.empty(m, dtype=np.int64)
+    for r in range(m):
+        row = Y[r]
+        c = 0
+        for i in range(n):
+            c += 1 if math.isfinite(row[i]) else 0
+        out[r] = c
+    return out
+
+
 @nb.njit(cache=True, error_model="numpy", fastmath=FM)
 def _smooth3(yb, s):
     """s[c] = mean of yb[c−1..c+1] for 1 ≤ c ≤ n−2 (views: indices provably ≥ 0, SIMD)."""
