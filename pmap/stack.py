@@ -16,7 +16,7 @@ import xarray as xr
 
 from .conventions import SPECTRAL_DIMS
 from .cube import STACK_DIMS, validate_cube
-from .errors import StepError
+from .errors import PmapNotice, StepError
 from .noise import get_noise_model, noise_correlated
 from .provenance import with_step
 
@@ -59,6 +59,32 @@ def _correlation_peak(a: np.ndarray, b: np.ndarray, upsample: int) -> tuple[floa
     fine = (ey @ cross @ ex.T).real
     jy, jx = np.unravel_index(np.argmax(fine), fine.shape)
     return float(y0 + off[jy]), float(x0 + off[jx])
+
+
+#: An integrated-intensity image whose detrended variance is below this many times its
+#: noise variance has no structure to register against (a uniform film: the
+#: correlation peak would sit wherever the noise puts it).
+MIN_STRUCTURE = 2.0
+
+
+def structure_to_noise(img: np.ndarray) -> float:
+    """Variance of an image after removing its best-fit plane over its noise variance
+    (1 for noise alone). Noise from the 4-neighbour Laplacian, which annihilates planes
+    (var = 20 σ² for white noise), by the median absolute deviation (robust to edges
+    and grain boundaries; common practice)."""
+    a = np.nan_to_num(np.asarray(img, float))
+    ny, nx = a.shape
+    if ny < 3 or nx < 3:
+        return float("inf")
+    yy, xx = np.mgrid[0:ny, 0:nx]
+    m = np.column_stack([np.ones(a.size), yy.ravel(), xx.ravel()])
+    resid = a - (m @ np.linalg.lstsq(m, a.ravel(), rcond=None)[0]).reshape(a.shape)
+    lap = 4 * a[1:-1, 1:-1] - a[:-2, 1:-1] - a[2:, 1:-1] - a[1:-1, :-2] - a[1:-1, 2:]
+    noise = (1.4826 * float(np.median(np.abs(lap - np.median(lap))))) ** 2 / 20.0
+    var = float(resid.var())
+    if noise <= 0:
+        return float("inf") if var > 0 else 0.0
+    return var / noise
 
 
 def phase_correlation_shift(ref: np.ndarray, img: np.ndarray, *, upsample: int = 50,
@@ -134,6 +160,9 @@ def stack_cubes(cubes: Sequence[xr.DataArray], *, along: str, values: Sequence[f
     register : bool
         Register every map to the first by sub-pixel phase correlation of the
         integrated-intensity images (this computes those images: one pass over each map).
+        A pair of images without structure above their noise (:func:`structure_to_noise`
+        below :data:`MIN_STRUCTURE`: a uniform film) is left unshifted, with a
+        :class:`~pmap.errors.PmapNotice`.
     max_shift_fraction : float
         A shift beyond this fraction of the field is refused (StepError).
     upsample : int
@@ -187,12 +216,19 @@ def stack_cubes(cubes: Sequence[xr.DataArray], *, along: str, values: Sequence[f
 
     shapes = [(c.sizes["y"], c.sizes["x"]) for c in cubes]
     shifts = [(0.0, 0.0)] * n
+    flat: list[tuple[str, float]] = []  # maps left unshifted: no structure above noise
     if register:
         imgs = dask.compute(*[c.fillna(0).sum(spec).data for c in cubes])
         hy, hx = min(s[0] for s in shapes), min(s[1] for s in shapes)
         ref = np.asarray(imgs[0])[:hy, :hx]
+        s_ref = structure_to_noise(ref)
         for i in range(1, n):
-            dy, dx = phase_correlation_shift(ref, np.asarray(imgs[i])[:hy, :hx], upsample=upsample)
+            img = np.asarray(imgs[i])[:hy, :hx]
+            s_i = min(s_ref, structure_to_noise(img))
+            if s_i < MIN_STRUCTURE:  # nothing to register against: left unshifted
+                flat.append((names[i], s_i))
+                continue
+            dy, dx = phase_correlation_shift(ref, img, upsample=upsample)
             if abs(dy) > max_shift_fraction * hy or abs(dx) > max_shift_fraction * hx:
                 raise StepError(f"{names[i]} is shifted by ({dy:.2f}, {dx:.2f}) px against "
                                 f"{names[0]}, beyond {max_shift_fraction:.0%} of the field "
@@ -227,6 +263,16 @@ def stack_cubes(cubes: Sequence[xr.DataArray], *, along: str, values: Sequence[f
                 ys, xs = lo_y + fy + oy, lo_x + fx + ox
                 out = out + (wy * wx) * arr[ys:ys + ny, xs:xs + nx]
         parts.append(out)
+    if flat:
+        import warnings
+
+        warnings.warn(
+            f"{len(flat)} of {n - 1} maps not registered: they or {names[0]} show no "
+            f"structure above noise to register against (structure/noise variance "
+            f"{min(v for _, v in flat):.2g}-{max(v for _, v in flat):.2g}, below "
+            f"{MIN_STRUCTURE:g}: {', '.join(nm for nm, _ in flat[:4])}"
+            f"{', ...' if len(flat) > 4 else ''}); stacked unshifted (--no-register to "
+            "skip registration)", PmapNotice, stacklevel=2)
     order = np.argsort(vals)
     data = dsa.stack([parts[i] for i in order], axis=0)
     c0 = cubes[0]
@@ -240,6 +286,7 @@ def stack_cubes(cubes: Sequence[xr.DataArray], *, along: str, values: Sequence[f
     params = {"along": along, "units": units, "register": register,
               "max_shift_fraction": max_shift_fraction}
     attrs = with_step(attrs, "stack", params, maps=[names[i] for i in order],
+                      unregistered_no_structure=[nm for nm, _ in flat],
                       values=[float(v) for v in vals[order]], shifts_px=shift_list,
                       crop_px={"y": [lo_y, hi_y], "x": [lo_x, hi_x]})
     attrs["stack_shifts_px"] = shift_list

@@ -198,3 +198,31 @@ def test_subpixel_registration_marks_noise_correlated():
     assert model is not None and model.correlated
     plain = stack_cubes(cubes, along="temperature", register=False)
     assert get_noise_model(plain) is None or not get_noise_model(plain).correlated
+
+
+def test_structure_to_noise_is_one_for_white_noise():
+    """White noise on a plane: structure/noise variance ≈ 1 (the Laplacian noise estimate
+    is unbiased for white noise; MAD-based, so n = 20 images of 40 x 48 px stay within
+    1 ± 0.3), far above 2 for a structured scene."""
+    from pmap.stack import MIN_STRUCTURE, structure_to_noise
+
+    rng = np.random.default_rng(0)
+    yy, xx = np.mgrid[0:40, 0:48]
+    vals = [structure_to_noise(100 + 0.5 * yy + 0.3 * xx + rng.normal(0, 3, yy.shape))
+            for _ in range(20)]
+    assert 0.7 < min(vals) and max(vals) < 1.3, vals
+    assert structure_to_noise(_scene()) > 10 * MIN_STRUCTURE
+
+
+def test_uniform_film_is_stacked_unshifted_with_a_notice():
+    """Maps of a uniform film (no spatial structure, only noise): phase correlation has
+    nothing to lock on (it once reported shifts of several pixels and refused the stack
+    as 'not the same area'); they are stacked unshifted and the run says why."""
+    from pmap.errors import PmapNotice
+
+    rng = np.random.default_rng(3)
+    cubes = [_cube(1000 + rng.normal(0, 5, (24, 28)), temperature=t) for t in (10, 100, 300)]
+    with pytest.warns(PmapNotice, match="no structure above noise"):
+        out = stack_cubes(cubes, along="temperature")
+    assert out.attrs["stack_shifts_px"] == [[0.0, 0.0]] * 3
+    assert out.sizes["y"] == 24 and out.sizes["x"] == 28
