@@ -208,14 +208,18 @@ def _print_fit_summary(ds) -> None:
 
 
 def cmd_process(args: argparse.Namespace) -> int:
-    from .pipeline import DEFAULT_PIPELINE_TOML, load_pipeline, process
+    from ._progress import phase
+
+    with phase("imports"):  # xarray, dask, zarr, numba, scipy: a fixed cost of every run
+        from .pipeline import DEFAULT_PIPELINE_TOML, load_pipeline, process
 
     if args.print_config:
         print(DEFAULT_PIPELINE_TOML, end="")
         return 0
     if not args.cube or not args.output:
         raise PmapError("process needs CUBE and -o RESULT.zarr (or --print-config)")
-    pipe = load_pipeline(args.config)
+    with phase("load pipeline"):  # imports the steps' modules
+        pipe = load_pipeline(args.config)
     regions = args.regions
     if regions is not None and regions != "auto":
         try:
@@ -256,16 +260,19 @@ def cmd_process(args: argparse.Namespace) -> int:
                          client=client, planck=_planck_option(args, src, read_options))
             wall_s = time.perf_counter() - t_start
             print(f"result store: {out}")
-            _print_fit_summary(ds)
-            _note_medium(_medium_note_for_result(ds, src, read_options))
+            with phase("summary"):
+                _print_fit_summary(ds)
+                _note_medium(_medium_note_for_result(ds, src, read_options))
             figs = None
             if pipe.output.get("figures", True) and not args.no_figures:
                 from .report import write_figures
 
-                figs = write_figures(ds, _figures_dir(out))
+                with phase("figures"):
+                    figs = write_figures(ds, _figures_dir(out))
                 print(f"figures ({len(figs)}): {_figures_dir(out)}")
             if figs is not None and not args.no_html:  # beside the PNGs
-                _write_html(out, figs, wall_s)
+                with phase("html"):
+                    _write_html(out, figs, wall_s, ds)
             if many:
                 from .report import summarise_result
 
@@ -308,12 +315,13 @@ def _import_in_background(modules: Sequence[str]) -> None:
     threading.Thread(target=run, name="pmap-preload", daemon=True).start()
 
 
-def _write_html(store: Path, figures, run_time_s: float | None = None) -> Path:
-    """The self-contained HTML report of a result store, beside its PNG figures."""
+def _write_html(store: Path, figures, run_time_s: float | None = None, ds=None) -> Path:
+    """The self-contained HTML report of a result store (``ds``: the store opened
+    already), beside its PNG figures."""
     from .report_html import html_report_path, write_html_report
 
     path = write_html_report(store, html_report_path(store, _figures_dir(store)),
-                             figures=figures, run_time_s=run_time_s)
+                             figures=figures, run_time_s=run_time_s, dataset=ds)
     print(f"HTML report: {path}")
     return path
 
@@ -380,13 +388,91 @@ def cmd_demo(args: argparse.Namespace) -> int:
     figs.append(_demo_spike_figure(cube_path, paths["truth"], _figures_dir(result_path)))
     print(f"result:      {result_path}")
     print(f"figures:     {_figures_dir(result_path)} ({len(figs)} PNG)")
-    _write_html(result_path, figs, wall_s)
+    _write_html(result_path, figs, wall_s, ds)
     try:
         from .synthetic import compare_with_truth
 
         print(compare_with_truth(ds, paths["truth"]))
     except ImportError:
         pass
+    return 0
+
+
+#: Map of the tiny cube the warm-up compiles the kernels on (pixels): big enough for
+#: every stage of the demo pipeline (NMF, regions), small enough to cost nothing but
+#: the compilation.
+_WARMUP_SHAPE = (48, 48)
+
+
+def _warmup_pipelines(part: str) -> list:
+    """The pipelines a warm-up part runs: "spikes" the cleaning steps up to spike removal;
+    "rest" all else of the default pipeline with `--components 3 --regions 3` and of the
+    demo's (NMF, Gaussian-mixture regions on shape + intensity); "all" both whole."""
+    from .pipeline import load_pipeline
+
+    if part == "spikes":
+        pipe = load_pipeline(None)
+        keep = ("mask_bad_pixels", "remove_spikes")
+        pipe.steps = [(n, p) for n, p in pipe.steps if n in keep]
+        pipe.descriptors = pipe.fit = None
+        pipe.output = {**pipe.output, "keep_cube": True}
+        return [pipe]
+    pipes = []
+    for regions in ({"n_regions": 3},  # plcube process --regions 3 --components 3
+                    {"n_regions": 3, "method": "gmm", "feature_space": "shape+intensity"}):
+        pipe = load_pipeline(None)  # cmd_demo's stages in the second
+        if part == "rest":
+            pipe.steps = [(n, p) for n, p in pipe.steps if n != "remove_spikes"]
+        pipe.components = {"method": "nmf", "n_components": 3}
+        pipe.regions = regions
+        pipes.append(pipe)
+    return pipes
+
+
+def cmd_warmup(args: argparse.Namespace) -> int:
+    """Compile every numerical kernel of the default and demo pipelines into numba's
+    cache by processing a tiny invented cube (float32, the dtype of the demo cube and of
+    integer detector counts after cleaning): a later run loads them in well under a second
+    instead of compiling them for about a minute. Two parts run as separate processes at
+    once (numba compiles one kernel at a time per process), then the whole pipeline runs
+    once more to check that nothing is left to compile."""
+    import subprocess
+    import tempfile
+
+    from ._progress import CompileNotice
+    from .pipeline import process
+    from .synthetic import write_demo_cube
+
+    t0 = time.perf_counter()
+    with tempfile.TemporaryDirectory(prefix="pmap_warmup_") as tmp:
+        work = Path(tmp)
+        if args.part is None:
+            cube = write_demo_cube(work, shape=_WARMUP_SHAPE, seed=0, overwrite=True,
+                                   name="warmup").cube
+        else:
+            cube = Path(args.cube)
+        if args.part is None and (os.cpu_count() or 1) > 1:
+            print(f"{COMMAND}: compiling the numerical kernels into the cache (once after an "
+                  "install or an update; about a minute or two)", file=sys.stderr)
+            procs = {part: subprocess.Popen([sys.executable, "-m", "pmap", "warmup", "--part",
+                                             part, "--cube", str(cube)],
+                                            stdout=subprocess.DEVNULL)
+                     for part in ("spikes", "rest")}
+            bad = [part for part, p in procs.items() if p.wait() != 0]
+            if bad:
+                raise PmapError(f"warm-up part(s) {', '.join(bad)} failed (see above)")
+        parts = [args.part] if args.part is not None else ["all"]
+        with CompileNotice(COMMAND, enabled=False) as notice:
+            for part in parts:
+                for i, pipe in enumerate(_warmup_pipelines(part)):
+                    with warnings.catch_warnings():
+                        warnings.simplefilter("ignore")
+                        process(cube, work / f"warmup_{part}_{i}.zarr", pipeline=pipe,
+                                overwrite=True, progress=False, memory_limit="512MB")
+    if args.part is None:
+        print(f"{COMMAND}: kernels compiled and cached in {time.perf_counter() - t0:.0f} s"
+              + (f" ({notice.kernels} compiled in the final check)" if notice.kernels else ""),
+              file=sys.stderr)
     return 0
 
 
@@ -670,6 +756,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_demo)
 
+    p = sub.add_parser("warmup", help="compile the numerical kernels into the cache now "
+                       "(scripts/setup.sh does; otherwise the first process run does, ~1-2 min)")
+    p.add_argument("--part", choices=["spikes", "rest", "all"], help=argparse.SUPPRESS)
+    p.add_argument("--cube", help=argparse.SUPPRESS)
+    p.set_defaults(func=cmd_warmup)
+
     p = sub.add_parser("report", help="(re)draw the figures and region table of a result store")
     p.add_argument("result", help="result store written by plcube process (or plcube series)")
     p.add_argument("-o", "--out", help="folder for the figures (default RESULT_figures/)")
@@ -744,6 +836,24 @@ def _from_storage_codec(exc: BaseException) -> bool:
                for m in mods[-6:])
 
 
+def _since_start() -> float:
+    """Seconds since this process started (interpreter start-up and imports so far; to
+    10 ms on Linux, from /proc; NaN elsewhere)."""
+    try:
+        with open("/proc/self/stat") as f:
+            start_ticks = float(f.read().rsplit(")", 1)[1].split()[19])
+        with open("/proc/uptime") as f:
+            uptime_s = float(f.read().split()[0])
+        return uptime_s - start_ticks / os.sysconf("SC_CLK_TCK")
+    except (OSError, ValueError, IndexError, AttributeError):
+        return float("nan")
+
+
+#: Commands that run numba kernels: a kernel missing from numba's cache (first run after
+#: an install) is compiled first, which they announce (pmap._progress.CompileNotice).
+_COMPILING_COMMANDS = ("process", "demo", "series", "stack")
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``plcube`` console script; returns the exit status."""
     parser = build_parser()
@@ -762,10 +872,24 @@ def main(argv: Sequence[str] | None = None) -> int:
                   file=sys.stderr, end="")
 
     warnings.showwarning = _notice
+    if os.environ.get("PMAP_TIMINGS"):  # phase times of a run on stderr (pmap._progress.phase)
+        import logging
+
+        handler = logging.StreamHandler(sys.stderr)
+        handler.setFormatter(logging.Formatter(f"{COMMAND}: timing: %(message)s"))
+        log = logging.getLogger("pmap.timing")
+        log.addHandler(handler)
+        log.setLevel(logging.DEBUG)
+        log.debug("start-up: %.3f s wall, %.3f CPU s", _since_start(), time.process_time())
     # numerical RuntimeWarnings (empty slices of masked pixels, NaN comparisons) are
     # handled where they matter; on the terminal they would only confuse
     warnings.filterwarnings("ignore", category=RuntimeWarning)
     try:
+        if args.command in _COMPILING_COMMANDS:
+            from ._progress import CompileNotice
+
+            with CompileNotice(COMMAND):  # says so when a kernel must be compiled first
+                return int(func(args) or 0)
         return int(func(args) or 0)
     except KeyboardInterrupt:
         print(f"{COMMAND}: interrupted", file=sys.stderr)

@@ -277,15 +277,17 @@ def _check_resumable(recorded: dict, source: Any, pipe_hash: str, out: Path) -> 
 def _refuse_empty(cube: xr.DataArray) -> None:
     """StepError when the cube holds no finite value (checked before any output exists).
 
-    A few chunks spread over the map are read first; only when they are all empty is
-    the whole cube scanned, so a normal cube costs a few chunk reads.
+    Up to four chunks spread over the map are read one at a time, an inner one first,
+    until one holds a finite value; only when they are all empty is the whole cube
+    scanned, so a normal cube costs one chunk read.
     """
-    import dask
     import dask.array as da
 
     data = cube.data
-    if any(np.isfinite(np.asarray(b)).any() for b in dask.compute(*spread_blocks(data, 4))):
-        return
+    blocks = spread_blocks(data, 4)
+    for b in blocks[1:2] + blocks[:1] + blocks[2:]:  # the map's inside, then its corners
+        if np.isfinite(np.asarray(b.compute() if isinstance(b, da.Array) else b)).any():
+            return
     if not (isinstance(data, da.Array) and bool(da.isfinite(data).any().compute())):
         raise StepError("the cube holds no finite values (all NaN or empty): nothing to process")
 
@@ -523,7 +525,13 @@ def process(
         The written result, reopened lazily from the store. Figures are made
         by the edges (``plcube process`` or :func:`pmap.report.write_figures`).
     """
-    pipe = pipeline if isinstance(pipeline, Pipeline) else load_pipeline(pipeline)
+    from ._progress import TqdmProgress, phase
+
+    if isinstance(pipeline, Pipeline):
+        pipe = pipeline
+    else:
+        with phase("load pipeline"):
+            pipe = load_pipeline(pipeline)
     if peaks is not None or model is not None:
         pipe.fit = dict(pipe.fit or {})
         if peaks is not None:
@@ -557,15 +565,16 @@ def process(
         _check_resumable(recorded, source, pipe_hash, out)
         chunk_mib = float(recorded["chunk_mib"])
     in_path = None
-    if isinstance(source, xr.DataArray):
-        cube = rechunk_cube(validate_cube(source), target_mib=chunk_mib)
-    else:
-        from .io import open_cube
+    with phase("open cube"):
+        if isinstance(source, xr.DataArray):
+            cube = rechunk_cube(validate_cube(source), target_mib=chunk_mib)
+        else:
+            from .io import open_cube
 
-        in_path = Path(source)
-        # chunks chosen at open time, aligned with the stored chunks (no re-reads)
-        cube = open_cube(in_path, target_chunk_mib=chunk_mib, **(read_options or {}))
-    _refuse_empty(cube)
+            in_path = Path(source)
+            # chunks chosen at open time, aligned with the stored chunks (no re-reads)
+            cube = open_cube(in_path, target_chunk_mib=chunk_mib, **(read_options or {}))
+        _refuse_empty(cube)
     stack = [d for d in cube.dims if d not in ("y", "x") and d != spectral_dim(cube)]
     if pipe.regions is not None and stack:
         raise StepError(f"regions are made on one map, and this cube has the stack dim(s) "
@@ -576,10 +585,8 @@ def process(
     if spectral_dim(cube) == "wavelength" and not any(n == "to_energy" for n, _ in pipe.steps):
         warnings.warn("pipeline has no to_energy step: fitting on the wavelength axis",
                       PmapNotice, stacklevel=2)
-    from ._progress import TqdmProgress
-
-    with TqdmProgress("whole-map checks", enabled=progress):  # hot channels, saturation…
-        result, processed = build_result(cube, pipe)
+    with phase("whole-map pass"), TqdmProgress("whole-map checks", enabled=progress):
+        result, processed = build_result(cube, pipe)  # hot channels, saturation…
     streaming = (bool(recorded["streaming"]) if recorded is not None
                  else _streaming_fits(cube, mem, threads))
     result.attrs["pmap_run"] = json.dumps({
@@ -591,10 +598,12 @@ def process(
         "chunks": {d: [int(c) for c in cube.chunksizes[d]] for d in ("y", "x")
                    if cube.chunks is not None and d in cube.chunksizes},
     })
-    path = write_result(result, out, overwrite=overwrite, resume=resume, progress=progress,
-                        input_paths=(in_path,), concurrency=threads, client=client,
-                        complete=pipe.regions is None, streaming=streaming)
+    with phase("blocks"):
+        path = write_result(result, out, overwrite=overwrite, resume=resume, progress=progress,
+                            input_paths=(in_path,), concurrency=threads, client=client,
+                            complete=pipe.regions is None, streaming=streaming)
     if pipe.regions is not None:
-        add_regions(path, processed, pipe.regions)
-        mark_complete(path)
+        with phase("regions"):
+            add_regions(path, processed, pipe.regions)
+            mark_complete(path)
     return open_result(path)

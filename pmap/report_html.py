@@ -872,6 +872,7 @@ def write_html_report(
     figures: Sequence[str | Path] | None = None,
     run_time_s: float | None = None,
     title: str | None = None,
+    dataset: xr.Dataset | None = None,
 ) -> Path:
     """Write one self-contained HTML report of a result (or series) store.
 
@@ -892,6 +893,9 @@ def write_html_report(
         time in the provenance to the store's completion time on disk.
     title : str, optional
         Page title (default: "PL map report — NAME").
+    dataset : xarray.Dataset, optional
+        With a store path as ``result``: that store as the caller opened it already
+        (:func:`pmap.results.open_result`), so it is not opened again.
 
     Returns
     -------
@@ -903,7 +907,7 @@ def write_html_report(
         from .results import open_result
 
         store = Path(result)
-        ds = open_result(store)
+        ds = dataset if dataset is not None else open_result(store)
     elif isinstance(result, xr.Dataset):
         ds = result
     else:

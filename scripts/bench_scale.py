@@ -23,6 +23,10 @@ deviation of each time from the least-squares straight line through all sizes.
     python scripts/bench_scale.py --size 4 --memory-limit 1GB
     python scripts/bench_scale.py --sizes 0.5,1,2,4     # scaling line (long)
     python scripts/bench_scale.py --profile prof/       # py-spy profile of the process run
+    python scripts/bench_scale.py --cold                # first run after an install vs later
+
+The process run sets ``PMAP_TIMINGS=1`` and prints its split into phases (start-up, open,
+whole-map pass, blocks, summary, figures, HTML): wall and CPU seconds of each.
 """
 
 from __future__ import annotations
@@ -55,11 +59,13 @@ print(json.dumps({"seconds": dt, "cpu_seconds": dc, "n": int(cube.sizes["y"] * c
 LAST_CPU_S = [0.0]
 
 
-def _run_child(cmd: list[str]) -> tuple[float, float, str, str]:
-    """Run cmd; (wall seconds, peak RSS MiB of that child alone, stdout, stderr)."""
+def _run_child(cmd: list[str], env: dict | None = None) -> tuple[float, float, str, str]:
+    """Run cmd (with ``env`` added to the environment); (wall seconds, peak RSS MiB of
+    that child alone, stdout, stderr)."""
     with tempfile.TemporaryFile("w+") as fo, tempfile.TemporaryFile("w+") as fe:
         t = time.perf_counter()
-        proc = subprocess.Popen(cmd, stdout=fo, stderr=fe, text=True)
+        proc = subprocess.Popen(cmd, stdout=fo, stderr=fe, text=True,
+                                env={**os.environ, **env} if env else None)
         _, status, ru = os.wait4(proc.pid, 0)  # the child's own rusage (ru_maxrss in KiB)
         wall = time.perf_counter() - t
         LAST_CPU_S[0] = ru.ru_utime + ru.ru_stime
@@ -126,8 +132,9 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
         prof.mkdir(parents=True, exist_ok=True)
         cmd = ["py-spy", "record", "--rate", "50", "--format", "raw", "--threads", "-o",
                str(prof / f"process_{side}.txt"), "--", *cmd]
-    wall_p, rss_p, out, err = _run_child(cmd)
+    wall_p, rss_p, out, err = _run_child(cmd, env={"PMAP_TIMINGS": "1"})
     cpu_p = LAST_CPU_S[0]
+    parts = _timings(err)
     summary = [ln for ln in err.splitlines() if "converged" in ln][:1]
     work_s = wall_p - startup
     work_cpu = cpu_p - startup_cpu
@@ -135,11 +142,74 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
           f"{cpu_p:.1f} CPU s), "
           f"{n / work_s:,.0f} spectra/s, peak RSS {rss_p:.0f} MiB (limit {args.memory_limit})"
           f"{'; ' + summary[0].strip() if summary else ''}; load {_load()}", flush=True)
+    if parts:
+        print("split:       " + ", ".join(f"{k} {w:.2f} s ({c:.2f} CPU)"
+                                          for k, (w, c) in parts.items()))
+        print(f"             fixed costs (all but the whole-map pass and blocks): "
+              f"{sum(w for k, (w, _) in parts.items() if k not in _SCALING):.2f} s wall; "
+              f"the rest {wall_p - sum(w for w, _ in parts.values()):.2f} s (interpreter "
+              "start and exit)")
     if not args.keep:
         for p in (paths["cube"], paths["truth"], res, work / f"bench_{side}_result_figures"):
             shutil.rmtree(p, ignore_errors=True)
+    if args.cold:
+        _bench_cold(cmd, work)
     return {"gb": side * side * args.channels * 4 / 1e9, "read": read["seconds"],
             "read_cpu": read["cpu_seconds"], "process_cpu": work_cpu, "process": work_s, "startup": startup, "info": info_s, "rss_read": rss_r, "rss_process": rss_p}
+
+
+#: Phases of a run whose time follows the cube's size (the rest are fixed costs).
+_SCALING = ("whole-map pass", "blocks", "regions")
+
+
+def _timings(stderr: str) -> dict[str, tuple[float, float]]:
+    """Phase times of a run from its ``PMAP_TIMINGS`` lines: {phase: (wall s, CPU s)}."""
+    out = {}
+    for ln in stderr.splitlines():
+        if ": timing: " in ln:
+            name, rest = ln.split(": timing: ", 1)[1].split(": ", 1)
+            w, c = rest.replace(" s wall,", "").replace(" CPU s", "").split()
+            out[name] = (float(w), float(c))
+    return out
+
+
+def _fresh_copy(work: Path, name: str) -> Path:
+    """A copy of the pmap package (no numba cache) under work/name: runs with it on
+    PYTHONPATH compile every kernel, as a first run after an install does."""
+    import pmap
+
+    dst = work / name
+    shutil.rmtree(dst, ignore_errors=True)
+    shutil.copytree(Path(pmap.__file__).parent, dst / "pmap",
+                    ignore=shutil.ignore_patterns("__pycache__"))
+    return dst
+
+
+def _bench_cold(cmd: list[str], work: Path) -> None:
+    """The first run after an install against later ones: the same command on a fresh
+    copy of the package twice (cold: numba compiles; warm: loads its cache), and on
+    another fresh copy after ``plcube warmup`` (what scripts/setup.sh runs)."""
+    out = Path(cmd[cmd.index("-o") + 1])
+    rows = []
+    for label, warm_first in (("no warm-up", False), ("after plcube warmup", True)):
+        copy = _fresh_copy(work, f"cold_{'w' if warm_first else 'n'}")
+        env = {"PYTHONPATH": str(copy)}
+        if warm_first:
+            w, _, _, err = _run_child([sys.executable, "-m", "pmap", "warmup"], env=env)
+            rows.append((f"plcube warmup ({label})", w, LAST_CPU_S[0], err))
+        for run in ("first run", "second run"):
+            shutil.rmtree(out, ignore_errors=True)
+            shutil.rmtree(out.with_name(out.name.removesuffix(".zarr") + "_figures"),
+                          ignore_errors=True)
+            w, _, _, err = _run_child(cmd, env=env)
+            rows.append((f"{run} ({label})", w, LAST_CPU_S[0], err))
+            if warm_first:
+                break
+        shutil.rmtree(copy, ignore_errors=True)
+    for label, w, c, err in rows:
+        said = [ln.split(": ", 1)[1] for ln in err.splitlines() if "compiled " in ln]
+        print(f"cold/warm:   {label}: {w:.1f} s ({c:.1f} CPU s)"
+              f"{'; ' + said[0] if said else '; nothing compiled'}; load {_load()}", flush=True)
 
 
 def main() -> None:
@@ -159,6 +229,9 @@ def main() -> None:
     ap.add_argument("--no-figures", action="store_true",
                     help="diagnosis only: run the command with --no-figures (a user's run "
                     "draws them; the default measures that)")
+    ap.add_argument("--cold", action="store_true", help="also the first run after an install "
+                    "(fresh copies of the package without numba's cache): cold, warm, and "
+                    "after plcube warmup (minutes: every kernel is compiled twice)")
     ap.add_argument("--profile", help="folder for py-spy profiles (raw collapsed stacks) of "
                     "the process runs (needs py-spy on PATH)")
     args = ap.parse_args()

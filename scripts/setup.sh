@@ -52,6 +52,19 @@ if [[ ! -f $stamp || pyproject.toml -nt $stamp ]]; then
     fi
     .venv/bin/python -c 'import pmap, xarray, dask, zarr, napari' || { echo "setup: install failed" >&2; exit 1; }
     touch "$stamp"
+    rm -f .venv/.pmap-kernels-warm
+fi
+
+# Compile pmap's numerical kernels into numba's cache now (a minute or two, once), so that a
+# first `plcube process` or `plcube demo` does not wait for it; PMAP_NO_WARMUP=1 skips this
+# (the first run then compiles them, and says so).
+warm=.venv/.pmap-kernels-warm
+if [[ ! -f $warm && -z "${PMAP_NO_WARMUP:-}" ]]; then
+    if .venv/bin/python -m pmap warmup; then
+        touch "$warm"
+    else
+        echo "setup: compiling the kernels in advance failed; the first run will compile them" >&2
+    fi
 fi
 
 if (( want_test )); then

@@ -9,7 +9,7 @@ import pytest
 
 from pmap.cli import main
 
-SUBCOMMANDS = ["info", "convert", "process", "report", "demo", "steps", "view"]
+SUBCOMMANDS = ["info", "convert", "process", "report", "demo", "steps", "view", "warmup"]
 
 
 def run_cli(*args, cwd=None):
@@ -113,3 +113,85 @@ def test_readme_scripts_call_the_installed_command():
     scripts = tomllib.loads((root / "pyproject.toml").read_text())["project"]["scripts"]
     called = re.findall(r"\.venv/bin/([\w-]+)", (root / "scripts" / "demo.sh").read_text())
     assert called and all(c in scripts or c == "python" for c in called), (called, scripts)
+
+
+# ------------------------------------------------------------- first run: compiling kernels
+
+
+def test_compile_notice_speaks_on_a_cache_miss_only(capsys):
+    """A kernel that numba must compile (cache miss) is announced once, with the count and
+    time at the end; a kernel already compiled says nothing (numba's event API: a cache
+    hit or a compiled overload fires no "numba:compile" event; from memory)."""
+    import numba
+
+    from pmap._progress import COMPILING_MESSAGE, CompileNotice
+
+    @numba.njit(cache=False)
+    def twice(a):  # a new function: never in any cache
+        return 2 * a
+
+    with CompileNotice("plcube") as notice:
+        assert twice(3) == 6
+        assert twice(4) == 8  # same signature: compiled once
+    err = capsys.readouterr().err
+    assert err.count(COMPILING_MESSAGE) == 1
+    assert notice.kernels == 1 and notice.seconds > 0
+    assert "compiled 1 kernel(s)" in err
+    with CompileNotice("plcube") as again:  # compiled already: silent
+        assert twice(5) == 10
+    assert capsys.readouterr().err == "" and again.kernels == 0
+    with CompileNotice("plcube", enabled=False) as quiet:  # counts, says nothing
+        assert twice(2.5) == 5.0  # a new signature (float64) compiles
+    assert capsys.readouterr().err == "" and quiet.kernels == 1
+
+
+def test_warmup_parts_cover_the_default_and_demo_pipelines():
+    """The two warm-up processes together run every step of the default pipeline, and
+    the second every stage of `process --regions 3 --components 3` and of `demo`."""
+    from pmap.cli import _warmup_pipelines
+    from pmap.pipeline import load_pipeline
+
+    default = [n for n, _ in load_pipeline(None).steps]
+    spikes, = _warmup_pipelines("spikes")
+    rest = _warmup_pipelines("rest")
+    ran = {n for n, _ in spikes.steps} | {n for p in rest for n, _ in p.steps}
+    assert ran == set(default)
+    assert "remove_spikes" in [n for n, _ in spikes.steps]
+    # remove_spikes follows mask_bad_pixels as in the default pipeline (masked channels)
+    assert [n for n, _ in spikes.steps] == [n for n in default
+                                           if n in ("mask_bad_pixels", "remove_spikes")]
+    methods = {p.regions.get("method", "default") for p in rest}
+    assert methods == {"default", "gmm"}
+    assert all(p.fit is not None and p.components["method"] == "nmf" for p in rest)
+    whole = _warmup_pipelines("all")
+    assert all([n for n, _ in p.steps] == default for p in whole)
+
+
+def test_warmup_part_runs(tmp_path, capsys):
+    """`plcube warmup --part spikes` processes its tiny cube (kernels from the cache here)."""
+    from pmap.synthetic import write_demo_cube
+
+    cube = write_demo_cube(tmp_path, size="tiny", seed=0, overwrite=True).cube
+    assert main(["warmup", "--part", "spikes", "--cube", str(cube)]) == 0
+    assert "error" not in capsys.readouterr().err
+
+
+def test_timings_name_every_phase(tmp_path):
+    """PMAP_TIMINGS=1: `plcube process` states each phase's wall and CPU seconds."""
+    from pmap.synthetic import write_demo_cube
+
+    cube = write_demo_cube(tmp_path, size="tiny", seed=0, overwrite=True).cube
+    env = {**os.environ, "PMAP_TIMINGS": "1", "PYTHONWARNINGS": "ignore::DeprecationWarning"}
+    r = subprocess.run([sys.executable, "-m", "pmap", "process", str(cube), "-o",
+                        str(tmp_path / "r.zarr"), "-q"], capture_output=True, text=True,
+                       env=env, timeout=300)
+    assert r.returncode == 0, r.stderr
+    phases = [ln.split(": timing: ")[1].split(":")[0] for ln in r.stderr.splitlines()
+              if ": timing: " in ln]
+    assert phases == ["start-up", "imports", "load pipeline", "open cube", "whole-map pass", "blocks",
+                      "summary", "figures", "html"]
+    r2 = subprocess.run([sys.executable, "-m", "pmap", "process", str(cube), "-o",
+                         str(tmp_path / "r2.zarr"), "-q", "--no-figures"], capture_output=True,
+                        text=True, timeout=300,
+                        env={**os.environ, "PYTHONWARNINGS": "ignore::DeprecationWarning"})
+    assert r2.returncode == 0 and ": timing: " not in r2.stderr  # off by default

@@ -1,5 +1,6 @@
 """Pipeline TOML parsing and option handling (end-to-end runs are in tests/test_process.py)."""
 
+import numpy as np
 import pytest
 
 from pmap.errors import StepError
@@ -83,3 +84,37 @@ def test_properties_need_a_fit():
         load_pipeline("[properties]\nreference_energy_ev = 1.6\n")
     with pytest.raises(StepError, match="unknown \\[properties\\] key"):
         load_pipeline("[fit]\n[properties]\ngap = 1\n")
+
+
+def _nan_cube_with(finite_chunk):
+    """A 4 x 4-chunk cube (8 x 8 pixels, 2 x 2 a chunk) of NaN except one chunk (iy, ix)."""
+    import dask.array as da
+    import xarray as xr
+
+    data = np.full((8, 8, 16), np.nan, dtype=np.float32)
+    if finite_chunk is not None:
+        iy, ix = finite_chunk
+        data[2 * iy:2 * iy + 2, 2 * ix:2 * ix + 2] = 1.0
+    cube = xr.DataArray(da.from_array(data, chunks=(2, 2, 16)), dims=("y", "x", "wavelength"),
+                        coords={"wavelength": np.linspace(600, 700, 16)},
+                        attrs={"units": "counts"})
+    assert cube.data.numblocks == (4, 4, 1)
+    return cube
+
+
+@pytest.mark.parametrize("chunk", [(0, 0), (1, 1), (3, 3), (2, 1), (0, 3)])
+def test_empty_check_finds_any_finite_chunk(chunk):
+    """Not refused when one chunk anywhere holds values: one of the four sampled chunks
+    (the first, (1, 1), (2, 2)... of the 4 x 4 grid in order) or, failing those, any
+    other (the whole-cube scan)."""
+    from pmap.pipeline import _refuse_empty
+
+    _refuse_empty(_nan_cube_with(chunk))  # no error
+
+
+def test_empty_check_refuses_an_all_nan_cube():
+    from pmap.errors import StepError
+    from pmap.pipeline import _refuse_empty
+
+    with pytest.raises(StepError, match="no finite values"):
+        _refuse_empty(_nan_cube_with(None))

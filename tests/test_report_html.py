@@ -466,3 +466,18 @@ def test_caveats_of_an_assumed_medium_and_the_planck_stage(demo_store, tmp_path)
     assert "assuming air" in text
     assert "absorptivity taken as a constant 1.0 on the fitted window 1.58–1.75 eV" in text
     assert "Würfel" in text
+
+
+def test_report_from_the_opened_store_is_the_same_page(demo_store, tmp_path):
+    """dataset= (the store as the caller opened it) writes the very page that opening
+    the store again writes (same figures, same stated run time)."""
+    from pmap.report import write_figures
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PmapNotice)
+        figs = write_figures(open_result(demo_store), tmp_path / "figs")
+        a = write_html_report(demo_store, tmp_path / "a.html", figures=figs, run_time_s=1.5)
+        b = write_html_report(demo_store, tmp_path / "b.html", figures=figs, run_time_s=1.5,
+                              dataset=open_result(demo_store))
+    assert a.read_bytes() == b.read_bytes()
+    assert b"PL map report" in b.read_bytes()
