@@ -351,7 +351,7 @@ def host_aligned_difference(
     piece = data.piece
     if piece is None:
         return _aligned_pair(data, ra, rb, tolerance)
-    pa, pb = np.unique(piece[ra]), np.unique(piece[rb])
+    pa, pb = _distinct(piece[ra]), _distinct(piece[rb])
     if len(pa) == 1 and len(pb) == 1:
         return _aligned_pair(data, ra, rb, tolerance)
     rows = {int(j): np.flatnonzero(piece == j) for j in np.concatenate([pa, pb])}
@@ -366,6 +366,17 @@ def host_aligned_difference(
                 w = float(len(rows[int(i)]) * len(rows[int(j)]))
                 num, den = num + w * v, den + w
     return num / den if den > 0 else _aligned_pair(data, ra, rb, tolerance)
+
+
+def _distinct(v: np.ndarray) -> np.ndarray:
+    """``np.unique(v)`` of non-negative integers (row or cluster indices), by marking
+    them in a table instead of sorting (the same sorted values)."""
+    v = np.asarray(v)
+    if v.size == 0 or v.dtype.kind not in "iu" or v.min() < 0:
+        return np.unique(v)
+    seen = np.zeros(int(v.max()) + 1, dtype=bool)
+    seen[v] = True
+    return np.flatnonzero(seen).astype(v.dtype, copy=False)
 
 
 def _mean_rows(x: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -416,8 +427,8 @@ def _aligned_pair(data: MergeData, ra: np.ndarray, rb: np.ndarray, tolerance: fl
     if len(ha) < MIN_BORDER_PAIRS or len(hb) < MIN_BORDER_PAIRS:
         return float("nan")
     axis = np.asarray(data.axis, dtype=float)
-    host_a = _unit_mean(data, np.unique(ha))
-    host_b = _unit_mean(data, np.unique(hb))
+    host_a = _unit_mean(data, _distinct(ha))
+    host_b = _unit_mean(data, _distinct(hb))
     span = float(abs(axis[-1] - axis[0]))
     d = best_shift(host_a, host_b, axis, MAX_HOST_SHIFT * span)
     if emission_difference(host_a, np.interp(axis - d, axis, host_b)) >= HOST_AGREEMENT * tolerance:

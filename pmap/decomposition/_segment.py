@@ -75,8 +75,8 @@ def _noise_of_sum(x: np.ndarray) -> np.ndarray:
     structure inflates the estimate (conservative). Unlike a median, it is not 0 for
     sparse integer counts.
     """
-    d = np.abs(np.diff(x, axis=1))
-    sigma = 0.5 * np.sqrt(np.pi) * d.mean(axis=1)
+    d = np.diff(x, axis=1)
+    sigma = 0.5 * np.sqrt(np.pi) * np.abs(d, out=d).mean(axis=1)
     return sigma * np.sqrt(x.shape[1])
 
 
