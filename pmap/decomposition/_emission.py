@@ -272,11 +272,10 @@ def describe_spectrum(mean: np.ndarray, axis: np.ndarray, sdim: str, units: str)
 
 
 def _format_width(w: float, sdim: str, units: str) -> str:
-    if sdim == "energy":
-        return f"FWHM {w * 1000:.0f} meV"
-    if sdim == "wavelength":
-        return f"FWHM {w:.0f} nm"
-    return f"FWHM {w:.3g} {units}".rstrip()
+    """"FWHM 93 meV" (energy axis), "FWHM 12 nm" (wavelength), else in the axis units."""
+    scale, unit, fmt = {"energy": (1000.0, "meV", ".0f"), "wavelength": (1.0, "nm", ".0f")}.get(
+        sdim, (1.0, units, ".3g"))
+    return f"FWHM {w * scale:{fmt}} {unit}".rstrip()
 
 
 def region_descriptions(
