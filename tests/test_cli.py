@@ -195,3 +195,38 @@ def test_timings_name_every_phase(tmp_path):
                         text=True, timeout=300,
                         env={**os.environ, "PYTHONWARNINGS": "ignore::DeprecationWarning"})
     assert r2.returncode == 0 and ": timing: " not in r2.stderr  # off by default
+
+
+def test_quick_exit_keeps_outputs_exit_handlers_and_status(tmp_path):
+    """`python -m pmap process` leaves without the interpreter's final garbage collection
+    (pmap.cli._exit_now), yet every line of output arrives through a pipe, the exit
+    handlers registered in the process run (a sitecustomize registers one that writes a
+    file), the store is complete, and the exit status is kept (0; 2 for bad input)."""
+    import xarray as xr
+
+    from pmap.synthetic import write_demo_cube
+
+    cube = write_demo_cube(tmp_path, size="tiny", seed=0, overwrite=True).cube
+    site = tmp_path / "site"
+    site.mkdir()
+    flag = tmp_path / "atexit_ran.txt"
+    (site / "sitecustomize.py").write_text(
+        "import atexit, pathlib\n"
+        f"atexit.register(pathlib.Path({str(flag)!r}).write_text, 'ran')\n")
+    env = {**os.environ, "PYTHONWARNINGS": "ignore::DeprecationWarning",
+           "PYTHONPATH": os.pathsep.join([str(site), os.environ.get("PYTHONPATH", "")])}
+    r = subprocess.run([sys.executable, "-m", "pmap", "process", str(cube), "-o",
+                        str(tmp_path / "r.zarr"), "-q"], capture_output=True, text=True,
+                       env=env, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert flag.read_text() == "ran"
+    lines = r.stdout.splitlines()
+    assert lines[0].startswith("result store:") and lines[-1].startswith("HTML report:")
+    assert "fit:" in r.stderr
+    assert xr.open_zarr(tmp_path / "r.zarr").attrs["pmap_complete"] is True
+    flag.unlink()
+    bad = subprocess.run([sys.executable, "-m", "pmap", "process", str(tmp_path / "none.zarr"),
+                          "-o", str(tmp_path / "r2.zarr")], capture_output=True, text=True,
+                         env=env, timeout=300)
+    assert bad.returncode == 2 and "no such file" in bad.stderr
+    assert flag.read_text() == "ran"
