@@ -157,7 +157,7 @@ _LR_WIDTHS = (1.0, 1.3, 1.7, 2.3)
 #: test vectors' statistic lies above this (s.d.) but below the threshold.
 _GLR_FLOOR = -1.0
 #: Step (channels) of the line centres the alternative of that test tries first.
-_GLR_DMU = 0.25
+_GLR_DMU = 0.5
 #: Lorentzian FWHM of the joint fit's line (a Voigt line: the instrument's Gaussian and a
 #: homogeneous width), in units of the instrument's FWHM; 0 is a Gaussian line.
 _LR_LORENTZ = (0.0, 0.5, 1.2)
@@ -832,8 +832,8 @@ def _lr_extent(x, n, r, cnt, sf2, lo, hi, resid, e0, e1, kb, ms, sds, law, nz, r
     residual r (``resid``) or of x less the window floor; each channel of B costs
     _LR_CHAN_CHI2. A spike on the flank of an emitter then takes only its own channels,
     not the emitter's, which the line explains, and its values are replaced by the line
-    fitted beside it (not interpolated across an emitter's peak). A box of 3 channels or
-    more is also tried without one inner channel (two spikes on either side of an
+    fitted beside it (not interpolated across an emitter's peak). The box e0 … e1 itself,
+    when 3 channels or more, is also tried without one inner channel (two spikes on either side of an
     emitter's top: a contiguous box took the top with them, TMD scene seed 6: an
     emitter lost 30.6 % of its area; now 0.0 %). Returns whether a box was fitted (an
     instrument under _LR_FWHM_MAX_CH channels, the window inside the axis): then
@@ -881,9 +881,10 @@ def _lr_extent(x, n, r, cnt, sf2, lo, hi, resid, e0, e1, kb, ms, sds, law, nz, r
     nmu = int((w1 - w0) * 10) + 1
     for w in range(e1 - e0 + 1, 0, -1):
         for s in range(e0, e1 - w + 2):
-            # the box whole, then (3 channels or more) without one inner channel: two
-            # spikes on either side of an emitter's top, which the line then explains
-            for kp in range(s, s + w - 1 if w >= 3 else s + 1):
+            # the box whole, then (the box found, 3 channels or more) without one inner
+            # channel: two spikes on either side of an emitter's top, which the line
+            # then explains
+            for kp in range(s, s + w - 1 if w >= 3 and w == e1 - e0 + 1 else s + 1):
                 if kp == s:
                     kp = -1
                 nbox = w - 1 if kp >= 0 else w
@@ -973,7 +974,7 @@ def _glr_spike(x, n, r, cnt, sf2, lo, hi, resid, cb, kb, ms, sds, law, nz, t_sha
     sd = sds[kb]
     t2 = t_shape * t_shape
     chi0, _ = _lr_chi2(e, lvl, vf, sf, w0, w1, cb, 1, sd, law, nz, False, -1, mb, 4,
-                       cb - 2.0, 0.1, 41)
+                       cb - 2.0, 0.2, 21)
     if not chi0 > t2:  # the line fits too well for any box to gain t_shape²
         return False
     chi1, ex = _lr_chi2(e, lvl, vf, sf, w0, w1, cb, 1, sd, law, nz, True, -1, mb, 4,
