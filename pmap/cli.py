@@ -858,8 +858,9 @@ def _exit_now(code: int) -> None:
     """End the process with ``code`` once the exit handlers have run (logging, tqdm,
     multiprocessing, weakref finalizers) and the output is flushed, without the
     interpreter's final garbage collections over every object still alive (dask graphs,
-    xarray objects, numba's compiled libraries): after a 1 GB run those took 2-7 s
-    (load 1-8) between the last line printed and the prompt. Everything the command
+    xarray objects, numba's compiled libraries), measured between the last exit handler
+    and the process's end: 0.8 s after a 1 GB run (load 2.8), 6.6 s after a small one
+    (load 8.9). Everything the command
     wrote is complete and closed before (the result store, figures, HTML)."""
     import atexit
 
