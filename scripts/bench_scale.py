@@ -196,20 +196,20 @@ def _bench_cold(cmd: list[str], work: Path) -> None:
         env = {"PYTHONPATH": str(copy)}
         if warm_first:
             w, _, _, err = _run_child([sys.executable, "-m", "pmap", "warmup"], env=env)
-            rows.append((f"plcube warmup ({label})", w, LAST_CPU_S[0], err))
+            rows.append((f"plcube warmup ({label})", w, LAST_CPU_S[0], err, _load()))
         for run in ("first run", "second run"):
             shutil.rmtree(out, ignore_errors=True)
             shutil.rmtree(out.with_name(out.name.removesuffix(".zarr") + "_figures"),
                           ignore_errors=True)
             w, _, _, err = _run_child(cmd, env=env)
-            rows.append((f"{run} ({label})", w, LAST_CPU_S[0], err))
+            rows.append((f"{run} ({label})", w, LAST_CPU_S[0], err, _load()))
             if warm_first:
                 break
         shutil.rmtree(copy, ignore_errors=True)
-    for label, w, c, err in rows:
+    for label, w, c, err, load in rows:
         said = [ln.split(": ", 1)[1] for ln in err.splitlines() if "compiled " in ln]
         print(f"cold/warm:   {label}: {w:.1f} s ({c:.1f} CPU s)"
-              f"{'; ' + said[0] if said else '; nothing compiled'}; load {_load()}", flush=True)
+              f"{'; ' + said[0] if said else '; nothing compiled'}; load {load}", flush=True)
 
 
 def main() -> None:
