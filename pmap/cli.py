@@ -198,10 +198,10 @@ def _make_client(args: argparse.Namespace):
 
 def _print_fit_summary(ds) -> None:
     """The fit summary of a result on stderr, and its warning if any."""
-    from .results import fit_summary
+    from .results import fit_summary, run_summary
 
     lines, warning = fit_summary(ds)
-    for line in lines:
+    for line in run_summary(ds) + lines:
         print(f"{COMMAND}: {line}", file=sys.stderr)
     if warning:
         print(f"{COMMAND}: warning: {warning}", file=sys.stderr)

@@ -312,6 +312,10 @@ def _call(func: Any, name: str, cube: xr.DataArray, params: dict,
         raise StepError(f"step {name!r}: {exc}") from None
 
 
+#: Cleaning steps whose per-pixel effect is counted into the result (pmap.spectral._changes).
+_CLEANING_COUNTS = {"mask_bad_pixels": "masked", "remove_spikes": "replaced"}
+
+
 def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr.DataArray]:
     """Build the lazy per-pixel result Dataset for ``cube`` (computes no map).
 
@@ -323,9 +327,15 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
     into the result's provenance (``whole_map_pass``). Every block of the result then
     depends only on its own chunks; the maps stay lazy. Regions, which need the whole
     map, are made afterwards from the written store (:func:`add_regions`).
+    The result also counts, per pixel, the channels ``mask_bad_pixels`` masked
+    (``masked_channels``) and the values ``remove_spikes`` replaced
+    (``spike_values_replaced``), for the run's summary.
     Returns (result, processed_cube).
     """
+    from .spectral._changes import channel_changes
+
     whole_map = WholeMapPass()
+    counts: dict[str, xr.DataArray] = {}  # per-pixel counts of what the cleaning did
     named = any(n == "attach_noise_model" for n, _ in pipeline.steps)
     if not named and cube.attrs.get("units") == "counts" and get_noise_model(cube) is None:
         # raw counts: the noise model starts here and follows every step (pmap.noise)
@@ -340,9 +350,13 @@ def build_result(cube: xr.DataArray, pipeline: Pipeline) -> tuple[xr.Dataset, xr
         out = _run_step(name, cube, params, whole_map)
         if not isinstance(out, xr.DataArray):
             raise StepError(f"step {name!r} does not return a cube; put it in its own table")
+        kind = _CLEANING_COUNTS.get(name)
+        if kind is not None and out.shape == cube.shape:  # what the step masked or replaced
+            counts[kind] = channel_changes(cube, out, kind)
         cube = out
     prov = get_provenance(cube.attrs)
-    parts: list[xr.Dataset | xr.DataArray] = []
+    parts: list[xr.Dataset | xr.DataArray] = [
+        v.to_dataset(promote_attrs=False) for v in counts.values()]
     stages = (("descriptors", "spectral_descriptors"), ("fit", "fit_peaks"),
               ("components", "decompose"))
     for attr, step in stages:
@@ -524,7 +538,26 @@ def process(
     xarray.Dataset
         The written result, reopened lazily from the store. Figures are made
         by the edges (``plcube process`` or :func:`pmap.report.write_figures`).
+
+    Notes
+    -----
+    The linear algebra library (BLAS) runs on one thread during the run: the blocks
+    already run in parallel, and a multi-threaded BLAS sums in an order that depends
+    on its thread count, so the same cube gave NMF spectra and merge scores that
+    differed in the last bits between settings (labels were the same). The same
+    input and pipeline now give the same bits.
     """
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _process(source, out, pipeline=pipeline, peaks=peaks, model=model,
+                        regions=regions, components=components, overwrite=overwrite,
+                        resume=resume, progress=progress, read_options=read_options,
+                        memory_limit=memory_limit, client=client, planck=planck)
+
+
+def _process(source, out, *, pipeline, peaks, model, regions, components, overwrite, resume,
+             progress, read_options, memory_limit, client, planck) -> xr.Dataset:
     from ._progress import TqdmProgress, phase
 
     if isinstance(pipeline, Pipeline):

@@ -1148,6 +1148,11 @@ def _is_label_map(v: xr.DataArray) -> bool:
     return v.dtype.kind in "iub" or "flag_values" in v.attrs
 
 
+#: Maps drawn only when asked for by name: the cleaning's per-pixel counts (the run's
+#: summary and the HTML report state them; the viewer shows them).
+NO_DEFAULT_FIGURE = frozenset({"masked_channels", "spike_values_replaced"})
+
+
 def write_figures(
     ds: xr.Dataset,
     out_dir: str | Path,
@@ -1183,7 +1188,8 @@ def write_figures(
     if not isinstance(ds, xr.Dataset):
         raise StepError(f"write_figures needs an xarray Dataset, got {type(ds).__name__}")
     out = Path(out_dir)
-    names = list(ds.data_vars) if variables is None else list(variables)
+    names = ([n for n in ds.data_vars if n not in NO_DEFAULT_FIGURE] if variables is None
+             else list(variables))
     missing = [n for n in names if n not in ds.data_vars]
     if missing:
         raise StepError(f"variables {missing} are not in the dataset ({list(ds.data_vars)})")

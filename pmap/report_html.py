@@ -351,10 +351,14 @@ def _status_table(da: xr.DataArray) -> str:
 
 
 def _section_summary(ds: xr.Dataset) -> tuple[str, list[str]]:
-    from .results import fit_summary
+    from .results import fit_summary, run_summary
 
     out = ['<h2 id="summary">Fit and detection summary</h2>']
     warns: list[str] = []
+    cleaning = run_summary(ds)
+    if cleaning:  # what the cleaning masked and replaced, the Planck fit's outcome
+        out.append("<h3>Cleaning</h3><ul>" + "".join(f"<li>{_e(line)}</li>" for line in cleaning)
+                   + "</ul>")
     if "fit_status" in ds:
         lines, warning = fit_summary(ds)
         out.append("<h3>Fit status of every pixel</h3>" + _status_table(ds["fit_status"]))

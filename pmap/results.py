@@ -571,6 +571,47 @@ _STATUS_WORDS = {0: "converged", 1: "iteration limit", 2: "at a user bound", 3: 
                  4: "masked/NaN", 5: "solver failure", 6: "implausible"}
 
 
+def _share(n: int, total: int) -> str:
+    pct = 100.0 * n / max(total, 1)
+    return f"{pct:.2g} %" if pct < 1 else f"{pct:.1f} %"
+
+
+def run_summary(ds: xr.Dataset) -> list[str]:
+    """What the cleaning and the absolute-PL fit did, for the end of a run (lines).
+
+    From the small count maps ``masked_channels`` and ``spike_values_replaced`` (see
+    :func:`pmap.pipeline.build_result`): how many values were masked or replaced, in
+    how many pixels, and the most in one pixel; from ``planck_status`` and
+    ``planck_chi2_red``: how many Planck fits converged and their median χ²_red.
+    """
+    lines = []
+    words = {"masked_channels": ("masked", " (bad detector channels, saturated or dead "
+                                           "values; left out of every fit)"),
+             "spike_values_replaced": ("replaced as cosmic spikes", "")}
+    for name, (what, why) in words.items():
+        if name not in ds:
+            continue
+        c = np.asarray(ds[name].values)
+        hit = int(np.sum(c > 0))
+        total = int(c.sum())
+        if total == 0:
+            lines.append(f"cleaning: no value {what}")
+            continue
+        lines.append(f"cleaning: {total} values {what}{why}, in {hit} pixel{'s' * (hit != 1)} "
+                     f"({_share(hit, c.size)}; at most {int(c.max())} in one pixel)")
+    if "planck_status" in ds:
+        st = np.asarray(ds["planck_status"].values).ravel()
+        ok = int(np.sum(st == 0))
+        med = float("nan")
+        if "planck_chi2_red" in ds:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                med = float(np.nanmedian(np.asarray(ds["planck_chi2_red"].values)))
+        lines.append(f"planck: {st.size} pixels: converged {ok} ({_share(ok, st.size)})"
+                     + (f", median reduced chi-square {med:.3g}" if np.isfinite(med) else ""))
+    return lines
+
+
 def fit_summary(ds: xr.Dataset, *, min_converged: float = 0.8) -> tuple[list[str], str | None]:
     """What the fit did, for the end of a run: (summary lines, warning or None).
 
