@@ -603,31 +603,8 @@ def _cov_inactive(A, p, lo, hi, free_idx, scale, L, e, d, cov, work):
     Jᵀ W J singular; it is held fixed (standard practice for bounded least squares),
     its variance set NaN and its covariances 0, so the others stay defined.
     """
-    nf = A.shape[0]
-    for a in range(nf):
-        for b in range(nf):
-            work[a, b] = A[a, b]
-    act = np.zeros(nf, dtype=np.bool_)
-    for j in range(free_idx.size):
-        fj = free_idx[j]
-        if fj >= 0 and (p[j] <= lo[j] or p[j] >= hi[j]):
-            act[fj] = True
-    for a in range(nf):
-        if not (A[a, a] > 0.0):  # an exactly zero column (e.g. a peak of zero area)
-            act[a] = True
-    for a in range(nf):
-        if act[a]:
-            for b in range(nf):
-                work[a, b] = 0.0
-                work[b, a] = 0.0
-            work[a, a] = 1.0
-    _spd_inverse(work, scale, L, e, d, cov)
-    for a in range(nf):
-        if act[a]:
-            for b in range(nf):
-                cov[a, b] = 0.0
-                cov[b, a] = 0.0
-            cov[a, a] = np.nan
+    act = np.zeros(A.shape[0], dtype=np.bool_)
+    _cov_inactive_into(A, p, lo, hi, free_idx, scale, L, e, d, cov, work, act)
 
 
 @nb.njit(cache=True, error_model="numpy", _nrt=False)
