@@ -418,9 +418,35 @@ def _find_candidates(x, n, t2, lags, law, nz, z, best, cand):  # pragma: no cove
     for c in range(n):
         best[c] = 0.0
     # the background's curvature κ (from x[c ± K], x[c ± 2K], K = lags + 1, outside any
-    # spike at c) is taken out: κ·k²/2 is what a smooth peak top or band tail adds
+    # spike at c) is taken out: κ·k²/2 is what a smooth peak top or band tail adds.
+    # Inside (every lag and κ defined) over views whose indices start at 0, so the loops
+    # vectorise (an index c − k could be negative to the compiler, which then checks it
+    # for wraparound); κ is kept in z, which is rewritten below. The same arithmetic,
+    # in the same order, as the ends' loop.
     kk = lags + 1
+    a = 2 * kk
+    b = n - 2 * kk
+    if b > a:
+        m = b - a
+        kv = z[a:b]
+        x2l = x[a - 2 * kk:b - 2 * kk]
+        x2r = x[a + 2 * kk:b + 2 * kk]
+        x1l = x[a - kk:b - kk]
+        x1r = x[a + kk:b + kk]
+        d = 3.0 * kk * kk
+        for i in range(m):
+            kv[i] = ((x2l[i] + x2r[i]) - (x1l[i] + x1r[i])) / d
+        xc = x[a:b]
+        bc = best[a:b]
+        for k in range(1, lags + 1):
+            xl = x[a - k:b - k]
+            xr = x[a + k:b + k]
+            for i in range(m):
+                e = xc[i] - 0.5 * (xl[i] + xr[i]) + 0.5 * kv[i] * k * k
+                bc[i] = max(bc[i], e)
     for c in range(n):
+        if a <= c < b:
+            continue
         kap = 0.0
         if c - 2 * kk >= 0 and c + 2 * kk < n:
             kap = ((x[c - 2 * kk] + x[c + 2 * kk]) - (x[c - kk] + x[c + kk])) / (3.0 * kk * kk)
