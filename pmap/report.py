@@ -456,15 +456,25 @@ def _save(fig, path: str | Path, info: Mapping[str, Any]) -> Path:
     png = PngImagePlugin.PngInfo()
     png.add_text("Software", f"pmap {__version__}")
     png.add_text("Description", json.dumps(info))
+    rgba = np.asarray(fig.canvas.buffer_rgba())
+    # an opaque drawing (every figure here: white background) is written as RGB, the same
+    # pixels with a quarter less to compress
+    image = Image.fromarray(np.array(rgba[..., :3] if rgba[..., 3].min() == 255 else rgba))
     # the chosen dpi goes into the file, so the PNG prints at its size
-    image = Image.fromarray(np.array(fig.canvas.buffer_rgba()))
-    dpi = (_OUTPUT["dpi"], _OUTPUT["dpi"])
+    kw = {"format": "png", "dpi": (_OUTPUT["dpi"], _OUTPUT["dpi"]), "pnginfo": png,
+          "compress_level": PNG_COMPRESS_LEVEL}
     pending = getattr(_SAVES, "pending", None)
     if pending is None:
-        image.save(p, format="png", dpi=dpi, pnginfo=png)
+        image.save(p, **kw)
     else:  # inside _deferred_saves: PNG encoding (zlib, GIL released) beside the next drawing
-        pending.append(_SAVES.pool.submit(image.save, p, format="png", dpi=dpi, pnginfo=png))
+        pending.append(_SAVES.pool.submit(image.save, p, **kw))
     return p
+
+
+#: zlib level of the PNG files (lossless at any level). The 21 figures of a 698 x 698
+#: result as RGB (noisy maps compress little): 0.70 CPU s and 10.11 MB at level 1,
+#: 1.60 s and 9.69 MB at zlib's default (6).
+PNG_COMPRESS_LEVEL = 1
 
 
 _SAVES = threading.local()

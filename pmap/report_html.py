@@ -202,7 +202,11 @@ def _read_png_description(path: Path) -> dict:
         from PIL import Image
 
         with Image.open(path) as im:
-            return json.loads(im.text.get("Description", "{}"))
+            # pmap writes its text chunks before the image data: read from the header
+            # (im.text decodes the whole image to look for chunks after it too)
+            text = im.info.get("Description")
+            return json.loads(text if isinstance(text, str)
+                              else im.text.get("Description", "{}"))
     except Exception:  # noqa: BLE001 - a caption is optional
         return {}
 
