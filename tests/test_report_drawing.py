@@ -1,0 +1,86 @@
+"""Cheaper drawing of the figures gives the same pixels (issue 14): maps sampled before
+they are coloured, histograms as one outline, PNGs as RGB at a low zlib level."""
+
+import matplotlib.axes
+import numpy as np
+import pytest
+import xarray as xr
+from PIL import Image
+
+from pmap import _style, report
+
+
+def _map(ny, nx, seed=0):
+    rng = np.random.default_rng(seed)
+    v = rng.permutation(np.resize(np.linspace(-0.1, 1.1, 260), ny * nx)).reshape(ny, nx)
+    v[rng.random((ny, nx)) < 0.05] = np.nan
+    da = xr.DataArray(v, dims=("y", "x"), name="q", attrs={"units": "eV"},
+                      coords={"y": np.arange(ny) * 0.5, "x": np.arange(nx) * 0.5})
+    da.y.attrs["units"] = da.x.attrs["units"] = "um"
+    return da
+
+
+def _drawn(fig):
+    report._render(fig)
+    return np.array(fig.canvas.buffer_rgba())
+
+
+@pytest.mark.parametrize("shape", [(37, 53), (300, 310), (1100, 900)])
+def test_map_sampled_then_coloured_gives_the_pixels_of_colouring_every_value(shape):
+    """Every colour map pmap picks, at magnifications above and below 1 (and with the
+    map sampled to every k-th pixel), plus a discrete map: the same pixels as
+    matplotlib's colouring of every value before sampling."""
+    da = _map(*shape)
+    cmaps = {c for _, c in _style._CMAP_RULES} | {"viridis"}
+    for cmap in sorted(cmaps):
+        fig = report._new_figure(shape[0] / shape[1], map_layout=True)
+        ax = fig.add_subplot()
+        fig.get_layout_engine().ax = ax
+        art = report._draw_map(ax, da, cmap=cmap, vlim=(0.0, 1.0))
+        assert art.image.get_interpolation_stage() == "data"
+        ours = _drawn(fig)
+        art.image.set_interpolation_stage("rgba")
+        assert np.array_equal(ours, _drawn(fig)), cmap
+    levels = da.copy(data=np.where(np.isfinite(da.values), np.round(da.values * 5), np.nan))
+    levels.attrs = {"units": "1"}  # whole and dimensionless: discrete colours
+    fig = report._new_figure(shape[0] / shape[1], map_layout=True)
+    ax = fig.add_subplot()
+    fig.get_layout_engine().ax = ax
+    art = report._draw_map(ax, levels)
+    assert art.levels is not None
+    ours = _drawn(fig)
+    art.image.set_interpolation_stage("rgba")
+    assert np.array_equal(ours, _drawn(fig))
+
+
+def test_histogram_outline_has_the_pixels_of_one_bar_per_bin(tmp_path, monkeypatch):
+    rng = np.random.default_rng(1)
+    values = np.concatenate([rng.normal(0, 1, 300), rng.normal(8, 0.2, 50)])  # a gap
+    da = xr.DataArray(values, dims=("n",), name="peak_energy", attrs={"units": "eV"})
+    for log in (False, True):
+        ours = np.asarray(Image.open(report.plot_histogram(da, tmp_path / "a.png", log=log)))
+        hist = matplotlib.axes.Axes.hist
+        with monkeypatch.context() as m:
+            m.setattr(matplotlib.axes.Axes, "hist",
+                      lambda self, *a, **k: hist(self, *a, **{**k, "histtype": "bar"}))
+            bars = np.asarray(Image.open(report.plot_histogram(da, tmp_path / "b.png", log=log)))
+        assert np.array_equal(ours, bars)
+
+
+def test_png_is_rgb_with_the_drawing_pixels(tmp_path, monkeypatch):
+    """An opaque figure is written as RGB (the alpha it drops is 255 everywhere)."""
+    drawn = []
+    save = report._save
+
+    def keep(fig, path, info):
+        out = save(fig, path, info)
+        drawn.append(np.array(fig.canvas.buffer_rgba()))
+        return out
+
+    monkeypatch.setattr(report, "_save", keep)
+    path = report.plot_map(_map(40, 60), tmp_path / "m.png")
+    with Image.open(path) as im:
+        assert im.mode == "RGB"
+        pixels = np.asarray(im)
+    assert (drawn[0][..., 3] == 255).all()
+    assert np.array_equal(pixels, drawn[0][..., :3])
