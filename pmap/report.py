@@ -655,9 +655,10 @@ def _draw_map(
         aspect="equal",
         extent=(*x_ext, *y_ext),
         interpolation="nearest",
-        # nearest samples taken from the values, then coloured (matplotlib's default below
-        # 3x magnification colours every value of the map first): the same pixels (every
-        # matplotlib colour map compared at 4 map sizes), 13 ms less per 698 x 698 map
+        # nearest samples taken from the values, then coloured (matplotlib 3.11's default
+        # below 3x magnification colours every value of the map first): the same pixels
+        # (every colour map of matplotlib 3.11 compared at 4 map sizes), 13 ms less per
+        # 698 x 698 map
         interpolation_stage="data",
         **kw,
     )
