@@ -144,8 +144,10 @@ def _convert_axis(
         take = slice(None, None, -1)
     else:
         take = order
-    dens = noise_scaled(cube.astype(out_dtype) * factor, cube, factor, f"to_{dim} Jacobian")
-    dens = dens.isel(wavelength=take)
+    # channels put in order first: the product is then written in order (C-contiguous);
+    # a reversed view of it would be copied again by every block function after it
+    src, factor = cube.astype(out_dtype).isel(wavelength=take), factor.isel(wavelength=take)
+    dens = noise_scaled(src * factor, src, factor, f"to_{dim} Jacobian")
     keep = (SCALE_COORD, PEDESTAL_COORD)  # the noise model's coordinates follow the channels
     dens = dens.drop_vars(
         [c for c in dens.coords if "wavelength" in dens[c].dims and c not in keep]

@@ -105,50 +105,55 @@ def _mask_core(
     """
     n = x.shape[-1]
     flat = np.ascontiguousarray(x.reshape(-1, n))  # floating: the step casts first
-    code = np.zeros(flat.shape, dtype=np.uint8)
+    code = np.empty((0, n) if masked else flat.shape, dtype=np.uint8)
     out = np.empty(flat.shape, dtype=flat.dtype) if masked else flat[:0]
     level = np.nan if sat_level is None else float(sat_level)
     top = float(np.asarray(gmax).reshape(())) if auto_sat else np.nan
-    _mask_rows(flat, np.asarray(hot, dtype=np.bool_).reshape(n), level, top, dead, code, out)
+    hot_code = np.where(np.asarray(hot, dtype=np.bool_).reshape(n), np.uint8(4), np.uint8(0))
+    _mask_rows(flat, hot_code, level, top, dead, code, out)
     return (out if masked else code).reshape(x.shape)
 
 
 @numba.njit(cache=True, nogil=True)
-def _mask_rows(flat, hot, level, top, dead, code, out):  # pragma: no cover - compiled
-    """Bad-value codes of rows (m, n) into code; if out has rows, the masked values too.
+def _mask_rows(flat, hot_code, level, top, dead, code, out):  # pragma: no cover - compiled
+    """Bad-value codes of rows (m, n) into code and/or the masked values into out
+    (each written if it has rows; branch-free passes over each row, in cache).
 
-    level: fixed saturation level (NaN: none); top: estimated level, where only runs of
-    two or more adjacent values at or above it count (NaN: none).
+    hot_code (n,) uint8: 4 on hot or bad channels, else 0. level: fixed saturation
+    level (NaN: none); top: estimated level, where only runs of two or more adjacent
+    values at or above it count (NaN: none; used only without a fixed level). A row is
+    dead when it holds no number other than NaN, or one value only.
     """
     m, n = flat.shape
     fill = out.shape[0] > 0
+    keep = code.shape[0] > 0
+    plateau = level != level and top == top and n > 1
+    row_code = np.empty(n, dtype=np.uint8)
     for i in range(m):
-        if dead:
-            lo = np.inf
-            hi = -np.inf
-            for j in range(n):
-                v = flat[i, j]
-                if v < lo:
-                    lo = v
-                if v > hi:
-                    hi = v
-            if lo == hi or lo > hi:  # constant, or all NaN
-                for j in range(n):
-                    code[i, j] = 1
+        x = flat[i]
+        c = code[i] if keep else row_code
+        first = 0
+        while first < n and x[first] != x[first]:
+            first += 1
+        ref = x[first] if first < n else x[0]
+        differs = 0  # numbers other than ref (NaN never differs)
         for j in range(n):
-            v = flat[i, j]
-            c = code[i, j]
-            if level == level:
-                if v >= level:
-                    c |= 2
-            elif top == top and v >= top:
-                if (j > 0 and flat[i, j - 1] >= top) or (j < n - 1 and flat[i, j + 1] >= top):
-                    c |= 2
-            if hot[j]:
-                c |= 4
-            code[i, j] = c
-            if fill:
-                out[i, j] = np.nan if c else v
+            v = x[j]
+            differs += (v != ref) & (v == v)
+            c[j] = hot_code[j] | (np.uint8(2) if v >= level else np.uint8(0))
+        if plateau:
+            c[0] |= np.uint8(2) if (x[0] >= top) & (x[1] >= top) else np.uint8(0)
+            for j in range(1, n - 1):
+                run = (x[j] >= top) & ((x[j - 1] >= top) | (x[j + 1] >= top))
+                c[j] |= np.uint8(2) if run else np.uint8(0)
+            c[n - 1] |= np.uint8(2) if (x[n - 1] >= top) & (x[n - 2] >= top) else np.uint8(0)
+        if dead and differs == 0:
+            for j in range(n):
+                c[j] |= np.uint8(1)
+        if fill:
+            o = out[i]
+            for j in range(n):
+                o[j] = np.nan if c[j] else x[j]
 
 
 @register_step("mask_bad_pixels")

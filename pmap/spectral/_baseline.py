@@ -11,7 +11,7 @@ import xarray as xr
 from ..errors import StepError
 from ..noise import noise_correlated, noise_subtracted
 from ..steps import register_step
-from ._common import check_cube, finish, map_spectra
+from ._common import check_cube, finish, float_dtype, map_spectra
 
 __all__ = ["als_baseline", "remove_baseline", "smooth"]
 
@@ -163,6 +163,40 @@ def _windows_mask(axis: np.ndarray, window: Any) -> np.ndarray:
     return mask
 
 
+@numba.njit(cache=True, nogil=True, error_model="numpy")  # 0 / 0: NaN, as in numpy
+def _window_means_rows(flat, idx, out):  # pragma: no cover - compiled
+    """out[i] = mean of flat[i, idx] over the non-NaN values (NaN if none), float64.
+
+    Summed from 0.0 in channel order, as np.nanmean(x[..., idx], axis=-1,
+    dtype=np.float64) sums a block of several spectra (the gathered channels lie
+    outermost in memory); a float64 sum of float32 values is exact anyway unless they
+    span some 29 binary orders of magnitude.
+    """
+    for i in range(flat.shape[0]):
+        total = 0.0
+        count = 0
+        for j in idx:
+            v = np.float64(flat[i, j])
+            finite = v == v
+            total += v if finite else 0.0
+            count += finite
+        out[i] = total / count
+
+
+def _window_means(x: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """Mean of each spectrum (…, n) over the channels ``idx``, NaN ignored (…), float64."""
+    flat = np.ascontiguousarray(x.reshape(-1, x.shape[-1]))
+    out = np.empty(flat.shape[0])
+    _window_means_rows(flat, idx, out)
+    return out.reshape(x.shape[:-1])
+
+
+def _minus_level(x: np.ndarray, level: np.ndarray) -> np.ndarray:
+    """Spectra x (…, n) minus one level each (…), the level cast to x's dtype first;
+    returned in the floating dtype that holds x."""
+    return np.asarray(x - level.astype(x.dtype)[..., None], dtype=float_dtype(x.dtype))
+
+
 def _poly_baseline(
     x: np.ndarray, t: np.ndarray, degree: int, mask: np.ndarray | None, max_iter: int, tol: float
 ) -> np.ndarray:
@@ -273,22 +307,22 @@ def remove_baseline(
         else:
             mask = _windows_mask(axis, window)
 
-        def core(x):
-            return x - np.nanmean(x[..., mask], axis=-1, keepdims=True, dtype=np.float64).astype(
-                x.dtype
-            )
-
+        # each spectrum's mean over the windows (float64, NaN ignored), computed once:
+        # it is subtracted, and it joins the noise model's pedestal
+        base = xr.apply_ufunc(_window_means, cube, input_core_dims=[[sdim]],
+                              kwargs={"idx": np.flatnonzero(mask)}, dask="parallelized",
+                              output_dtypes=[np.float64])
+        out = xr.apply_ufunc(_minus_level, cube, base, input_core_dims=[[sdim], []],
+                             output_core_dims=[[sdim]], dask="parallelized",
+                             output_dtypes=[float_dtype(cube.dtype)], keep_attrs=True)
         params.update(window=window)
     else:
         raise StepError(f"unknown baseline method {method!r}; use 'als', 'poly' or 'constant'")
-    out = map_spectra(core, cube, sdim)
+    if method != "constant":
+        out = map_spectra(core, cube, sdim)
+        base = cube - out
     # the noise model keeps the variance of the raw counts: the subtracted baseline
     # joins the pedestal (a per-pixel constant for "constant", else per channel)
-    if method == "constant":
-        idx = np.flatnonzero(mask)
-        base = cube.isel({sdim: idx}).astype(np.float64).mean(sdim, skipna=True)
-    else:
-        base = cube - out
     out = noise_subtracted(out, cube, base, f"remove_baseline {method}")
     return finish(out, cube, "remove_baseline", params)
 
