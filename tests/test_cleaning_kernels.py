@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 import pmap
-from pmap.spectral._badpixels import _mask_core
+from pmap.spectral._badpixels import _hot_votes_rows, _mask_core
 from pmap.spectral._baseline import _window_means
 
 
@@ -105,3 +105,20 @@ def test_to_energy_blocks_are_in_channel_order(rng):
     assert block.flags["C_CONTIGUOUS"]
     assert np.all(np.diff(out["energy"].values) > 0)
     np.testing.assert_array_equal(out.values, pmap.to_energy(cube.compute()).values)
+
+
+def test_hot_votes_at_the_ends_inside_and_next_to_nan(rng):
+    n = 40
+    x = rng.normal(0.0, 1.0, (5, n))
+    x[0, 0] += 100.0  # first channel: above its one neighbour
+    x[1, n - 1] += 100.0  # last channel
+    x[2, 7] += 100.0  # inside
+    x[3, 7] += 100.0
+    x[3, 8] = np.nan  # a NaN neighbour: no vote
+    x[4, 20] += 100.0
+    x[4, 21] += 100.0  # two channels: no vote
+    votes = np.zeros(n)
+    _hot_votes_rows(x, 10.0, votes)
+    expected = np.zeros(n)
+    expected[[0, n - 1, 7]] = 1.0
+    np.testing.assert_array_equal(votes, expected)
