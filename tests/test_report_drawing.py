@@ -60,12 +60,15 @@ def test_histogram_outline_has_the_pixels_of_one_bar_per_bin(tmp_path, monkeypat
     rng = np.random.default_rng(1)
     values = np.concatenate([rng.normal(0, 1, 300), rng.normal(8, 0.2, 50)])  # a gap
     da = xr.DataArray(values, dims=("n",), name="peak_energy", attrs={"units": "eV"})
+    hist = matplotlib.axes.Axes.hist
+
+    def bars_hist(self, *a, **k):
+        return hist(self, *a, **{**k, "histtype": "bar"})
+
     for log in (False, True):
         ours = np.asarray(Image.open(report.plot_histogram(da, tmp_path / "a.png", log=log)))
-        hist = matplotlib.axes.Axes.hist
         with monkeypatch.context() as m:
-            m.setattr(matplotlib.axes.Axes, "hist",
-                      lambda self, *a, **k: hist(self, *a, **{**k, "histtype": "bar"}))
+            m.setattr(matplotlib.axes.Axes, "hist", bars_hist)
             bars = np.asarray(Image.open(report.plot_histogram(da, tmp_path / "b.png", log=log)))
         assert np.array_equal(ours, bars)
 
