@@ -230,3 +230,23 @@ def test_quick_exit_keeps_outputs_exit_handlers_and_status(tmp_path):
                          env=env, timeout=300)
     assert bad.returncode == 2 and "no such file" in bad.stderr
     assert flag.read_text() == "ran"
+
+
+def test_local_run_does_not_import_distributed(tmp_path):
+    """Without --workers/--scheduler, `plcube process` tells dask its scheduler (threads) and
+    rechunk method (tasks) up front, which is what dask picks with no client: dask finds
+    that out by importing distributed (~0.2 s of every run) when it is installed."""
+    pytest.importorskip("distributed")  # the 'distributed' extra; CI installs it
+    from pmap.synthetic import write_demo_cube
+
+    cube = write_demo_cube(tmp_path, size="tiny", seed=0, overwrite=True).cube
+    code = ("import sys; from pmap.cli import main; "
+            f"rc = main(['process', {str(cube)!r}, '-o', {str(tmp_path / 'r.zarr')!r}, '-q', "
+            "'--no-figures']); print('distributed' in sys.modules, rc)")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                       timeout=300, env={**os.environ, "PYTHONWARNINGS": "ignore"})
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.split()[-2:] == ["False", "0"]
+    import xarray as xr  # and the run is complete
+
+    assert bool(xr.open_zarr(tmp_path / "r.zarr").attrs["pmap_complete"])

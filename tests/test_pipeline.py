@@ -112,6 +112,21 @@ def test_empty_check_finds_any_finite_chunk(chunk):
     _refuse_empty(_nan_cube_with(chunk))  # no error
 
 
+def test_empty_check_reads_whole_blocks_when_their_centres_are_empty():
+    """Values only at a block's corner: the few centre pixels read first miss them, the
+    whole sampled block finds them (not refused)."""
+    import dask.array as da
+    import xarray as xr
+
+    from pmap.pipeline import _refuse_empty
+
+    data = np.full((40, 40, 8), np.nan, dtype=np.float32)
+    data[20, 39] = 1.0  # the corner of chunk (1, 1), far from its centre (30, 30)
+    cube = xr.DataArray(da.from_array(data, chunks=(20, 20, 8)), dims=("y", "x", "wavelength"),
+                        coords={"wavelength": np.linspace(600, 700, 8)})
+    _refuse_empty(cube)  # no error
+
+
 def test_empty_check_refuses_an_all_nan_cube():
     from pmap.errors import StepError
     from pmap.pipeline import _refuse_empty
