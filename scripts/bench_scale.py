@@ -138,6 +138,12 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
     summary = [ln for ln in err.splitlines() if "converged" in ln][:1]
     work_s = wall_p - startup
     work_cpu = cpu_p - startup_cpu
+    # the default keeps the processed cube in the result up to 512 MiB (keep_cube = "auto"):
+    # a run that writes it does more work than one that does not, so the table says which
+    kept = (res / "intensity").exists()
+    if kept:
+        print("kept cube:   the result holds the processed cube (keep_cube = auto keeps it "
+              "up to 512 MiB): its writing is part of this run's time")
     print(f"end to end:  {wall_p:.1f} s for the command ({work_s:.1f} s after startup, "
           f"{cpu_p:.1f} CPU s), "
           f"{n / work_s:,.0f} spectra/s, peak RSS {rss_p:.0f} MiB (limit {args.memory_limit})"
@@ -155,7 +161,7 @@ def bench_one(size_gb: float, args, work: Path) -> dict:
     if args.cold:
         _bench_cold(cmd, work)
     return {"gb": side * side * args.channels * 4 / 1e9, "read": read["seconds"],
-            "read_cpu": read["cpu_seconds"], "process_cpu": work_cpu, "process": work_s, "startup": startup, "info": info_s, "rss_read": rss_r, "rss_process": rss_p}
+            "read_cpu": read["cpu_seconds"], "process_cpu": work_cpu, "process": work_s, "kept": kept, "startup": startup, "info": info_s, "rss_read": rss_r, "rss_process": rss_p}
 
 
 #: Phases of a run whose time follows the cube's size (the rest are fixed costs).
@@ -256,14 +262,15 @@ def main() -> None:
         icpt = my - slope * mx
         print(f"scaling: process time = {icpt:.1f} s + {slope:.1f} s/GB x size (least squares)")
         print(" GB      read s  process s  ratio  s/GB   off line  RSS read  RSS process"
-              "  CPU ratio")
+              "  CPU ratio  cube kept")
         for r in rows:
             line = icpt + slope * r["gb"]
             print(f"{r['gb']:5.2f}  {r['read']:8.1f}  {r['process']:9.1f}  "
                   f"{r['process'] / r['read']:5.1f}  {r['process'] / r['gb']:5.1f}  "
                   f"{100 * (r['process'] - line) / line:+7.1f} %  {r['rss_read']:6.0f} MiB"
                   f"  {r['rss_process']:6.0f} MiB"
-                  f"  {r['process_cpu'] / max(r['read_cpu'], 1e-9):9.1f}")
+                  f"  {r['process_cpu'] / max(r['read_cpu'], 1e-9):9.1f}"
+                  f"  {'yes' if r['kept'] else 'no':>9}")
     last = rows[-1]
     # CPU seconds compare better than wall time on a shared machine (other jobs taking
     # cores stretch the wall time of both runs differently)
