@@ -112,9 +112,9 @@ def test_empty_check_finds_any_finite_chunk(chunk):
     _refuse_empty(_nan_cube_with(chunk))  # no error
 
 
-def test_empty_check_reads_whole_blocks_when_their_centres_are_empty():
-    """Values only at a block's corner: the few centre pixels read first miss them, the
-    whole sampled block finds them (not refused)."""
+def test_empty_check_finds_one_value_at_a_chunk_corner():
+    """One finite value, at the corner of a sampled chunk far from its centre: the cube
+    is not refused."""
     import dask.array as da
     import xarray as xr
 
