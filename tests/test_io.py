@@ -287,3 +287,32 @@ def test_cube_info(tmp_path, cube, data):
     assert "600 .. 650 nm" in text and "remove_spikes" in text and "0.5/0.5 um" in text
     quick = cube_info(out, value_range=False)
     assert quick["value_min"] is None and "values" not in format_cube_info(quick)
+
+
+def test_zarr_opened_in_processing_chunks_reads_stored_chunks_directly(tmp_path):
+    """A Zarr cube is opened with the chunks it is processed in when they are whole
+    multiples of the stored ones: one read task per processing chunk, no merge layer,
+    the same values; a target that splits a stored chunk keeps the read-then-split path."""
+    import warnings
+
+    from pmap.io import open_cube
+
+    rng = np.random.default_rng(3)
+    data = rng.normal(100, 5, (40, 48, 32)).astype(np.float32)
+    cube = make_cube(data, wavelength_nm=np.linspace(600, 700, 32))
+    path = tmp_path / "c.zarr"
+    cube.to_dataset(name="intensity").to_zarr(path, encoding={"intensity": {"chunks": (8, 8, 32)}})
+    mib_16_tiles = 16 * 8 * 8 * 32 * 4 / 2**20  # 16 stored chunks' worth
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UserWarning)  # xarray's "separate the stored chunks"
+        for target, merged in ((mib_16_tiles, True), (0.002, False)):
+            got = open_cube(path, target_chunk_mib=target)
+            np.testing.assert_array_equal(got.values, data)
+            layers = list(got.data.__dask_graph__().layers)
+            cy, cx = got.data.chunks[0][0], got.data.chunks[1][0]
+            if merged:
+                assert cy % 8 == 0 and cx % 8 == 0 and cy * cx > 64  # several stored chunks
+                assert not any(name.startswith("rechunk") for name in layers), layers
+                assert got.data.npartitions == -(-40 // cy) * -(-48 // cx)
+            else:  # each stored 8 x 8 chunk read once, then split
+                assert cy < 8 and any(name.startswith("rechunk") for name in layers), layers

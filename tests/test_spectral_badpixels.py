@@ -72,3 +72,56 @@ def test_hot_channel_vote_on_a_large_map_is_chunking_independent(rng):
     assert np.flatnonzero(masks[0]).tolist() == [17]
     for m in masks[1:]:
         np.testing.assert_array_equal(m, masks[0])
+
+
+def test_hot_channel_vote_on_tiles_spread_over_a_large_map(rng, monkeypatch):
+    # A large chunked map votes only in tiles spread over the map (lowered here to 8 of
+    # 64 tiles of 50 x 50 pixels, 20000 spectra, 5000 voters on the lattice). Hot
+    # channels (common practice: a hot CCD column adds counts in every spectrum, or in
+    # part of them when it flickers) with vote shares 1.0, 0.8 and 0.2 are decided as by
+    # the whole map (binomial s.e. of a share <= 0.007 at n = 5000), whatever the
+    # chunking, and only the chunks holding a tile are read.
+    import dask.array as da
+
+    from pmap.spectral import _badpixels
+    from pmap.steps import WholeMapPass
+
+    monkeypatch.setattr(_badpixels, "HOT_VOTE_TILE", 50)
+    assert _badpixels._vote_tiles(300, 300) is None  # <= 131072 spectra: all vote
+    monkeypatch.setattr(_badpixels, "HOT_VOTE_SAMPLE_SPECTRA", 20000)
+    tiles = _badpixels._vote_tiles(400, 400)
+    assert len(tiles) == 8 and tiles[0] == (0, 50, 0, 50) and tiles[-1] == (350, 400, 350, 400)
+    wl = np.linspace(600, 700, 24)
+    full = 100 + rng.normal(0, 3, (400, 400, 24))
+    full[:, :, 5] += 60.0
+    full[:, :, 11] += 60.0 * (rng.random((400, 400)) < 0.8)
+    full[:, :, 19] += 60.0 * (rng.random((400, 400)) < 0.2)
+    full = full.astype(np.float32)
+    read = []
+
+    def make(block_info=None):
+        (y0, y1), (x0, x1), _ = block_info[None]["array-location"]
+        read.append((y0, x0))
+        return full[y0:y1, x0:x1]
+
+    masks = []
+    for cy, cx in ((100, 100), (30, 70)):
+        data = da.map_blocks(make, chunks=(_split(400, cy), _split(400, cx), (24,)),
+                             dtype=np.float32)
+        cube = pmap.make_cube(data, wavelength_nm=wl)
+        read.clear()
+        wm = WholeMapPass()  # the vote alone, as the pipeline's whole-map pass runs it
+        mask_bad_pixels(cube, dead=False, saturated=False, whole_map=wm)
+        masks.append(wm.records[-1]["values"]["hot_channels"]["true_at"])
+        holding = {(y - y % cy, x - x % cx) for t in tiles
+                   for y in range(t[0], t[1]) for x in range(t[2], t[3])}
+        assert set(read) == holding, (cy, cx)
+    monkeypatch.setattr(_badpixels, "HOT_VOTE_SAMPLE_SPECTRA", 10**9)  # the whole map votes
+    wm = WholeMapPass()
+    mask_bad_pixels(pmap.make_cube(full, wavelength_nm=wl).chunk({"y": 100, "x": 100}),
+                    dead=False, saturated=False, whole_map=wm)
+    assert masks[0] == masks[1] == wm.records[-1]["values"]["hot_channels"]["true_at"] == [5, 11]
+
+
+def _split(n, c):
+    return (c,) * (n // c) + ((n % c,) if n % c else ())

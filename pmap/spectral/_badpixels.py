@@ -45,9 +45,47 @@ def hot_channels(
 #: (every other pixel in y and in x); smaller maps vote with every spectrum.
 HOT_VOTE_SUBSAMPLE_FROM = 16384
 
+#: Chunked maps of more spectra than this vote (on the same lattice) only in tiles of
+#: HOT_VOTE_TILE x HOT_VOTE_TILE pixels spread evenly over the map, as few as hold this
+#: many spectra, so the whole-map pass reads a sample instead of the cube. The tiles
+#: depend on the map's shape only, never on the chunking or the memory limit. A majority
+#: of n >= 32768 voters is decided as the whole map's unless the channel's vote share
+#: lies within about 3 * 0.5 / sqrt(n) = 0.8 % of one half (for a spatially uniform share).
+HOT_VOTE_SAMPLE_SPECTRA = 131072
+HOT_VOTE_TILE = 64
+
+
+def _vote_tiles(ny: int, nx: int) -> list[tuple[int, int, int, int]] | None:
+    """(y0, y1, x0, x1) of the tiles the hot-channel vote reads, or None for the whole map.
+
+    The map is cut into HOT_VOTE_TILE-pixel tiles from (0, 0) (stored chunks of that
+    size or a multiple line up with them); the fewest tiles, spread evenly in row-major
+    order, that hold HOT_VOTE_SAMPLE_SPECTRA spectra.
+    """
+    t = HOT_VOTE_TILE
+    ty, tx = -(-ny // t), -(-nx // t)
+    n = ty * tx
+    if ny * nx <= HOT_VOTE_SAMPLE_SPECTRA:
+        return None
+    h = np.minimum(t, ny - t * np.arange(ty))
+    w = np.minimum(t, nx - t * np.arange(tx))
+    sizes = np.multiply.outer(h, w).ravel()
+    for m in range(1, n + 1):
+        pick = np.unique(np.linspace(0, n - 1, m).round().astype(int))
+        if int(sizes[pick].sum()) >= HOT_VOTE_SAMPLE_SPECTRA:
+            break
+    if pick.size == n:
+        return None
+    out = []
+    for k in pick:
+        iy, ix = divmod(int(k), tx)
+        out.append((iy * t, min(ny, (iy + 1) * t), ix * t, min(nx, (ix + 1) * t)))
+    return out
+
 
 def _block_hot_votes(
-    block: np.ndarray, threshold: float, stride: int = 1, block_info=None
+    block: np.ndarray, threshold: float, stride: int = 1, block_info=None,
+    offset: tuple[int, int] = (0, 0),
 ) -> np.ndarray:
     """Per channel, how many spectra of one chunk show a one-channel excess (shape (1,..,1,n)).
 
@@ -55,12 +93,14 @@ def _block_hot_votes(
     ``threshold`` noise s.d. (noise from the MAD of the spectrum's first difference). A
     real emission line spans several channels and so never votes; a cosmic spike votes
     in one spectrum only. With ``stride`` > 1 only the pixels whose map indices y and x
-    are multiples of ``stride`` vote (a fixed lattice: the same whatever the chunking).
+    are multiples of ``stride`` vote (a fixed lattice: the same whatever the chunking);
+    ``offset``: the map indices (y, x) of the first pixel of the array the block is of.
     """
     n = block.shape[-1]
     if stride > 1:
         loc = block_info[0]["array-location"] if block_info else None
         y0, x0 = (loc[-3][0], loc[-2][0]) if loc else (0, 0)
+        y0, x0 = y0 + offset[0], x0 + offset[1]
         block = block[..., (-y0) % stride :: stride, (-x0) % stride :: stride, :]
     flat = block.reshape(-1, n)
     votes = np.zeros(n, dtype=np.float64)
@@ -187,7 +227,9 @@ def mask_bad_pixels(
         Mask hot detector channels: channels that exceed both neighbours by more
         than ``hot_threshold`` noise s.d. in more than half of the spectra (on maps of
         16384 spectra or more, half of a fixed lattice of one spectrum in four: every
-        other pixel in y and x).
+        other pixel in y and x; on chunked maps of more than 131072 spectra, that
+        lattice within 64 x 64-pixel tiles spread over the map that hold 131072 spectra,
+        fixed by the map's shape: see ``HOT_VOTE_SAMPLE_SPECTRA``).
     bad_channels : list of int, optional
         Channel indices (0-based, ascending axis) to mask in every spectrum.
     return_mask : bool
@@ -206,8 +248,9 @@ def mask_bad_pixels(
     Notes
     -----
     The hot-channel test and the estimated saturation level need a reduction over the
-    whole cube (hot-channel votes, maximum) before the masking pass: computing the result
-    reads the cube twice.
+    map (hot-channel votes, maximum) before the masking pass: computing the result reads
+    the cube twice when the level is estimated (the maximum of every value), else the
+    vote's tiles and then the cube.
     """
     cube, sdim = check_cube(cube)
     n = cube.sizes[sdim]
@@ -228,16 +271,30 @@ def mask_bad_pixels(
         canonical = cube.dims[-3:-1] == ("y", "x")
         big = ny * nx >= HOT_VOTE_SUBSAMPLE_FROM and min(ny, nx) >= 2
         stride = 2 if canonical and big else 1
-        votes = data.map_blocks(
-            _block_hot_votes,
-            chunks=(*one, data.chunks[-1]),
-            dtype=np.float64,
-            threshold=float(hot_threshold),
-            stride=stride,
-        )
-        voters = -(-ny // stride) * -(-nx // stride)
-        n_spectra = cube.size // (ny * nx * n) * voters
-        hot_mask = (da.sum(votes, axis=lead) > 0.5 * n_spectra) | bad
+        tiles = (_vote_tiles(ny, nx) if canonical and data.ndim == 3
+                 and isinstance(data, da.Array) else None)
+        if tiles is None:
+            votes = data.map_blocks(
+                _block_hot_votes,
+                chunks=(*one, data.chunks[-1]),
+                dtype=np.float64,
+                threshold=float(hot_threshold),
+                stride=stride,
+            )
+            voters = -(-ny // stride) * -(-nx // stride)
+            n_spectra = cube.size // (ny * nx * n) * voters
+            hot_mask = (da.sum(votes, axis=lead) > 0.5 * n_spectra) | bad
+        else:  # tiles spread over the map (HOT_VOTE_SAMPLE_SPECTRA), the same lattice
+            parts, n_spectra = [], 0
+            for y0, y1, x0, x1 in tiles:
+                tile = data[y0:y1, x0:x1]
+                parts.append(tile.map_blocks(
+                    _block_hot_votes, chunks=(*((1,) * len(c) for c in tile.chunks[:2]), (n,)),
+                    dtype=np.float64, threshold=float(hot_threshold), stride=stride,
+                    offset=(y0, x0)).sum(axis=(0, 1)))
+                n_spectra += len(range(-(-y0 // stride) * stride, y1, stride)) * len(
+                    range(-(-x0 // stride) * stride, x1, stride))
+            hot_mask = (da.stack(parts).sum(axis=0) > 0.5 * n_spectra) | bad
     else:
         hot_mask = da.from_array(bad, chunks=-1)
     level = (
