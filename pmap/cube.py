@@ -44,6 +44,7 @@ __all__ = [
     "choose_spatial_chunks",
     "rechunk_cube",
     "spread_blocks",
+    "spread_indices",
 ]
 
 _SPECTRAL_UNIT_FACTORS = {
@@ -323,6 +324,10 @@ def spread_blocks(data: Any, max_blocks: int) -> list:
     if not isinstance(data, da.Array):
         return [data]
     grid = [len(c) for c in data.chunks]
-    n = int(np.prod(grid))
-    pick = np.unique(np.linspace(0, n - 1, min(int(max_blocks), n)).round().astype(int))
+    pick = spread_indices(int(np.prod(grid)), max_blocks)
     return [data.blocks[np.unravel_index(int(k), grid)] for k in pick]
+
+
+def spread_indices(n: int, m: int) -> np.ndarray:
+    """At most ``m`` of the indices 0 … n−1, spread evenly (both ends included), ascending."""
+    return np.unique(np.linspace(0, n - 1, min(int(m), n)).round().astype(int))

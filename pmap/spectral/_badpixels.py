@@ -10,6 +10,7 @@ import numpy as np
 import xarray as xr
 from scipy import ndimage
 
+from ..cube import spread_indices
 from ..errors import StepError
 from ..steps import WholeMapPass, register_step, whole_map_values
 from ._common import check_cube, finish, float_dtype
@@ -60,7 +61,8 @@ def _vote_tiles(ny: int, nx: int) -> list[tuple[int, int, int, int]] | None:
 
     The map is cut into HOT_VOTE_TILE-pixel tiles from (0, 0) (stored chunks of that
     size or a multiple line up with them); the fewest tiles, spread evenly in row-major
-    order, that hold HOT_VOTE_SAMPLE_SPECTRA spectra.
+    order (:func:`pmap.cube.spread_indices`, as the other whole-map samples), that hold
+    HOT_VOTE_SAMPLE_SPECTRA spectra.
     """
     t = HOT_VOTE_TILE
     ty, tx = -(-ny // t), -(-nx // t)
@@ -71,7 +73,7 @@ def _vote_tiles(ny: int, nx: int) -> list[tuple[int, int, int, int]] | None:
     w = np.minimum(t, nx - t * np.arange(tx))
     sizes = np.multiply.outer(h, w).ravel()
     for m in range(1, n + 1):
-        pick = np.unique(np.linspace(0, n - 1, m).round().astype(int))
+        pick = spread_indices(n, m)
         if int(sizes[pick].sum()) >= HOT_VOTE_SAMPLE_SPECTRA:
             break
     if pick.size == n:
