@@ -98,6 +98,27 @@ def test_weideman_faddeeva_accuracy():
         assert np.max(np.abs(wr + 1j * wi - ref[j])) < 1e-6 * np.abs(wofz(1j * zi[j, 0]))
 
 
+def test_compiled_exponential_against_numpy():
+    # the fit's branch-free exp(t), t <= 0, in a vectorised loop as the fit runs it,
+    # against numpy's exp (libm); exact at t = k*ln2 rounded to double (IEEE-754
+    # doubles: 2**k is exact for k >= -1022, common practice)
+    import numba as nb
+
+    @nb.njit(fastmath=K.FM)
+    def row(t):
+        out = np.empty_like(t)
+        for i in range(t.size):
+            out[i] = K._exp_neg(t[i])
+        return out
+
+    t = -np.concatenate([np.linspace(0.0, 708.0, 200_001), np.arange(0, 1022) * np.log(2.0)])
+    got, ref = row(t), np.exp(t)
+    assert np.max(np.abs(got / ref - 1.0)) < 1e-13  # the docstring's bound
+    k = np.arange(0, 1022)
+    assert np.max(np.abs(got[-k.size:] / 2.0 ** -k - 1.0)) < 1e-13
+    assert row(np.array([-800.0]))[0] == pytest.approx(np.exp(-708.0), rel=1e-13)  # clamp
+
+
 @pytest.mark.parametrize("model", list(K.MODEL_CODES))
 def test_kernel_model_and_jacobian(model):
     # the numba model must equal the exact numpy/scipy definitions; Jacobian vs central
