@@ -468,7 +468,26 @@ def _save(fig, path: str | Path, info: Mapping[str, Any]) -> Path:
         image.save(p, **kw)
     else:  # inside _deferred_saves: PNG encoding (zlib, GIL released) beside the next drawing
         pending.append(_SAVES.pool.submit(image.save, p, **kw))
+    _release(fig)
     return p
+
+
+def _release(fig) -> None:
+    """Drop what a saved figure holds (its axes, images and, in the map layout, the map at
+    full resolution). A figure is a reference cycle, freed only by the garbage
+    collector's next full pass; until then each figure of a large map kept a copy of
+    the map (about 22 MB at 1397 x 1397 pixels), so memory grew with every figure."""
+    for ax in fig.axes:
+        for im in ax.images:  # the image keeps its own copy of the values drawn
+            im.set_data(_NO_PIXELS)
+    eng = fig.get_layout_engine()
+    for name in ("ax", "cax", "legend", "side", "image", "values"):
+        if hasattr(eng, name):
+            setattr(eng, name, None)
+    fig.clear()
+
+
+_NO_PIXELS = np.zeros((1, 1))
 
 
 #: zlib level of the PNG files (lossless at any level). The 21 figures of a 698 x 698
@@ -1259,36 +1278,12 @@ def _write_figures(ds: xr.Dataset, out: Path, names: list[str],
     histogram = "peak_energy" in ds.data_vars and (variables is None or "peak_energy" in names)
     histograms: list[Path] = []
     for group in _map_groups(ds, maps):
-        # the figures of one group of maps in memory: drawn in two processes (_draw_jobs)
-        jobs: list[tuple[Path, Any]] = []
-        hist_jobs: list[tuple[Path, Any]] = []
-        for name, v in group:
-            extra = [d for d in v.dims if d not in ("y", "x") and v.sizes[d] > 1]
-            if extra:
-                d = extra[0]
-                labels = _slice_labels(ds, v, d)
-                slices = [(v.isel({d: i}), f"{name}_{lab}") for i, lab in enumerate(labels)]
-            else:
-                slices = [(v, name)]
-            for sl, stem in slices:
-                path = out / f"{prefix}{_safe_name(stem)}.png"
-                if sl.dtype.kind == "f" and not bool(np.isfinite(sl.values).any()):
-                    warnings.warn(f"no figure of {stem}: every pixel is NaN", PmapNotice,
-                                  stacklevel=3)
-                    continue
-                if _is_label_map(v):
-                    jobs.append((path, (plot_labels, (sl, path), {})))
-                else:
-                    if no_value is not None and sl.dtype.kind == "f" \
-                            and name != "background_offset":
-                        sl = sl.where(~no_value)
-                    note = ds.attrs.get("planck_assumptions") if name in _PLANCK_MAPS else None
-                    jobs.append((path, (plot_map, (sl, path), {"note": note})))
-            if histogram and name == "peak_energy":  # from the map in memory, not read again
-                hist_jobs = _histogram_jobs(ds, v, out, prefix)
-        done = _draw_jobs(jobs + hist_jobs)
-        written.extend(done[:len(jobs)])
-        histograms.extend(done[len(jobs):])
+        # one group's maps in memory at a time: this group's figures are drawn (and its
+        # arrays dropped, with _draw_group's locals) before the next group is read
+        done, n_maps = _draw_group(ds, group, out, prefix, no_value, histogram)
+        del group
+        written.extend(done[:n_maps])
+        histograms.extend(done[n_maps:])
     if histogram and "peak_energy" not in maps:  # asked for, though not drawn as a map
         histograms.extend(_draw_jobs(_histogram_jobs(ds, ds["peak_energy"], out, prefix),
                                      parallel=False))
@@ -1296,6 +1291,47 @@ def _write_figures(ds: xr.Dataset, out: Path, names: list[str],
     if variables is None:
         written.extend(_spectra_figures(ds, out, prefix))
     return written
+
+
+def _draw_group(ds: xr.Dataset, group: list[tuple[str, xr.DataArray]], out: Path,
+                prefix: str, no_value: xr.DataArray | None,
+                histogram: bool) -> tuple[list[Path], int]:
+    """Draw the figures of one group of maps in memory (in two processes, _draw_jobs);
+    returns (paths: maps first, then histograms; the number of map figures)."""
+    jobs: list[tuple[Path, Any]] = []
+    hist_jobs: list[tuple[Path, Any]] = []
+    for name, v in group:
+        extra = [d for d in v.dims if d not in ("y", "x") and v.sizes[d] > 1]
+        if extra:
+            d = extra[0]
+            labels = _slice_labels(ds, v, d)
+            slices = [(v.isel({d: i}), f"{name}_{lab}") for i, lab in enumerate(labels)]
+        else:
+            slices = [(v, name)]
+        for sl, stem in slices:
+            path = out / f"{prefix}{_safe_name(stem)}.png"
+            if sl.dtype.kind == "f" and not bool(np.isfinite(sl.values).any()):
+                warnings.warn(f"no figure of {stem}: every pixel is NaN", PmapNotice,
+                              stacklevel=4)
+                continue
+            if _is_label_map(v):
+                jobs.append((path, (plot_labels, (sl, path), {})))
+            else:
+                mask = (no_value if no_value is not None and sl.dtype.kind == "f"
+                        and name != "background_offset" else None)
+                note = ds.attrs.get("planck_assumptions") if name in _PLANCK_MAPS else None
+                jobs.append((path, (_plot_map_masked, (sl, mask, path), {"note": note})))
+        if histogram and name == "peak_energy":  # from the map in memory, not read again
+            hist_jobs = _histogram_jobs(ds, v, out, prefix)
+    return _draw_jobs(jobs + hist_jobs), len(jobs)
+
+
+def _plot_map_masked(sl: xr.DataArray, no_value: xr.DataArray | None, path: Path,
+                     **kw: Any) -> Path:
+    """:func:`plot_map` of ``sl`` with the ``no_value`` pixels (if given) set to NaN; the
+    masked copy is made here, when this figure is drawn, so that a group's jobs hold
+    one copy at a time rather than one per map."""
+    return plot_map(sl if no_value is None else sl.where(~no_value), path, **kw)
 
 
 def _histogram_jobs(ds: xr.Dataset, pe: xr.DataArray, out: Path, prefix: str) -> list:
