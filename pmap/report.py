@@ -473,8 +473,8 @@ def _save(fig, path: str | Path, info: Mapping[str, Any]) -> Path:
 
 
 def _release(fig) -> None:
-    """Drop what a saved figure holds (its axes, images and, in the map layout, the map at
-    full resolution). A figure is a reference cycle, freed only by the garbage
+    """Drop the arrays a saved figure holds (its images' values and, in the map layout,
+    the map at full resolution). A figure is a reference cycle, freed only by the garbage
     collector's next full pass; until then each figure of a large map kept a copy of
     the map (about 22 MB at 1397 x 1397 pixels), so memory grew with every figure."""
     for ax in fig.axes:
@@ -484,7 +484,6 @@ def _release(fig) -> None:
     for name in ("ax", "cax", "legend", "side", "image", "values"):
         if hasattr(eng, name):
             setattr(eng, name, None)
-    fig.clear()
 
 
 _NO_PIXELS = np.zeros((1, 1))
