@@ -481,9 +481,8 @@ def _release(fig) -> None:
         for im in ax.images:  # the image keeps its own copy of the values drawn
             im.set_data(_NO_PIXELS)
     eng = fig.get_layout_engine()
-    for name in ("ax", "cax", "legend", "side", "image", "values"):
-        if hasattr(eng, name):
-            setattr(eng, name, None)
+    if hasattr(eng, "values"):  # the map layout's full-resolution map (_decimate)
+        eng.values = None
 
 
 _NO_PIXELS = np.zeros((1, 1))
